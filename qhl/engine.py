@@ -171,6 +171,30 @@ class ExactEngine:
             out += np.einsum("bt,bt->t", eb, w.T @ ea)
         return out / self.norm
 
+    def transitions(self, experiment=None, free_values_hz=None, min_amplitude: float = 1e-14):
+        """The line list: frequencies (Hz) and complex amplitudes with S(t) = sum a_k exp(2 pi i f_k t).
+
+        Lines closer than the degeneracy tolerance are merged. Amplitudes sum to S(0) = 1.
+        """
+        spec = self.spectrum(experiment, free_values_hz)
+        freqs, amps = [], []
+        for b, rt, ot in zip(self._blocks, spec.rho_t, spec.obs_t):
+            w = (ot * rt).ravel() / self.norm
+            om = (spec.energies[b.p][None, :] - spec.energies[b.s][:, None]).ravel()
+            keep = np.abs(w) > min_amplitude
+            freqs.append(om[keep] / (2 * np.pi))
+            amps.append(w[keep])
+        f = np.concatenate(freqs) if freqs else np.zeros(0)
+        a = np.concatenate(amps) if amps else np.zeros(0, complex)
+        order = np.argsort(f)
+        f, a = f[order], a[order]
+        if f.size:
+            tol_hz = spec.tol / (2 * np.pi) * 10
+            group = np.concatenate([[0], np.cumsum(np.diff(f) > tol_hz)])
+            a = np.bincount(group, weights=a.real) + 1j * np.bincount(group, weights=a.imag)
+            f = np.bincount(group, weights=f) / np.bincount(group)
+        return f, a
+
     # ------------------------------------------------------------------ gradient
     def _eigen_generators(self, spec, n, scale):
         """V^dag (2 pi s_n G_n) V per sector for parameter index n."""

@@ -147,6 +147,21 @@ class HamiltonianModel:
             return SparsePauliOp("I" * self.n_spins, 0.0)
         return SparsePauliOp.sum(terms).simplify(atol=0)
 
+    def with_rf_term(self, isotope: str, nutation_hz: float, axis: str = "x") -> "HamiltonianModel":
+        """A copy with a continuous RF field on `isotope`: parameter 'rf:ISO' with G = sum I_axis.
+
+        An RF term breaks the magnetisation symmetry, so the exact engine works in the full space.
+        """
+        iso = nucleus(isotope).symbol
+        qubits = [i for i, s in enumerate(self.isotopes) if s == iso]
+        if not qubits:
+            raise QhlInputError(f"no spin of isotope {iso}", key="rf")
+        if axis not in ("x", "y"):
+            raise QhlInputError(f"expected axis x or y, got {axis!r}", key="rf")
+        gen = SparsePauliOp.sum([spin_operator(axis, q, self.n_spins) for q in qubits])
+        prm = Parameter(f"rf:{iso}", "rf", tuple(self.labels[q] for q in qubits), float(nutation_hz), gen)
+        return replace(self, parameters=self.parameters + (prm,))
+
     def observed_qubits(self) -> list:
         return [i for i, o in enumerate(self.observed) if o]
 

@@ -10,7 +10,7 @@ import numpy as np
 from .engine import ExactEngine
 from .model import DEFAULT_FREE, build_model
 
-__all__ = ["SignalReport", "compute_signals", "spectrum_of", "powder_signal", "lebedev_orientations"]
+__all__ = ["SignalReport", "compute_signals", "spectrum_of"]
 
 
 @dataclass
@@ -63,26 +63,3 @@ def spectrum_of(times_s, signal, zero_fill: int = 4):
     spec = np.fft.fftshift(np.fft.fft(s, n))
     freq = np.fft.fftshift(np.fft.fftfreq(n, dt))
     return freq, spec
-
-
-def lebedev_orientations(order: int = 17):
-    """Field directions and weights (summing to 1) of a Lebedev-Laikov spherical rule.
-
-    V. I. Lebedev and D. N. Laikov, Doklady Mathematics 59, 477 (1999), via
-    scipy.integrate.lebedev_rule. Integrates spherical harmonics up to degree `order` exactly.
-    """
-    from scipy.integrate import lebedev_rule
-
-    x, w = lebedev_rule(order)
-    return x.T.copy(), w / w.sum()
-
-
-def powder_signal(cluster, experiment, order: int = 17, times=None):
-    """Orientation average of S(t) over a Lebedev grid (dipolar terms from geometry per direction)."""
-    dirs, weights = lebedev_orientations(order)
-    t = experiment.times_s if times is None else np.asarray(times, float)
-    total = np.zeros(t.shape, complex)
-    for d, w in zip(dirs, weights):
-        eng = ExactEngine(build_model(cluster, free=(), orientation=d))
-        total += w * eng.signal(experiment, t)
-    return total

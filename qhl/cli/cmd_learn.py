@@ -1,0 +1,82 @@
+"""`qhl learn`: fit a cluster's free parameters to measured or synthetic NMR signals."""
+
+import sys
+
+import numpy as np
+
+from ..learning import METHODS, learn
+from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float,
+                     positive_int, print_json)
+
+
+def register(sub):
+    p = sub.add_parser("learn", help="fit Hamiltonian parameters to signals, with Cramer-Rao error bars")
+    add_cluster_argument(p)
+    src = p.add_mutually_exclusive_group()
+    src.add_argument("--data", metavar="FILE.csv",
+                     help="measured signals: columns experiment,time_s,real,imag[,sigma]")
+    src.add_argument("--synthetic", action="store_true",
+                     help="fit synthetic data from the cluster's own values (the default)")
+    p.add_argument("--noise", type=positive_float, metavar="SIGMA",
+                   help="noise per point of Re and Im (default: each experiment's noise)")
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the noise and start signs")
+    p.add_argument("--start-offset", type=float, default=None, metavar="REL",
+                   help="start this far off in relative terms (default 0.05 synthetic, 0 with --data)")
+    p.add_argument("--method", choices=METHODS, default="gn",
+                   help="gn: Levenberg-Marquardt on the Fisher matrix; cg; lbfgs (default gn)")
+    p.add_argument("--gradients", choices=("exact", "emulated"), default="exact",
+                   help="exact engine or circuit emulator with --shots per estimate")
+    p.add_argument("--shots", type=positive_int, metavar="N", help="shots per estimate (emulated gradients)")
+    p.add_argument("--max-iter", type=positive_int, default=200, metavar="N", help="iteration limit")
+    p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
+                   help="free parameters as glob patterns (default: offsets and dipolar couplings)")
+    p.add_argument("--plot", metavar="FILE.png", help="write data vs fit, residuals and convergence")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.set_defaults(func=run)
+
+
+def _progress(entry):
+    print(f"iteration {entry['iteration']:>3}: cost {entry['cost']:.6g}  "
+          f"scaled gradient {entry['gradient_norm']:.3g}", file=sys.stderr)
+
+
+def run(args):
+    cluster = cluster_from_args(args)
+    if args.plot:
+        check_output_path(args.plot, "--plot")
+    report = learn(cluster, free=args.free, data_path=args.data, sigma=args.noise, seed=args.seed,
+                   start_offset=args.start_offset, method=args.method, gradients=args.gradients,
+                   shots=args.shots, max_iter=args.max_iter, progress=None if args.json else _progress)
+    if args.plot:
+        from ..plots import plot_fit
+        plot_fit(report, args.plot)
+    fit = report.fit
+    if not fit.converged:
+        print(f"qhl: warning: {fit.message}", file=sys.stderr)
+    for u in fit.unlearnable:
+        combo = " ".join(f"{w:+.3f}*{n}" for n, w in u["combination"].items())
+        print(f"qhl: warning: the data do not determine {combo} (Fisher eigenvalue {u['eigenvalue']:.2e})",
+              file=sys.stderr)
+    if args.json:
+        print_json(report.to_json())
+        return 0
+    print(f"cluster {cluster.name}: {len(fit.names)} free parameters, method {fit.method}, "
+          f"{report.gradients} gradients, data {'from ' + args.data if args.data else 'synthetic'}")
+    print(f"{fit.message} after {fit.iterations} iterations; cost {fit.cost:.6g} nats")
+    truth = report.true_hz
+    head = f"{'parameter':<20}{'fitted (Hz)':>14}{'stderr (Hz)':>13}"
+    print(head + (f"{'true (Hz)':>14}{'error/stderr':>13}" if truth is not None else ""))
+    for k, (n, v, e) in enumerate(zip(fit.names, fit.values_hz, fit.stderr_hz)):
+        line = f"{n:<20}{v:>14.3f}{e:>13.4g}"
+        if truth is not None:
+            z = (v - truth[k]) / e if np.isfinite(e) and e > 0 else float("nan")
+            line += f"{truth[k]:>14.3f}{z:>13.2f}"
+        print(line)
+    if truth is not None:
+        print(f"relative error ||h_fit - h_true||/||h_true|| = {report.relative_error:.3e} "
+              f"(Cramer-Rao-limited: {report.crb_relative_error:.3e})")
+    else:
+        print(f"Cramer-Rao-limited relative error: {report.crb_relative_error:.3e}")
+    if args.plot:
+        print(f"wrote {args.plot}")
+    return 0
