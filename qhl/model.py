@@ -114,7 +114,7 @@ class HamiltonianModel:
             patterns = [patterns]
         chosen = [p.name for p in self.parameters if any(fnmatchcase(p.name, pat) for pat in patterns)]
         for pat in patterns:
-            if not any(fnmatchcase(p.name, pat) for p in self.parameters):
+            if not any(fnmatchcase(p.name, pat) for p in self.parameters) and pat not in DEFAULT_FREE:
                 raise QhlInputError(f"no parameter matches '{pat}'", key="free")
         return replace(self, free=tuple(chosen))
 
@@ -220,5 +220,4 @@ def build_model(cluster: Cluster, free=DEFAULT_FREE, orientation=None) -> Hamilt
     model = HamiltonianModel(labels=labels, isotopes=isotopes, observed=observed,
                              parameters=tuple(params), free=())
     patterns = [free] if isinstance(free, str) else list(free)
-    chosen = [p.name for p in params if any(fnmatchcase(p.name, pat) for pat in patterns)]
-    return replace(model, free=tuple(chosen))
+    return model.with_free(patterns) if patterns else model

@@ -21,7 +21,7 @@ FREE = ["offset:*", "dipolar:*", "j:*"]
 def test_signal_matches_dense_expm(n, hetero, seed):
     rng = np.random.default_rng(seed)
     c = random_cluster(rng, n, hetero)
-    model = build_model(c, free=FREE)
+    model = build_model(c, free=FREE if n > 2 else ["offset:*", "dipolar:*"])
     eng = ExactEngine(model)
     assert eng.symmetric
     for ex in c.experiments:
