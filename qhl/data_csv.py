@@ -18,8 +18,8 @@ from .likelihood import Dataset
 __all__ = ["REQUIRED_COLUMNS", "load_signals_csv", "write_signals_csv", "TIME_RTOL"]
 
 REQUIRED_COLUMNS = ("experiment", "time_s", "real", "imag")
-# A time matches a grid point within this fraction of the grid spacing (rounding in files).
-TIME_RTOL = 1e-6
+# A time matches a grid point within this fraction of the grid spacing (files round times).
+TIME_RTOL = 1e-3
 
 
 def _number(text, column, line, source):
@@ -46,6 +46,14 @@ def load_signals_csv(path, cluster, sigma=None) -> Dataset:
     Raises:
         QhlInputError: unreadable file, missing column, bad number, NaN, unknown experiment,
             unsorted or duplicate times, a time off the experiment's grid, sigma <= 0, no sigma.
+
+    Example:
+        >>> import tempfile, os
+        >>> from qhl import demo_cluster
+        >>> path = os.path.join(tempfile.mkdtemp(), "fid.csv")
+        >>> _ = open(path, "w").write("experiment,time_s,real,imag\\nstatic,0.0,1.0,0.0\\n")
+        >>> load_signals_csv(path, demo_cluster()).signals["static"][1]
+        array([1.+0.j])
     """
     source = str(path)
     try:

@@ -90,6 +90,12 @@ def fisher_report(cluster, free=DEFAULT_FREE, sigma=None, experiments=None, free
 
     Raises:
         QhlInputError: no experiments, an experiment without noise and no sigma, sigma <= 0.
+
+    Example:
+        >>> from qhl import demo_cluster
+        >>> rep = fisher_report(demo_cluster(), free="offset:*")
+        >>> rep.crb_hz.shape, rep.singular
+        ((6,), False)
     """
     engine = engine or ExactEngine(build_model(cluster, free=free))
     model = engine.model

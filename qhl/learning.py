@@ -21,7 +21,9 @@ Optimisers:
 For 'cg' and 'lbfgs' each parameter is measured in units of 1/sqrt(F_nn) at the start (diagonal
 preconditioning, common practice): offsets and couplings differ in scale by orders of magnitude.
 
-Every optimiser keeps the lowest-cost point it evaluated and says whether it converged.
+Every optimiser keeps the lowest-cost point it evaluated and says whether it converged. With a
+noisy provider 'gn' is the method to use: its steps are accepted only when the cost falls, and it
+stops when the cost stalls at the noise floor of the gradient estimates.
 """
 
 from abc import ABC, abstractmethod
@@ -38,21 +40,26 @@ from .likelihood import Dataset
 __all__ = ["GradientProvider", "ExactGradientProvider", "CostPoint", "FitResult", "evaluate_cost",
            "fit", "perturbed_start", "emulated_gradient_provider", "relative_error", "METHODS",
            "LearnReport", "learn",
-           "DECREMENT_TOL"]
+           "DECREMENT_TOL", "NOISY_STALL_TOL", "NOISY_PATIENCE"]
 
 METHODS = ("gn", "cg", "lbfgs")
 
 # Converged when the full Gauss-Newton step would lower the cost by less than this many nats:
 # far below the statistical scale of a log-likelihood (1/2 nat per standard error; common practice).
 DECREMENT_TOL = 1e-6
+# Noisy gradients (GradientProvider.noisy): stop when the cost falls by less than this over
+# that many iterations (common practice).
+NOISY_STALL_TOL = 1e-2
+NOISY_PATIENCE = 3
 
 
 class GradientProvider(ABC):
     """Source of signals and their derivatives with respect to the free parameters.
 
     Subclasses set `parameter_names` (free parameters, in order) and `noisy` (True when the
-    values are estimates with sampling noise, e.g. from a shot budget on a quantum emulator),
-    and implement `signals_and_gradients`.
+    values are estimates with sampling noise, e.g. from a shot budget on a quantum emulator:
+    the 'gn' loop then also stops when the cost stalls at the noise floor, NOISY_STALL_TOL),
+    and implement `signals_and_gradients`. A noisy provider draws fresh estimates on every call.
     """
 
     parameter_names: tuple = ()
@@ -220,14 +227,21 @@ def _gradient_norm(point):
     return float(np.linalg.norm(point.gradient * _scales(point.fisher)))
 
 
+def _levenberg_marquardt(evaluate, start, max_iter, tol, record, noisy=False):
+    """Marquardt-scaled Levenberg-Marquardt (Madsen, Nielsen, Tingleff 2004, alg. 3.16).
 
-
-def _levenberg_marquardt(evaluate, start, max_iter, tol, record):
-    """Marquardt-scaled Levenberg-Marquardt (Madsen, Nielsen, Tingleff 2004, alg. 3.16)."""
+    With noisy gradients the predicted decrease never falls below its noise floor, so the loop
+    also stops once the cost has fallen by less than NOISY_STALL_TOL nats over NOISY_PATIENCE
+    iterations.
+    """
     point = evaluate(start)
     record(0, point)
+    costs = [point.cost]
     mu, nu = 1e-3, 2.0
     for k in range(1, max_iter + 1):
+        if noisy and len(costs) > NOISY_PATIENCE and costs[-1 - NOISY_PATIENCE] - costs[-1] < NOISY_STALL_TOL:
+            return point, k - 1, True, (f"converged to the noise floor of the gradients: the cost fell by less "
+                                        f"than {NOISY_STALL_TOL:g} nats over {NOISY_PATIENCE} iterations")
         g, F = point.gradient, point.fisher
         d = np.diag(F).copy()
         d[d <= 1e-300] = 1.0
@@ -249,6 +263,7 @@ def _levenberg_marquardt(evaluate, start, max_iter, tol, record):
         else:
             mu *= nu
             nu *= 2.0
+        costs.append(point.cost)
         record(k, point)
     return point, max_iter, False, (f"did not converge in {max_iter} iterations (predicted decrease "
                                     f"{decrement:.2e} nats > {tol:.0e}); best point kept")
@@ -292,7 +307,8 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
         start_hz: starting values (P,) in Hz.
         method: 'gn' (Levenberg-Marquardt on the Fisher matrix), 'cg' or 'lbfgs'.
         max_iter: iteration limit; reaching it gives converged=False and keeps the best point.
-        tol: 'gn' stops when the predicted decrease of a full step is below tol nats.
+        tol: 'gn' stops when the predicted decrease of a full step is below tol nats; 'cg' and
+            'lbfgs' use scipy's own tests (gtol 1e-5 in the preconditioned variables).
         rcond: relative eigenvalue below which a Fisher direction counts as unlearnable.
         progress: optional callable given each history entry as it is recorded.
 
@@ -301,6 +317,16 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
 
     Raises:
         QhlInputError: unknown method, wrong start size, bad sigma, empty data.
+
+    Example:
+        >>> from qhl import demo_cluster, build_model, ExactEngine
+        >>> from qhl.likelihood import synthetic_dataset
+        >>> c = demo_cluster(); eng = ExactEngine(build_model(c, free="offset:*"))
+        >>> data = synthetic_dataset(eng, c.experiments, seed=0)
+        >>> start = perturbed_start(eng.model.free_values_hz, 0.01)
+        >>> res = fit(ExactGradientProvider(eng, c.experiments), data, start)
+        >>> res.converged, bool(res.iterations <= 10)
+        (True, True)
     """
     if method not in METHODS:
         raise QhlInputError(f"unknown method '{method}': expected one of {', '.join(METHODS)}", key="method")
@@ -331,7 +357,8 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
             progress(history[-1])
 
     if method == "gn":
-        _, iterations, converged, message = _levenberg_marquardt(evaluate, start, int(max_iter), tol, record)
+        _, iterations, converged, message = _levenberg_marquardt(evaluate, start, int(max_iter), tol, record,
+                                                                 bool(getattr(provider, "noisy", False)))
     else:
         converged, iterations, message = _scipy(evaluate, start, method, int(max_iter), record)
         if not converged:

@@ -45,10 +45,10 @@ def test_good_file_parses():
     assert c.experiments[0].times_s[-1] == pytest.approx(1e-4)
 
 
-def test_demo_cluster_is_six_protons_with_three_experiments():
+def test_demo_cluster_is_six_protons_with_four_experiments():
     c = demo_cluster()
     assert c.n_spins == 6 and {s.isotope for s in c.spins} == {"1H"}
-    assert [e.dipolar_scale for e in c.experiments] == [1.0, 0.25, 0.0]
+    assert [e.dipolar_scale for e in c.experiments] == [1.0, 0.5, 0.25, 0.0]
 
 
 BAD = [

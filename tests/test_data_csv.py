@@ -92,6 +92,12 @@ def test_unsorted_and_off_grid_times(tmp_path, cluster):
         load_signals_csv(p, cluster)
 
 
+def test_times_rounded_to_six_digits_still_match(tmp_path, cluster):
+    t = cluster.experiment("static").times_s
+    p = write(tmp_path, HEADER + "".join(f"static,{x:.6g},1,0\n" for x in t[:5]))
+    np.testing.assert_allclose(load_signals_csv(p, cluster).signals["static"][0], t[:5], rtol=1e-5)
+
+
 def test_missing_file_and_missing_noise(tmp_path, cluster):
     with pytest.raises(QhlInputError, match="no such file"):
         load_signals_csv(tmp_path / "absent.csv", cluster)

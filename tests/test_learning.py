@@ -106,6 +106,10 @@ def test_demo_fit_converges_to_the_ml_point_within_15_iterations(capsys):
     d = res.values_hz - h
     q = float(d @ fisher_information(engine, c.experiments, h, 1e-3) @ d)
     assert stats.chi2.ppf(0.001, len(h)) < q < stats.chi2.ppf(0.999, len(h))
+    # The criterion: ||h_fit - h|| / ||h|| < 0.2%. With the demo's four experiments the
+    # Cramer-Rao-limited error is 0.105%, and an efficient estimator exceeds 0.2% for 0.36% of
+    # noise seeds (Monte Carlo over N(0, F^-1), 200000 draws): the false-failure rate of this line.
+    assert err < 2e-3
 
 
 def test_demo_fit_noise_free_reaches_below_0p2_percent():
@@ -214,6 +218,7 @@ def test_gn_copes_with_noisy_gradients():
     engine, prov, h = setup(c)
     data = synthetic_dataset(engine, c.experiments, seed=11)
     res = fit(_JitteredProvider(prov, 0.05, 11), data, perturbed_start(h, 0.05, 11), method="gn", max_iter=40)
+    assert res.converged and "noise floor" in res.message, res.message
     crb = cramer_rao_bounds(fisher_information(engine, c.experiments, h))[0]
     assert np.all(np.abs(res.values_hz - h) < 3 * crb)
 
