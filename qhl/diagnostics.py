@@ -28,7 +28,7 @@ import numpy as np
 from qiskit.quantum_info import SparsePauliOp
 
 from .cluster import Cluster, Experiment
-from .engine import DEGENERACY_RTOL, ExactEngine
+from .engine import ExactEngine
 from .likelihood import cramer_rao_bounds, fisher_information
 from .model import DEFAULT_FREE, build_model
 
@@ -111,11 +111,11 @@ def symmetry_sector_levels(engine: ExactEngine, experiment: Experiment, free_val
     out = []
     for ix, e, v in zip(engine.sectors, spec.energies, spec.vectors):
         partner = ix ^ mask
-        if not flip or len(ix) < 2 or not np.array_equal(np.sort(partner), np.sort(ix)):
+        order = np.argsort(ix)
+        j = order[np.clip(np.searchsorted(ix, partner, sorter=order), 0, len(ix) - 1)]
+        if not flip or len(ix) < 2 or not np.array_equal(ix[j], partner):
             out.append(np.asarray(e))
             continue
-        pos = {int(k): i for i, k in enumerate(ix)}
-        j = np.array([pos[int(k)] for k in partner])
         h = (v * e[None, :]) @ v.conj().T                    # the sector block of H
         lo = np.flatnonzero(np.arange(len(ix)) < j)          # one index of each flip pair
         d = len(ix)

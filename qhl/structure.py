@@ -14,7 +14,8 @@ Cutting (common practice for cluster approximations of extended spin systems):
              nucleus nearest the centroid (each next centre maximises its distance to those chosen);
     cluster: the K nuclei nearest each centre (the centre first, ties broken by file order), or
              with a radius R the nuclei within R of the centre, nearest first, at most K.
-Clusters holding the same nuclei as an earlier one are dropped.
+Clusters holding the same nuclei as an earlier one are dropped. Offsets are zero unless given
+(structure files hold no chemical shifts; invented_offsets_hz makes up plausible ones).
 """
 
 from dataclasses import dataclass, replace
@@ -24,16 +25,18 @@ import os
 from pathlib import Path
 import re
 import tempfile
+from importlib import resources
 
 import numpy as np
 
 from .cluster import Cluster, Experiment, Spin
 from .cluster_file import load_cluster
 from .errors import QhlInputError
-from .nuclei import nucleus
+from .nuclei import larmor_frequency_hz, nucleus
 
 __all__ = ["Nuclei", "read_structure", "nuclei_from_atoms", "choose_centres", "cut_clusters",
-           "cluster_to_toml", "write_cluster_files", "DEFAULT_EXPERIMENT", "DEMO_STRUCTURE"]
+           "invented_offsets_hz", "cluster_to_toml", "write_cluster_files", "write_text_atomic",
+           "demo_structure_path", "DEFAULT_EXPERIMENT", "DEMO_STRUCTURE"]
 
 DEMO_STRUCTURE = "demo_structure.pdb"
 
@@ -62,6 +65,11 @@ class Nuclei:
 
     def __len__(self):
         return len(self.labels)
+
+
+def demo_structure_path() -> Path:
+    """Path of the invented demo structure shipped with qhl (48 protons; see its REMARK lines)."""
+    return Path(str(resources.files("qhl").joinpath("data", DEMO_STRUCTURE)))
 
 
 def _element_of(isotope: str) -> str:
@@ -144,13 +152,17 @@ def _read_gemmi_atoms(path: Path):
         raise QhlInputError(f"cannot read structure: {str(e).splitlines()[0]}", source=src) from None
     if len(st) == 0:
         raise QhlInputError("no model in the structure", source=src)
-    st.remove_alternative_conformations()
     elements, positions = [], []
     for chain in st[0]:
         for residue in chain:
+            # first alternative conformation only (atoms without altloc, or the residue's first letter);
+            # gemmi's own remover also merges atoms sharing a name, which some writers produce
+            locs = [a.altloc for a in residue if a.altloc != "\0"]
+            keep = locs[0] if locs else "\0"
             for atom in residue:
-                elements.append(atom.element.name)
-                positions.append(atom.pos.tolist())
+                if atom.altloc in ("\0", keep):
+                    elements.append(atom.element.name)
+                    positions.append(atom.pos.tolist())
     return elements, np.array(positions, float).reshape(-1, 3)
 
 
@@ -168,9 +180,7 @@ def read_structure(path, isotopes=("1H",)) -> Nuclei:
         QhlInputError: missing/unreadable file, unknown format, or no nuclei of the isotopes.
 
     Example:
-        >>> from importlib import resources
-        >>> p = resources.files("qhl").joinpath("data", "demo_structure.pdb")
-        >>> len(read_structure(p, "1H"))
+        >>> len(read_structure(demo_structure_path(), "1H"))
         48
     """
     path = Path(str(path))
@@ -211,8 +221,21 @@ def choose_centres(positions, count: int) -> np.ndarray:
     return np.array(chosen, dtype=int)
 
 
+def invented_offsets_hz(nuclei: Nuclei, spread_ppm: float, field_tesla: float = 9.4, seed: int = 0) -> np.ndarray:
+    """Made-up chemical-shift offsets: uniform in [-spread/2, +spread/2] ppm of each Larmor frequency.
+
+    Structure files carry no shifts; these stand in for them (fixed seed, one value per nucleus,
+    so a nucleus has the same offset in every cluster). offset_hz = ppm * 1e-6 * nu0.
+    """
+    if not (math.isfinite(spread_ppm) and spread_ppm >= 0):
+        raise QhlInputError(f"expected a shift spread >= 0 ppm, got {spread_ppm}", key="shift-spread")
+    ppm = np.random.default_rng(seed).uniform(-0.5, 0.5, len(nuclei)) * spread_ppm
+    nu0 = np.array([larmor_frequency_hz(iso, field_tesla) for iso in nuclei.isotopes])
+    return ppm * 1e-6 * nu0
+
+
 def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None = None,
-                 field_tesla: float = 9.4, experiments=(DEFAULT_EXPERIMENT,)) -> list:
+                 field_tesla: float = 9.4, experiments=(DEFAULT_EXPERIMENT,), offsets_hz=None) -> list:
     """Cut clusters of `size` nuclei around `centres` centres (see the module docstring).
 
     Args:
@@ -222,9 +245,10 @@ def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None =
         radius: optional cut-off in angstrom; clusters with fewer than 2 spins are dropped.
         field_tesla: static field of the written clusters (along z of the structure's frame).
         experiments: experiments attached to every cluster (default one FID).
+        offsets_hz: optional offset per nucleus (e.g. invented_offsets_hz); default all zero.
 
     Returns:
-        list of Cluster, named <structure>-<centre label>, spins nearest first, zero offsets.
+        list of Cluster, named <structure>-<centre label>-n<spins>, spins nearest first.
 
     Raises:
         QhlInputError: size < 2, fewer nuclei than `size`, bad centres or radius, or no cluster left.
@@ -241,6 +265,9 @@ def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None =
     if radius is not None and not (math.isfinite(radius) and radius > 0):
         raise QhlInputError(f"expected a positive radius in angstrom, got {radius}", source=src, key="radius")
     pos = nuclei.positions
+    offsets = np.zeros(n) if offsets_hz is None else np.asarray(offsets_hz, float).ravel()
+    if offsets.shape != (n,) or not np.all(np.isfinite(offsets)):
+        raise QhlInputError(f"expected {n} finite offsets", source=src, key="offsets_hz")
     observe = nuclei.isotopes[0]
     clusters, seen = [], set()
     for c in choose_centres(pos, centres):
@@ -255,12 +282,13 @@ def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None =
         if key in seen:
             continue
         seen.add(key)
-        spins = tuple(Spin(nuclei.labels[i], nuclei.isotopes[i], tuple(float(x) for x in pos[i]), 0.0)
+        spins = tuple(Spin(nuclei.labels[i], nuclei.isotopes[i], tuple(float(x) for x in pos[i]),
+                           float(offsets[i]))
                       for i in members)
         isos = {s.isotope for s in spins}
         clusters.append(Cluster(field_tesla=field_tesla, observe=observe if observe in isos else spins[0].isotope,
                                 spins=spins, experiments=tuple(experiments), source=src,
-                                name=f"{nuclei.name}-{nuclei.labels[c]}"))
+                                name=f"{nuclei.name}-{nuclei.labels[c]}-n{len(members)}"))
     if not clusters:
         raise QhlInputError(f"no centre has another nucleus within {radius} A", source=src, key="radius")
     return clusters
