@@ -70,7 +70,7 @@ class ExactEngine:
     Example:
         >>> from qhl import demo_cluster, build_model, ExactEngine
         >>> c = demo_cluster(); eng = ExactEngine(build_model(c))
-        >>> s = eng.signal(c.experiments[0]); round(abs(s[0]), 12)
+        >>> s = eng.signal(c.experiments[0]); float(round(abs(s[0]), 12))
         1.0
     """
 

@@ -1,0 +1,208 @@
+"""`qhl budget`: near-term shots and fault-tolerant resources to learn a cluster's Hamiltonian."""
+
+import math
+import sys
+
+import numpy as np
+
+from ..costing import BudgetModel, BudgetSettings
+from ..costing.shots import check_precision, check_time
+from ..costing.surface_code import check_physical_error
+from ..costing.synthesis import SYNTHESIS_METHODS
+from ..errors import QhlInputError
+from .common import add_cluster_argument, check_output_path, cluster_from_args, positive_float, positive_int, \
+    print_json
+
+
+def register(sub):
+    p = sub.add_parser("budget", help="near-term and fault-tolerant budgets (model-based) for learning a cluster")
+    add_cluster_argument(p)
+    p.add_argument("--time", type=float, default=None, metavar="T",
+                   help="evolution time in seconds (default: the shortest window of an experiment that sees "
+                        "every free parameter; 2e-4 s for the demo)")
+    p.add_argument("--precision", type=float, default=0.01, metavar="EPS",
+                   help="standard error per gradient component, derivatives per kHz (default 0.01)")
+    p.add_argument("--sweep-time", metavar="A:B:N", help="log grid of N times from A to B seconds")
+    p.add_argument("--sweep-precision", metavar="A:B:N", help="log grid of N precisions from A to B")
+    p.add_argument("--plot", metavar="FILE.png", help="log-log plots of every budget (a default sweep if none given)")
+    p.add_argument("--physical-error", type=float, default=None, metavar="P",
+                   help="physical error rate for a surface-code estimate (below the 1%% threshold)")
+    p.add_argument("--cycle-time", type=positive_float, default=1e-6, metavar="S",
+                   help="surface-code cycle time in seconds (default 1e-6)")
+    p.add_argument("--failure-budget", type=positive_float, default=0.01, metavar="F",
+                   help="allowed failure probability of the fault-tolerant circuit (default 0.01)")
+    p.add_argument("--synthesis", choices=SYNTHESIS_METHODS, default="ross-selinger",
+                   help="rotation synthesis T-count rule (default ross-selinger)")
+    p.add_argument("--iterations", type=positive_int, default=50, help="learning iterations (default 50)")
+    p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
+                   help="free parameters as glob patterns (default: offsets and dipolar couplings)")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.set_defaults(func=run)
+
+
+def parse_range(text, option):
+    """'A:B:N' -> N log-spaced values from A to B (A, B > 0, A < B, N >= 2 an integer)."""
+    parts = str(text).split(":")
+    if len(parts) != 3:
+        raise QhlInputError(f"expected A:B:N (start:stop:count), got {text!r}", key=option)
+    try:
+        a, b = float(parts[0]), float(parts[1])
+        n = int(parts[2])
+    except ValueError:
+        raise QhlInputError(f"expected numbers A:B and an integer count N, got {text!r}", key=option) from None
+    if not (math.isfinite(a) and math.isfinite(b)) or a <= 0 or b <= a or n < 2:
+        raise QhlInputError(f"expected 0 < A < B and N >= 2, got {text!r}", key=option)
+    return np.geomspace(a, b, n)
+
+
+def _progress(msg):
+    print(f"budget: {msg}", file=sys.stderr, flush=True)
+
+
+def _fmt(v):
+    if v is None:
+        return "-"
+    if isinstance(v, (int, np.integer)) or (isinstance(v, float) and v.is_integer() and abs(v) < 1e15):
+        return f"{int(v):,}" if abs(v) < 1e7 else f"{float(v):.3e}"
+    return f"{float(v):.3e}"
+
+
+def run(args):
+    check_precision(args.precision, "--precision")
+    if args.time is not None:
+        check_time(args.time, "--time")
+    if args.physical_error is not None:
+        check_physical_error(args.physical_error)
+    if not 0 < args.failure_budget < 1:
+        raise QhlInputError(f"expected a failure probability in (0, 1), got {args.failure_budget}", key="--failure-budget")
+    times = parse_range(args.sweep_time, "--sweep-time") if args.sweep_time else None
+    precs = parse_range(args.sweep_precision, "--sweep-precision") if args.sweep_precision else None
+    if precs is not None:
+        check_precision(precs, "--sweep-precision")
+    if args.plot:
+        check_output_path(args.plot, "--plot")
+    cluster = cluster_from_args(args)
+    settings = BudgetSettings(iterations=args.iterations, synthesis=args.synthesis,
+                              physical_error=args.physical_error, cycle_time_s=args.cycle_time,
+                              failure_budget=args.failure_budget)
+    _progress(f"preparing {cluster.name} (exact engine, commutator sums)")
+    bm = BudgetModel(cluster, free=args.free, settings=settings)
+    t = bm.default_time_s if args.time is None else args.time
+    budget = bm.budget(t, args.precision)
+    sweep = None
+    if times is not None or precs is not None or args.plot:
+        if times is None and precs is None:   # default grid for a plot
+            times = np.geomspace(t / 10, t * 10, 20)
+            precs = np.geomspace(args.precision / 10, min(args.precision * 10, 0.5), 20)
+        times = np.array([t]) if times is None else times
+        precs = np.array([args.precision]) if precs is None else precs
+        _progress(f"sweeping {len(times)} x {len(precs)} (t, eps) points")
+        sweep = bm.sweep(times, precs)
+        if args.plot:
+            from ..costing.budget_plots import plot_budget_sweep
+            plot_budget_sweep(sweep, args.plot, int(np.argmin(abs(np.log(times / t)))),
+                              int(np.argmin(abs(np.log(precs / args.precision)))))
+    if args.json:
+        out = budget.to_json()
+        if sweep is not None:
+            out["sweep"] = sweep.to_json()
+        if args.plot:
+            out["plot"] = args.plot
+        print_json(out)
+        return 0
+    _print_budget(budget, bm)
+    if sweep is not None:
+        _print_sweep(sweep, t, args.precision)
+    if args.plot:
+        print(f"wrote {args.plot}")
+    return 0
+
+
+def _print_budget(b, bm):
+    nt, ft = b.near_term, b.fault_tolerant
+    print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
+          f"t = {b.time_s:g} s, eps = {b.precision:g} (per kHz)  [model-based estimates]")
+    w = ft["worst_component"]
+    print(f"worst component: {w['parameter']} in '{w['experiment']}', single-shot range R = {w['range']:.4g}")
+    print()
+    rows = [
+        ("shots per component", nt["shots_per_component"], nt["shots_per_component_bound"]),
+        ("  (Hoeffding, delta = 0.05)", None, nt["shots_per_component_hoeffding"]),
+        ("shots per gradient, optimal", nt["shots_per_gradient"], nt["shots_per_gradient_bound"]),
+        ("shots per gradient, uniform", nt["shots_per_gradient_uniform"], nt["shots_per_gradient_uniform_bound"]),
+        ("shots per Hessian entry", nt["shots_per_hessian_entry"], nt["shots_per_hessian_entry_bound"]),
+        ("shots per full Hessian", None, nt["shots_per_hessian_bound"]),
+        ("shots per Fisher matrix", nt["shots_per_fisher"], nt["shots_per_fisher_bound"]),
+        (f"shots per learning run ({nt['iterations']} it.)", nt["shots_per_learning_run"], None),
+    ]
+    print(f"{'near-term':<36}{'exact variance':>16}{'bound':>16}")
+    for name, a, c in rows:
+        print(f"{name:<36}{_fmt(a):>16}{_fmt(c):>16}")
+    print()
+    print(f"{'fault-tolerant (per component)':<36}{'chosen':>16}" + "".join(f"{'order ' + p:>14}" for p in ft["orders"]))
+    prow = [("Trotter steps r", "trotter_steps", "steps"),
+            ("  from the commutator bound", None, "steps_trotter"),
+            ("  exact propagator (same error)", None, "steps_trotter_empirical"),
+            ("  from the time quadrature", None, "steps_quadrature"),
+            ("AE queries M", "queries", "queries"),
+            ("depth (Trotter steps)", "depth_trotter_steps", "depth_steps"),
+            ("depth (gate layers)", "depth", "gate_layers"),
+            ("rotations", "rotations", "rotations"),
+            ("T-count", "t_count", "t_count"),
+            ("logical qubits", "logical_qubits", "logical_qubits")]
+    for name, key, okey in prow:
+        chosen = ft[key] if key else None
+        print(f"{name:<36}{_fmt(chosen):>16}" + "".join(f"{_fmt(o.get(okey)):>14}" for o in ft["orders"].values()))
+    print(f"chosen Trotter order {ft['trotter_order']}; {ft['t_per_rotation']:.0f} T per rotation ({ft['synthesis']}, "
+          f"rotation error {ft['rotation_error']:.2e}); AE success >= {ft['success_probability']:.3f} per run, "
+          f"{ft['median_repetitions']} runs for 95%")
+    if ft.get("gradient"):
+        g = ft["gradient"]
+        print(f"full gradient (coherent sums): T-count {_fmt(g['t_count'])}, gate layers {_fmt(g['gate_layers'])}, "
+              f"logical qubits {int(g['logical_qubits'])}")
+    e = b.error_budget
+    print(f"error budget: Trotter {e['trotter']:.3g} + synthesis {e['synthesis']:.3g} + estimation {e['estimation']:.3g}"
+          f" = {b.precision:g}")
+    c = b.comparison
+    print(f"total gate layers executed per component: near-term {_fmt(c['near_term_total_layers_per_component'])}"
+          f" (shots x {_fmt(c['near_term_layers_per_shot'])}), fault-tolerant "
+          f"{_fmt(c['fault_tolerant_total_layers_per_component'])}: "
+          f"{'fault-tolerant' if c['fault_tolerant_cheaper'] else 'near-term'} is cheaper")
+    if b.surface_code:
+        s = b.surface_code
+        print(f"surface code at p = {s['physical_error']:g}: distance {s['code_distance']}, "
+              f"{_fmt(s['physical_qubits'])} physical qubits ({s['factories']} factories, "
+              f"{s['distillation_levels']} distillation level(s)), wall time {s['wall_time_s']:.3g} s "
+              f"at {s['cycle_time_s']:g} s per cycle")
+    print(f"{len(b.assumptions)} assumptions with sources: qhl budget --json (key 'assumptions')")
+
+
+def _print_sweep(sw, t, eps):
+    i = int(np.argmin(abs(np.log(sw.times / t))))
+    j = int(np.argmin(abs(np.log(sw.precisions / eps))))
+    cols = [("NT comp.", "near_term_component_bound"), ("NT comp. ex", "near_term_component_exact"),
+            ("NT grad", "near_term_gradient_exact"), ("NT Hess.", "near_term_hessian_entry_bound"),
+            ("FT steps", "fault_tolerant_trotter_steps"), ("FT depth", "fault_tolerant_depth"),
+            ("FT T", "fault_tolerant_t_count")]
+    for axis, values, cut, label in (("t (s)", sw.times, lambda a: a[:, j], f"eps = {sw.precisions[j]:.3g}"),
+                                     ("eps", sw.precisions, lambda a: a[i, :], f"t = {sw.times[i]:.3g} s")):
+        if len(values) < 2:
+            continue
+        print()
+        print(f"sweep over {axis} at {label}")
+        print(f"{axis:>11}{'order':>6}" + "".join(f"{c:>12}" for c, _ in cols))
+        orders = cut(sw.orders)
+        for k, v in enumerate(values):
+            print(f"{v:>11.3e}{int(orders[k]):>6}" + "".join(f"{float(cut(sw.tables[key])[k]):>12.3e}" for _, key in cols))
+    print()
+    print(f"{'fitted scaling exponents':<32}{'t':>8}{'expected':>10}{'eps':>8}{'expected':>10}")
+    for name, (bt, be, et, ee) in sw.exponents.items():
+        print(f"{name:<32}{bt:>8.2f}{et:>10.2f}{be:>8.2f}{ee:>10.2f}")
+    wins = [c for c in sw.crossover if c["largest_precision_ft_cheaper"] is not None]
+    if len(sw.precisions) > 1:
+        if wins:
+            print("crossover: fault-tolerant cheaper (total layers) for eps below "
+                  + ", ".join(f"{c['largest_precision_ft_cheaper']:.2e} at t = {c['time_s']:.2e} s"
+                              for c in wins[:: max(1, len(wins) // 4)]))
+        else:
+            print("crossover: near-term cheaper everywhere on the grid")

@@ -1,0 +1,426 @@
+"""Budgets for learning a cluster's Hamiltonian: near-term shots beside fault-tolerant resources.
+
+`BudgetModel(cluster)` prepares everything that does not depend on (t, eps) once: the exact
+engine (its eigendecomposition is cached per coefficient vector, so gradients at any number of
+times come from one decomposition per experiment), per-parameter ranges, and each experiment's
+Trotter constants. `.budget(t, eps)` gives one `Budget`; `.sweep(times, precisions)` a
+`BudgetSweep` on a grid, with fitted scaling exponents.
+
+All numbers are model-based: each formula's assumptions and sources are collected in
+`Budget.assumptions` (also printed by `qhl budget --json`).
+"""
+
+from dataclasses import dataclass, field
+import math
+
+import numpy as np
+from qiskit.quantum_info import SparsePauliOp
+
+from ..engine import ExactEngine
+from ..errors import QhlInputError
+from ..model import DEFAULT_FREE, build_model
+from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
+from . import trotter_order4
+from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
+from .near_term import near_term_model
+from .trotter_cost import ORDERS, empirical_trotter_steps, trotter_model
+
+__all__ = ["BudgetSettings", "BudgetModel", "Budget", "BudgetSweep", "all_assumptions", "fit_exponents",
+           "EXPECTED_EXPONENTS"]
+
+EXPECTED_EXPONENTS = {
+    "near_term_component_bound": (2.0, -2.0),
+    "near_term_component_exact": (2.0, -2.0),
+    "near_term_gradient_exact": (2.0, -2.0),
+    "near_term_hessian_entry_bound": (4.0, -2.0),
+}
+
+
+def all_assumptions(settings=None) -> dict:
+    """Every constant and model choice used, with its source."""
+    out = {}
+    for mod in (shots, amplitude_estimation, synthesis, trotter_order4, trotter_cost, fault_tolerant, surface_code):
+        out.update(mod.ASSUMPTIONS)
+    out["precision_unit"] = "eps is a standard error on dS/dh with h in units of unit_hz (default 1 kHz)"
+    out["time_grids"] = "each experiment's time grid is rescaled to end at t (points kept)"
+    out["nll_weights"] = "NLL-gradient strata weighted 1/sigma_x (residuals of the size of the noise), normalised to 1"
+    out["comparison"] = "total gate layers executed: shots x layers of one circuit (near-term) against the AE " \
+                        "circuit's layers (fault-tolerant)"
+    if settings is not None:
+        out["settings"] = settings.to_json()
+    return out
+
+
+@dataclass(frozen=True)
+class BudgetSettings:
+    """User choices with defaults (each reported with the result).
+
+    Attributes:
+        unit_hz: frequency unit of the derivatives (1e3: per kHz).
+        delta: failure probability for Hoeffding counts and the AE median boost.
+        iterations: learning iterations (an int, or taken from a qhl.learning result).
+        split: error shares {'trotter', 'synthesis', 'estimation'} summing to 1.
+        synthesis: 'ross-selinger' or 'mixed'.
+        physical_error: physical error rate for the surface-code estimate (None: skipped).
+        cycle_time_s: surface-code cycle time (1 us: Gidney and Ekera 2021).
+        failure_budget: allowed failure probability of the fault-tolerant circuit.
+        empirical_trotter: compute the exact-propagator step count (n <= 8).
+        hessian_exact: exact variance of the worst Hessian entry at t (one engine Hessian per experiment).
+    """
+
+    unit_hz: float = 1e3
+    delta: float = 0.05
+    iterations: int = 50
+    split: tuple = tuple(DEFAULT_SPLIT.items())
+    synthesis: str = "ross-selinger"
+    physical_error: float | None = None
+    cycle_time_s: float = 1e-6
+    failure_budget: float = 0.01
+    empirical_trotter: bool = True
+    hessian_exact: bool = True
+
+    def split_dict(self):
+        return dict(self.split)
+
+    def to_json(self):
+        d = dict(self.__dict__)
+        d["split"] = self.split_dict()
+        return d
+
+    def validate(self):
+        s = self.split_dict()
+        if set(s) != {"trotter", "synthesis", "estimation"} or any(v <= 0 for v in s.values()) \
+                or abs(sum(s.values()) - 1) > 1e-9:
+            raise QhlInputError("error split needs positive trotter, synthesis and estimation shares summing to 1",
+                                key="split")
+        if self.synthesis not in synthesis.SYNTHESIS_METHODS:
+            raise QhlInputError(f"unknown synthesis {self.synthesis!r}", key="synthesis")
+        if not 0 < self.delta < 1:
+            raise QhlInputError(f"delta must be in (0, 1), got {self.delta}", key="delta")
+        if self.physical_error is not None:
+            surface_code.check_physical_error(self.physical_error)
+        return self
+
+
+def _iterations(value):
+    if hasattr(value, "fit"):
+        value = value.fit
+    if hasattr(value, "iterations"):
+        value = value.iterations
+    n = int(value)
+    if n < 1:
+        raise QhlInputError(f"iterations must be >= 1, got {value}", key="iterations")
+    return n
+
+
+@dataclass
+class Budget:
+    """One (t, eps) budget: near-term and fault-tolerant side by side (see `to_json`)."""
+
+    time_s: float
+    precision: float
+    near_term: dict
+    fault_tolerant: dict
+    error_budget: dict
+    comparison: dict
+    surface_code: dict | None
+    assumptions: dict
+    cluster: str = ""
+
+    def to_json(self):
+        return {"cluster": self.cluster, "time_s": self.time_s, "precision": self.precision,
+                "near_term": self.near_term, "fault_tolerant": self.fault_tolerant,
+                "error_budget": self.error_budget, "comparison": self.comparison,
+                "surface_code": self.surface_code, "assumptions": self.assumptions}
+
+
+@dataclass
+class BudgetSweep:
+    """Budgets on a (t, eps) grid: arrays of shape (len(times), len(precisions)).
+
+    Attributes:
+        times, precisions: the grid axes.
+        tables: {name: (T, E) array}.
+        orders: chosen Trotter order per grid point.
+        exponents: {name: (fitted t-exponent, fitted eps-exponent, expected t, expected eps)}.
+        crossover: per time, the largest eps at which fault-tolerant is cheaper (None if never).
+    """
+
+    times: np.ndarray
+    precisions: np.ndarray
+    tables: dict
+    orders: np.ndarray
+    exponents: dict = field(default_factory=dict)
+    crossover: list = field(default_factory=list)
+
+    def to_json(self):
+        return {"times_s": self.times, "precisions": self.precisions,
+                "tables": {k: v for k, v in self.tables.items()}, "trotter_order": self.orders,
+                "exponents": {k: {"time": v[0], "precision": v[1], "expected_time": v[2], "expected_precision": v[3]}
+                              for k, v in self.exponents.items()},
+                "crossover": self.crossover}
+
+
+def fit_exponents(times, precisions, table):
+    """Least-squares fit log y = a + b log t + c log eps over the grid; returns (b, c).
+
+    An axis with a single value gets nan for its exponent.
+    """
+    tt, ee = np.meshgrid(np.log(times), np.log(precisions), indexing="ij")
+    y = np.broadcast_to(np.asarray(table, float), tt.shape)
+    ok = np.isfinite(y) & (y > 0)
+    cols, names = [np.ones(ok.sum())], []
+    if len(times) > 1:
+        cols.append(tt[ok])
+        names.append("t")
+    if len(precisions) > 1:
+        cols.append(ee[ok])
+        names.append("e")
+    if ok.sum() < len(cols) + 1:
+        return float("nan"), float("nan")
+    coef, *_ = np.linalg.lstsq(np.column_stack(cols), np.log(y[ok]), rcond=None)
+    got = dict(zip(names, coef[1:]))
+    return float(got.get("t", np.nan)), float(got.get("e", np.nan))
+
+
+class BudgetModel:
+    """Everything about one cluster that a budget needs, prepared once.
+
+    Args:
+        cluster: a qhl.cluster.Cluster.
+        free: glob patterns of free parameters.
+        settings: BudgetSettings.
+
+    Example:
+        >>> from qhl import demo_cluster
+        >>> b = BudgetModel(demo_cluster(), settings=BudgetSettings(empirical_trotter=False)).budget(2e-4, 0.01)
+        >>> b.near_term["shots_per_component"] <= b.near_term["shots_per_component_bound"]
+        True
+    """
+
+    def __init__(self, cluster, free=DEFAULT_FREE, settings: BudgetSettings | None = None):
+        self.cluster = cluster
+        self.settings = (settings or BudgetSettings()).validate()
+        self.model = build_model(cluster, free=free)
+        if not self.model.free:
+            raise QhlInputError("no free parameters to learn", key="free")
+        self.engine = ExactEngine(self.model)
+        self.experiments = list(cluster.experiments)
+        if not self.experiments:
+            raise QhlInputError("the cluster has no experiments", key="experiment")
+        self.near = near_term_model(self.engine, self.experiments, self.settings.unit_hz)
+        self.trotter = [trotter_model(self.model, ex) for ex in self.experiments]
+        self._quad = [self._quadrature(ex) for ex in self.experiments]
+        self._n_terms = np.array([len(self.model.parameter(n).generator) for n in self.model.free])
+
+    def _quadrature(self, ex):
+        h = self.model.hamiltonian(ex)
+        c1 = c2 = 0.0
+        seen = set()
+        for name in self.model.free:
+            for lab in self.model.parameter(name).generator.paulis.to_labels():
+                if lab in seen:
+                    continue
+                seen.add(lab)
+                p = SparsePauliOp(lab)
+                k1 = (h.compose(p) - p.compose(h)).simplify(atol=1e-9)
+                k2 = (h.compose(k1) - k1.compose(h)).simplify(atol=1e-9)
+                c1 = max(c1, float(np.sum(np.abs(k1.coeffs))))
+                c2 = max(c2, float(np.sum(np.abs(k2.coeffs))))
+        return c1, c2
+
+    @property
+    def default_time_s(self):
+        """The shortest experiment window among experiments that see every free parameter."""
+        full = [ex.t_max_s for x, ex in enumerate(self.experiments) if np.all(self.near.scales[x] > 0)]
+        return float(min(full or [ex.t_max_s for ex in self.experiments]))
+
+    # ------------------------------------------------------------------ fault-tolerant pieces
+    def _worst_component(self, t):
+        """(experiment index, parameter index, range) of the component with the largest range at t."""
+        x, n = self.near.worst_range_index()
+        r = shots.gradient_shot_range(t, self.near.l1[n], self.near.scales[x, n], self.near.kappa,
+                                      self.settings.unit_hz)
+        return x, n, float(r)
+
+    def _ft(self, value_range, t, eps, x, n_terms, extra_select=1.0):
+        s = self.settings
+        return ft_cost_arrays(value_range, t, eps, self.trotter[x], self._quad[x], n_terms, self.model.n_spins,
+                              s.split_dict(), s.synthesis, ORDERS, extra_select)
+
+    def _ft_gradient(self, strata, t, eps):
+        """Fault-tolerant full gradient: one coherent sum per parameter, costed on the costliest experiment."""
+        x = int(np.argmax([tm.constants[2] for tm in self.trotter]))
+        rng = strata["range_sum"]                                      # (T, P)
+        total = None
+        for n in range(rng.shape[1]):
+            if not np.any(rng[:, n] > 0):
+                continue
+            c = self._ft(rng[:, n][:, None], np.asarray(t)[:, None], eps, x, self._n_terms[n], strata["strata"])
+            order, ch = choose_order(c)
+            if total is None:
+                total = {k: np.zeros(np.broadcast_shapes(order.shape)) for k in ("t_count", "gate_layers", "rotations",
+                                                                                 "logical_qubits")}
+            for k in ("t_count", "gate_layers", "rotations"):
+                total[k] = total[k] + ch[k]
+            total["logical_qubits"] = np.maximum(total["logical_qubits"], ch["logical_qubits"])
+        return total
+
+    # ------------------------------------------------------------------ one budget
+    def budget(self, time_s, precision, iterations=None) -> Budget:
+        """Near-term and fault-tolerant budgets at evolution time `time_s` and precision `precision`.
+
+        Args:
+            time_s: evolution time t (s), > 0.
+            precision: eps in (0, 1): standard error per component (per unit_hz).
+            iterations: learning iterations (int or a qhl.learning FitResult/LearnReport).
+
+        Returns:
+            Budget.
+
+        Raises:
+            QhlInputError: t <= 0, eps outside (0, 1).
+        """
+        shots.check_time(time_s)
+        shots.check_precision(precision)
+        t, eps = float(time_s), float(precision)
+        s = self.settings
+        its = _iterations(s.iterations if iterations is None else iterations)
+        nt = self.near
+        vb, ve = nt.component_variances([t])
+        per_b, per_e = nt.per_parameter_component(t)
+        x, n, r_comp = self._worst_component(t)
+        hb, he = nt.hessian_entry_variances(t, exact=s.hessian_exact)
+        strata = nt.gradient_strata([t])
+        grad = {k: float(np.sum(strata[k][0]) / eps**2) for k in ("opt_bound", "opt_exact", "uni_bound",
+                                                                   "uni_exact", "fisher_bound", "fisher_exact")}
+        hess_full_bound = grad["fisher_bound"] + float(strata["hessian_bound"][0]) / eps**2
+        near = {
+            "shots_per_component": math.ceil(float(ve[0]) / eps**2),
+            "shots_per_component_bound": math.ceil(float(vb[0]) / eps**2),
+            "shots_per_component_hoeffding": shots.hoeffding_shots(math.sqrt(float(vb[0])), eps, s.delta),
+            "component_range": math.sqrt(float(vb[0])),
+            "shots_per_gradient": math.ceil(grad["opt_exact"]),
+            "shots_per_gradient_uniform": math.ceil(grad["uni_exact"]),
+            "shots_per_gradient_bound": math.ceil(grad["opt_bound"]),
+            "shots_per_gradient_uniform_bound": math.ceil(grad["uni_bound"]),
+            "shots_per_hessian_entry": math.ceil((he if he is not None else hb) / eps**2),
+            "shots_per_hessian_entry_bound": math.ceil(hb / eps**2),
+            "shots_per_hessian_bound": math.ceil(hess_full_bound),
+            "shots_per_fisher": math.ceil(grad["fisher_exact"]),
+            "shots_per_fisher_bound": math.ceil(grad["fisher_bound"]),
+            "iterations": its,
+            "shots_per_learning_run": its * math.ceil(grad["opt_exact"]),
+            "strata": int(strata["strata"]),
+            "per_parameter": {name: {"shots_exact": math.ceil(per_e[k] / eps**2), "shots_bound": math.ceil(per_b[k] / eps**2)}
+                              for k, name in enumerate(nt.names)},
+        }
+        ft_all = self._ft(r_comp, t, eps, x, self._n_terms[n])
+        order, ch = choose_order(ft_all)
+        order = int(order)
+        per_order = {}
+        for p in ORDERS:
+            c = ft_all[p]
+            entry = {k: float(c[k]) for k in ("steps", "steps_trotter", "steps_quadrature", "queries", "t_count",
+                                              "gate_layers", "rotations", "depth_steps", "logical_qubits")}
+            entry["step_error_constant"] = self.trotter[x].constants[p]
+            if s.empirical_trotter:
+                r_emp, err = empirical_trotter_steps(self.trotter[x].terms, p, t,
+                                                     float(ft_all["split"]["trotter"]) / (8 * r_comp))
+                entry["steps_trotter_empirical"] = r_emp
+                entry["empirical_error"] = err
+            per_order[str(p)] = entry
+        # the same queries at the component's actual amplitude a = (1 + mu/R)/2 (mu: exact engine)
+        _, g = self.engine.gradient(self.experiments[x], times=[t], parameters=[nt.names[n]])
+        a_exact = 0.5 * (1 + float(np.real(g[0, 0])) * s.unit_hz / r_comp)
+        q_exact = amplitude_estimation.queries_for_amplitude_error(
+            float(ft_all["split"]["estimation"]) / (2 * r_comp), a_exact)
+        ftg = self._ft_gradient(strata, [t], eps)
+        ft = {
+            "logical_qubits": int(ch["logical_qubits"]),
+            "trotter_order": order,
+            "trotter_steps": int(ch["steps"]),
+            "depth": int(ch["gate_layers"]),
+            "depth_trotter_steps": int(ch["depth_steps"]),
+            "t_count": int(ch["t_count"]),
+            "rotations": int(ch["rotations"]),
+            "queries": int(ch["queries"]),
+            "queries_at_exact_amplitude": q_exact,
+            "exact_amplitude": a_exact,
+            "t_per_rotation": float(ch["t_per_rotation"]),
+            "rotation_error": float(ch["rotation_error"]),
+            "synthesis": s.synthesis,
+            "success_probability": amplitude_estimation.SUCCESS_PROBABILITY,
+            "median_repetitions": amplitude_estimation.median_repetitions(s.delta),
+            "worst_component": {"experiment": self.experiments[x].name, "parameter": nt.names[n], "range": r_comp},
+            "orders": per_order,
+            "gradient": {k: float(np.ravel(v)[0]) for k, v in ftg.items()} if ftg else None,
+        }
+        layers_shot = float(ch["layers_per_shot"])
+        nt_layers = near["shots_per_component"] * layers_shot
+        nt_grad_layers = near["shots_per_gradient"] * layers_shot
+        comparison = {
+            "near_term_layers_per_shot": layers_shot,
+            "near_term_total_layers_per_component": nt_layers,
+            "fault_tolerant_total_layers_per_component": float(ch["gate_layers"]),
+            "near_term_total_layers_per_gradient": nt_grad_layers,
+            "fault_tolerant_total_layers_per_gradient": ftg["gate_layers"].item() if ftg else None,
+            "fault_tolerant_cheaper": bool(ch["gate_layers"] < nt_layers),
+        }
+        sc = None
+        if s.physical_error is not None:
+            sc = surface_code.surface_code_estimate(ft["logical_qubits"], ft["depth"], ft["t_count"],
+                                                    s.physical_error, s.cycle_time_s, s.failure_budget).to_json()
+        err = {k: float(v) for k, v in ft_all["split"].items()}
+        return Budget(t, eps, near, ft, err, comparison, sc, all_assumptions(s), self.cluster.name)
+
+    # ------------------------------------------------------------------ sweeps
+    def sweep(self, times, precisions, progress=None) -> BudgetSweep:
+        """Budgets on the grid times x precisions (log grids in the CLI), with fitted exponents.
+
+        One engine gradient call per experiment covers every time of the sweep; eps enters as
+        1/eps^2 for the near-term counts and through the vectorised fault-tolerant formulas.
+        """
+        times = np.atleast_1d(np.asarray(times, float))
+        precisions = np.atleast_1d(np.asarray(precisions, float))
+        shots.check_time(times, "sweep-time")
+        shots.check_precision(precisions, "sweep-precision")
+        nt = self.near
+        e2 = precisions[None, :] ** 2
+        if progress:
+            progress("near-term variances")
+        vb, ve = nt.component_variances(times)
+        strata = nt.gradient_strata(times)
+        tables = {
+            "near_term_component_bound": vb[:, None] / e2,
+            "near_term_component_exact": ve[:, None] / e2,
+            "near_term_hessian_entry_bound": nt.hessian_bound_over_t(times)[:, None] / e2,
+            "near_term_gradient_exact": np.sum(strata["opt_exact"], axis=1)[:, None] / e2,
+            "near_term_gradient_uniform_exact": np.sum(strata["uni_exact"], axis=1)[:, None] / e2,
+        }
+        if progress:
+            progress("fault-tolerant counts")
+        x, n = nt.worst_range_index()
+        r = shots.gradient_shot_range(times, nt.l1[n], nt.scales[x, n], nt.kappa, self.settings.unit_hz)
+        order, ch = choose_order(self._ft(r[:, None], times[:, None], precisions[None, :], x, self._n_terms[n]))
+        tables.update({
+            "fault_tolerant_t_count": ch["t_count"],
+            "fault_tolerant_depth": ch["gate_layers"],
+            "fault_tolerant_trotter_steps": ch["steps"],
+            "fault_tolerant_logical_qubits": ch["logical_qubits"],
+            "near_term_total_layers": tables["near_term_component_exact"] * ch["layers_per_shot"],
+            "fault_tolerant_total_layers": ch["gate_layers"],
+        })
+        exps = {}
+        for name, (et, ee) in EXPECTED_EXPONENTS.items():
+            b, c = fit_exponents(times, precisions, tables[name])
+            exps[name] = (b, c, et, ee)
+        p = int(np.bincount(np.ravel(order)).argmax())
+        b, c = fit_exponents(times, precisions, tables["fault_tolerant_depth"])
+        exps["fault_tolerant_depth"] = (b, c, 2.0 + 2.0 / p, -1.0 - 1.0 / p)
+        wins = tables["fault_tolerant_total_layers"] < tables["near_term_total_layers"]
+        cross = []
+        for i, t in enumerate(times):
+            ok = np.nonzero(wins[i])[0]
+            cross.append({"time_s": float(t), "largest_precision_ft_cheaper": float(precisions[ok].max()) if ok.size else None})
+        return BudgetSweep(times, precisions, tables, order, exps, cross)

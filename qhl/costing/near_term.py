@@ -1,0 +1,163 @@
+"""Near-term (shot-based) budgets of one cluster as functions of the evolution time t.
+
+Everything here returns *variances* V(t) (or sums of them) in units of (per unit_hz)^2, so a
+shot count is V / eps^2 for any precision eps: a sweep over eps costs nothing extra, and the
+exact engine's eigendecomposition (cached per coefficient vector) serves all times at once.
+
+Strata of the full negative-log-likelihood gradient: (experiment x, time point j, Re|Im). Each
+experiment's time grid is rescaled to end at t (its number of points kept). With residuals at
+the optimum of the size of the noise, |r| ~ sigma_x, the NLL gradient sum Re[conj(r) dS]/sigma^2
+weighs stratum k by 1/sigma_x; the weights are normalised to sum to 1, so the full gradient is a
+weighted mean of components and eps means the same as for one component. Pauli terms inside a
+stratum are sampled by |c_k| (the optimal allocation for worst-case variances, where each
+term's spread is proportional to |c_k|).
+"""
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .shots import gradient_shot_range, hessian_shot_range, two_valued_variance
+
+__all__ = ["NearTermModel", "near_term_model"]
+
+
+@dataclass
+class NearTermModel:
+    """Per-parameter ranges and the exact engine for one cluster's free parameters.
+
+    Attributes:
+        engine: qhl.engine.ExactEngine.
+        experiments: the cluster's experiments.
+        names: free parameter names (P).
+        l1: ||c||_1 of each free generator (P,).
+        scales: (X, P) scale factor of each free parameter in each experiment.
+        kappa: observable factor (number of observed spins).
+        unit_hz: frequency unit of the derivatives.
+        weights: (X,) per-stratum weight of experiment x before normalisation (1/sigma_x).
+    """
+
+    engine: object
+    experiments: list
+    names: list
+    l1: np.ndarray
+    scales: np.ndarray
+    kappa: float
+    unit_hz: float
+    weights: np.ndarray
+
+    # ------------------------------------------------------------------ ranges
+    def hessian_ranges(self, t):
+        """R[x, m, n] of d2S/dh_m dh_n at one time t."""
+        s = self.scales
+        return hessian_shot_range(t, self.l1[None, :, None], self.l1[None, None, :], s[:, :, None], s[:, None, :],
+                                  self.kappa, self.unit_hz)
+
+    def strata_times(self, t):
+        """{x index: (T_sweep, J) times} each experiment's grid rescaled to end at t (array)."""
+        t = np.atleast_1d(np.asarray(t, float))
+        return [np.outer(t / ex.t_max_s, ex.times_s) for ex in self.experiments]
+
+    def normalised_weights(self):
+        """w_x per stratum with sum over all strata (x, j, part) equal to 1."""
+        counts = np.array([2 * ex.points for ex in self.experiments], float)
+        return self.weights / float(np.sum(self.weights * counts))
+
+    # ------------------------------------------------------------------ variances
+    def worst_range_index(self):
+        """(x, n) of the component with the largest single-shot range (first on ties)."""
+        x, n = np.unravel_index(np.argmax(self.l1[None, :] * self.scales), self.scales.shape)
+        return int(x), int(n)
+
+    def component_variances(self, t):
+        """The component with the largest range (real part): (bound R^2, exact R^2 - mu^2) over t."""
+        t = np.atleast_1d(np.asarray(t, float))
+        x, n = self.worst_range_index()
+        r = gradient_shot_range(t, self.l1[n], self.scales[x, n], self.kappa, self.unit_hz)
+        _, g = self.engine.gradient(self.experiments[x], times=t, parameters=[self.names[n]])
+        return r**2, two_valued_variance(r, g[0].real * self.unit_hz)
+
+    def per_parameter_component(self, t):
+        """(bound (P,), exact (P,)) worst over experiments and Re/Im, at one time t."""
+        bound = np.zeros(len(self.names))
+        exact = np.zeros(len(self.names))
+        for x, ex in enumerate(self.experiments):
+            r = gradient_shot_range(t, self.l1, self.scales[x], self.kappa, self.unit_hz)
+            _, g = self.engine.gradient(ex, times=[t])
+            mu = g[:, 0] * self.unit_hz
+            bound = np.maximum(bound, r**2)
+            exact = np.maximum(exact, np.maximum(two_valued_variance(r, mu.real), two_valued_variance(r, mu.imag)))
+        return bound, exact
+
+    def hessian_entry_variances(self, t, exact=True):
+        """The Hessian entry with the largest range at one time t (first on ties), real part:
+        (bound R^2, exact R^2 - mu^2 or None)."""
+        rh = self.hessian_ranges(t)
+        x, m, n = np.unravel_index(np.argmax(rh), rh.shape)
+        bound = float(rh[x, m, n] ** 2)
+        if not exact:
+            return bound, None
+        _, _, h = self.engine.hessian(self.experiments[x], times=[t], parameters=[self.names[m], self.names[n]])
+        mu = float(h[0, 1, 0].real) * self.unit_hz**2
+        return bound, float(two_valued_variance(rh[x, m, n], mu))
+
+    def hessian_bound_over_t(self, t):
+        t = np.atleast_1d(np.asarray(t, float))
+        return np.max(self.hessian_ranges(1.0) ** 2) * t**4
+
+    def gradient_strata(self, t):
+        """Per-parameter stratified sums over (x, j, part) at each sweep time.
+
+        Returns:
+            dict of (T, P) arrays: 'opt_bound' (sum w sigma)^2, 'opt_exact', 'uni_bound'
+            K sum w^2 sigma^2, 'uni_exact'; 'fisher_bound' / 'fisher_exact' sum of variances over
+            all strata (every component to eps, for the Fisher matrix); 'hessian_bound' per
+            entry pair sum (T,) of R_H^2 over strata and entries m <= n; 'range_sum' sum w R (T, P)
+            and 'strata' K.
+        """
+        t = np.atleast_1d(np.asarray(t, float))
+        w = self.normalised_weights()
+        P = len(self.names)
+        out = {k: np.zeros((t.size, P)) for k in ("opt_bound", "opt_exact", "uni_bound", "uni_exact",
+                                                  "fisher_bound", "fisher_exact", "range_sum")}
+        sum_w_sig_b = np.zeros((t.size, P))
+        sum_w_sig_e = np.zeros((t.size, P))
+        sum_w2_var_b = np.zeros((t.size, P))
+        sum_w2_var_e = np.zeros((t.size, P))
+        hess = np.zeros(t.size)
+        iu = np.triu_indices(P)
+        rh1 = self.hessian_ranges(1.0)
+        strata = 0
+        for x, (ex, tt) in enumerate(zip(self.experiments, self.strata_times(t))):
+            strata += 2 * ex.points
+            _, g = self.engine.gradient(ex, times=tt.ravel())
+            mu = (g * self.unit_hz).reshape(P, *tt.shape)              # (P, T, J)
+            r = gradient_shot_range(tt[None], self.l1[:, None, None], self.scales[x][:, None, None],
+                                    self.kappa, self.unit_hz)          # (P, T, J)
+            for part in (mu.real, mu.imag):
+                vb = r**2
+                ve = two_valued_variance(r, part)
+                sum_w_sig_b += w[x] * np.sum(np.sqrt(vb), axis=2).T
+                sum_w_sig_e += w[x] * np.sum(np.sqrt(ve), axis=2).T
+                sum_w2_var_b += w[x] ** 2 * np.sum(vb, axis=2).T
+                sum_w2_var_e += w[x] ** 2 * np.sum(ve, axis=2).T
+                out["fisher_bound"] += np.sum(vb, axis=2).T
+                out["fisher_exact"] += np.sum(ve, axis=2).T
+            out["range_sum"] += 2 * w[x] * np.sum(r, axis=2).T
+            hess += 2 * float(np.sum(rh1[x][iu] ** 2)) * np.sum(tt**4, axis=1)
+        out["opt_bound"], out["opt_exact"] = sum_w_sig_b**2, sum_w_sig_e**2
+        out["uni_bound"], out["uni_exact"] = strata * sum_w2_var_b, strata * sum_w2_var_e
+        out["hessian_bound"] = hess
+        out["strata"] = strata
+        return out
+
+
+def near_term_model(engine, experiments, unit_hz=1e3) -> NearTermModel:
+    """Collect ranges and weights for `engine.model`'s free parameters (see NearTermModel)."""
+    model = engine.model
+    free = list(model.free)
+    l1 = np.array([float(np.sum(np.abs(model.parameter(n).generator.coeffs))) for n in free])
+    scales = np.array([model.scale_factors(ex)[model.free_indices] for ex in experiments])
+    kappa = float(sum(model.observed))
+    sig = np.array([ex.noise if ex.noise else 1.0 for ex in experiments], float)
+    return NearTermModel(engine, list(experiments), free, l1, scales, kappa, unit_hz, 1.0 / sig)

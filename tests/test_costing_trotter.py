@@ -1,0 +1,97 @@
+"""Trotter costs: the order-4 nested-commutator sum, bounds against exact product-formula errors."""
+
+import itertools
+
+import numpy as np
+import pytest
+from qiskit.quantum_info import SparsePauliOp
+
+from qhl import build_model, demo_cluster
+from qhl.costing.trotter_cost import (empirical_trotter_steps, product_formula_unitary, steps_from_constant,
+                                      trotter_model)
+from qhl.costing.trotter_order4 import SUZUKI4_U, nested_commutator_sum
+from qhl.trotter import trotter_unitary
+from qhl.trotter_bounds import trotter_steps_for
+
+
+def _brute_force(op, depth):
+    mats = [SparsePauliOp(p, c).to_matrix() for p, c in zip(op.paulis, op.coeffs)]
+    total = 0.0
+    for tup in itertools.product(range(len(mats)), repeat=depth + 1):
+        m = mats[tup[0]]
+        for k in tup[1:]:
+            m = mats[k] @ m - m @ mats[k]
+        total += np.linalg.norm(m, 2)
+    return total
+
+
+@pytest.mark.parametrize("depth", [1, 2, 4])
+def test_nested_commutator_sum_matches_dense_enumeration(depth):
+    # alpha_comm of Childs, Su, Tran, Wiebe, Zhu, PRX 11, 011020 (2021), summed over every ordered
+    # tuple with dense matrices (numpy spectral norms) as the independent computation.
+    rng = np.random.default_rng(depth)
+    labels = ["XIZ", "ZZI", "IYX", "XXX", "ZIY"]
+    op = SparsePauliOp(labels, rng.normal(size=len(labels)))
+    assert nested_commutator_sum(op, depth) == pytest.approx(_brute_force(op, depth), rel=1e-10)
+
+
+@pytest.fixture(scope="module")
+def static_model():
+    c = demo_cluster()
+    return trotter_model(build_model(c), c.experiments[0])
+
+
+def test_suzuki4_is_fourth_order(static_model):
+    # Suzuki, Phys. Lett. A 146, 319 (1990): one-step error O(tau^5), so halving tau divides it by ~32
+    terms = static_model.terms
+    h = terms.hamiltonian().to_matrix()
+    e, v = np.linalg.eigh(h)
+    errs = []
+    for tau in (2e-6, 1e-6):
+        exact = (v * np.exp(-1j * e * tau)) @ v.conj().T
+        errs.append(np.linalg.norm(product_formula_unitary(terms, 4, tau, 1) - exact, 2))
+    assert 25 < errs[0] / errs[1] < 40
+    assert SUZUKI4_U == pytest.approx(0.4144907717943757, rel=1e-12)   # 1/(4 - 4^(1/3)) [derived]
+
+
+@pytest.mark.parametrize("order", [1, 2])
+def test_dense_product_formula_matches_the_trotter_module(static_model, order):
+    # independent implementation: qhl.trotter.trotter_unitary (scipy expm of each group)
+    mine = product_formula_unitary(static_model.terms, order, 3e-5, 3)
+    theirs = trotter_unitary(static_model.terms, 3e-5, 3, order)
+    assert np.max(np.abs(mine - theirs)) < 1e-10
+
+
+@pytest.mark.parametrize("order", [1, 2, 4])
+def test_bounds_never_undercut_the_exact_error(static_model, order):
+    # Childs et al. 2021: the commutator bound is an upper bound, so its step count is never
+    # below the smallest r whose exact error meets the target; and the bound holds per step.
+    t, eps = 2e-5, 1e-3
+    r_bound = int(static_model.steps(order, t, eps))
+    r_exact, err = empirical_trotter_steps(static_model.terms, order, t, eps)
+    assert err <= eps
+    assert r_exact <= r_bound
+    h = static_model.terms.hamiltonian().to_matrix()
+    e, v = np.linalg.eigh(h)
+    for tau in (1e-6, 5e-6):
+        exact = (v * np.exp(-1j * e * tau)) @ v.conj().T
+        one = np.linalg.norm(product_formula_unitary(static_model.terms, order, tau, 1) - exact, 2)
+        assert one <= static_model.constants[order] * tau ** (order + 1)
+
+
+@pytest.mark.parametrize("order", [1, 2])
+def test_steps_agree_with_the_bounds_module(static_model, order):
+    for t, eps in ((1e-5, 1e-2), (2e-4, 1e-5)):
+        assert int(static_model.steps(order, t, eps)) == trotter_steps_for(static_model.terms, t, eps, order)
+
+
+def test_steps_from_constant_is_the_smallest_r():
+    r = steps_from_constant(3.7, 2, 1.3, 1e-4)
+    assert 3.7 * 1.3**3 / r**2 <= 1e-4 < 3.7 * 1.3**3 / (r - 1) ** 2
+
+
+def test_per_step_counts(static_model):
+    # Order 4 = five second-order stages (Suzuki 1990); transpiled counts come from qhl.circuit_counts
+    c2, c4 = static_model.step_counts(2), static_model.step_counts(4)
+    assert c4 == {k: 5 * v for k, v in c2.items()}
+    assert static_model.step_counts(1)["rotations"] >= len(static_model.terms.groups)
