@@ -1,0 +1,139 @@
+"""`qhl circuits`: compile the signal, gradient or Hessian circuit family and count its gates."""
+
+import sys
+
+from ..errors import QhlInputError
+from ..model import build_model
+from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float, positive_int,
+                     print_json)
+
+KINDS = ("signal", "gradient", "hessian")
+_LARGE = 2000
+
+
+def register(sub):
+    p = sub.add_parser("circuits", help="compile signal/gradient/Hessian circuits and count their gates")
+    add_cluster_argument(p)
+    p.add_argument("--kind", choices=KINDS, default="signal", help="which circuit family (default signal)")
+    p.add_argument("--param", nargs="+", metavar="NAME", default=None,
+                   help="parameter to differentiate (gradient: one; hessian: one or two names)")
+    p.add_argument("--time", type=positive_float, required=True, metavar="T", help="evolution time in seconds")
+    p.add_argument("--steps", type=positive_int, metavar="R", help="Trotter steps")
+    p.add_argument("--eps", type=positive_float, metavar="EPS",
+                   help="instead of --steps: fewest steps whose commutator bound is <= EPS")
+    p.add_argument("--order", type=int, choices=(1, 2), default=1, help="product-formula order (default 1)")
+    p.add_argument("--experiment", metavar="NAME", help="experiment setting the dipolar scale (default: first)")
+    p.add_argument("--method", choices=("hadamard", "shift"), default="hadamard",
+                   help="gradient estimator: Hadamard test or stochastic parameter shift (default hadamard)")
+    p.add_argument("--grouping", choices=("pairs", "offsets", "layers"), default="pairs",
+                   help="how terms are grouped into product-formula terms (default pairs)")
+    p.add_argument("--ordering", choices=("offsets-first", "offsets-last"), default="offsets-first",
+                   help="term order (default offsets-first)")
+    p.add_argument("--qasm", metavar="FILE", help="write the counted (transpiled) circuit as OpenQASM 3")
+    p.add_argument("--draw", action="store_true", help="print a text drawing of a one-step instance")
+    p.add_argument("--json", action="store_true", help="print one JSON object")
+    p.set_defaults(func=run)
+
+
+def _experiment(cluster, name):
+    if name is None:
+        return cluster.experiments[0] if cluster.experiments else None
+    for ex in cluster.experiments:
+        if ex.name == name:
+            return ex
+    known = ", ".join(ex.name for ex in cluster.experiments) or "none"
+    raise QhlInputError(f"unknown experiment '{name}': expected one of {known}", key="--experiment")
+
+
+def _parameters(kind, names):
+    if kind == "signal":
+        return ()
+    if not names:
+        raise QhlInputError(f"--kind {kind} needs --param NAME", key="--param")
+    if kind == "gradient" and len(names) != 1:
+        raise QhlInputError(f"--kind gradient takes one --param name, got {len(names)}", key="--param")
+    if kind == "hessian":
+        if len(names) > 2:
+            raise QhlInputError(f"--kind hessian takes one or two --param names, got {len(names)}", key="--param")
+        return (names[0], names[-1])
+    return tuple(names)
+
+
+def build_family(model, experiment, kind, params, time, steps, order, method, grouping, ordering):
+    """The CircuitFamily the command counts (a thin switch over qhl.gradient_circuits)."""
+    from ..gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
+    common = dict(grouping=grouping, ordering=ordering)
+    if kind == "signal":
+        return signal_circuit(model, experiment, time, steps, order, **common)
+    if kind == "gradient":
+        return gradient_circuit(model, experiment, params[0], time, steps, order, method=method, **common)
+    return hessian_circuit(model, experiment, params, time, steps, order, **common)
+
+
+def run(args):
+    from qiskit import qasm3
+
+    from ..circuit_counts import family_counts, transpile_for_counts
+    from ..trotter import trotter_terms
+    from ..trotter_bounds import trotter_error_bound, trotter_steps_for
+
+    if args.qasm:
+        check_output_path(args.qasm, "--qasm")
+    cluster = cluster_from_args(args)
+    experiment = _experiment(cluster, args.experiment)
+    model = build_model(cluster)
+    params = _parameters(args.kind, args.param)
+    for name in params:
+        model.parameter(name)
+    terms = trotter_terms(model, experiment, grouping=args.grouping, ordering=args.ordering)
+    if args.steps is None:
+        if args.eps is None:
+            raise QhlInputError("give --steps R or --eps EPS", key="--steps")
+        steps = trotter_steps_for(terms, args.time, args.eps, args.order)
+    else:
+        steps = args.steps
+    family = build_family(model, experiment, args.kind, params, args.time, steps, args.order, args.method,
+                          args.grouping, args.ordering)
+    if family.circuit.size() > _LARGE:
+        print(f"qhl circuits: transpiling {family.circuit.size()} gates on {family.circuit.num_qubits} qubits",
+              file=sys.stderr)
+    measured = family.with_measurements(family.representative())
+    transpiled = transpile_for_counts(measured)
+    counts = family_counts(family, transpiled)
+    bound = trotter_error_bound(terms, args.time, steps, args.order)
+    if args.qasm:
+        with open(args.qasm, "w") as fh:
+            fh.write(qasm3.dumps(transpiled))
+    drawing = None
+    if args.draw:
+        small = build_family(model, experiment, args.kind, params, args.time / steps, 1, args.order, args.method,
+                             args.grouping, args.ordering)
+        drawing = str(small.representative().draw(output="text"))
+    if args.json:
+        report = dict(counts)
+        report.update({"kind": family.kind, "parameters": list(params), "time_s": args.time, "order": args.order,
+                       "experiment": None if experiment is None else experiment.name,
+                       "insertion_settings": len(family.insertions), "trotter_error_bound": bound})
+        if args.qasm:
+            report["qasm"] = args.qasm
+        if drawing is not None:
+            report["drawing"] = drawing
+        print_json(report)
+        return 0
+    what = family.kind if not params else f"{family.kind} for {' x '.join(dict.fromkeys(params))}"
+    exname = "none (dipolar scale 1)" if experiment is None else experiment.name
+    print(f"cluster {cluster.name}: {what}; experiment {exname}")
+    print(f"t = {args.time:g} s, r = {steps} steps, order {args.order}, grouping {args.grouping}, "
+          f"commutator bound on the Trotter error {bound:.3g}")
+    print(f"insertion settings {len(family.insertions)}, circuit parameters {family.num_parameters}")
+    print(f"{'':<18}{'qubits':>7}{'cx':>8}{'depth':>8}{'rotations':>11}")
+    for label, c in (("whole circuit", counts), ("one Trotter step", counts["per_step"])):
+        print(f"{label:<18}{c['qubits']:>7}{c['cx']:>8}{c['depth']:>8}{c['rotations']:>11}")
+    print("counts after transpile to [cx, rz, sx, x] at optimisation level 2; "
+          "rotations = rz angles that are not multiples of pi/2")
+    if drawing is not None:
+        print()
+        print(drawing)
+    if args.qasm:
+        print(f"wrote {args.qasm}")
+    return 0

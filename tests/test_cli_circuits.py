@@ -1,0 +1,85 @@
+"""`qhl circuits`: the JSON contract, OpenQASM 3 export and one-line errors with exit code 2."""
+
+import json
+import re
+
+import numpy as np
+import pytest
+
+from qhl.circuit_counts import is_clifford_angle
+from qhl.cli import main
+
+BASE = ["circuits", "--time", "1e-5", "--steps", "2"]
+
+
+def _run(capsys, argv):
+    rc = main(argv)
+    out = capsys.readouterr()
+    return rc, out.out, out.err
+
+
+def _angle(text):
+    # OpenQASM 3 angles as qiskit writes them: numbers and products/quotients with pi
+    if not re.fullmatch(r"[0-9eE+\-*/.\s()pi]+", text):
+        raise ValueError(text)
+    return eval(text.replace("pi", repr(np.pi)), {"__builtins__": {}}, {})
+
+
+@pytest.mark.parametrize("kind,extra,qubits", [("signal", [], 6), ("gradient", ["--param", "dipolar:H1-H2"], 7),
+                                               ("hessian", ["--param", "offset:H1", "j:H3-H4"], 8)])
+def test_json_contract_and_qasm_counts(capsys, tmp_path, kind, extra, qubits):
+    qasm = tmp_path / f"{kind}.qasm"
+    rc, out, err = _run(capsys, BASE + ["--kind", kind, *extra, "--order", "2", "--json", "--qasm", str(qasm)])
+    assert rc == 0 and err == ""
+    report = json.loads(out)
+    assert {"qubits", "cx", "depth", "rotations", "steps"} <= set(report)
+    assert report["qubits"] == qubits and report["steps"] == 2
+    assert report["cx"] > 0 and report["depth"] > 0 and report["rotations"] > 0
+    text = qasm.read_text()
+    assert text.startswith("OPENQASM 3")
+    # the exported circuit is the counted one: its gate lines give the same numbers
+    gates = [ln.strip() for ln in text.splitlines() if re.match(r"\s*(cx|rz|sx|x)\b", ln)]
+    assert sum(g.startswith("cx ") for g in gates) == report["cx"]
+    rz = [_angle(re.match(r"rz\((.*)\)", g).group(1)) for g in gates if g.startswith("rz(")]
+    assert sum(not is_clifford_angle(a) for a in rz) == report["rotations"]
+    assert re.search(rf"qubit\[{qubits}\]", text)
+
+
+def test_text_output_and_drawing(capsys):
+    rc, out, err = _run(capsys, BASE + ["--kind", "gradient", "--param", "offset:H2", "--draw"])
+    assert rc == 0
+    assert "whole circuit" in out and "one Trotter step" in out
+    assert "q_6" in out           # the ancilla appears in the drawing of the one-step instance
+
+
+def test_eps_chooses_steps(capsys):
+    rc, out, _ = _run(capsys, ["circuits", "--time", "1e-5", "--eps", "0.01", "--order", "2", "--json"])
+    assert rc == 0
+    from qhl import build_model, demo_cluster
+    from qhl.trotter import trotter_terms
+    from qhl.trotter_bounds import trotter_steps_for
+    c = demo_cluster()
+    terms = trotter_terms(build_model(c), c.experiments[0])
+    assert json.loads(out)["steps"] == trotter_steps_for(terms, 1e-5, 0.01, 2)
+
+
+@pytest.mark.parametrize("argv", [
+    BASE + ["--kind", "gradient", "--param", "offset:H9"],          # unknown parameter
+    BASE + ["--kind", "gradient"],                                    # no parameter
+    ["circuits", "--time", "0", "--steps", "2"],                      # non-positive time
+    ["circuits", "--time", "-1e-5", "--steps", "2"],
+    ["circuits", "--time", "1e-5", "--steps", "0"],                   # non-positive steps
+    ["circuits", "--time", "1e-5"],                                   # neither steps nor eps
+    BASE + ["--kind", "spectrum"],                                    # a kind not offered
+    BASE + ["--qasm", "/nonexistent-folder/out.qasm"],                # unwritable output
+    BASE + ["--experiment", "spinning"],                              # unknown experiment
+    BASE + ["--kind", "hessian", "--param", "offset:H1", "offset:H2", "offset:H3"],
+])
+def test_bad_input_exits_2_with_one_line(capsys, argv):
+    try:
+        rc = main(argv)
+    except SystemExit as e:      # argparse usage errors exit through parser.exit
+        rc = e.code
+    err = capsys.readouterr().err.strip()
+    assert rc == 2
+    assert len(err.splitlines()) == 1 and err.startswith("qhl: error:")
