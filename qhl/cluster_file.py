@@ -24,7 +24,7 @@ from .cluster import Cluster, Experiment, Pair, Spin
 from .errors import QhlInputError
 from .nuclei import larmor_frequency_hz, nucleus
 
-__all__ = ["load_cluster", "parse_cluster_toml", "load_xyz", "demo_cluster", "DEMO_PATH"]
+__all__ = ["load_cluster", "parse_cluster_toml", "load_xyz", "read_xyz_atoms", "demo_cluster", "DEMO_PATH"]
 
 _TOP = {"name", "field_tesla", "field_direction", "observe", "reference_ppm", "spin", "pair", "experiment"}
 _SPIN = {"label", "isotope", "position_angstrom", "offset_hz", "shift_ppm"}
@@ -149,13 +149,11 @@ def parse_cluster_toml(text: str, source: str = "<string>") -> Cluster:
 _ELEMENT_ISOTOPE = {"H": "1H", "C": "13C", "N": "15N", "F": "19F", "P": "31P", "Si": "29Si"}
 
 
-def load_xyz(path, *, field_tesla: float = 9.4, isotopes=("1H",), observe: str | None = None,
-             experiments=None) -> Cluster:
-    """Read a plain XYZ file; keep atoms whose element maps to one of `isotopes`.
+def read_xyz_atoms(path):
+    """(elements, positions (N, 3) in angstrom) of a plain XYZ file: count line, comment line, atoms.
 
-    Each kept atom becomes a spin labelled element + running number (H1, H2, ...) with zero
-    offset; all pairs couple through geometry. Without `experiments`, one FID of 128 points to
-    0.5 ms is attached.
+    Raises:
+        QhlInputError: unreadable file, bad count, missing or malformed atom lines, non-finite values.
     """
     path = Path(path)
     src = str(path)
@@ -172,23 +170,42 @@ def load_xyz(path, *, field_tesla: float = 9.4, isotopes=("1H",), observe: str |
     body = [ln for ln in lines[2:] if ln.strip()]
     if len(body) < count:
         raise QhlInputError(f"expected {count} atom lines, found {len(body)}", source=src)
-    wanted = {nucleus(i).symbol for i in isotopes}
-    spins, counters = [], {}
+    elements, positions = [], []
     for n, ln in enumerate(body[:count]):
         parts = ln.split()
-        if len(parts) < 4:
-            raise QhlInputError(f"line {n + 3}: expected 'element x y z', got {ln!r}", source=src)
-        element = parts[0].capitalize() if len(parts[0]) <= 2 else parts[0]
         try:
-            xyz = tuple(float(c) for c in parts[1:4])
+            xyz = [float(c) for c in parts[1:4]]
         except ValueError:
-            raise QhlInputError(f"line {n + 3}: expected three coordinates, got {ln!r}", source=src) from None
+            xyz = []
+        if len(parts) < 4 or len(xyz) != 3:
+            raise QhlInputError(f"line {n + 3}: expected 'element x y z', got {ln!r}", source=src)
         if not all(np.isfinite(xyz)):
             raise QhlInputError(f"line {n + 3}: coordinates must be finite", source=src)
+        elements.append(parts[0])
+        positions.append(xyz)
+    return elements, np.array(positions, float).reshape(-1, 3)
+
+
+def load_xyz(path, *, field_tesla: float = 9.4, isotopes=("1H",), observe: str | None = None,
+             experiments=None) -> Cluster:
+    """Read a plain XYZ file; keep atoms whose element maps to one of `isotopes`.
+
+    Each kept atom becomes a spin labelled element + running number (H1, H2, ...) with zero
+    offset; all pairs couple through geometry. Without `experiments`, one FID of 128 points to
+    0.5 ms is attached.
+    """
+    path = Path(path)
+    src = str(path)
+    elements, positions = read_xyz_atoms(path)
+    wanted = {nucleus(i).symbol for i in isotopes}
+    spins, counters = [], {}
+    for raw, xyz in zip(elements, positions):
+        element = raw.capitalize() if len(raw) <= 2 else raw
         iso = _ELEMENT_ISOTOPE.get(element)
         if iso in wanted:
             counters[element] = counters.get(element, 0) + 1
-            spins.append(Spin(label=f"{element}{counters[element]}", isotope=iso, position_angstrom=xyz))
+            spins.append(Spin(label=f"{element}{counters[element]}", isotope=iso,
+                              position_angstrom=tuple(float(c) for c in xyz)))
     if not spins:
         raise QhlInputError(f"no atoms of isotopes {', '.join(sorted(wanted))}", source=src)
     if experiments is None:

@@ -30,7 +30,7 @@ from importlib import resources
 import numpy as np
 
 from .cluster import Cluster, Experiment, Spin
-from .cluster_file import load_cluster
+from .cluster_file import load_cluster, read_xyz_atoms
 from .errors import QhlInputError
 from .nuclei import larmor_frequency_hz, nucleus
 
@@ -117,31 +117,6 @@ def nuclei_from_atoms(elements, positions, isotopes=("1H",), source="<atoms>", n
     return Nuclei(tuple(labels), tuple(isos), pos[keep].copy(), source, name)
 
 
-def _read_xyz_atoms(path: Path):
-    src = str(path)
-    lines = path.read_text().splitlines()
-    if len(lines) < 2:
-        raise QhlInputError("expected an atom count line and a comment line", source=src)
-    try:
-        count = int(lines[0].split()[0])
-    except (ValueError, IndexError):
-        raise QhlInputError(f"line 1: expected the number of atoms, got {lines[0]!r}", source=src) from None
-    body = [ln for ln in lines[2:] if ln.strip()]
-    if len(body) < count:
-        raise QhlInputError(f"expected {count} atom lines, found {len(body)}", source=src)
-    elements, positions = [], []
-    for n, ln in enumerate(body[:count]):
-        parts = ln.split()
-        try:
-            positions.append([float(c) for c in parts[1:4]])
-        except ValueError:
-            positions.append(None)
-        if len(parts) < 4 or positions[-1] is None:
-            raise QhlInputError(f"line {n + 3}: expected 'element x y z', got {ln!r}", source=src)
-        elements.append(parts[0])
-    return elements, np.array(positions, float).reshape(-1, 3)
-
-
 def _read_gemmi_atoms(path: Path):
     import gemmi
 
@@ -190,7 +165,7 @@ def read_structure(path, isotopes=("1H",)) -> Nuclei:
     suffix = path.suffix.lower()
     try:
         if suffix == ".xyz":
-            elements, positions = _read_xyz_atoms(path)
+            elements, positions = read_xyz_atoms(path)
         elif suffix in _GEMMI_SUFFIXES:
             elements, positions = _read_gemmi_atoms(path)
         else:
