@@ -20,6 +20,7 @@ import itertools
 import numpy as np
 import scipy.linalg as sla
 
+from .blas import blas_limited
 from .errors import QhlInputError
 from .divided_differences import first_divided_difference, second_divided_difference
 from .memory import require_memory
@@ -83,6 +84,7 @@ class ExactEngine:
         self.symmetric = conserves_magnetisation(gens, model.isotopes)
         self.sectors = magnetisation_sectors(model.isotopes) if self.symmetric else full_space(n)
         dims = [len(ix) for ix in self.sectors]
+        self.largest_sector = max(dims)
         require_memory(f"the exact engine for {n} spins", estimate_memory_bytes(n, dims, 256))
         gmats = [g.to_matrix(sparse=True) for g in gens]
         self.real = all(abs(m.imag).max() == 0 if m.nnz else True for m in gmats)
@@ -130,6 +132,7 @@ class ExactEngine:
             raise QhlInputError("times must be finite", key="times")
         return t
 
+    @blas_limited
     def spectrum(self, experiment=None, free_values_hz=None) -> Spectrum:
         """Eigen-decomposition of H for `experiment` (cached on the coefficient vector)."""
         coeffs, _ = self._coefficients(experiment, free_values_hz)
@@ -159,6 +162,7 @@ class ExactEngine:
         return spec
 
     # ------------------------------------------------------------------ signal
+    @blas_limited
     def signal(self, experiment=None, times=None, free_values_hz=None) -> np.ndarray:
         """S(t) for the experiment's times (or `times`), complex array of shape (T,)."""
         t = self._times(experiment, times)
@@ -171,6 +175,7 @@ class ExactEngine:
             out += np.einsum("bt,bt->t", eb, w.T @ ea)
         return out / self.norm
 
+    @blas_limited
     def transitions(self, experiment=None, free_values_hz=None, min_amplitude: float = 1e-14):
         """The line list: frequencies (Hz) and complex amplitudes with S(t) = sum a_k exp(2 pi i f_k t).
 
@@ -213,6 +218,7 @@ class ExactEngine:
             inv = np.where(deg, 0.0, 1.0 / np.where(deg, 1.0, diff))
         return gt * inv, gt * deg
 
+    @blas_limited
     def gradient(self, experiment=None, times=None, free_values_hz=None, parameters=None):
         """Exact dS/dh_n for free parameters n (1/Hz).
 
@@ -254,6 +260,7 @@ class ExactEngine:
         return sig, grad / self.norm
 
     # ------------------------------------------------------------------ Hessian
+    @blas_limited
     def hessian(self, experiment=None, times=None, free_values_hz=None, parameters=None):
         """Exact d2S/dh_m dh_n (1/Hz^2), shape (P, P, T). Cost grows as P d^3 T: small clusters.
 
