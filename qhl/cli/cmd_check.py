@@ -1,0 +1,88 @@
+"""`qhl check`: emulated gradients (and Hessian entries) against exact and Trotterised ones."""
+
+import sys
+
+from ..emulation.check import check_derivatives
+from ..emulation.noise import NoiseSpec
+from .common import add_cluster_argument, check_output_path, cluster_from_args, positive_int, print_json
+
+
+def register(sub):
+    p = sub.add_parser("check", help="check shot-based emulated gradients against exact ones")
+    add_cluster_argument(p)
+    p.add_argument("--time", type=float, required=True, metavar="T", help="evolution time in seconds (> 0)")
+    p.add_argument("--steps", type=int, required=True, metavar="R", help="Trotter steps")
+    p.add_argument("--shots", type=int, required=True, metavar="N", help="shots per part (Re, Im) of each estimate")
+    p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
+    p.add_argument("--noise", type=float, default=0.0, metavar="P",
+                   help="depolarising rate on sx, x, cx and readout flip probability, in [0, 1)")
+    p.add_argument("--hessian", action="store_true", help="also check every Hessian entry m <= n")
+    p.add_argument("--param", nargs="+", metavar="NAME", help="parameters (default: free offsets and dipolar)")
+    p.add_argument("--experiment", metavar="NAME", help="experiment setting the dipolar scale (default: first)")
+    p.add_argument("--order", type=int, choices=(1, 2), default=1, help="product-formula order (default 1)")
+    p.add_argument("--plot", metavar="FILE.png", help="draw emulated vs exact with error bars")
+    p.add_argument("--json", action="store_true", help="print a JSON list of rows")
+    p.set_defaults(func=run)
+
+
+def _progress_bar(done, total, label):
+    width = 30
+    fill = int(width * done / total)
+    sys.stderr.write(f"\r[{'#' * fill}{'.' * (width - fill)}] {done}/{total} {label[:40]:<40}")
+    if done == total:
+        sys.stderr.write("\n")
+    sys.stderr.flush()
+
+
+def _plot(report, path):
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    rows = report.rows
+    fig, ax = plt.subplots(figsize=(max(6, 0.35 * len(rows)), 4))
+    x = range(len(rows))
+    ax.errorbar(x, [r["emulated"] for r in rows], yerr=[r["stderr"] for r in rows], fmt="o", ms=3,
+                label="emulated +- stderr")
+    ax.plot(x, [r["trotter_exact"] for r in rows], "x", label="exact Trotterised")
+    ax.plot(x, [r["exact"] for r in rows], "+", label="exact (continuous)")
+    ax.set_xticks(list(x), [f"{r['parameter']} {r['part']}" for r in rows], rotation=90, fontsize=6)
+    ax.set_ylabel("derivative of S (1/Hz or 1/Hz^2)")
+    ax.legend(fontsize=7)
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+
+
+def run(args):
+    from ..errors import QhlInputError
+    if args.shots < 1:
+        raise QhlInputError(f"expected shots >= 1, got {args.shots}", key="--shots")
+    if args.steps < 1:
+        raise QhlInputError(f"expected steps >= 1, got {args.steps}", key="--steps")
+    noise = NoiseSpec(args.noise, args.noise)
+    noise = None if noise.is_noiseless else noise
+    if args.plot:
+        check_output_path(args.plot, "--plot")
+    cluster = cluster_from_args(args)
+    report = check_derivatives(cluster, args.time, args.steps, args.shots, args.seed, noise, args.hessian,
+                               args.param, args.experiment, args.order, progress=_progress_bar)
+    if report.interrupted:
+        print(f"\nqhl check: interrupted; {len(report.rows)} of {report.planned} rows finished", file=sys.stderr)
+    if args.plot and report.rows:
+        _plot(report, args.plot)
+    if args.json:
+        print_json(report.rows)
+        return 130 if report.interrupted else 0
+    print(f"cluster {cluster.name}: t = {report.time_s:g} s, r = {report.steps} steps, {args.shots} shots per part, "
+          f"seed {args.seed}, noise {args.noise:g}")
+    head = (f"{'parameter':<28}{'part':>5}{'exact':>13}{'trotter':>13}{'emulated':>13}{'stderr':>11}"
+            f"{'z':>7}{'bias':>11}")
+    print(head)
+    for r in report.rows:
+        print(f"{r['parameter']:<28}{r['part']:>5}{r['exact']:>13.4e}{r['trotter_exact']:>13.4e}"
+              f"{r['emulated']:>13.4e}{r['stderr']:>11.2e}{r['z']:>7.2f}{r['trotter_bias']:>11.2e}")
+    print(f"shots {report.shots}, circuits run {report.circuits_run}, {report.seconds:.1f} s")
+    print(report.verdict())
+    if args.plot and report.rows:
+        print(f"wrote {args.plot}")
+    return 130 if report.interrupted else 0

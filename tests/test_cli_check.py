@@ -1,0 +1,108 @@
+"""`qhl check`: table, verdict, --json contract, bad input (exit 2, one line), Ctrl-C.
+
+Statistics: noiseless estimates of the Trotterised derivatives have z ~ N(0, 1) (central limit
+theorem, common practice); with 4 rows the verdict "all |z| < 4" fails for 2.5e-4 of seeds.
+"""
+
+import json
+
+import pytest
+
+from qhl.cli import main
+
+TOML = """
+field_tesla = 9.4
+observe = "1H"
+name = "trio"
+[[spin]]
+label = "A"
+isotope = "1H"
+position_angstrom = [0.0, 0.0, 0.0]
+offset_hz = -300.0
+[[spin]]
+label = "B"
+isotope = "1H"
+position_angstrom = [2.0, 0.0, 0.0]
+offset_hz = 250.0
+[[spin]]
+label = "C"
+isotope = "1H"
+position_angstrom = [0.5, 2.3, 0.6]
+offset_hz = 700.0
+[[experiment]]
+name = "static"
+t_max_s = 4e-4
+points = 8
+"""
+
+
+@pytest.fixture
+def cluster(tmp_path):
+    p = tmp_path / "trio.toml"
+    p.write_text(TOML)
+    return str(p)
+
+
+def _args(cluster, *extra):
+    return ["check", cluster, "--time", "2e-4", "--steps", "3", "--shots", "1500", "--seed", "1",
+            "--param", "offset:A", "dipolar:A-B", *extra]
+
+
+def test_table_and_verdict(cluster, capsys, tmp_path):
+    png = tmp_path / "check.png"
+    assert main(_args(cluster, "--plot", str(png))) == 0
+    cap = capsys.readouterr()
+    assert "PASS: all |z| < 4" in cap.out and "offset:A" in cap.out and "dipolar:A-B" in cap.out
+    assert "trotter" in cap.out and "4/4" not in cap.out and "2/2" in cap.err   # progress bar on stderr
+    assert png.stat().st_size > 1000
+
+
+def test_json_contract_and_reproducible(cluster, capsys):
+    assert main(_args(cluster, "--json")) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert len(rows) == 4
+    keys = {"parameter", "exact", "trotter_exact", "emulated", "stderr", "z", "trotter_bias", "shots",
+            "circuits_run", "seconds"}
+    for r in rows:
+        assert keys <= set(r)
+        assert r["z"] == pytest.approx((r["emulated"] - r["trotter_exact"]) / r["stderr"])
+        assert r["trotter_bias"] == pytest.approx(r["trotter_exact"] - r["exact"])
+        assert r["shots"] == 1500 and abs(r["z"]) < 4
+    assert main(_args(cluster, "--json")) == 0
+    again = json.loads(capsys.readouterr().out)
+    assert [r["emulated"] for r in again] == [r["emulated"] for r in rows]
+
+
+def test_hessian_rows(cluster, capsys):
+    assert main(["check", cluster, "--time", "2e-4", "--steps", "2", "--shots", "800", "--param", "offset:A",
+                 "--hessian", "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert [r["parameter"] for r in rows] == ["offset:A", "offset:A", "offset:A x offset:A", "offset:A x offset:A"]
+
+
+@pytest.mark.parametrize("extra, word", [
+    (["--shots", "0"], "--shots"), (["--noise", "1.0"], "[0, 1)"), (["--noise", "-0.1"], "[0, 1)"),
+    (["--time", "0"], "--time"), (["--time", "nan"], "--time"), (["--param", "offset:Z"], "offset:Z")])
+def test_bad_input_exit_2_one_line(cluster, capsys, extra, word):
+    args = ["check", cluster, "--time", "2e-4", "--steps", "2", "--shots", "10", *extra]
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and word in err
+
+
+def test_ctrl_c_prints_what_finished(cluster, capsys, monkeypatch):
+    import qhl.emulation.check as chk
+    real = chk.emulate_gradient
+    calls = [0]
+
+    def flaky(*a, **k):
+        calls[0] += 1
+        if calls[0] == 2:
+            raise KeyboardInterrupt
+        return real(*a, **k)
+
+    monkeypatch.setattr(chk, "emulate_gradient", flaky)
+    assert main(_args(cluster)) == 130
+    cap = capsys.readouterr()
+    assert "interrupted; 2 of 4 rows finished" in cap.err
+    assert "offset:A" in cap.out and "dipolar:A-B" not in cap.out.split("\n", 2)[2]
