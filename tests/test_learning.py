@@ -268,7 +268,10 @@ def test_bad_inputs_raise_one_line_errors():
     with pytest.raises(QhlInputError, match="relative offset"):
         perturbed_start(h, -0.1)
     with pytest.raises(QhlInputError) as info:
-        learn(c, gradients="emulated", shots=10)
+        learn(c, gradients="emulated", shots=0)
+    assert "\n" not in str(info.value)
+    with pytest.raises(QhlInputError) as info:
+        learn(c, gradients="guessed")
     assert "\n" not in str(info.value)
 
 

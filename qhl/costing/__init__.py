@@ -1,6 +1,7 @@
 """Costing: near-term shot budgets and fault-tolerant resources for Hamiltonian learning.
 
-Modules: shots (concentration bounds, exact variances, allocation), near_term (per-cluster
+Modules: shots (concentration bounds, exact variances, allocation), family_variance (shots from
+the compiled estimator's exact variance, small clusters), near_term (per-cluster
 variances over t), amplitude_estimation, synthesis (T per rotation), trotter_order4 and
 trotter_cost (Trotter steps, gates per step), fault_tolerant (AE circuit counts), surface_code
 (physical footprint), budget (the Budget API and sweeps), budget_plots (log-log PNGs).

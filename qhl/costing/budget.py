@@ -20,7 +20,7 @@ from ..engine import ExactEngine
 from ..errors import QhlInputError
 from ..model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
-from . import trotter_order4
+from . import family_variance, trotter_order4
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
 from .near_term import near_term_model
 from .trotter_cost import ORDERS, empirical_trotter_steps, trotter_model
@@ -39,7 +39,8 @@ EXPECTED_EXPONENTS = {
 def all_assumptions(settings=None) -> dict:
     """Every constant and model choice used, with its source."""
     out = {}
-    for mod in (shots, amplitude_estimation, synthesis, trotter_order4, trotter_cost, fault_tolerant, surface_code):
+    for mod in (shots, family_variance, amplitude_estimation, synthesis, trotter_order4, trotter_cost, fault_tolerant,
+                surface_code):
         out.update(mod.ASSUMPTIONS)
     out["precision_unit"] = "eps is a standard error on dS/dh with h in units of unit_hz (default 1 kHz)"
     out["time_grids"] = "each experiment's time grid is rescaled to end at t (points kept)"
@@ -66,6 +67,9 @@ class BudgetSettings:
         failure_budget: allowed failure probability of the fault-tolerant circuit.
         empirical_trotter: compute the exact-propagator step count (n <= 8).
         hessian_exact: exact variance of the worst Hessian entry at t (one engine Hessian per experiment).
+        circuit_variance_max_spins: clusters with at most this many spins also get the compiled
+            estimator's exact variance count (qhl.costing.family_variance); 0 turns it off.
+        circuit_variance_steps, circuit_variance_order: the Trotterisation of that estimator.
     """
 
     unit_hz: float = 1e3
@@ -78,6 +82,9 @@ class BudgetSettings:
     failure_budget: float = 0.01
     empirical_trotter: bool = True
     hessian_exact: bool = True
+    circuit_variance_max_spins: int = 6
+    circuit_variance_steps: int = 8
+    circuit_variance_order: int = 2
 
     def split_dict(self):
         return dict(self.split)
@@ -372,7 +379,29 @@ class BudgetModel:
             sc = surface_code.surface_code_estimate(ft["logical_qubits"], ft["depth"], ft["t_count"],
                                                     s.physical_error, s.cycle_time_s, s.failure_budget).to_json()
         err = {k: float(v) for k, v in ft_all["split"].items()}
-        return Budget(t, eps, near, ft, err, comparison, sc, all_assumptions(s), self.cluster.name)
+        assumptions = all_assumptions(s)
+        assumptions["exact_variance_used"] = self._add_circuit_variance(near, t, eps)
+        return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name)
+
+    def _add_circuit_variance(self, near, t, eps):
+        """Put the compiled estimator's exact-variance count of the worst component into `near`
+        (small clusters; the R^2 - mu^2 count otherwise) and say which one `near` carries."""
+        s = self.settings
+        x, n = self.near.worst_range_index()
+        near["shots_per_component_circuit"] = None
+        if not family_variance.fits_circuit_variance(self.model.n_spins, s.circuit_variance_max_spins):
+            near["exact_variance_method"] = "two-valued"
+            return (f"shots_per_component: R^2 - mu^2 (two-valued bound; {self.model.n_spins} spins exceed the "
+                    f"{s.circuit_variance_max_spins} allowed for the compiled estimator's exact variance)")
+        var, _, _ = family_variance.component_circuit_variance(
+            self.model, self.experiments[x], self.near.names[n], t, s.circuit_variance_steps,
+            s.circuit_variance_order, s.unit_hz)
+        near["shots_per_component_circuit"] = math.ceil(var / eps**2)
+        near["exact_variance_method"] = "circuit"
+        return (f"shots_per_component_circuit: exact variance of the compiled Hadamard-test estimator of "
+                f"{self.near.names[n]} in {self.experiments[x].name} (real part, {s.circuit_variance_steps} "
+                f"Trotter steps, order {s.circuit_variance_order}); shots_per_component: R^2 - mu^2 (two-valued "
+                "bound, kept for the sweeps)")
 
     # ------------------------------------------------------------------ sweeps
     def sweep(self, times, precisions, progress=None) -> BudgetSweep:
