@@ -6,7 +6,7 @@ Chemical shifts become rotating-frame offsets through
 so a positive offset means a line above the carrier (common practice).
 """
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 import math
 
 import numpy as np

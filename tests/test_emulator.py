@@ -9,7 +9,6 @@ false-failure rate (the probability that a random seed choice fails; seeds are f
 run gives the same numbers).
 """
 
-import sys
 
 import numpy as np
 import pytest

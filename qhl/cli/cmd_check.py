@@ -4,7 +4,7 @@ import sys
 
 from ..emulation.check import check_derivatives
 from ..emulation.noise import NoiseSpec
-from .common import add_cluster_argument, check_output_path, cluster_from_args, positive_int, print_json
+from .common import add_cluster_argument, check_output_path, cluster_from_args, print_json
 
 
 def register(sub):

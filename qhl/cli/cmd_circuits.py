@@ -38,11 +38,7 @@ def register(sub):
 def _experiment(cluster, name):
     if name is None:
         return cluster.experiments[0] if cluster.experiments else None
-    for ex in cluster.experiments:
-        if ex.name == name:
-            return ex
-    known = ", ".join(ex.name for ex in cluster.experiments) or "none"
-    raise QhlInputError(f"unknown experiment '{name}': expected one of {known}", key="--experiment")
+    return cluster.experiment(name)
 
 
 def _parameters(kind, names):

@@ -1,18 +1,10 @@
 """`qhl scan`: learnability and ergodicity diagnostics over clusters x dipolar scales, on Dask."""
 
 from ..scan import ScanSettings, define_scan, parse_scale_range, read_results, run_scan
-from .common import positive_float, positive_int, print_json
+from .common import integer_at_least, positive_float, positive_int, print_json
 
 
-def _workers(text):
-    import argparse
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected an integer >= 0, got {text!r}") from None
-    if v < 0:
-        raise argparse.ArgumentTypeError(f"expected an integer >= 0, got {text!r}")
-    return v
+_workers = integer_at_least(0)
 
 
 def register(sub):

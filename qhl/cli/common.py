@@ -11,7 +11,7 @@ from ..cluster_file import demo_cluster, load_cluster
 from ..errors import QhlInputError
 
 __all__ = ["add_cluster_argument", "cluster_from_args", "print_json", "check_output_path",
-           "positive_float", "positive_int"]
+           "positive_float", "positive_int", "integer_at_least"]
 
 
 def add_cluster_argument(parser):
@@ -71,12 +71,19 @@ def positive_float(text):
     return v
 
 
-def positive_int(text):
+def integer_at_least(minimum: int):
+    """An argparse type: an integer >= `minimum`."""
     import argparse
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"expected an integer >= 1, got {text!r}")
-    return v
+
+    def parse(text):
+        try:
+            v = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}") from None
+        if v < minimum:
+            raise argparse.ArgumentTypeError(f"expected an integer >= {minimum}, got {text!r}")
+        return v
+    return parse
+
+
+positive_int = integer_at_least(1)

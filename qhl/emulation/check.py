@@ -55,11 +55,7 @@ class CheckReport:
 def _experiment(cluster, name):
     if name is None:
         return cluster.experiments[0] if cluster.experiments else None
-    for ex in cluster.experiments:
-        if ex.name == name:
-            return ex
-    raise QhlInputError(f"unknown experiment '{name}': expected one of "
-                        f"{', '.join(e.name for e in cluster.experiments) or 'none'}", key="--experiment")
+    return cluster.experiment(name)
 
 
 def check_time(time) -> float:

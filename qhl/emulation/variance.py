@@ -135,7 +135,6 @@ def family_moments(family, part: str = "re") -> FamilyMoments:
     obs = np.real(np.diag(family.observable.to_matrix()))
     if not np.allclose(family.observable.to_matrix(), np.diag(obs)):
         raise QhlInputError("the family observable must be diagonal (Z's only)", key="observable")
-    w = family.insertions.weights
     total = family.insertions.total_weight
     raw = np.zeros(4)
     powers = np.stack([obs ** m for m in (1, 2, 3, 4)])
