@@ -1,4 +1,8 @@
-"""`qhl circuits`: the JSON contract, OpenQASM 3 export and one-line errors with exit code 2."""
+"""`qhl circuits`: the JSON contract, OpenQASM 3 export and one-line errors with exit code 2.
+
+References: the OpenQASM 3 specification (Cross et al., "OpenQASM 3: A broader and deeper quantum
+assembly language", ACM Trans. Quantum Comput. 3, 12 (2022)) for the file header; counts are
+re-derived from the exported text; exit code 2 for bad input is common practice (argparse)."""
 
 import json
 import re

@@ -1,4 +1,7 @@
-"""`qhl budget`: the --json contract and one-line errors with exit code 2."""
+"""`qhl budget`: the --json contract and one-line errors with exit code 2.
+
+The physics of each number is checked against its published source in tests/test_costing_*.py;
+here only the contract and the bad-input behaviour (exit code 2, common practice) are tested."""
 
 import json
 

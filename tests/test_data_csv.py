@@ -1,4 +1,7 @@
-"""Measured signals from CSV (qhl.data_csv): round trip, fits from a file, one-line errors."""
+"""Measured signals from CSV (qhl.data_csv): round trip, fits from a file, one-line errors.
+
+Format: RFC 4180 comma-separated values (Shafranovich, 2005) read with Python's csv module;
+the fit from a file must equal the fit from the same data in memory (common practice)."""
 
 import numpy as np
 import pytest

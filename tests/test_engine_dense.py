@@ -58,6 +58,16 @@ def test_hessian_symmetric_and_equal_to_differences_of_gradients():
     np.testing.assert_allclose(g, eng.gradient(ex)[1])
 
 
+def _assert_derivatives_match_differences(model, eng, ex):
+    """Gradient vs central differences of the dense signal; Hessian vs differences of gradients."""
+    _, grad = eng.gradient(ex)
+    fd = central_difference(lambda x: dense_signal(model, ex, ex.times_s, x), model.free_values_hz, 1e-2)
+    assert np.abs(grad - fd).max() / np.abs(fd).max() < 1e-6
+    _, _, hess = eng.hessian(ex)
+    fdh = central_difference(lambda x: eng.gradient(ex, free_values_hz=x)[1], model.free_values_hz, 1e-2)
+    assert np.abs(hess - fdh).max() / np.abs(fdh).max() < 1e-6
+
+
 def test_degenerate_offsets_handled_exactly():
     """Equal offsets and a symmetric geometry give exactly degenerate levels."""
     spins = (Spin("A", "1H", (0, 0, 0), 100.0), Spin("B", "1H", (1.8, 0, 0), 100.0),
@@ -66,12 +76,7 @@ def test_degenerate_offsets_handled_exactly():
     model = build_model(c)
     eng = ExactEngine(model)
     ex = c.experiments[0]
-    _, grad = eng.gradient(ex)
-    fd = central_difference(lambda x: dense_signal(model, ex, ex.times_s, x), model.free_values_hz, 1e-2)
-    assert np.abs(grad - fd).max() / np.abs(fd).max() < 1e-6
-    _, _, hess = eng.hessian(ex)
-    fdh = central_difference(lambda x: eng.gradient(ex, free_values_hz=x)[1], model.free_values_hz, 1e-2)
-    assert np.abs(hess - fdh).max() / np.abs(fdh).max() < 1e-6
+    _assert_derivatives_match_differences(model, eng, ex)
 
 
 @pytest.mark.parametrize("axis", ["x", "y"])
@@ -85,12 +90,7 @@ def test_rf_term_falls_back_to_full_space(axis):
     assert eng.real == (axis == "x")
     ex = c.experiments[0]
     np.testing.assert_allclose(eng.signal(ex), dense_signal(model, ex, ex.times_s), atol=1e-10, rtol=0)
-    _, grad = eng.gradient(ex)
-    fd = central_difference(lambda x: dense_signal(model, ex, ex.times_s, x), model.free_values_hz, 1e-2)
-    assert np.abs(grad - fd).max() / np.abs(fd).max() < 1e-6
-    _, _, hess = eng.hessian(ex)
-    fdh = central_difference(lambda x: eng.gradient(ex, free_values_hz=x)[1], model.free_values_hz, 1e-2)
-    assert np.abs(hess - fdh).max() / np.abs(fdh).max() < 1e-6
+    _assert_derivatives_match_differences(model, eng, ex)
 
 
 def test_dipolar_scale_enters_gradient_as_chain_rule():
