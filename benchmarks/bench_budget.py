@@ -12,7 +12,6 @@ Goal: the sweep in a few seconds (the issue's performance target). Usage:
 """
 
 import argparse
-import statistics
 import time
 
 import numpy as np
@@ -21,6 +20,7 @@ from qhl import demo_cluster
 from qhl.costing import BudgetModel, BudgetSettings
 from qhl.costing.fault_tolerant import choose_order
 from qhl.costing.shots import gradient_shot_range
+from timing import median_time
 
 
 def pointwise(bm, times, precisions):
@@ -34,15 +34,6 @@ def pointwise(bm, times, precisions):
         r = gradient_shot_range(t, nt.l1[n], nt.scales[x, n], nt.kappa, bm.settings.unit_hz)
         for e in precisions:
             choose_order(bm._ft(r, t, e, x, bm._n_terms[n]))
-
-
-def median_time(fn, repeats):
-    out = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        out.append(time.perf_counter() - t0)
-    return statistics.median(out)
 
 
 def main():

@@ -23,6 +23,7 @@ from qhl.circuit_counts import count_gates, transpile_for_counts
 from qhl.circuit_family import circuit_builds
 from qhl.cluster import Cluster, Experiment, Spin
 from qhl.gradient_circuits import gradient_circuit
+from timing import median_time
 
 
 def ten_spin_cluster():
@@ -31,15 +32,6 @@ def ten_spin_cluster():
         ring, a = k // 5, 2 * np.pi * (k % 5) / 5 + 0.3 * (k // 5)
         spins.append(Spin(f"H{k + 1}", "1H", (2.2 * np.cos(a), 2.2 * np.sin(a), 1.6 * ring), 150.0 * k - 600.0))
     return Cluster(9.4, "1H", tuple(spins), (), (Experiment("static", 2e-4, 8),), name="bench-H10")
-
-
-def _median_time(fun, repeats):
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fun()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
 
 
 def main(argv=None):
@@ -93,13 +85,13 @@ def main(argv=None):
     rebuilds = circuit_builds() - builds_before
     print(f"\nsampling {args.samples} insertion settings of {name}: circuit rebuilds {rebuilds} (goal 0)")
 
-    bind_raw = _median_time(lambda: fam.circuit.assign_parameters(shots.values[0]), 30)
-    rebuild_raw = _median_time(lambda: gradient_circuit(model, ex, name, args.time, args.steps, args.order), 7)
+    bind_raw = median_time(lambda: fam.circuit.assign_parameters(shots.values[0]), 30)
+    rebuild_raw = median_time(lambda: gradient_circuit(model, ex, name, args.time, args.steps, args.order), 7)
     transpiled = transpile_for_counts(fam.circuit)     # transpile once with symbolic parameters
     index = {p.name: k for k, p in enumerate(fam.circuit.parameters)}
     cols = np.array([index[p.name] for p in transpiled.parameters])
-    bind_tq = _median_time(lambda: transpiled.assign_parameters(shots.values[0][cols]), 30)
-    retranspile = _median_time(lambda: transpile_for_counts(fam.bind(np.zeros(model.n_spins), 0)), 5)
+    bind_tq = median_time(lambda: transpiled.assign_parameters(shots.values[0][cols]), 30)
+    retranspile = median_time(lambda: transpile_for_counts(fam.bind(np.zeros(model.n_spins), 0)), 5)
     print(f"{'per sample':<34}{'median (ms)':>12}")
     print(f"{'bind family circuit':<34}{bind_raw * 1e3:12.2f}")
     print(f"{'rebuild family circuit':<34}{rebuild_raw * 1e3:12.2f}   ratio rebuild/bind {rebuild_raw / bind_raw:8.1f}")

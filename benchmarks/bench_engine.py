@@ -12,7 +12,6 @@ grid (the cost per step is constant), which is stated in the output.
 import argparse
 import json
 import resource
-import statistics
 import subprocess
 import sys
 import time
@@ -22,6 +21,7 @@ import scipy.linalg as sla
 
 from qhl import ExactEngine, build_model
 from qhl.cluster import Cluster, Experiment, Spin
+from timing import median_time
 
 BASELINE_STEPS = 8
 
@@ -36,15 +36,6 @@ def bench_cluster(n, points=256, seed=0):
             break
     spins = tuple(Spin(f"H{i}", "1H", tuple(p), float(rng.normal(0, 1000))) for i, p in enumerate(pos))
     return Cluster(9.4, "1H", spins, (), (Experiment("fid", 2e-4, points),))
-
-
-def median_time(fun, repeats):
-    ts = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fun()
-        ts.append(time.perf_counter() - t0)
-    return statistics.median(ts)
 
 
 def baseline_signal_time(model, ex, steps):
