@@ -19,7 +19,12 @@ from .errors import QhlInputError
 from .likelihood import cramer_rao_bounds, fisher_information
 from .model import DEFAULT_FREE, build_model
 
-__all__ = ["FisherReport", "fisher_report", "report_from_fisher", "WEIGHT_TOL"]
+__all__ = ["FisherReport", "fisher_report", "report_from_fisher", "WEIGHT_TOL", "describe_combination"]
+
+def describe_combination(combination: dict) -> str:
+    """'+0.707*offset:A -0.707*offset:B' for a {name: weight} combination."""
+    return " ".join(f"{w:+.3f}*{n}" for n, w in combination.items())
+
 
 # Components smaller than this are left out when an unlearnable combination is printed.
 WEIGHT_TOL = 1e-3

@@ -4,7 +4,7 @@ import sys
 
 import numpy as np
 
-from ..fisher_report import fisher_report
+from ..fisher_report import describe_combination, fisher_report
 from .common import add_cluster_argument, cluster_from_args, positive_float, print_json
 
 
@@ -23,7 +23,7 @@ def run(args):
     cluster = cluster_from_args(args)
     rep = fisher_report(cluster, free=args.free, sigma=args.noise)
     for u in rep.unlearnable:
-        combo = " ".join(f"{w:+.3f}*{n}" for n, w in u["combination"].items())
+        combo = describe_combination(u["combination"])
         print(f"qhl: warning: singular Fisher matrix: {combo} is unlearnable "
               f"(eigenvalue {u['eigenvalue']:.2e})", file=sys.stderr)
     if args.json:

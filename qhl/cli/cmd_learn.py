@@ -4,6 +4,7 @@ import sys
 
 import numpy as np
 
+from ..fisher_report import describe_combination
 from ..learning import METHODS, learn
 from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float,
                      positive_int, print_json)
@@ -54,7 +55,7 @@ def run(args):
     if not fit.converged:
         print(f"qhl: warning: {fit.message}", file=sys.stderr)
     for u in fit.unlearnable:
-        combo = " ".join(f"{w:+.3f}*{n}" for n, w in u["combination"].items())
+        combo = describe_combination(u["combination"])
         print(f"qhl: warning: the data do not determine {combo} (Fisher eigenvalue {u['eigenvalue']:.2e})",
               file=sys.stderr)
     if args.json:
