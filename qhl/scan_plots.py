@@ -23,6 +23,17 @@ __all__ = ["aggregate", "plot_scan"]
 _NOTE = "not shown: eigenvalues <= 0 and infinite bounds (unlearnable directions)"
 
 
+def _save(fig, path, title, note):
+    """Title, optional footnote, layout, write the PNG and close the figure; returns the path."""
+    fig.suptitle(title)
+    if note:
+        fig.text(0.01, 0.01, _NOTE, fontsize=7)
+    fig.tight_layout(rect=(0, 0.03, 1, 1))
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
+
+
 def aggregate(rows, key) -> dict:
     """{n_spins: (scales, medians)} of column `key` over clusters (finite values only)."""
     out = {}
@@ -64,12 +75,7 @@ def plot_scan(rows, out_dir) -> list:
     for ax in axes:
         ax.set_xlabel("dipolar scale")
         ax.legend(fontsize=8)
-    fig.suptitle("learnability vs dipolar scale (median over clusters)")
-    fig.text(0.01, 0.01, _NOTE, fontsize=7)
-    fig.tight_layout(rect=(0, 0.03, 1, 1))
-    paths.append(out / "learnability_vs_scale.png")
-    fig.savefig(paths[-1], dpi=110)
-    plt.close(fig)
+    paths.append(_save(fig, out / "learnability_vs_scale.png", "learnability vs dipolar scale (median over clusters)", note=True))
 
     fig, axes = plt.subplots(1, 2, figsize=(10, 4))
     sizes = sorted(fisher)
@@ -86,12 +92,7 @@ def plot_scan(rows, out_dir) -> list:
         ax.set_xlabel("cluster size (spins)")
         ax.set_xticks(sizes)
         ax.legend(fontsize=7)
-    fig.suptitle("learnability vs cluster size (median over clusters)")
-    fig.text(0.01, 0.01, _NOTE, fontsize=7)
-    fig.tight_layout(rect=(0, 0.03, 1, 1))
-    paths.append(out / "learnability_vs_size.png")
-    fig.savefig(paths[-1], dpi=110)
-    plt.close(fig)
+    paths.append(_save(fig, out / "learnability_vs_size.png", "learnability vs cluster size (median over clusters)", note=True))
 
     fig, axes = plt.subplots(1, 2, figsize=(10, 4))
     for n, (x, y) in aggregate(rows, "mean_r").items():
@@ -106,9 +107,5 @@ def plot_scan(rows, out_dir) -> list:
     for ax in axes:
         ax.set_xlabel("dipolar scale")
         ax.legend(fontsize=8)
-    fig.suptitle("ergodicity vs dipolar scale (median over clusters)")
-    fig.tight_layout(rect=(0, 0.03, 1, 1))
-    paths.append(out / "ergodicity_vs_scale.png")
-    fig.savefig(paths[-1], dpi=110)
-    plt.close(fig)
+    paths.append(_save(fig, out / "ergodicity_vs_scale.png", "ergodicity vs dipolar scale (median over clusters)", note=False))
     return paths
