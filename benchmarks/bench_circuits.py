@@ -19,10 +19,10 @@ import time
 import numpy as np
 
 from qhl import build_model
-from qhl.circuit_counts import count_gates, transpile_for_counts
-from qhl.circuit_family import circuit_builds
-from qhl.cluster import Cluster, Experiment, Spin
-from qhl.gradient_circuits import gradient_circuit
+from qhl.circuits.circuit_counts import count_gates, transpile_for_counts
+from qhl.circuits.circuit_family import circuit_builds
+from qhl.spins.cluster import Cluster, Experiment, Spin
+from qhl.circuits.gradient_circuits import gradient_circuit
 from timing import median_time
 
 

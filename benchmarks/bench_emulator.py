@@ -16,9 +16,9 @@ import numpy as np
 from qiskit_aer import AerSimulator
 
 from qhl import build_model, demo_cluster
-from qhl.cluster import Cluster, Experiment, Spin
-from qhl.emulator import FamilyRunner, estimate_family
-from qhl.gradient_circuits import gradient_circuit
+from qhl.spins.cluster import Cluster, Experiment, Spin
+from qhl.emulation import FamilyRunner, estimate_family
+from qhl.circuits.gradient_circuits import gradient_circuit
 
 
 def naive_seconds_per_shot(family, runner, shots, rng):

@@ -20,7 +20,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from qhl import ExactEngine, build_model
-from qhl.cluster import Cluster, Experiment, Spin
+from qhl.spins.cluster import Cluster, Experiment, Spin
 from timing import median_time
 
 BASELINE_STEPS = 8

@@ -27,8 +27,8 @@ import time  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from qhl.scan import ScanSettings, define_scan, read_results, run_scan  # noqa: E402
-from qhl.structure import cut_clusters, demo_structure_path, invented_offsets_hz, read_structure  # noqa: E402
+from qhl.survey.scan import ScanSettings, define_scan, read_results, run_scan  # noqa: E402
+from qhl.survey.structure import cut_clusters, demo_structure_path, invented_offsets_hz, read_structure  # noqa: E402
 
 
 def workload(quick: bool):
@@ -43,7 +43,7 @@ def workload(quick: bool):
 
 
 def _import_qhl():
-    import qhl.diagnostics  # noqa: F401
+    import qhl.survey.diagnostics  # noqa: F401
 
 
 def timed_scan(definition, workdir, name, **kwargs):

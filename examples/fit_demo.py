@@ -7,7 +7,7 @@ import numpy as np
 
 from qhl import ExactEngine, build_model, demo_cluster
 from qhl.learning import ExactGradientProvider, fit, perturbed_start, relative_error
-from qhl.likelihood import synthetic_dataset
+from qhl.exact.likelihood import synthetic_dataset
 
 cluster = demo_cluster()
 engine = ExactEngine(build_model(cluster))          # offsets and dipolar couplings free

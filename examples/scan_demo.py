@@ -6,9 +6,9 @@ Run: python examples/scan_demo.py   (writes into a fresh temporary folder and pr
 from pathlib import Path
 import tempfile
 
-from qhl.scan import ScanSettings, define_scan, read_results, run_scan
-from qhl.scan_plots import plot_scan
-from qhl.structure import (cut_clusters, demo_structure_path, invented_offsets_hz, read_structure,
+from qhl.survey.scan import ScanSettings, define_scan, read_results, run_scan
+from qhl.survey.scan_plots import plot_scan
+from qhl.survey.structure import (cut_clusters, demo_structure_path, invented_offsets_hz, read_structure,
                            write_cluster_files)
 
 

@@ -10,7 +10,7 @@ import re
 import numpy as np
 import pytest
 
-from qhl.circuit_counts import is_clifford_angle
+from qhl.circuits.circuit_counts import is_clifford_angle
 from qhl.cli import main
 
 BASE = ["circuits", "--time", "1e-5", "--steps", "2"]
@@ -60,8 +60,8 @@ def test_eps_chooses_steps(capsys):
     rc, out, _ = _run(capsys, ["circuits", "--time", "1e-5", "--eps", "0.01", "--order", "2", "--json"])
     assert rc == 0
     from qhl import build_model, demo_cluster
-    from qhl.trotter import trotter_terms
-    from qhl.trotter_bounds import trotter_steps_for
+    from qhl.circuits.trotter import trotter_terms
+    from qhl.circuits.trotter_bounds import trotter_steps_for
     c = demo_cluster()
     terms = trotter_terms(build_model(c), c.experiments[0])
     assert json.loads(out)["steps"] == trotter_steps_for(terms, 1e-5, 0.01, 2)

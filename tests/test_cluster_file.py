@@ -13,7 +13,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 from qhl import QhlInputError, demo_cluster, load_cluster, parse_cluster_toml
-from qhl.nuclei import larmor_frequency_hz
+from qhl.spins.nuclei import larmor_frequency_hz
 
 GOOD = """
 field_tesla = 9.4

@@ -9,7 +9,7 @@ from qhl import demo_cluster
 from qhl.costing import BudgetModel, BudgetSettings, fit_exponents
 from qhl.costing.amplitude_estimation import amplitude_error_bound
 from qhl.costing.shots import hoeffding_shots
-from qhl.errors import QhlInputError
+from qhl.base.errors import QhlInputError
 
 
 @pytest.fixture(scope="module")

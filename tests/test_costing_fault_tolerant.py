@@ -11,7 +11,7 @@ from qhl.costing.amplitude_estimation import (SUCCESS_PROBABILITY, amplitude_err
 from qhl.costing.surface_code import (THRESHOLD, code_distance_for, distilled_error, logical_error_rate,
                                       surface_code_estimate)
 from qhl.costing.synthesis import t_count_per_rotation
-from qhl.errors import QhlInputError
+from qhl.base.errors import QhlInputError
 
 
 def test_ross_selinger_about_100_t_at_1e_10():

@@ -10,8 +10,8 @@ from qhl import build_model, demo_cluster
 from qhl.costing.trotter_cost import (empirical_trotter_steps, product_formula_unitary, steps_from_constant,
                                       trotter_model)
 from qhl.costing.trotter_order4 import SUZUKI4_U, nested_commutator_sum
-from qhl.trotter import trotter_unitary
-from qhl.trotter_bounds import trotter_steps_for
+from qhl.circuits.trotter import trotter_unitary
+from qhl.circuits.trotter_bounds import trotter_steps_for
 
 
 def _brute_force(op, depth):
@@ -56,7 +56,7 @@ def test_suzuki4_is_fourth_order(static_model):
 
 @pytest.mark.parametrize("order", [1, 2])
 def test_dense_product_formula_matches_the_trotter_module(static_model, order):
-    # independent implementation: qhl.trotter.trotter_unitary (scipy expm of each group)
+    # independent implementation: qhl.circuits.trotter.trotter_unitary (scipy expm of each group)
     mine = product_formula_unitary(static_model.terms, order, 3e-5, 3)
     theirs = trotter_unitary(static_model.terms, 3e-5, 3, order)
     assert np.max(np.abs(mine - theirs)) < 1e-10
@@ -91,7 +91,7 @@ def test_steps_from_constant_is_the_smallest_r():
 
 
 def test_per_step_counts(static_model):
-    # Order 4 = five second-order stages (Suzuki 1990); transpiled counts come from qhl.circuit_counts
+    # Order 4 = five second-order stages (Suzuki 1990); transpiled counts come from qhl.circuits.circuit_counts
     c2, c4 = static_model.step_counts(2), static_model.step_counts(4)
     assert c4 == {k: 5 * v for k, v in c2.items()}
     assert static_model.step_counts(1)["rotations"] >= len(static_model.terms.groups)

@@ -1,4 +1,4 @@
-"""Measured signals from CSV (qhl.data_csv): round trip, fits from a file, one-line errors.
+"""Measured signals from CSV (qhl.learning.data_csv): round trip, fits from a file, one-line errors.
 
 Format: RFC 4180 comma-separated values (Shafranovich, 2005) read with Python's csv module;
 the fit from a file must equal the fit from the same data in memory (common practice)."""
@@ -8,9 +8,9 @@ import pytest
 
 from qhl import ExactEngine, build_model, demo_cluster
 from qhl.cli import main
-from qhl.data_csv import load_signals_csv, write_signals_csv
-from qhl.errors import QhlInputError
-from qhl.likelihood import synthetic_dataset
+from qhl.learning.data_csv import load_signals_csv, write_signals_csv
+from qhl.base.errors import QhlInputError
+from qhl.exact.likelihood import synthetic_dataset
 
 HEADER = "experiment,time_s,real,imag\n"
 

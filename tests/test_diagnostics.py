@@ -7,7 +7,7 @@ import pytest
 from qiskit.quantum_info import SparsePauliOp
 
 from qhl import Cluster, Experiment, Spin, build_model, demo_cluster, ExactEngine
-from qhl.diagnostics import (GOE_MEAN_R, POISSON_MEAN_R, diagnose, fractal_dimension_d2,
+from qhl.survey.diagnostics import (GOE_MEAN_R, POISSON_MEAN_R, diagnose, fractal_dimension_d2,
                              inverse_participation_ratio, mean_spacing_ratio, participation_ratio,
                              spacing_ratios, symmetry_sector_levels)
 

@@ -1,4 +1,4 @@
-"""Shot-based emulated signals, gradients and Hessians (qhl.emulator) against exact references.
+"""Shot-based emulated signals, gradients and Hessians (qhl.emulation) against exact references.
 
 References: the dense Trotter product formula (tests/reference_trotter.py: scipy.linalg.expm and
 expm_frechet, Al-Mohy and Higham, SIAM J. Matrix Anal. Appl. 30, 1639 (2009)), the circuit
@@ -14,12 +14,13 @@ import numpy as np
 import pytest
 from qiskit.quantum_info import Statevector
 
-from qhl.circuit_family import exact_expectation
-from qhl.errors import QhlInputError
-from qhl.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
-from qhl.emulator import (ComplexEstimate, Estimate, FamilyRunner, NoiseSpec, emulate_gradient, emulate_hessian,
+from qhl.circuits.circuit_family import exact_expectation
+from qhl.base.errors import QhlInputError
+from qhl.circuits.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
+from qhl.emulation import (ComplexEstimate, Estimate, FamilyRunner, NoiseSpec, emulate_gradient, emulate_hessian,
                           estimate_family, gradient_provider, neyman_allocation, nll_gradient, outcome_values,
-                          predicted_shrink, trotter_gradient_exact, trotter_hessian_exact, trotter_signal_exact)
+                          predicted_shrink)
+from qhl.circuits.trotter_reference import trotter_gradient_exact, trotter_hessian_exact, trotter_signal_exact
 
 from reference_trotter import small_model, trotter_gradient
 
@@ -220,7 +221,7 @@ def test_neyman_allocation_is_proportional():
 def test_nll_gradient_optimal_vs_uniform(small):
     """g_n = sum_t Re[conj(r_t) dS_n(t)] / sigma^2 with fixed residuals, against the dense Trotter
     gradient: |g - g_ref| < 4 stderr for both allocations (false failure 2.5e-4); optimal saves shots."""
-    from qhl.likelihood import Dataset
+    from qhl.exact.likelihood import Dataset
     model, ex, names = small
     times = np.array([0.1, 0.2, 0.3])
     rng = np.random.default_rng(1)
@@ -259,9 +260,9 @@ def test_emulated_fit_converges_within_3_cramer_rao_errors():
     3 Cramer-Rao errors of the truth on every offset (chi-square of 3 dof plus shot noise; at
     most 0.5% for an efficient estimator per component)."""
     from qhl import ExactEngine, build_model
-    from qhl.cluster import Cluster, Experiment, Spin
+    from qhl.spins.cluster import Cluster, Experiment, Spin
     from qhl.learning import fit
-    from qhl.likelihood import Dataset
+    from qhl.exact.likelihood import Dataset
     spins = (Spin("A", "1H", (0.0, 0.0, 0.0), -300.0), Spin("B", "1H", (6.0, 0.0, 0.0), 250.0),
              Spin("C", "1H", (1.5, 6.9, 1.8), 700.0))   # 6-7 A apart: sub-kHz couplings, small Trotter bias
     c = Cluster(9.4, "1H", spins, (), (Experiment("static", 6e-4, 6, 1.0, 0.02),), name="three")

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from qhl import ExactEngine, build_model
-from qhl.cluster import Cluster, Experiment, Spin
+from qhl.spins.cluster import Cluster, Experiment, Spin
 
 from reference_dense import central_difference, dense_signal, random_cluster
 

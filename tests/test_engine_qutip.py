@@ -8,7 +8,7 @@ import pytest
 qutip = pytest.importorskip("qutip")
 
 from qhl import ExactEngine, build_model, nucleus  # noqa: E402
-from qhl.dipolar import dipolar_coupling_hz  # noqa: E402
+from qhl.spins.dipolar import dipolar_coupling_hz  # noqa: E402
 
 from reference_dense import random_cluster  # noqa: E402
 

@@ -1,4 +1,4 @@
-"""Fisher matrix, Cramer-Rao bounds and unlearnable combinations (qhl.fisher_report, `qhl fisher`).
+"""Fisher matrix, Cramer-Rao bounds and unlearnable combinations (qhl.learning.fisher_report, `qhl fisher`).
 
 References:
 - Single complex exponential S = exp(2 pi i nu t) in Gaussian noise sigma per Re/Im part with
@@ -17,9 +17,9 @@ import pytest
 
 from qhl import ExactEngine, build_model, demo_cluster
 from qhl.cli import main
-from qhl.cluster import Cluster, Experiment, Spin
-from qhl.errors import QhlInputError
-from qhl.fisher_report import fisher_report, report_from_fisher
+from qhl.spins.cluster import Cluster, Experiment, Spin
+from qhl.base.errors import QhlInputError
+from qhl.learning.fisher_report import fisher_report, report_from_fisher
 
 DEGENERATE_TOML = """
 name = "twin"
@@ -102,7 +102,7 @@ def test_degenerate_offsets_give_unlearnable_difference():
     dS/dnu_A = dS/dnu_B = (1/2) 2 pi i t exp(2 pi i nu t), so F = pi^2 sum t^2 / sigma^2 [[1,1],[1,1]]:
     eigenvalue 2 pi^2 sum t^2 / sigma^2 along (1,1)/sqrt 2, zero along (1,-1)/sqrt 2.
     """
-    from qhl.cluster_file import parse_cluster_toml
+    from qhl.spins.cluster_file import parse_cluster_toml
     c = parse_cluster_toml(DEGENERATE_TOML)
     rep = fisher_report(c, free="offset:*")
     ex = c.experiments[0]

@@ -15,11 +15,11 @@ import pytest
 from qiskit.quantum_info import Statevector
 
 from qhl import QhlInputError
-from qhl.circuit_counts import circuit_counts, family_counts, is_clifford_angle
-from qhl.circuit_family import circuit_builds, exact_expectation
-from qhl.cluster import Experiment
-from qhl.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
-from qhl.state_prep import input_ensemble
+from qhl.circuits.circuit_counts import circuit_counts, family_counts, is_clifford_angle
+from qhl.circuits.circuit_family import circuit_builds, exact_expectation
+from qhl.spins.cluster import Experiment
+from qhl.circuits.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
+from qhl.circuits.state_prep import input_ensemble
 
 from reference_trotter import five_point, small_model, trotter_gradient, trotter_signal
 
@@ -42,7 +42,7 @@ def _fd_gradient(model, ex, name, steps, order, **kw):
 @pytest.mark.parametrize("hetero", [False, True])
 @pytest.mark.parametrize("scheme", ["product", "marked"])
 def test_input_ensemble_reproduces_rho0(hetero, scheme):
-    # rho0 / Tr[O rho0] as a signed mixture of product states (derivation in qhl.state_prep)
+    # rho0 / Tr[O rho0] as a signed mixture of product states (derivation in qhl.circuits.state_prep)
     model, _ = small_model(hetero, n=3)
     rho = model.initial_operator().to_matrix()
     norm = np.trace(model.detection_operator().to_matrix() @ rho).real
@@ -71,13 +71,15 @@ def test_prep_angles_follow_qiskit_ry():
 
 
 def test_exact_expectation_methods_agree():
-    # segment products, density-matrix evolution of every bound member, per-input statevectors
+    # density-matrix evolution of every bound member and per-input statevectors (qiskit.quantum_info)
+    # simulate the circuit; 'reference' recomputes X without it (qhl.circuits.trotter_reference:
+    # analytic gradient, Hessian by five-point differences, ~1e-10 relative)
     model, ex = small_model(True, n=3)
-    for fam in (gradient_circuit(model, ex, "dipolar:S0-S1", T, 2, 2),
-                hessian_circuit(model, ex, ("j:S0-S1", "offset:S1"), T, 1, 2)):
+    for fam, ref_tol in ((gradient_circuit(model, ex, "dipolar:S0-S1", T, 2, 2), 1e-12),
+                         (hessian_circuit(model, ex, ("j:S0-S1", "offset:S1"), T, 1, 2), 1e-8)):
         ref = exact_expectation(fam, method="statevector")
-        for method in ("segments", "density"):
-            assert abs(exact_expectation(fam, method=method) - ref) < 1e-13
+        assert abs(exact_expectation(fam, method="density") - ref) < 1e-13
+        assert abs(exact_expectation(fam, method="reference") - ref) < ref_tol
 
 
 # ---------------------------------------------------------------- signal
@@ -87,7 +89,7 @@ def test_exact_expectation_methods_agree():
 def test_signal_family_equals_product_unitary(hetero, order, scheme):
     model, ex = small_model(hetero, n=3)
     fam = signal_circuit(model, ex, T, 3, order, scheme=scheme)
-    assert exact_expectation(fam) == pytest.approx(trotter_signal(model, ex, T, 3, order), abs=1e-12)
+    assert exact_expectation(fam, method="density") == pytest.approx(trotter_signal(model, ex, T, 3, order), abs=1e-12)
 
 
 # ---------------------------------------------------------------- gradient
@@ -106,7 +108,7 @@ def test_gradient_families_match_finite_differences(hetero, order, name):
     assert abs(frechet) < 1e-12 if silent else abs(frechet) > 1e-3
     for method in ("hadamard", "shift"):
         fam = gradient_circuit(model, ex, name, T, steps, order, method=method)
-        value = exact_expectation(fam)
+        value = exact_expectation(fam, method="density")
         assert abs(value - fd) < 1e-9, method
         assert abs(value - frechet) < 1e-11, method
 
@@ -119,7 +121,7 @@ def test_gradient_with_layers_grouping_and_dipolar_scale():
         fd = _fd_gradient(model, ex, name, 2, 2, **kw)
         for method, scheme in (("hadamard", "marked"), ("shift", "product")):
             fam = gradient_circuit(model, ex, name, T, 2, 2, method=method, scheme=scheme, **kw)
-            assert abs(exact_expectation(fam) - fd) < 1e-9
+            assert abs(exact_expectation(fam, method="density") - fd) < 1e-9
 
 
 # ---------------------------------------------------------------- Hessian
@@ -140,19 +142,19 @@ def test_hessian_matches_finite_differences_of_gradient(order, pair):
     ref = five_point(grad_at, v0[km], FD_STEP)
     assert abs(ref) > 1e-3
     fam = hessian_circuit(model, ex, pair, T, steps, order)
-    assert abs(exact_expectation(fam) - ref) < 1e-7
+    assert abs(exact_expectation(fam, method="density") - ref) < 1e-7
 
 
 def test_hessian_is_symmetric():
     model, ex = small_model(True, n=3)
-    a = exact_expectation(hessian_circuit(model, ex, ("offset:S0", "dipolar:S1-S2"), T, 2, 1))
-    b = exact_expectation(hessian_circuit(model, ex, ("dipolar:S1-S2", "offset:S0"), T, 2, 1))
+    a = exact_expectation(hessian_circuit(model, ex, ("offset:S0", "dipolar:S1-S2"), T, 2, 1), method="density")
+    b = exact_expectation(hessian_circuit(model, ex, ("dipolar:S1-S2", "offset:S0"), T, 2, 1), method="density")
     assert abs(a - b) < 1e-12
 
 
 # ---------------------------------------------------------------- sampling and binding
 def test_sampling_binds_without_rebuilding_and_is_unbiased():
-    # Importance sampling of insertion rows by |w| and of inputs (qhl.circuit_family); each
+    # Importance sampling of insertion rows by |w| and of inputs (qhl.circuits.circuit_family); each
     # setting's exact expectation stands in for its shots, so only the setting draw is random.
     # 3000 draws, 4.5 sigma: false-failure rate ~1e-5 (normal approximation).
     model, ex = small_model(False, n=2)
@@ -169,7 +171,7 @@ def test_sampling_binds_without_rebuilding_and_is_unbiased():
             cache[key] = float(np.real(Statevector(bound).expectation_value(fam.observable)))
         values[s] = scale * cache[key]
     assert circuit_builds() == builds
-    # single-shot range (qhl.gradient_circuits): |scale * outcome| <= 2 W N_obs, W = sum |beta|,
+    # single-shot range (qhl.circuits.gradient_circuits): |scale * outcome| <= 2 W N_obs, W = sum |beta|,
     # outcomes of Z_anc sum_j Z_j / 2 lie in +-N_obs / 2
     n_obs, w_beta = fam.inputs.n_observed, fam.insertions.total_weight / 2
     assert np.max(np.abs(shots.scale)) * n_obs / 2 <= 2 * w_beta * n_obs * (1 + 1e-12)

@@ -15,11 +15,11 @@ import pytest
 from scipy import stats
 
 from qhl import ExactEngine, build_model, demo_cluster
-from qhl.cluster import Cluster, Experiment, Spin
-from qhl.errors import QhlInputError
+from qhl.spins.cluster import Cluster, Experiment, Spin
+from qhl.base.errors import QhlInputError
 from qhl.learning import (ExactGradientProvider, GradientProvider, emulated_gradient_provider,
                           evaluate_cost, fit, learn, perturbed_start, relative_error)
-from qhl.likelihood import (Dataset, cramer_rao_bounds, fisher_information, negative_log_likelihood,
+from qhl.exact.likelihood import (Dataset, cramer_rao_bounds, fisher_information, negative_log_likelihood,
                             synthetic_dataset)
 
 
@@ -73,9 +73,9 @@ def test_provider_interface_is_abstract():
 
 def test_emulated_gradients_give_clear_error_until_emulator_exists():
     try:
-        import qhl.emulator as em  # noqa: F401
+        import qhl.emulation as em  # noqa: F401
         if hasattr(em, "gradient_provider"):
-            pytest.skip("qhl.emulator provides gradient_provider: emulated fits are tested there")
+            pytest.skip("qhl.emulation provides gradient_provider: emulated fits are tested there")
     except ImportError:
         pass
     c = three_spin_cluster()
@@ -316,7 +316,7 @@ def test_cli_learn_text_and_non_convergence_warning(capsys):
 def test_cli_learn_emulated_is_one_line_exit_2(capsys):
     from qhl.cli import main
     try:
-        import qhl.emulator as em
+        import qhl.emulation as em
         if hasattr(em, "gradient_provider"):
             pytest.skip("the emulator exists: its own tests cover emulated fits")
     except ImportError:

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from qhl import ExactEngine, build_model
-from qhl.divided_differences import first_divided_difference, second_divided_difference
-from qhl.likelihood import cramer_rao_bounds, fisher_information, negative_log_likelihood, synthetic_dataset
+from qhl.exact.divided_differences import first_divided_difference, second_divided_difference
+from qhl.exact.likelihood import cramer_rao_bounds, fisher_information, negative_log_likelihood, synthetic_dataset
 
 from reference_dense import central_difference, random_cluster
 
@@ -48,7 +48,7 @@ def test_fisher_equals_expected_outer_product_of_scores(setup):
 
 def test_cramer_rao_flags_parameter_without_effect():
     # a spin of another isotope with no couplings cannot change the observed signal
-    from qhl.cluster import Cluster, Experiment, Spin
+    from qhl.spins.cluster import Cluster, Experiment, Spin
     spins = (Spin("H", "1H", None, 300.0), Spin("C", "13C", None, 50.0))
     c = Cluster(9.4, "1H", spins, (), (Experiment("e", 1e-2, 32, noise=0.01),))
     eng = ExactEngine(build_model(c, free=["offset:*"]))

@@ -4,11 +4,11 @@ common practice), before any large allocation."""
 import numpy as np
 import pytest
 
-import qhl.memory
+import qhl.base.memory
 from qhl import ExactEngine, MemoryBudgetError, build_model
 from qhl.cli import main
-from qhl.engine import estimate_memory_bytes
-from qhl.sectors import magnetisation_sectors
+from qhl.exact.engine import estimate_memory_bytes
+from qhl.exact.sectors import magnetisation_sectors
 
 from reference_dense import random_cluster
 
@@ -21,7 +21,7 @@ def test_estimate_grows_with_the_largest_sector():
 
 
 def test_engine_refuses_with_the_estimate(monkeypatch):
-    monkeypatch.setattr(qhl.memory, "available_memory_bytes", lambda: 1e5)
+    monkeypatch.setattr(qhl.base.memory, "available_memory_bytes", lambda: 1e5)
     c = random_cluster(np.random.default_rng(0), 5)
     with pytest.raises(MemoryBudgetError, match=r"needs about .* GiB of memory, but only") as e:
         ExactEngine(build_model(c))
@@ -29,7 +29,7 @@ def test_engine_refuses_with_the_estimate(monkeypatch):
 
 
 def test_cli_refusal_is_exit_2(monkeypatch, capsys):
-    monkeypatch.setattr(qhl.memory, "available_memory_bytes", lambda: 1e5)
+    monkeypatch.setattr(qhl.base.memory, "available_memory_bytes", lambda: 1e5)
     assert main(["signal"]) == 2
     err = capsys.readouterr().err
     assert "GiB" in err and len(err.strip().splitlines()) == 1

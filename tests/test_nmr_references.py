@@ -5,10 +5,10 @@ import pytest
 import scipy.constants as const
 
 from qhl import ExactEngine, QhlInputError, build_model, nucleus
-from qhl.cluster import Cluster, Experiment, Pair, Spin
-from qhl.dipolar import dipolar_constant_hz
-from qhl.nuclei import larmor_frequency_hz
-from qhl.powder import lebedev_orientations, powder_lines, powder_signal
+from qhl.spins.cluster import Cluster, Experiment, Pair, Spin
+from qhl.spins.dipolar import dipolar_constant_hz
+from qhl.spins.nuclei import larmor_frequency_hz
+from qhl.exact.powder import lebedev_orientations, powder_lines, powder_signal
 
 
 # ---------------------------------------------------------------- gyromagnetic ratios

@@ -2,7 +2,7 @@
 
 References: qiskit.quantum_info.Statevector Born probabilities of every bound member (an
 independent computation of the estimator's exact outcome distribution), the circuit families'
-exact expectations (qhl.circuit_family 'segments'), and qiskit-aer shots (qhl.emulator).
+the Trotterised reference (qhl.circuits.trotter_reference), and qiskit-aer shots (qhl.emulation).
 Statistics: the central limit theorem for means of i.i.d. shots and the asymptotic spread of a
 sample variance, sd(v) = sqrt((mu_4 - sigma^4) / N), and of a sample standard error,
 sd(s) / s = sqrt(kurtosis - 1) / (2 sqrt(N)) (common practice). Seeds are fixed, so every run
@@ -16,14 +16,14 @@ import numpy as np
 import pytest
 from qiskit.quantum_info import Statevector
 
-from qhl.circuit_family import exact_expectation
+from qhl.circuits.circuit_family import exact_expectation
 from qhl.costing import BudgetModel, BudgetSettings
 from qhl.costing.family_variance import circuit_variance_shots, component_circuit_variance
 from qhl.costing.shots import gradient_shot_range, two_valued_variance
 from qhl.emulation.variance import family_moments, input_moment_operator
-from qhl.emulator import FamilyRunner
-from qhl.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
-from qhl.state_prep import input_ensemble
+from qhl.emulation import FamilyRunner
+from qhl.circuits.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
+from qhl.circuits.state_prep import input_ensemble
 
 from reference_trotter import small_cluster, small_model
 
@@ -34,7 +34,7 @@ def _born_moments(fam, part):
     """E[x^m], m = 1..4, from the exact outcome distribution of every (row, input, bit string).
 
     The draw is that of CircuitFamily.sample: row j with |w_j| / W, each of the ensemble's
-    2^n ('product') or N_obs 2^n ('marked') inputs with equal probability (qhl.state_prep).
+    2^n ('product') or N_obs 2^n ('marked') inputs with equal probability (qhl.circuits.state_prep).
     """
     ens = fam.inputs
     choices = 2 ** ens.n_qubits * (1 if ens.scheme == "product" else ens.n_observed)
@@ -80,7 +80,7 @@ def hadamard():
 
 @pytest.mark.parametrize("scheme", ["product", "marked"])
 def test_first_input_moment_operator_is_rho0(scheme):
-    # power 1: sum_k p_k w_k |psi_k><psi_k| = rho0 / Tr[O rho0] (derivation in qhl.state_prep)
+    # power 1: sum_k p_k w_k |psi_k><psi_k| = rho0 / Tr[O rho0] (derivation in qhl.circuits.state_prep)
     model, _ = small_model(True, 3)
     rho = model.initial_operator().to_matrix()
     norm = np.trace(model.detection_operator().to_matrix() @ rho).real
@@ -91,7 +91,7 @@ def test_first_input_moment_operator_is_rho0(scheme):
 @pytest.mark.parametrize("part", ["re", "im"])
 def test_exact_moments_equal_born_probability_moments(cases, name, part):
     # moments 1..4 against qiskit Statevector Born probabilities per bound member (independent);
-    # the mean also against the family's exact expectation (prefix-product 'segments' method)
+    # the mean also against the Trotterised reference (qhl.circuits.trotter_reference)
     fam = cases[name]
     mo = family_moments(fam, part)
     ref = _born_moments(fam, part)

@@ -14,9 +14,9 @@ import pytest
 
 from qhl import QhlInputError
 from qhl.cli import main
-from qhl.scan import (COLUMNS, ScanSettings, define_scan, parse_scale_range, read_results, run_scan)
-from qhl.scan_plots import aggregate
-from qhl.structure import cut_clusters, demo_structure_path, invented_offsets_hz, read_structure, write_cluster_files
+from qhl.survey.scan import (COLUMNS, ScanSettings, define_scan, parse_scale_range, read_results, run_scan)
+from qhl.survey.scan_plots import aggregate
+from qhl.survey.structure import cut_clusters, demo_structure_path, invented_offsets_hz, read_structure, write_cluster_files
 
 SCALES = (0.0, 0.5, 1.0)
 
@@ -192,7 +192,7 @@ def test_second_scan_on_a_file_in_use_is_refused(tmp_path):
 
 
 def test_results_columns_hold_the_diagnostics(tmp_path):
-    from qhl.diagnostics import diagnose
+    from qhl.survey.diagnostics import diagnose
 
     clusters = _clusters(size=4, centres=1)
     out = tmp_path / "r.csv"

@@ -8,7 +8,7 @@ import pytest
 
 from qhl import QhlInputError, demo_cluster, load_cluster, parse_cluster_toml
 from qhl.cli import main
-from qhl.structure import (choose_centres, cluster_to_toml, cut_clusters, demo_structure_path,
+from qhl.survey.structure import (choose_centres, cluster_to_toml, cut_clusters, demo_structure_path,
                            invented_offsets_hz, nuclei_from_atoms, read_structure, write_cluster_files)
 
 ase_build = pytest.importorskip("ase.build")

@@ -2,7 +2,7 @@
 
 References: Childs, Su, Tran, Wiebe, Zhu, "Theory of Trotter error with commutator scaling",
 Phys. Rev. X 11, 011020 (2021) (bounds and orders); exact propagators from scipy.linalg.expm
-(Al-Mohy and Higham, SIAM J. Matrix Anal. Appl. 31, 970 (2009)) and qhl.engine.ExactEngine.
+(Al-Mohy and Higham, SIAM J. Matrix Anal. Appl. 31, 970 (2009)) and qhl.exact.engine.ExactEngine.
 """
 
 import numpy as np
@@ -11,9 +11,9 @@ import scipy.linalg as sla
 from qiskit.quantum_info import Operator, SparsePauliOp
 
 from qhl import ExactEngine, QhlInputError, build_model
-from qhl.cluster import Cluster, Experiment, Pair, Spin
-from qhl.trotter import product_formula_slots, trotter_circuit, trotter_terms, trotter_unitary
-from qhl.trotter_bounds import commutator_prefactor, operator_norm, trotter_error_bound, trotter_steps_for
+from qhl.spins.cluster import Cluster, Experiment, Pair, Spin
+from qhl.circuits.trotter import product_formula_slots, trotter_circuit, trotter_terms, trotter_unitary
+from qhl.circuits.trotter_bounds import commutator_prefactor, operator_norm, trotter_error_bound, trotter_steps_for
 
 from reference_dense import random_cluster
 from reference_trotter import small_model, trotter_signal

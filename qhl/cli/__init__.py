@@ -3,6 +3,8 @@
 Each subcommand lives in a module `qhl/cli/cmd_<name>.py` that defines
 `register(subparsers)`; the module is found automatically. Bad input (QhlInputError) is printed
 as one line on stderr and exits with status 2, without a traceback.
+
+Imports: any stage. Commands import their stage's API inside `run`, so `qhl --help` stays fast.
 """
 
 import argparse
@@ -10,7 +12,7 @@ import importlib
 import pkgutil
 import sys
 
-from ..errors import QhlInputError
+from ..base.errors import QhlInputError
 
 __all__ = ["main", "build_parser"]
 

@@ -5,11 +5,10 @@ import sys
 
 import numpy as np
 
-from ..costing import BudgetModel, BudgetSettings
 from ..costing.shots import check_precision, check_time
 from ..costing.surface_code import check_physical_error
 from ..costing.synthesis import SYNTHESIS_METHODS
-from ..errors import QhlInputError
+from ..base.errors import QhlInputError
 from .common import add_cluster_argument, check_output_path, cluster_from_args, positive_float, positive_int, \
     print_json
 
@@ -68,6 +67,7 @@ def _fmt(v):
 
 
 def run(args):
+    from ..costing import BudgetModel, BudgetSettings
     check_precision(args.precision, "--precision")
     if args.time is not None:
         check_time(args.time, "--time")

@@ -2,8 +2,6 @@
 
 import sys
 
-from ..emulation.check import check_derivatives
-from ..emulation.noise import NoiseSpec
 from .common import add_cluster_argument, check_output_path, cluster_from_args, print_json
 
 
@@ -54,7 +52,9 @@ def _plot(report, path):
 
 
 def run(args):
-    from ..errors import QhlInputError
+    from ..emulation.check import check_derivatives
+    from ..emulation.noise import NoiseSpec
+    from ..base.errors import QhlInputError
     if args.shots < 1:
         raise QhlInputError(f"expected shots >= 1, got {args.shots}", key="--shots")
     if args.steps < 1:

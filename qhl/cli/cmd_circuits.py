@@ -2,8 +2,7 @@
 
 import sys
 
-from ..errors import QhlInputError
-from ..model import build_model
+from ..base.errors import QhlInputError
 from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float, positive_int,
                      print_json)
 
@@ -56,8 +55,8 @@ def _parameters(kind, names):
 
 
 def build_family(model, experiment, kind, params, time, steps, order, method, grouping, ordering):
-    """The CircuitFamily the command counts (a thin switch over qhl.gradient_circuits)."""
-    from ..gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
+    """The CircuitFamily the command counts (a thin switch over qhl.circuits.gradient_circuits)."""
+    from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
     common = dict(grouping=grouping, ordering=ordering)
     if kind == "signal":
         return signal_circuit(model, experiment, time, steps, order, **common)
@@ -67,11 +66,12 @@ def build_family(model, experiment, kind, params, time, steps, order, method, gr
 
 
 def run(args):
+    from ..spins.model import build_model
     from qiskit import qasm3
 
-    from ..circuit_counts import family_counts, transpile_for_counts
-    from ..trotter import trotter_terms
-    from ..trotter_bounds import trotter_error_bound, trotter_steps_for
+    from ..circuits.circuit_counts import family_counts, transpile_for_counts
+    from ..circuits.trotter import trotter_terms
+    from ..circuits.trotter_bounds import trotter_error_bound, trotter_steps_for
 
     if args.qasm:
         check_output_path(args.qasm, "--qasm")

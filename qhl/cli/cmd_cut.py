@@ -1,6 +1,6 @@
 """`qhl cut`: cut spin clusters out of a structure file (PDB, mmCIF, XYZ) into cluster files."""
 
-from ..structure import (DEFAULT_EXPERIMENT, cut_clusters, invented_offsets_hz, read_structure,
+from ..survey.structure import (DEFAULT_EXPERIMENT, cut_clusters, invented_offsets_hz, read_structure,
                          write_cluster_files)
 from .common import positive_float, positive_int, print_json
 

@@ -4,7 +4,6 @@ import sys
 
 import numpy as np
 
-from ..fisher_report import describe_combination, fisher_report
 from .common import add_cluster_argument, cluster_from_args, positive_float, print_json
 
 
@@ -20,6 +19,7 @@ def register(sub):
 
 
 def run(args):
+    from ..learning.fisher_report import describe_combination, fisher_report
     cluster = cluster_from_args(args)
     rep = fisher_report(cluster, free=args.free, sigma=args.noise)
     for u in rep.unlearnable:

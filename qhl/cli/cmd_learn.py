@@ -4,8 +4,7 @@ import sys
 
 import numpy as np
 
-from ..fisher_report import describe_combination
-from ..learning import METHODS, learn
+from ..learning.methods import METHODS
 from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float,
                      positive_int, print_json)
 
@@ -42,6 +41,8 @@ def _progress(entry):
 
 
 def run(args):
+    from ..learning.fisher_report import describe_combination
+    from ..learning.fitting import learn
     cluster = cluster_from_args(args)
     if args.plot:
         check_output_path(args.plot, "--plot")
@@ -49,7 +50,7 @@ def run(args):
                    start_offset=args.start_offset, method=args.method, gradients=args.gradients,
                    shots=args.shots, max_iter=args.max_iter, progress=None if args.json else _progress)
     if args.plot:
-        from ..plots import plot_fit
+        from ..learning.fit_plots import plot_fit
         plot_fit(report, args.plot)
     fit = report.fit
     if not fit.converged:

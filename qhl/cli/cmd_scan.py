@@ -1,6 +1,6 @@
 """`qhl scan`: learnability and ergodicity diagnostics over clusters x dipolar scales, on Dask."""
 
-from ..scan import ScanSettings, define_scan, parse_scale_range, read_results, run_scan
+from ..survey.scan_settings import ScanSettings
 from .common import integer_at_least, positive_float, positive_int, print_json
 
 
@@ -31,13 +31,14 @@ def register(sub):
 
 
 def run(args):
+    from ..survey.scan import define_scan, parse_scale_range, read_results, run_scan
     settings = ScanSettings(t_max_s=args.t_max, points=args.points, noise=args.noise, free=tuple(args.free))
     definition = define_scan(args.clusters, parse_scale_range(args.dipolar_scale), settings)
     summary = run_scan(definition, args.out, scheduler=args.scheduler, workers=args.workers,
                        connect_timeout=args.timeout)
     plots = []
     if args.plot:
-        from ..scan_plots import plot_scan
+        from ..survey.scan_plots import plot_scan
         plots = [str(p) for p in plot_scan(read_results(args.out)[1], args.plot)]
     report = {"results": summary.path, "scan_id": summary.scan_id, "tasks": summary.total,
               "skipped": summary.skipped, "computed": summary.computed, "seconds": summary.seconds,

@@ -2,7 +2,6 @@
 
 import numpy as np
 
-from ..signals import compute_signals
 from .common import add_cluster_argument, check_output_path, cluster_from_args, print_json
 
 
@@ -18,12 +17,13 @@ def register(sub):
 
 
 def run(args):
+    from ..exact.signals import compute_signals
     cluster = cluster_from_args(args)
     if args.plot:
         check_output_path(args.plot, "--plot")
     report = compute_signals(cluster, free=args.free, gradient=args.gradient)
     if args.plot:
-        from ..plots import plot_signals
+        from ..exact.signal_plots import plot_signals
         plot_signals(report, args.plot)
     if args.json:
         print_json(report.to_json())

@@ -7,8 +7,8 @@ import sys
 
 import numpy as np
 
-from ..cluster_file import demo_cluster, load_cluster
-from ..errors import QhlInputError
+from ..spins.cluster_file import demo_cluster, load_cluster
+from ..base.errors import QhlInputError
 
 __all__ = ["add_cluster_argument", "cluster_from_args", "print_json", "check_output_path",
            "positive_float", "positive_int", "integer_at_least"]

@@ -16,9 +16,9 @@ import math
 import numpy as np
 from qiskit.quantum_info import SparsePauliOp
 
-from ..engine import ExactEngine
-from ..errors import QhlInputError
-from ..model import DEFAULT_FREE, build_model
+from ..exact.engine import ExactEngine
+from ..base.errors import QhlInputError
+from ..spins.model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
 from . import family_variance, trotter_order4
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
@@ -194,7 +194,7 @@ class BudgetModel:
     """Everything about one cluster that a budget needs, prepared once.
 
     Args:
-        cluster: a qhl.cluster.Cluster.
+        cluster: a qhl.spins.cluster.Cluster.
         free: glob patterns of free parameters.
         settings: BudgetSettings.
 

@@ -2,7 +2,7 @@
 
 The range-based counts of qhl.costing.shots use R^2 (bound) and R^2 - mu^2 (exact only for a
 two-valued +-R estimator, an upper bound otherwise). For a cluster small enough to hold the row
-unitaries densely, the Hadamard-test gradient family of qhl.gradient_circuits is compiled and
+unitaries densely, the Hadamard-test gradient family of qhl.circuits.gradient_circuits is compiled and
 its single-shot variance Var x = E[x^2] - E[x]^2 is computed exactly (qhl.emulation.variance),
 so the standard error eps needs
     N = Var x / eps^2 shots        (central limit theorem, common practice),
@@ -11,7 +11,7 @@ estimator with the given steps and order; E[x] is the Trotterised derivative.
 """
 
 from ..emulation.variance import MAX_QUBITS, family_moments
-from ..gradient_circuits import gradient_circuit
+from ..circuits.gradient_circuits import gradient_circuit
 from .shots import variance_shots
 
 __all__ = ["circuit_variance_shots", "component_circuit_variance", "fits_circuit_variance", "ASSUMPTIONS"]

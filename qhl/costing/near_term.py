@@ -27,7 +27,7 @@ class NearTermModel:
     """Per-parameter ranges and the exact engine for one cluster's free parameters.
 
     Attributes:
-        engine: qhl.engine.ExactEngine.
+        engine: qhl.exact.engine.ExactEngine.
         experiments: the cluster's experiments.
         names: free parameter names (P).
         l1: ||c||_1 of each free generator (P,).

@@ -1,7 +1,7 @@
 """Near-term shot counts: concentration bounds, exact variances and stratified allocation.
 
 Conventions. A *component* is one real number: the real or the imaginary part of dS/dh_n at one
-time in one experiment, with S the normalised signal (S(0) = 1, qhl.engine) and h_n in units of
+time in one experiment, with S the normalised signal (S(0) = 1, qhl.exact.engine) and h_n in units of
 `unit_hz` (default 1 kHz, so components are "per kHz"). A single-shot estimator takes values in
 [-R, R]; N shots give a mean with standard error sqrt(Var / N).
 
@@ -12,7 +12,7 @@ Formulas (each in one place):
     A two-valued estimator (every shot is +R or -R) with mean mu has Var = R^2 - mu^2 exactly;
     for any estimator with values in [-R, R] and mean mu, R^2 - mu^2 is an upper bound
     (Bhatia and Davis, Amer. Math. Monthly 107, 353 (2000), from memory). The circuits of
-    qhl.gradient_circuits (product inputs, summed read-out) are of the second kind, so there the
+    qhl.circuits.gradient_circuits (product inputs, summed read-out) are of the second kind, so there the
     "exact-variance" count is the tightest range-based count, not the circuit's exact variance.
     Stratified sum g = sum_k w_k mu_k with stratum standard deviations sigma_k:
         optimal allocation n_k proportional to |w_k| sigma_k, N = (sum_k |w_k| sigma_k)^2 / eps^2
@@ -22,15 +22,15 @@ Formulas (each in one place):
     project's references): for U = exp(-i t (H0 + theta P)), P = sum_k c_k P_k with the term k
     drawn with probability |c_k| / ||c||_1 and the insertion time s ~ U[0, t], each shot is
     +-2 t ||c||_1 times the observable factor kappa = N_obs (observed spins) for the normalised
-    signal (qhl.state_prep: one shot of the signal estimator lies in [-N_obs, N_obs]); this is the
-    +-2 W N_obs range of qhl.gradient_circuits with W = t 2 pi s_n ||c||_1.
+    signal (qhl.circuits.state_prep: one shot of the signal estimator lies in [-N_obs, N_obs]); this is the
+    +-2 W N_obs range of qhl.circuits.gradient_circuits with W = t 2 pi s_n ||c||_1.
 """
 
 import math
 
 import numpy as np
 
-from ..errors import QhlInputError
+from ..base.errors import QhlInputError
 
 __all__ = ["hoeffding_shots", "variance_shots", "two_valued_variance", "gradient_shot_range",
            "hessian_shot_range", "optimal_allocation_shots", "uniform_allocation_shots",
@@ -47,10 +47,10 @@ ASSUMPTIONS = {
     "hessian_range": "second derivative sampled from its four insertion terms: each shot is "
                      "+-(2t)^2 ||c_m||_1 ||c_n||_1 (2 pi)^2 s_m s_n kappa (bound ||dU/dtheta|| <= t ||P||)",
     "observable_factor": "kappa = number of observed spins N_obs: the signal estimator's single shot lies in "
-                         "[-N_obs, N_obs] (qhl.state_prep), the same +-2 W N_obs range as qhl.gradient_circuits",
+                         "[-N_obs, N_obs] (qhl.circuits.state_prep), the same +-2 W N_obs range as qhl.circuits.gradient_circuits",
     "exact_variance_scope": "R^2 - mu^2 is exact for a two-valued (+-R) estimator and an upper bound for any "
                             "[-R, R]-valued one with mean mu (Bhatia and Davis, Amer. Math. Monthly 107, 353 "
-                            "(2000), from memory), e.g. the product-input circuits of qhl.gradient_circuits",
+                            "(2000), from memory), e.g. the product-input circuits of qhl.circuits.gradient_circuits",
     "allocation": "optimal allocation over strata N = (sum_k |w_k| sigma_k)^2/eps^2 (Wecker, Hastings, "
                   "Troyer, PRA 92, 042303 (2015), from memory) against uniform K sum_k w_k^2 sigma_k^2/eps^2",
 }

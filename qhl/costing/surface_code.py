@@ -16,7 +16,7 @@ between data qubits and T states.
 from dataclasses import dataclass
 import math
 
-from ..errors import QhlInputError
+from ..base.errors import QhlInputError
 
 __all__ = ["THRESHOLD", "logical_error_rate", "code_distance_for", "distilled_error", "SurfaceCodeEstimate",
            "surface_code_estimate", "check_physical_error", "ASSUMPTIONS"]

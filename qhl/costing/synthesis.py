@@ -11,7 +11,7 @@ Methods:
 
 import numpy as np
 
-from ..errors import QhlInputError
+from ..base.errors import QhlInputError
 
 __all__ = ["SYNTHESIS_METHODS", "t_count_per_rotation", "ASSUMPTIONS"]
 

@@ -1,15 +1,15 @@
 """Trotter steps and per-step gate counts of a cluster Hamiltonian, orders 1, 2 and 4.
 
-Terms are qhl.trotter's groups H_1..H_G (grouping 'pairs': one group per spin and per spin pair,
+Terms are qhl.circuits.trotter's groups H_1..H_G (grouping 'pairs': one group per spin and per spin pair,
 each an exact product of commuting Pauli rotations; H_1 acts first). One step of duration tau
 has error <= C_p tau^(p+1); r steps of tau = t/r give <= C_p t^(p+1) / r^p, so
     r_p(t, eps) = ceil((C_p t^(p+1) / eps)^(1/p))      (vectorised over t and eps).
-C_1, C_2: qhl.trotter_bounds.commutator_prefactor (Childs, Su, Tran, Wiebe, Zhu, PRX 11, 011020
+C_1, C_2: qhl.circuits.trotter_bounds.commutator_prefactor (Childs, Su, Tran, Wiebe, Zhu, PRX 11, 011020
 (2021), first- and second-order bounds). C_4: qhl.costing.trotter_order4 on the Pauli strings of
 H, an upper bound on the same sum over groups (each group's commutators split into its Pauli
 strings by the triangle inequality).
 
-Gates per step: qhl.circuit_counts on qhl.trotter.trotter_circuit (transpiled to cx, rz, sx, x,
+Gates per step: qhl.circuits.circuit_counts on qhl.circuits.trotter.trotter_circuit (transpiled to cx, rz, sx, x,
 all-to-all connectivity), taken as the marginal cost of one more step (counts at r = 2 minus
 r = 1, so merged exponentials between steps are not double counted). Order 4 is five
 second-order stages per step: five times the marginal second-order step (common practice).
@@ -24,10 +24,10 @@ import math
 
 import numpy as np
 
-from ..circuit_counts import circuit_counts
-from ..errors import QhlInputError
-from ..trotter import trotter_circuit, trotter_terms
-from ..trotter_bounds import commutator_prefactor
+from ..circuits.circuit_counts import circuit_counts
+from ..base.errors import QhlInputError
+from ..circuits.trotter import trotter_circuit, trotter_terms
+from ..circuits.trotter_bounds import commutator_prefactor
 from .trotter_order4 import SUZUKI4_U, order4_step_error_constant
 
 __all__ = ["ORDERS", "TrotterModel", "trotter_model", "steps_from_constant", "empirical_trotter_steps",
@@ -38,11 +38,11 @@ EMPIRICAL_MAX_QUBITS = 8
 _COUNT_TIME_S = 1e-6      # any generic duration: rotation angles must not be Clifford multiples of pi/2
 
 ASSUMPTIONS = {
-    "trotter_terms": "product-formula terms: one group per spin and per spin pair (qhl.trotter, grouping 'pairs')",
+    "trotter_terms": "product-formula terms: one group per spin and per spin pair (qhl.circuits.trotter, grouping 'pairs')",
     "trotter_orders_1_2": "first- and second-order commutator bounds (Childs, Su, Tran, Wiebe, Zhu, PRX 11, "
-                          "011020 (2021)) via qhl.trotter_bounds",
+                          "011020 (2021)) via qhl.circuits.trotter_bounds",
     "trotter_steps": "r = ceil((C_p t^(p+1)/eps)^(1/p)) from r * C_p (t/r)^(p+1) <= eps",
-    "gates_per_step": "transpiled counts (cx, rz, sx, x; all-to-all) of one more Trotter step (qhl.circuit_counts); "
+    "gates_per_step": "transpiled counts (cx, rz, sx, x; all-to-all) of one more Trotter step (qhl.circuits.circuit_counts); "
                       "order 4 = 5 second-order stages",
     "empirical_steps": "smallest r with exact ||S(t/r)^r - e^{-iHt}|| <= eps on the dense propagator (n <= 8)",
 }
@@ -61,7 +61,7 @@ class TrotterModel:
     """Per-step error constants and (lazily) per-step gate counts of one experiment's Hamiltonian.
 
     Attributes:
-        terms: qhl.trotter.TrotterTerms.
+        terms: qhl.circuits.trotter.TrotterTerms.
         constants: {order: C_p} with per-step error <= C_p tau^(p+1) (tau in s, H in rad/s).
     """
 

@@ -16,8 +16,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import QhlInputError
-from ..gradient_circuits import gradient_circuit, signal_circuit
+from ..base.errors import QhlInputError
+from ..circuits.gradient_circuits import gradient_circuit, signal_circuit
 from .derivatives import as_generator, check_shots, estimate_family
 from .runner import FamilyRunner, outcome_values
 
@@ -80,7 +80,7 @@ def nll_gradient(model, experiments, dataset, shots: int, steps, seed=0, order: 
 
     Args:
         model: HamiltonianModel (its values are where g is taken).
-        experiments: the Experiment objects named in `dataset` (qhl.likelihood.Dataset).
+        experiments: the Experiment objects named in `dataset` (qhl.exact.likelihood.Dataset).
         shots: total shots per parameter; steps: Trotter steps (int) or callable(time) -> int.
         allocation: 'optimal' (Neyman) or 'uniform'.
         residuals: {experiment name: complex r (T,)}; default from emulated signals with

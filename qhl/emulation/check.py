@@ -1,8 +1,8 @@
 """Emulated derivatives against exact ones: the rows of `qhl check`.
 
 For each parameter (and part Re / Im) at one time t with r Trotter steps:
-    exact          dS/dh_n(t) of the continuous-time evolution (qhl.engine.ExactEngine)
-    trotter_exact  dS_trot/dh_n(t) of the product formula (dense, qhl.emulation.trotter_reference)
+    exact          dS/dh_n(t) of the continuous-time evolution (qhl.exact.engine.ExactEngine)
+    trotter_exact  dS_trot/dh_n(t) of the product formula (dense, qhl.circuits.trotter_reference)
     emulated       the shot estimate (qhl.emulation.derivatives) and its standard error
     z              (emulated - trotter_exact) / stderr          (noiseless: ~ N(0, 1))
     trotter_bias   trotter_exact - exact
@@ -14,12 +14,12 @@ import time as _time
 
 import numpy as np
 
-from ..engine import ExactEngine
-from ..errors import QhlInputError
-from ..model import build_model
+from ..exact.engine import ExactEngine
+from ..base.errors import QhlInputError
+from ..spins.model import build_model
 from .derivatives import as_generator, check_shots, emulate_gradient, emulate_hessian
 from .noise import NoiseSpec
-from .trotter_reference import trotter_gradient_exact, trotter_hessian_exact
+from ..circuits.trotter_reference import trotter_gradient_exact, trotter_hessian_exact
 
 __all__ = ["CheckReport", "check_derivatives", "Z_LIMIT"]
 

@@ -1,19 +1,19 @@
 """Shot-based estimates of S_trot(t), dS_trot/dh_n and d2S_trot/dh_m dh_n on the emulator.
 
-Each function compiles one circuit family (qhl.gradient_circuits: Hadamard-test insertion of the
+Each function compiles one circuit family (qhl.circuits.gradient_circuits: Hadamard-test insertion of the
 generator's Pauli terms at a slot drawn with weight |beta_a|, i.e. uniformly over the Trotter
 steps in [0, t] and by |c_k| / ||c||_1 over the terms within a step; input states from the
 rho0 ensemble) and estimates its Re and Im parts with `shots` shots each, on independent
 random streams spawned from `seed` (numpy SeedSequence), so equal seeds give equal numbers.
-The estimates are unbiased for the Trotterised quantities (qhl.emulation.trotter_reference),
+The estimates are unbiased for the Trotterised quantities (qhl.circuits.trotter_reference),
 not for the continuous-time ones: the difference is the Trotter bias.
 """
 
 import numpy as np
 
-from ..circuit_family import PARTS
-from ..errors import QhlInputError
-from ..gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
+from ..circuits.circuit_family import PARTS
+from ..base.errors import QhlInputError
+from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
 from .estimate import ComplexEstimate
 from .noise import NoiseSpec
 from .runner import FamilyRunner

@@ -18,7 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import QhlInputError
+from ..base.errors import QhlInputError
 
 __all__ = ["NoiseSpec", "NOISY_BASIS", "NOISY_GATES", "noisy_layers", "predicted_shrink"]
 

@@ -2,18 +2,18 @@
 
 Each call compiles, at the requested parameter values, one signal family and one gradient
 family per free parameter and time point, with r(t) Trotter steps (the fewest whose commutator
-bound, qhl.trotter_bounds, is <= eps; or a fixed count), and estimates each with `shots` shots
+bound, qhl.circuits.trotter_bounds, is <= eps; or a fixed count), and estimates each with `shots` shots
 per part from one Generator seeded once (fresh estimates every call, reproducible per seed).
 At t = 0 the values are exact: S(0) = 1 and dS/dh = 0 by the normalisation S = Tr[O rho]/Tr[O rho0].
 """
 
 import numpy as np
 
-from ..errors import QhlInputError
-from ..gradient_circuits import gradient_circuit, signal_circuit
-from ..learning import GradientProvider
-from ..trotter import trotter_terms
-from ..trotter_bounds import trotter_steps_for
+from ..base.errors import QhlInputError
+from ..circuits.gradient_circuits import gradient_circuit, signal_circuit
+from ..exact.provider import GradientProvider
+from ..circuits.trotter import trotter_terms
+from ..circuits.trotter_bounds import trotter_steps_for
 from .derivatives import as_generator, check_shots, estimate_family
 
 __all__ = ["EmulatedGradientProvider"]

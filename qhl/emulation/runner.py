@@ -24,8 +24,8 @@ import os
 
 import numpy as np
 
-from ..circuit_family import PARTS
-from ..errors import QhlInputError
+from ..circuits.circuit_family import PARTS
+from ..base.errors import QhlInputError
 from .estimate import Estimate
 from .noise import NOISY_BASIS, NoiseSpec, noisy_layers
 
@@ -68,7 +68,7 @@ class FamilyRunner:
     """Transpiles one CircuitFamily once and estimates its Re/Im parts with shots on AerSimulator.
 
     Args:
-        family: a qhl.circuit_family.CircuitFamily.
+        family: a qhl.circuits.circuit_family.CircuitFamily.
         noise: NoiseSpec or None (noiseless).
         threads: Aer threads, spent on running distinct settings in parallel (default: all
             cores). Results do not depend on it: Aer seeds each bound setting from

@@ -1,8 +1,8 @@
 """Exact single-shot moments of a circuit family's Monte Carlo estimator (no shots).
 
-One shot of a family (qhl.circuit_family, `CircuitFamily.sample`) draws an insertion row j with
+One shot of a family (qhl.circuits.circuit_family, `CircuitFamily.sample`) draws an insertion row j with
 probability |w_j| / W (W = sum_j |w_j|), an input k with probability p_k and weight w_k
-(qhl.state_prep), binds the circuit U_j, measures, and returns
+(qhl.circuits.state_prep), binds the circuit U_j, measures, and returns
     x = W sign(w_j) w_k a,
 with a the eigenvalue of the family observable O (diagonal: products of Z) on the measured bit
 string. Averaging over the Born outcomes (E[a | j, k] = <O>_{jk}, E[a^2 | j, k] = <O^2>_{jk})
@@ -16,7 +16,7 @@ The standard error of the mean of N i.i.d. shots is sqrt(Var x / N) (central lim
 common practice), so N = Var x / eps^2 shots reach standard error eps.
 
 The row unitaries U_j are dense (2^q x 2^q, q qubits with the ancillas), built with numpy by
-prefix products (as in qhl.circuit_family's 'segments' method): the circuit is cut into runs of
+prefix products: the circuit is cut into runs of
 gates free of insertion parameters and single gates that carry one; a row rebinds only the few
 gates whose parameters it sets. Meant for small clusters (MAX_QUBITS).
 """
@@ -25,10 +25,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..blas import single_thread_blas
-from ..circuit_family import PARTS
-from ..errors import QhlInputError
-from ..memory import require_memory
+from ..base.blas import single_thread_blas
+from ..circuits.circuit_family import PARTS
+from ..base.errors import QhlInputError
+from ..base.memory import require_memory
 
 __all__ = ["FamilyMoments", "family_moments", "row_unitaries", "input_moment_operator", "input_probability",
            "MAX_QUBITS"]
@@ -42,7 +42,7 @@ class FamilyMoments:
 
     Attributes:
         part: 're' or 'im'.
-        raw: (E[x], E[x^2], E[x^3], E[x^4]); E[x] equals qhl.circuit_family.exact_expectation's part.
+        raw: (E[x], E[x^2], E[x^3], E[x^4]); E[x] equals qhl.circuits.circuit_family.exact_expectation's part.
         value_range: R = W max_k |w_k| max |a|: every shot lies in [-R, R].
     """
 
@@ -111,7 +111,7 @@ def family_moments(family, part: str = "re") -> FamilyMoments:
     """E[x], E[x^2] and the range of one shot of `family` for part 're' or 'im' (module docstring).
 
     Args:
-        family: a qhl.circuit_family.CircuitFamily (signal, gradient, shift or Hessian).
+        family: a qhl.circuits.circuit_family.CircuitFamily (signal, gradient, shift or Hessian).
         part: 're' or 'im'.
 
     Returns:

@@ -1,0 +1,237 @@
+"""Learnability and ergodicity diagnostics of one cluster at one dipolar scale.
+
+Learnability (from the Fisher information F of one FID, qhl.exact.likelihood):
+    eigenvalues and eigenvectors of F (1/Hz^2); Cramer-Rao bounds sqrt(diag F^-1) (Hz);
+    participation ratio of a unit eigenvector v over the P parameters
+        PR(v) = 1 / sum_n v_n^4,   1 (one parameter: local) ... P (all equally: global).
+
+Ergodicity of H = 2 pi sum_n s_n h_n G_n (qhl.spins.model) at the given dipolar scale:
+    mean ratio of consecutive level spacings (Oganesyan and Huse, PRB 75, 155111 (2007);
+    Atas, Bogomolny, Giraud, Roux, PRL 110, 084101 (2013)): with sorted levels E and spacings
+    s_k = E_{k+1} - E_k,  r_k = min(s_k, s_{k+1}) / max(s_k, s_{k+1});  <r> = mean over k.
+    Poisson levels give 2 ln 2 - 1 = 0.3863, the Gaussian orthogonal ensemble 0.5307.
+    Levels are taken per conserved magnetisation sector (qhl.exact.sectors); when H also commutes
+    with the global spin flip X...X (all offsets zero), sectors mapped onto themselves are
+    split further into the flip-even and flip-odd parts. Other symmetries (point groups of a
+    symmetric cluster) are not resolved. Pairs of spacings that are both degenerate (below
+    qhl.exact.engine.DEGENERACY_RTOL of the largest |E|) give no ratio.
+    Inverse participation ratio of a normalised state psi in the computational basis
+        IPR = sum_k |psi_k|^4,   D2 = -log(IPR) / log(N)
+    with N the dimension of the state's sector (a basis state: IPR 1, D2 0; fully spread: D2 1).
+"""
+
+from dataclasses import dataclass
+import math
+import time
+
+import numpy as np
+from qiskit.quantum_info import SparsePauliOp
+
+from ..spins.cluster import Cluster, Experiment
+from ..exact.engine import ExactEngine
+from ..exact.likelihood import cramer_rao_bounds, fisher_information
+from ..spins.model import DEFAULT_FREE, build_model
+
+__all__ = ["POISSON_MEAN_R", "GOE_MEAN_R", "participation_ratio", "inverse_participation_ratio",
+           "fractal_dimension_d2", "spacing_ratios", "mean_spacing_ratio", "symmetry_sector_levels",
+           "Diagnostics", "diagnose"]
+
+# Atas, Bogomolny, Giraud, Roux, PRL 110, 084101 (2013): Poisson 2 ln 2 - 1, GOE 0.5307 (large N).
+POISSON_MEAN_R = 2 * math.log(2) - 1
+GOE_MEAN_R = 0.5307
+
+
+def participation_ratio(vectors) -> np.ndarray:
+    """PR = (sum |v|^2)^2 / sum |v|^4 of each column of `vectors` (1 ... len(column)).
+
+    Example:
+        >>> participation_ratio(np.eye(3)).tolist()
+        [1.0, 1.0, 1.0]
+        >>> float(participation_ratio(np.ones((4, 1)))[0])
+        4.0
+    """
+    v = np.abs(np.asarray(vectors))
+    if v.ndim == 1:
+        v = v[:, None]
+    w = v**2
+    return np.sum(w, axis=0) ** 2 / np.sum(w**2, axis=0)
+
+
+def inverse_participation_ratio(states) -> np.ndarray:
+    """IPR = sum_k |psi_k|^4 / (sum_k |psi_k|^2)^2 of each column (a state) of `states`."""
+    return 1.0 / participation_ratio(states)
+
+
+def fractal_dimension_d2(ipr, dimension) -> np.ndarray:
+    """D2 = -log(IPR) / log(N) for IPR values of states in dimension N > 1."""
+    dimension = np.asarray(dimension, float)
+    return -np.log(np.asarray(ipr, float)) / np.log(dimension)
+
+
+def spacing_ratios(levels, degeneracy_tol: float = 0.0) -> np.ndarray:
+    """Ratios r_k = min(s_k, s_k+1) / max(s_k, s_k+1) of consecutive spacings of sorted `levels`.
+
+    Pairs whose larger spacing is <= `degeneracy_tol` are skipped (no ratio for exact
+    degeneracies). Fewer than 3 levels give an empty array.
+    """
+    e = np.sort(np.asarray(levels, float).ravel())
+    if e.size < 3:
+        return np.zeros(0)
+    s = np.diff(e)
+    a, b = s[:-1], s[1:]
+    hi = np.maximum(a, b)
+    keep = hi > degeneracy_tol
+    return np.minimum(a, b)[keep] / hi[keep]
+
+
+def mean_spacing_ratio(levels, degeneracy_tol: float = 0.0) -> float:
+    """<r> of one set of levels (nan when no ratio exists); see spacing_ratios."""
+    r = spacing_ratios(levels, degeneracy_tol)
+    return float(np.mean(r)) if r.size else float("nan")
+
+
+def _flip_symmetric(hamiltonian: SparsePauliOp) -> bool:
+    n = hamiltonian.num_qubits
+    flip = SparsePauliOp("X" * n)
+    diff = (flip.compose(hamiltonian).compose(flip) - hamiltonian).simplify(atol=1e-9)
+    scale = max(float(np.max(np.abs(hamiltonian.coeffs))), 1.0)
+    return bool(np.all(np.abs(diff.coeffs) <= 1e-12 * scale))
+
+
+def symmetry_sector_levels(engine: ExactEngine, experiment: Experiment, free_values_hz=None) -> list:
+    """Levels (rad/s) per symmetry sector: magnetisation sectors, flip-split where H allows.
+
+    Returns:
+        list of 1-D arrays of energies, one per resolved sector.
+    """
+    spec = engine.spectrum(experiment, free_values_hz)
+    model = engine.model if free_values_hz is None else engine.model.with_values(free_values_hz)
+    flip = _flip_symmetric(model.hamiltonian(experiment))
+    mask = (1 << engine.model.n_spins) - 1
+    out = []
+    for ix, e, v in zip(engine.sectors, spec.energies, spec.vectors):
+        partner = ix ^ mask
+        order = np.argsort(ix)
+        j = order[np.clip(np.searchsorted(ix, partner, sorter=order), 0, len(ix) - 1)]
+        if not flip or len(ix) < 2 or not np.array_equal(ix[j], partner):
+            out.append(np.asarray(e))
+            continue
+        h = (v * e[None, :]) @ v.conj().T                    # the sector block of H
+        lo = np.flatnonzero(np.arange(len(ix)) < j)          # one index of each flip pair
+        d = len(ix)
+        for sign in (1.0, -1.0):
+            basis = np.zeros((d, len(lo)))
+            basis[lo, np.arange(len(lo))] = 1 / np.sqrt(2)
+            basis[j[lo], np.arange(len(lo))] += sign / np.sqrt(2)
+            out.append(np.linalg.eigvalsh(basis.T @ h @ basis))
+    return out
+
+
+@dataclass(frozen=True)
+class Diagnostics:
+    """Diagnostics of one (cluster, dipolar_scale).
+
+    Attributes:
+        fisher_eigenvalues: ascending (1/Hz^2); fisher_eigenvectors: columns over `free`.
+        fisher_participation: PR of each eigenvector (1 ... P).
+        crb_hz: Cramer-Rao bound per free parameter (inf where unlearnable).
+        unlearnable: mask of eigenvectors below the rcond cut (qhl.exact.likelihood.cramer_rao_bounds).
+        sector_mean_r: <r> per resolved symmetry sector (nan for sectors without a ratio).
+        mean_r: <r> over all ratios of all sectors pooled; n_ratios: how many.
+        ipr, d2: per eigenstate (states of 1-dimensional sectors are left out of d2).
+    """
+
+    cluster: str
+    n_spins: int
+    dipolar_scale: float
+    free: tuple
+    fisher_eigenvalues: np.ndarray
+    fisher_eigenvectors: np.ndarray
+    fisher_participation: np.ndarray
+    crb_hz: np.ndarray
+    unlearnable: np.ndarray
+    sector_mean_r: np.ndarray
+    mean_r: float
+    n_ratios: int
+    ipr: np.ndarray
+    d2: np.ndarray
+    seconds: float
+
+    @property
+    def median_crb_hz(self) -> float:
+        return float(np.median(self.crb_hz)) if self.crb_hz.size else float("nan")
+
+    def summary(self) -> dict:
+        """Scalars and short lists for one results row (lists as tuples of floats)."""
+        ev = self.fisher_eigenvalues
+        soft = self.fisher_participation[0] if ev.size else float("nan")
+        return {
+            "n_free": len(self.free),
+            "fisher_min_eigenvalue": float(ev[0]) if ev.size else float("nan"),
+            "fisher_max_eigenvalue": float(ev[-1]) if ev.size else float("nan"),
+            "n_unlearnable": int(np.sum(self.unlearnable)),
+            "median_crb_hz": self.median_crb_hz,
+            "softest_participation": float(soft),
+            "mean_participation": float(np.mean(self.fisher_participation)) if ev.size else float("nan"),
+            "mean_r": self.mean_r,
+            "n_ratios": self.n_ratios,
+            "mean_ipr": float(np.mean(self.ipr)),
+            "mean_d2": float(np.mean(self.d2)) if self.d2.size else float("nan"),
+            "fisher_eigenvalues": tuple(float(x) for x in ev),
+            "fisher_participation": tuple(float(x) for x in self.fisher_participation),
+            "sector_mean_r": tuple(float(x) for x in self.sector_mean_r),
+        }
+
+
+def diagnose(cluster: Cluster, dipolar_scale: float, *, t_max_s: float = 5e-4, points: int = 64,
+             noise: float = 1e-3, free=DEFAULT_FREE) -> Diagnostics:
+    """Fisher spectrum, level statistics and eigenstate spreading of `cluster` at `dipolar_scale`.
+
+    The Fisher information is that of one FID, points equally spaced on [0, t_max_s], with
+    noise `noise` per Re/Im part (relative to S(0) = 1), at the cluster's own parameter values;
+    the cluster's experiments are not used.
+
+    Args:
+        cluster: the spin cluster.
+        dipolar_scale: factor on every dipolar term (0 = fully decoupled).
+        t_max_s, points, noise: the FID.
+        free: glob patterns of the free parameters.
+
+    Returns:
+        Diagnostics.
+
+    Raises:
+        QhlInputError: a pattern matching no parameter, or a cluster too large for memory.
+
+    Example:
+        >>> from qhl import demo_cluster
+        >>> d = diagnose(demo_cluster(), 0.5)
+        >>> d.n_spins, len(d.free), bool(0 < d.mean_r < 1)
+        (6, 21, True)
+    """
+    start = time.perf_counter()
+    model = build_model(cluster).with_free(free)
+    engine = ExactEngine(model)
+    ex = Experiment(name="scan", t_max_s=float(t_max_s), points=int(points), dipolar_scale=float(dipolar_scale),
+                    noise=float(noise))
+    fisher = fisher_information(engine, [ex])
+    crb, evals, evecs, bad = cramer_rao_bounds(fisher)
+    spec = engine.spectrum(ex)
+    tol = spec.tol
+    levels = symmetry_sector_levels(engine, ex)
+    ratios = [spacing_ratios(e, tol) for e in levels]
+    sector_r = np.array([float(np.mean(r)) if r.size else np.nan for r in ratios])
+    pooled = np.concatenate(ratios) if ratios else np.zeros(0)
+    ipr, d2 = [], []
+    for v in spec.vectors:
+        q = inverse_participation_ratio(v)
+        ipr.append(q)
+        if v.shape[0] > 1:
+            d2.append(fractal_dimension_d2(q, v.shape[0]))
+    return Diagnostics(
+        cluster=cluster.name, n_spins=cluster.n_spins, dipolar_scale=float(dipolar_scale), free=model.free,
+        fisher_eigenvalues=evals, fisher_eigenvectors=evecs, fisher_participation=participation_ratio(evecs),
+        crb_hz=crb, unlearnable=bad, sector_mean_r=sector_r,
+        mean_r=float(np.mean(pooled)) if pooled.size else float("nan"), n_ratios=int(pooled.size),
+        ipr=np.concatenate(ipr), d2=np.concatenate(d2) if d2 else np.zeros(0),
+        seconds=time.perf_counter() - start)
