@@ -1,7 +1,7 @@
 """Independent dense reference for the exact-engine tests: full-space matrices built here.
 
-What this module shares with qhl, and nothing more:
-  * the value types Spin, Pair, Cluster and Experiment (qhl.spins.cluster), to build test clusters;
+It imports nothing of qhl (test clusters are built in made_up_clusters.py). What it shares
+with qhl, and nothing more:
   * from the model under test, data only: each parameter's name, kind, spins (labels) and
     value_hz, the names in model.free, and model.labels / model.isotopes / model.observed (spin
     labels in qubit order, each spin's isotope symbol, and which spins are of the observed
@@ -30,29 +30,12 @@ from functools import lru_cache
 import numpy as np
 import scipy.linalg as sla
 
-from qhl.spins.cluster import Cluster, Experiment, Pair, Spin
 
 PAULI = {"x": np.array([[0, 1], [1, 0]], dtype=complex),
          "y": np.array([[0, -1j], [1j, 0]], dtype=complex),
          "z": np.array([[1, 0], [0, -1]], dtype=complex)}
 
 
-def random_cluster(rng, n, hetero=False, experiments=None, with_j=True):
-    spins = []
-    for i in range(n):
-        iso = "13C" if (hetero and i % 3 == 2) else "1H"
-        spins.append(Spin(f"S{i}", iso, tuple(rng.uniform(-1, 1, 3) * 1.3 * n ** (1 / 3)),
-                          float(rng.normal(0, 2000))))
-    pairs = (Pair(("S0", "S1"), j_hz=7.0), Pair(("S1", "S2"), j_hz=-12.0)) if with_j and n > 2 else ()
-    if experiments is None:
-        experiments = (Experiment("a", 2e-4, 6, 0.7), Experiment("b", 1e-3, 5, 0.1))
-    try:
-        return Cluster(9.4, "1H", tuple(spins), pairs, tuple(experiments))
-    except Exception:  # two spins drawn too close: draw again
-        return random_cluster(rng, n, hetero, experiments, with_j)
-
-
-# ---------------------------------------------------------------- operators built here
 @lru_cache(maxsize=None)
 def spin_matrix(axis, qubit, n):
     """I_axis = sigma_axis / 2 on `qubit` of n qubits (qubit 0 is the last Kronecker factor).

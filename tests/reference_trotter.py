@@ -1,8 +1,7 @@
 """Independent dense references for the circuit tests: Trotterised signals and exact gradients.
 
-What this module shares with qhl, and nothing more:
-  * the value types Spin, Pair, Cluster and Experiment (qhl.spins.cluster), to build test clusters,
-    and qhl's build_model in small_model only, which makes the object under test;
+It imports nothing of qhl (test clusters and their models are made in made_up_clusters.py).
+What it shares with qhl, and nothing more:
   * from the model under test, data only (as in reference_dense.py, whose matrix builders it
     uses): each parameter's name, kind, spins and value_hz, and model.labels / model.isotopes /
     model.observed; from the experiment, its dipolar_scale.
@@ -34,31 +33,10 @@ using that H_g is linear in h: dH_g/dh_n = 2 pi s_n G_n when parameter n lies in
 import numpy as np
 import scipy.linalg as sla
 
-from qhl.spins.cluster import Cluster, Experiment, Pair, Spin
-from qhl.spins.model import build_model
 
 from reference_dense import generator_matrix, initial_and_detection, scale_factor
 
 
-def small_cluster(hetero=False, n=3):
-    """Hz-scale invented couplings so that 2 pi t h is of order one at t = 0.3 s."""
-    iso = ["1H", "1H", "13C" if hetero else "1H", "1H"][:n]
-    offsets = [1.3, -0.8, 0.55, 0.2][:n]
-    spins = tuple(Spin(f"S{i}", iso[i], None, offsets[i]) for i in range(n))
-    pairs = [Pair(("S0", "S1"), j_hz=0.45, dipolar_hz=0.9), Pair(("S1", "S2"), dipolar_hz=-0.6),
-             Pair(("S0", "S2"), j_hz=0.3, dipolar_hz=0.35)]
-    if n == 4:
-        pairs += [Pair(("S2", "S3"), dipolar_hz=0.5), Pair(("S0", "S3"), j_hz=0.25)]
-    pairs = [p for p in pairs if all(int(s[1:]) < n for s in p.spins)]
-    return Cluster(9.4, "1H", spins, tuple(pairs), (Experiment("x", 0.3, 4, 0.8),))
-
-
-def small_model(hetero=False, n=3):
-    c = small_cluster(hetero, n)
-    return build_model(c, free=["offset:*", "dipolar:*", "j:*"]), c.experiments[0]
-
-
-# ---------------------------------------------------------------- blocks, ordering, grouping
 def _blocks(model):
     """[(label, qubits, [parameter index, ...])]: spin blocks in spin order, then pair blocks in
     the order their first parameter appears in the parameter list."""

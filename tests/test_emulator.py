@@ -22,7 +22,8 @@ from qhl.emulation import (ComplexEstimate, Estimate, FamilyRunner, NoiseSpec, e
                           predicted_shrink)
 from qhl.circuits.trotter_reference import trotter_gradient_exact, trotter_hessian_exact, trotter_signal_exact
 
-from reference_trotter import small_model, trotter_gradient
+from made_up_clusters import small_model
+from reference_trotter import trotter_gradient
 
 T, R = 0.3, 3
 

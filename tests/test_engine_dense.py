@@ -11,7 +11,8 @@ import pytest
 from qhl import ExactEngine, build_model
 from qhl.spins.cluster import Cluster, Experiment, Spin
 
-from reference_dense import central_difference, dense_signal, random_cluster
+from made_up_clusters import random_cluster
+from reference_dense import central_difference, dense_signal
 
 FREE = ["offset:*", "dipolar:*", "j:*"]
 

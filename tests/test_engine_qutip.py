@@ -10,7 +10,7 @@ qutip = pytest.importorskip("qutip")
 from qhl import ExactEngine, build_model, nucleus  # noqa: E402
 from qhl.spins.dipolar import dipolar_coupling_hz  # noqa: E402
 
-from reference_dense import random_cluster  # noqa: E402
+from made_up_clusters import random_cluster  # noqa: E402
 
 
 def _op(single, i, n):

@@ -21,7 +21,8 @@ from qhl.spins.cluster import Experiment
 from qhl.circuits.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
 from qhl.circuits.state_prep import input_ensemble
 
-from reference_trotter import five_point, small_model, trotter_gradient, trotter_signal
+from made_up_clusters import small_model
+from reference_trotter import five_point, trotter_gradient, trotter_signal
 
 T = 0.3
 FD_STEP = 1e-3

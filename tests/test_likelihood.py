@@ -9,7 +9,8 @@ from qhl import ExactEngine, build_model
 from qhl.exact.divided_differences import first_divided_difference, second_divided_difference
 from qhl.exact.likelihood import cramer_rao_bounds, fisher_information, negative_log_likelihood, synthetic_dataset
 
-from reference_dense import central_difference, random_cluster
+from made_up_clusters import random_cluster
+from reference_dense import central_difference
 
 
 @pytest.fixture(scope="module")

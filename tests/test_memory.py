@@ -10,7 +10,7 @@ from qhl.cli import main
 from qhl.exact.engine import estimate_memory_bytes
 from qhl.exact.sectors import magnetisation_sectors
 
-from reference_dense import random_cluster
+from made_up_clusters import random_cluster
 
 
 def test_estimate_grows_with_the_largest_sector():

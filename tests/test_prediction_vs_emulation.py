@@ -25,7 +25,7 @@ from qhl.emulation import FamilyRunner
 from qhl.circuits.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
 from qhl.circuits.state_prep import input_ensemble
 
-from reference_trotter import small_cluster, small_model
+from made_up_clusters import small_cluster, small_model
 
 T = 0.3
 

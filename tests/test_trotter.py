@@ -15,8 +15,9 @@ from qhl.spins.cluster import Cluster, Experiment, Pair, Spin
 from qhl.circuits.trotter import product_formula_slots, trotter_circuit, trotter_terms, trotter_unitary
 from qhl.circuits.trotter_bounds import commutator_prefactor, operator_norm, trotter_error_bound, trotter_steps_for
 
-from reference_dense import random_cluster
-from reference_trotter import small_model, trotter_signal
+from made_up_clusters import random_cluster
+from made_up_clusters import small_model
+from reference_trotter import trotter_signal
 
 CHECK_H = [SparsePauliOp("XI", 0.5), SparsePauliOp("ZZ", 0.5)]
 
