@@ -237,7 +237,8 @@ def invented_offsets_hz(nuclei: Nuclei, spread_ppm: float, field_tesla: float = 
 
 
 def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None = None,
-                 field_tesla: float = 9.4, experiments=(DEFAULT_EXPERIMENT,), offsets_hz=None) -> list:
+                 field_tesla: float = 9.4, experiments=(DEFAULT_EXPERIMENT,), offsets_hz=None,
+                 observe: str | None = None) -> list:
     """Cut clusters of `size` nuclei around `centres` centres (see the module docstring).
 
     Args:
@@ -248,6 +249,8 @@ def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None =
         field_tesla: static field of the written clusters (along z of the structure's frame).
         experiments: experiments attached to every cluster (default one FID).
         offsets_hz: optional offset per nucleus (e.g. invented_offsets_hz); default all zero.
+        observe: the observed isotope (default: that of the first nucleus); a cluster without a
+            spin of it observes its first spin's isotope.
 
     Returns:
         list of Cluster, named <structure>-<centre label>-n<spins>, spins nearest first.
@@ -270,7 +273,7 @@ def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None =
     offsets = np.zeros(n) if offsets_hz is None else np.asarray(offsets_hz, float).ravel()
     if offsets.shape != (n,) or not np.all(np.isfinite(offsets)):
         raise QhlInputError(f"expected {n} finite offsets", source=src, key="offsets_hz")
-    observe = nuclei.isotopes[0]
+    observe = nuclei.isotopes[0] if observe is None else nucleus(observe).symbol
     clusters, seen = [], set()
     for c in choose_centres(pos, centres):
         dist = np.linalg.norm(pos - pos[c], axis=1)
