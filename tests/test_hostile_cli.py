@@ -94,3 +94,8 @@ def test_missing_noise_names_the_option(tmp_path, capsys, command):
     assert main([command, str(p)]) == 2
     err = capsys.readouterr().err
     assert "--noise" in err and err.count("\n") == 1
+
+
+def test_integer_options_with_hundreds_of_digits(capsys):
+    assert "--seed: expected an integer" in _error_line(capsys, ["learn", "--seed", "9" * 400])
+    assert "--shots: expected an integer" in _error_line(capsys, ["learn", "--shots", "9" * 5000])

@@ -96,7 +96,7 @@ def number_in(low=None, high=None, *, low_open=False, high_open=False, integer=F
                 v = float(text)
         except (ValueError, OverflowError):
             raise argparse.ArgumentTypeError(f"expected {what}{rng}, got {shown!r}") from None
-        bad = not math.isfinite(v)
+        bad = not integer and not math.isfinite(v)
         if not bad and low is not None:
             bad = v <= low if low_open else v < low
         if not bad and high is not None:
