@@ -161,3 +161,11 @@ def test_engine_memory_estimate_counts_the_time_points(monkeypatch):
     assert eng.signal(times=np.linspace(0, 1e-3, 64)).shape == (64,)
     with pytest.raises(MemoryBudgetError, match=r"1,048,576 time points needs about"):
         eng.signal(c.experiments[0])
+
+
+def test_huge_points_are_refused_with_the_memory_they_would_take():
+    # a complex128 signal takes 16 bytes per point (numpy documentation: complex128 is 16 bytes)
+    msg = _one_line_error(DEMO.replace("points = 192", "points = 1000000000000000000", 1),
+                          r"points.*1,048,576.*would need 13.9 EiB")
+    _one_line_error(DEMO.replace("points = 192", "points = " + "9" * 400, 1), r"points.*EiB")
+    assert "got 1000000000000000000" in msg

@@ -68,6 +68,13 @@ def checked_number(value, key, source, *, low=None, high=None, low_open=False, h
     return int(value) if integer else v
 
 
+def _bytes_text(n: float) -> str:
+    for unit, size in (("EiB", 2**60), ("PiB", 2**50), ("TiB", 2**40), ("GiB", 2**30), ("MiB", 2**20)):
+        if n >= size:
+            return f"{n / size:.3g} {unit}" if n < 2**70 else f"{n / 2**60:.3g} EiB"
+    return f"{n:.0f} bytes"
+
+
 def _short(value) -> str:
     text = repr(value)
     return text if len(text) <= 40 else text[:24] + f"... ({len(text)} characters)"
@@ -141,7 +148,13 @@ def check_spin_count(n: int, source=None) -> None:
 def check_experiment(ex, key="experiment", source=None) -> None:
     """Check one Experiment's numbers against the stated ranges (points, t_max_s, dipolar_scale, noise)."""
     checked_number(ex.t_max_s, key + ".t_max_s", source, low=0, high=MAX_T_MAX_S, low_open=True)
-    checked_number(ex.points, key + ".points", source, low=2, high=MAX_POINTS, integer=True)
+    try:
+        checked_number(ex.points, key + ".points", source, low=2, high=MAX_POINTS, integer=True)
+    except QhlInputError as e:
+        if isinstance(ex.points, int) and ex.points > MAX_POINTS:   # say what it would have cost
+            need = 16.0 * min(ex.points, 2**100)
+            raise QhlInputError(f"{e} (one complex signal alone would need {_bytes_text(need)})") from None
+        raise
     checked_number(ex.dipolar_scale, key + ".dipolar_scale", source, max_abs=MAX_DIPOLAR_SCALE)
     if ex.noise is not None:
         checked_number(ex.noise, key + ".noise", source, low=NOISE_RANGE[0], high=NOISE_RANGE[1])
