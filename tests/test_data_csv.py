@@ -71,7 +71,7 @@ def test_sigma_from_argument_or_experiment_and_subset(tmp_path, cluster):
     (HEADER + "spinning,0.0,1.0,0\n", "line 2: experiment 'spinning' matches no experiment"),
     (HEADER + "static,0.0,1.0,0\nstatic,0.0,1.0,0\n", "line 3: experiment 'static': duplicate time"),
     (HEADER + "static,1e-6,1.0\n", "line 2: expected 4 fields"),
-    ("experiment,time_s,real,imag,sigma\nstatic,0.0,1.0,0,0\n", "line 2: sigma: expected a positive"),
+    ("experiment,time_s,real,imag,sigma\nstatic,0.0,1.0,0,0\n", r"line 2: sigma: expected a value in \[1e-15, 1000\]"),
 ])
 def test_bad_files_give_one_line_errors(tmp_path, cluster, text, match):
     p = write(tmp_path, text)
@@ -109,7 +109,7 @@ def test_missing_file_and_missing_noise(tmp_path, cluster):
     p = write(tmp_path, HEADER + grid_rows(cluster, "static", [0, 1]))
     with pytest.raises(QhlInputError, match="no noise level for experiment 'static'"):
         load_signals_csv(p, quiet)
-    with pytest.raises(QhlInputError, match="sigma must be positive"):
+    with pytest.raises(QhlInputError, match=r"sigma: expected a finite number in \[1e-15, 1000\]"):
         load_signals_csv(p, cluster, sigma=0.0)
 
 

@@ -35,12 +35,26 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    """Run one command; bad input -> one line on stderr and status 2, Ctrl-C -> status 130.
+
+    Warnings raised while a command runs are held back: a run that ends in a one-line error
+    prints that line alone; any other run shows them after it finishes.
+    """
+    import warnings
+
     try:
-        rc = args.func(args)
+        parser = build_parser()          # imports every command module (numpy, ...): Ctrl-C may land here
+        args = parser.parse_args(argv)
+        with warnings.catch_warnings(record=True) as held:
+            try:
+                rc = args.func(args)
+            except QhlInputError:
+                held.clear()
+                raise
+        for w in held:
+            warnings.showwarning(w.message, w.category, w.filename, w.lineno, w.file, w.line)
     except QhlInputError as e:
-        print(f"qhl: error: {e}", file=sys.stderr)
+        print(f"qhl: error: {' '.join(str(e).split())}", file=sys.stderr)
         return 2
     except BrokenPipeError:  # output piped into `head` and the like
         sys.stderr.close()

@@ -13,26 +13,27 @@ from .common import add_cluster_argument, check_output_path, cluster_from_args, 
     print_json
 
 
+from .common import CYCLE_TIME, FAILURE, ITERATIONS, PRECISION, PROBABILITY, SWEEP, TIME_S  # option ranges
 def register(sub):
     p = sub.add_parser("budget", help="near-term and fault-tolerant budgets (model-based) for learning a cluster")
     add_cluster_argument(p)
-    p.add_argument("--time", type=float, default=None, metavar="T",
+    p.add_argument("--time", type=TIME_S, default=None, metavar="T",
                    help="evolution time in seconds (default: the shortest window of an experiment that sees "
                         "every free parameter; 2e-4 s for the demo)")
-    p.add_argument("--precision", type=float, default=0.01, metavar="EPS",
+    p.add_argument("--precision", type=PRECISION, default=0.01, metavar="EPS",
                    help="standard error per gradient component, derivatives per kHz (default 0.01)")
-    p.add_argument("--sweep-time", metavar="A:B:N", help="log grid of N times from A to B seconds")
-    p.add_argument("--sweep-precision", metavar="A:B:N", help="log grid of N precisions from A to B")
+    p.add_argument("--sweep-time", type=SWEEP, metavar="A:B:N", help="log grid of N times from A to B seconds")
+    p.add_argument("--sweep-precision", type=SWEEP, metavar="A:B:N", help="log grid of N precisions from A to B")
     p.add_argument("--plot", metavar="FILE.png", help="log-log plots of every budget (a default sweep if none given)")
-    p.add_argument("--physical-error", type=float, default=None, metavar="P",
+    p.add_argument("--physical-error", type=PROBABILITY, default=None, metavar="P",
                    help="physical error rate for a surface-code estimate (below the 1%% threshold)")
-    p.add_argument("--cycle-time", type=positive_float, default=1e-6, metavar="S",
+    p.add_argument("--cycle-time", type=CYCLE_TIME, default=1e-6, metavar="S",
                    help="surface-code cycle time in seconds (default 1e-6)")
-    p.add_argument("--failure-budget", type=positive_float, default=0.01, metavar="F",
+    p.add_argument("--failure-budget", type=FAILURE, default=0.01, metavar="F",
                    help="allowed failure probability of the fault-tolerant circuit (default 0.01)")
     p.add_argument("--synthesis", choices=SYNTHESIS_METHODS, default="ross-selinger",
                    help="rotation synthesis T-count rule (default ross-selinger)")
-    p.add_argument("--iterations", type=positive_int, default=50, help="learning iterations (default 50)")
+    p.add_argument("--iterations", type=ITERATIONS, default=50, help="learning iterations (default 50)")
     p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
     p.add_argument("--json", action="store_true", help="print one JSON object")

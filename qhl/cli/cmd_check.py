@@ -5,14 +5,15 @@ import sys
 from .common import add_cluster_argument, check_output_path, cluster_from_args, print_json
 
 
+from .common import PROBABILITY, SEED, SHOTS, STEPS, TIME_S  # range-checked option types
 def register(sub):
     p = sub.add_parser("check", help="check shot-based emulated gradients against exact ones")
     add_cluster_argument(p)
-    p.add_argument("--time", type=float, required=True, metavar="T", help="evolution time in seconds (> 0)")
-    p.add_argument("--steps", type=int, required=True, metavar="R", help="Trotter steps")
-    p.add_argument("--shots", type=int, required=True, metavar="N", help="shots per part (Re, Im) of each estimate")
-    p.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default 0)")
-    p.add_argument("--noise", type=float, default=0.0, metavar="P",
+    p.add_argument("--time", type=TIME_S, required=True, metavar="T", help="evolution time in seconds (> 0)")
+    p.add_argument("--steps", type=STEPS, required=True, metavar="R", help="Trotter steps")
+    p.add_argument("--shots", type=SHOTS, required=True, metavar="N", help="shots per part (Re, Im) of each estimate")
+    p.add_argument("--seed", type=SEED, default=0, metavar="S", help="random seed (default 0)")
+    p.add_argument("--noise", type=PROBABILITY, default=0.0, metavar="P",
                    help="depolarising rate on sx, x, cx and readout flip probability, in [0, 1)")
     p.add_argument("--hessian", action="store_true", help="also check every Hessian entry m <= n")
     p.add_argument("--param", nargs="+", metavar="NAME", help="parameters (default: free offsets and dipolar)")

@@ -5,6 +5,7 @@ import sys
 from ..base.errors import QhlInputError
 from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float, positive_int,
                      print_json)
+from .common import STEPS, TIME_S, TROTTER_EPS  # range-checked option types
 
 KINDS = ("signal", "gradient", "hessian")
 _LARGE = 2000
@@ -16,9 +17,9 @@ def register(sub):
     p.add_argument("--kind", choices=KINDS, default="signal", help="which circuit family (default signal)")
     p.add_argument("--param", nargs="+", metavar="NAME", default=None,
                    help="parameter to differentiate (gradient: one; hessian: one or two names)")
-    p.add_argument("--time", type=positive_float, required=True, metavar="T", help="evolution time in seconds")
-    p.add_argument("--steps", type=positive_int, metavar="R", help="Trotter steps")
-    p.add_argument("--eps", type=positive_float, metavar="EPS",
+    p.add_argument("--time", type=TIME_S, required=True, metavar="T", help="evolution time in seconds")
+    p.add_argument("--steps", type=STEPS, metavar="R", help="Trotter steps")
+    p.add_argument("--eps", type=TROTTER_EPS, metavar="EPS",
                    help="instead of --steps: fewest steps whose commutator bound is <= EPS")
     p.add_argument("--order", type=int, choices=(1, 2), default=1, help="product-formula order (default 1)")
     p.add_argument("--experiment", metavar="NAME", help="experiment setting the dipolar scale (default: first)")

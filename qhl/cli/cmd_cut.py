@@ -2,7 +2,7 @@
 
 from ..survey.structure import (DEFAULT_EXPERIMENT, cut_clusters, invented_offsets_hz, read_structure,
                          write_cluster_files)
-from .common import positive_float, positive_int, print_json
+from .common import CENTRES, CLUSTER_SIZE, FIELD_T, RADIUS, SEED, SHIFT_SPREAD, print_json
 
 
 def register(sub):
@@ -10,16 +10,16 @@ def register(sub):
     p.add_argument("structure", metavar="STRUCTURE", help="structure file: .pdb, .cif (mmCIF) or .xyz")
     p.add_argument("--isotope", action="append", metavar="ISOTOPE",
                    help="isotope to keep (repeatable; default 1H); the first is observed")
-    p.add_argument("--size", type=positive_int, required=True, metavar="K",
+    p.add_argument("--size", type=CLUSTER_SIZE, required=True, metavar="K",
                    help="spins per cluster (with --radius: at most K)")
-    p.add_argument("--centres", type=positive_int, required=True, metavar="N",
+    p.add_argument("--centres", type=CENTRES, required=True, metavar="N",
                    help="number of centres, spread by farthest-point sampling")
-    p.add_argument("--radius", type=positive_float, metavar="R", help="keep nuclei within R angstrom of the centre")
+    p.add_argument("--radius", type=RADIUS, metavar="R", help="keep nuclei within R angstrom of the centre")
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the cluster files (created)")
-    p.add_argument("--field", type=positive_float, default=9.4, metavar="TESLA", help="static field (default 9.4 T)")
-    p.add_argument("--shift-spread", type=float, default=0.0, metavar="PPM",
+    p.add_argument("--field", type=FIELD_T, default=9.4, metavar="TESLA", help="static field (default 9.4 T)")
+    p.add_argument("--shift-spread", type=SHIFT_SPREAD, default=0.0, metavar="PPM",
                    help="invent chemical shifts uniform over PPM (default 0: all offsets zero)")
-    p.add_argument("--seed", type=int, default=0, help="seed of the invented shifts (default 0)")
+    p.add_argument("--seed", type=SEED, default=0, help="seed of the invented shifts (default 0)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=run)
 
@@ -31,7 +31,7 @@ def run(args):
     if args.shift_spread:
         offsets = invented_offsets_hz(nuclei, args.shift_spread, args.field, args.seed)
     clusters = cut_clusters(nuclei, args.size, args.centres, radius=args.radius, field_tesla=args.field,
-                            experiments=(DEFAULT_EXPERIMENT,), offsets_hz=offsets)
+                            experiments=(DEFAULT_EXPERIMENT,), offsets_hz=offsets, observe=isotopes[0])
     how = f"within {args.radius:g} A, at most {args.size}" if args.radius else f"{args.size} nearest"
     note = (f"cut by qhl from {args.structure}: {how} {'/'.join(isotopes)} nuclei around one centre"
             + (f"; invented shifts over {args.shift_spread:g} ppm (seed {args.seed})" if offsets is not None else ""))

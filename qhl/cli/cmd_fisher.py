@@ -7,10 +7,11 @@ import numpy as np
 from .common import add_cluster_argument, cluster_from_args, positive_float, print_json
 
 
+from .common import NOISE  # range-checked option types
 def register(sub):
     p = sub.add_parser("fisher", help="Fisher matrix and Cramer-Rao bounds of a cluster's experiments")
     add_cluster_argument(p)
-    p.add_argument("--noise", type=positive_float, metavar="SIGMA",
+    p.add_argument("--noise", type=NOISE, metavar="SIGMA",
                    help="noise per point of Re and Im (default: each experiment's noise)")
     p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")

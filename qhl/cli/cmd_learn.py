@@ -7,6 +7,7 @@ import numpy as np
 from ..learning.methods import METHODS
 from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float,
                      positive_int, print_json)
+from .common import ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET  # range-checked option types
 
 
 def register(sub):
@@ -17,17 +18,17 @@ def register(sub):
                      help="measured signals: columns experiment,time_s,real,imag[,sigma]")
     src.add_argument("--synthetic", action="store_true",
                      help="fit synthetic data from the cluster's own values (the default)")
-    p.add_argument("--noise", type=positive_float, metavar="SIGMA",
+    p.add_argument("--noise", type=NOISE, metavar="SIGMA",
                    help="noise per point of Re and Im (default: each experiment's noise)")
-    p.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the noise and start signs")
-    p.add_argument("--start-offset", type=float, default=None, metavar="REL",
+    p.add_argument("--seed", type=SEED, default=0, metavar="S", help="seed of the noise and start signs")
+    p.add_argument("--start-offset", type=START_OFFSET, default=None, metavar="REL",
                    help="start this far off in relative terms (default 0.05 synthetic, 0 with --data)")
     p.add_argument("--method", choices=METHODS, default="gn",
                    help="gn: Levenberg-Marquardt on the Fisher matrix; cg; lbfgs (default gn)")
     p.add_argument("--gradients", choices=("exact", "emulated"), default="exact",
                    help="exact engine or circuit emulator with --shots per estimate")
-    p.add_argument("--shots", type=positive_int, metavar="N", help="shots per estimate (emulated gradients)")
-    p.add_argument("--max-iter", type=positive_int, default=200, metavar="N", help="iteration limit")
+    p.add_argument("--shots", type=SHOTS, metavar="N", help="shots per estimate (emulated gradients)")
+    p.add_argument("--max-iter", type=ITERATIONS, default=200, metavar="N", help="iteration limit")
     p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
     p.add_argument("--plot", metavar="FILE.png", help="write data vs fit, residuals and convergence")

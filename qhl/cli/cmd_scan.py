@@ -1,37 +1,53 @@
 """`qhl scan`: learnability and ergodicity diagnostics over clusters x dipolar scales, on Dask."""
 
 from ..survey.scan_settings import ScanSettings
-from .common import integer_at_least, positive_float, positive_int, print_json
-
-
-_workers = integer_at_least(0)
+from .common import NOISE, POINTS, SCALES, TIMEOUT, TIME_S, WORKERS, print_json
 
 
 def register(sub):
     p = sub.add_parser("scan", help="Fisher spectra, level statistics and D2 over clusters and dipolar scales")
     p.add_argument("clusters", nargs="+", metavar="CLUSTERS", help="cluster files (.toml or .xyz)")
-    p.add_argument("--dipolar-scale", required=True, metavar="A:B:N",
+    p.add_argument("--dipolar-scale", type=SCALES, required=True, metavar="A:B:N",
                    help="N dipolar scales from A to B (or one number)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="address of a running Dask scheduler (tcp://host:8786)")
-    p.add_argument("--workers", type=_workers, metavar="N",
+    p.add_argument("--workers", type=WORKERS, metavar="N",
                    help="local Dask workers (default: this machine's cores; 0: run in this process)")
     p.add_argument("--out", required=True, metavar="RESULTS", help="results CSV (resumed if it exists)")
     p.add_argument("--plot", metavar="DIR", help="write PNG plots of the results to DIR")
-    p.add_argument("--t-max", type=positive_float, default=ScanSettings.t_max_s, metavar="SECONDS",
+    p.add_argument("--t-max", type=TIME_S, default=ScanSettings.t_max_s, metavar="SECONDS",
                    help=f"FID length (default {ScanSettings.t_max_s:g} s)")
-    p.add_argument("--points", type=positive_int, default=ScanSettings.points, help="FID points (default 64)")
-    p.add_argument("--noise", type=positive_float, default=ScanSettings.noise,
+    p.add_argument("--points", type=POINTS, default=ScanSettings.points, help="FID points (default 64)")
+    p.add_argument("--noise", type=NOISE, default=ScanSettings.noise,
                    help="noise per Re/Im part relative to S(0) (default 1e-3)")
     p.add_argument("--free", nargs="+", default=list(ScanSettings.free), metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
-    p.add_argument("--timeout", type=positive_float, default=10.0, metavar="SECONDS",
+    p.add_argument("--timeout", type=TIMEOUT, default=10.0, metavar="SECONDS",
                    help="how long to wait for --scheduler (default 10 s)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=run)
 
 
+def _check_plot_folder(folder):
+    """Refuse --plot DIR before the scan runs: DIR must be a writable folder or creatable in one."""
+    import os
+    from pathlib import Path
+
+    from ..base.errors import QhlInputError
+
+    d = Path(folder)
+    if d.exists() and not d.is_dir():
+        raise QhlInputError(f"'{folder}' exists and is not a folder", key="--plot")
+    parent = d if d.is_dir() else (d.parent if str(d.parent) else Path("."))
+    if not parent.is_dir():
+        raise QhlInputError(f"cannot create '{folder}': folder '{parent}' does not exist", key="--plot")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise QhlInputError(f"cannot write in '{parent}'", key="--plot")
+
+
 def run(args):
     from ..survey.scan import define_scan, parse_scale_range, read_results, run_scan
+    if args.plot:
+        _check_plot_folder(args.plot)
     settings = ScanSettings(t_max_s=args.t_max, points=args.points, noise=args.noise, free=tuple(args.free))
     definition = define_scan(args.clusters, parse_scale_range(args.dipolar_scale), settings)
     summary = run_scan(definition, args.out, scheduler=args.scheduler, workers=args.workers,

@@ -7,11 +7,15 @@ import sys
 
 import numpy as np
 
+from ..spins.cluster import MAX_DIPOLAR_SCALE, MAX_FIELD_TESLA, MAX_POINTS, MAX_SPINS, MAX_T_MAX_S, NOISE_RANGE
 from ..spins.cluster_file import demo_cluster, load_cluster
 from ..base.errors import QhlInputError
 
 __all__ = ["add_cluster_argument", "cluster_from_args", "print_json", "check_output_path",
-           "positive_float", "positive_int", "integer_at_least"]
+           "positive_float", "positive_int", "integer_at_least", "number_in", "range_text", "SEED", "SHOTS",
+           "STEPS", "ITERATIONS", "TIME_S", "PRECISION", "NOISE", "PROBABILITY", "FIELD_T", "POINTS", "SWEEP",
+           "CYCLE_TIME", "FAILURE", "TROTTER_EPS", "CLUSTER_SIZE", "CENTRES", "RADIUS", "SHIFT_SPREAD",
+           "START_OFFSET", "SCALES", "WORKERS", "TIMEOUT"]
 
 
 def add_cluster_argument(parser):
@@ -60,30 +64,111 @@ def check_output_path(path, option):
     return p
 
 
-def positive_float(text):
+def number_in(low=None, high=None, *, low_open=False, high_open=False, integer=False, name=None):
+    """An argparse type: a finite number (or an integer, also written 1e6) within [low, high].
+
+    Open ends with `low_open` / `high_open`. The message names the range and the text given, e.g.
+    "argument --seed: expected an integer in [0, 9,223,372,036,854,775,807], got '-1'".
+    """
     import argparse
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not math.isfinite(v) or v <= 0:
-        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
-    return v
+
+    g = (lambda x: f"{x:,}") if integer else (lambda x: f"{x:g}")
+    what = "an integer" if integer else "a number"
+    if low is not None and high is not None:
+        rng = f" in {'(' if low_open else '['}{g(low)}, {g(high)}{')' if high_open else ']'}"
+    elif low is not None:
+        rng = f" {'>' if low_open else '>='} {g(low)}"
+    else:
+        rng = f" {'<' if high_open else '<='} {g(high)}" if high is not None else ""
+
+    def parse(text):
+        shown = text if len(text) <= 40 else text[:24] + f"... ({len(text)} characters)"
+        try:
+            if integer:
+                try:
+                    v = int(text)
+                except ValueError:
+                    f = float(text)
+                    if not (math.isfinite(f) and f.is_integer()):
+                        raise ValueError from None
+                    v = int(f)
+            else:
+                v = float(text)
+        except (ValueError, OverflowError):
+            raise argparse.ArgumentTypeError(f"expected {what}{rng}, got {shown!r}") from None
+        bad = not integer and not math.isfinite(v)
+        if not bad and low is not None:
+            bad = v <= low if low_open else v < low
+        if not bad and high is not None:
+            bad = v >= high if high_open else v > high
+        if bad:
+            raise argparse.ArgumentTypeError(f"expected {what}{rng}, got {shown!r}")
+        return v
+
+    parse.__name__ = name or ("integer" if integer else "number")
+    return parse
+
+
+def positive_float(text):
+    """An argparse type: a finite number > 0 (no upper bound; prefer a `number_in` range)."""
+    return number_in(0, None, low_open=True)(text)
 
 
 def integer_at_least(minimum: int):
-    """An argparse type: an integer >= `minimum`."""
+    """An argparse type: an integer >= `minimum` (no upper bound; prefer a `number_in` range)."""
+    return number_in(minimum, None, integer=True)
+
+
+def range_text(max_count: int, low=None, high=None):
+    """An argparse type for 'A:B:N' (or one number): checked here, returned as the text given.
+
+    A and B finite (within [low, high] when given), N an integer in [1, max_count].
+    """
     import argparse
 
     def parse(text):
+        parts = text.split(":")
+        shown = text if len(text) <= 40 else text[:24] + "..."
+        lim = "" if low is None else f", A and B in [{low:g}, {high:g}]"
+        msg = f"expected A:B:N with N an integer in [1, {max_count:,}]{lim}, got {shown!r}"
         try:
-            v = int(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}") from None
-        if v < minimum:
-            raise argparse.ArgumentTypeError(f"expected an integer >= {minimum}, got {text!r}")
-        return v
+            values = [float(x) for x in parts[:2]]
+            n = int(parts[2]) if len(parts) == 3 else 1
+        except (ValueError, OverflowError):
+            raise argparse.ArgumentTypeError(msg) from None
+        if len(parts) not in (1, 3) or not 1 <= n <= max_count or not all(math.isfinite(v) for v in values):
+            raise argparse.ArgumentTypeError(msg)
+        if low is not None and not all(low <= v <= high for v in values):
+            raise argparse.ArgumentTypeError(msg)
+        return text
+
+    parse.__name__ = "range"
     return parse
+
+
+# Ranges of the command-line numbers (the reasons are stated once, here).
+SEED = number_in(0, 2**63 - 1, integer=True, name="seed")              # numpy seeds are non-negative
+SHOTS = number_in(1, 10**8, integer=True, name="shots")                # 1e8 shots: minutes of emulation
+STEPS = number_in(1, 10**6, integer=True, name="steps")                # Trotter steps of one circuit
+ITERATIONS = number_in(1, 10**6, integer=True, name="iterations")
+TIME_S = number_in(0, MAX_T_MAX_S, low_open=True, name="time")         # as t_max_s of a cluster file
+PRECISION = number_in(1e-9, 1, high_open=True, name="precision")       # per kHz; below 1e-9 shots overflow
+NOISE = number_in(*NOISE_RANGE, name="noise")                          # as noise of a cluster file
+PROBABILITY = number_in(0, 1, high_open=True, name="probability")
+FIELD_T = number_in(0, MAX_FIELD_TESLA, low_open=True, name="field")   # as field_tesla of a cluster file
+POINTS = number_in(2, MAX_POINTS, integer=True, name="points")         # as points of a cluster file
+SWEEP = range_text(1000)                                               # a sweep grid of at most 1000 values
+CYCLE_TIME = number_in(0, 1, low_open=True, name="cycle time")         # seconds per surface-code cycle
+FAILURE = number_in(0, 1, low_open=True, high_open=True, name="failure probability")
+TROTTER_EPS = number_in(1e-6, 1, high_open=True, name="eps")           # Trotter error target (a bound > 1 says nothing)
+CLUSTER_SIZE = number_in(2, MAX_SPINS, integer=True, name="size")      # as the spin count of a cluster file
+CENTRES = number_in(1, 10**6, integer=True, name="centres")
+RADIUS = number_in(0, 1e3, low_open=True, name="radius")               # angstrom
+SHIFT_SPREAD = number_in(0, 1e3, name="shift spread")                  # ppm (chemical shifts span < 1000 ppm)
+START_OFFSET = number_in(-10, 10, name="relative start offset")
+SCALES = range_text(10_000, -MAX_DIPOLAR_SCALE, MAX_DIPOLAR_SCALE)    # dipolar scales as in a cluster file
+WORKERS = number_in(0, 1024, integer=True, name="workers")
+TIMEOUT = number_in(0, 86400, low_open=True, name="timeout")           # seconds
 
 
 positive_int = integer_at_least(1)

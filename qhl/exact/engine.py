@@ -85,6 +85,7 @@ class ExactEngine:
         self.sectors = magnetisation_sectors(model.isotopes) if self.symmetric else full_space(n)
         dims = [len(ix) for ix in self.sectors]
         self.largest_sector = max(dims)
+        self._dims = dims
         require_memory(f"the exact engine for {n} spins", estimate_memory_bytes(n, dims, 256))
         gmats = [g.to_matrix(sparse=True) for g in gens]
         self.real = all(abs(m.imag).max() == 0 if m.nnz else True for m in gmats)
@@ -132,6 +133,12 @@ class ExactEngine:
             raise QhlInputError("times must be finite", key="times")
         return t
 
+    def _require_times(self, t, rows: int = 1):
+        """Refuse up front when the time tables for len(t) points (and `rows` gradient rows) would not fit."""
+        n = self.model.n_spins
+        need = estimate_memory_bytes(n, self._dims, t.size) + 16.0 * rows * t.size
+        require_memory(f"the exact engine for {n} spins and {t.size:,} time points", need)
+
     @blas_limited
     def spectrum(self, experiment=None, free_values_hz=None) -> Spectrum:
         """Eigen-decomposition of H for `experiment` (cached on the coefficient vector)."""
@@ -166,6 +173,7 @@ class ExactEngine:
     def signal(self, experiment=None, times=None, free_values_hz=None) -> np.ndarray:
         """S(t) for the experiment's times (or `times`), complex array of shape (T,)."""
         t = self._times(experiment, times)
+        self._require_times(t)
         spec = self.spectrum(experiment, free_values_hz)
         out = np.zeros(t.shape, complex)
         for b, rt, ot in zip(self._blocks, spec.rho_t, spec.obs_t):
@@ -230,6 +238,7 @@ class ExactEngine:
         """
         model = self.model
         t = self._times(experiment, times)
+        self._require_times(t, 1 + len(model.free if parameters is None else parameters))
         spec = self.spectrum(experiment, free_values_hz)
         _, free_scale = self._coefficients(experiment, free_values_hz)
         names = list(model.free) if parameters is None else list(parameters)
@@ -269,6 +278,7 @@ class ExactEngine:
         """
         model = self.model
         t = self._times(experiment, times)
+        self._require_times(t, 1 + len(model.free if parameters is None else parameters))
         spec = self.spectrum(experiment, free_values_hz)
         _, free_scale = self._coefficients(experiment, free_values_hz)
         names = list(model.free) if parameters is None else list(parameters)

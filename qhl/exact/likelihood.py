@@ -32,7 +32,8 @@ class Dataset:
 def _sigma_for(experiment, sigma):
     s = sigma if sigma is not None else experiment.noise
     if s is None:
-        raise QhlInputError(f"experiment '{experiment.name}' has no noise: give sigma", key="noise")
+        raise QhlInputError(f"experiment '{experiment.name}' has no noise: set noise = ... in its [[experiment]] "
+                            f"or give --noise SIGMA (sigma= in Python)", key="noise")
     s = np.broadcast_to(np.asarray(s, float), (experiment.points,))
     if np.any(~np.isfinite(s)) or np.any(s <= 0):
         raise QhlInputError("sigma must be positive and finite", key="sigma")

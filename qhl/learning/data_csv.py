@@ -5,15 +5,22 @@ grid (linspace(0, t_max_s, points) of the cluster file; a subset of the grid is 
 signal is relative to S(0) = 1 (qhl.exact.engine's normalisation); `sigma` (optional) is the noise
 standard deviation of each of Re and Im per point, otherwise the experiment's `noise` or the
 caller's value is used.
+
+Checked on reading (one-line QhlInputError naming file, line and column): UTF-8 text of at most
+256 MiB, fields of at most 10,000 characters, 0 <= time_s <= t_max_s, |real|, |imag| <= 1e6,
+1e-15 <= sigma <= 1e3 (the noise range of cluster files).
 """
 
 import csv
+import io
 import math
+import os
 
 import numpy as np
 
 from ..base.errors import QhlInputError
 from ..exact.likelihood import Dataset
+from ..spins.cluster import NOISE_RANGE, checked_number
 
 __all__ = ["REQUIRED_COLUMNS", "load_signals_csv", "write_signals_csv", "TIME_RTOL"]
 
@@ -22,14 +29,59 @@ REQUIRED_COLUMNS = ("experiment", "time_s", "real", "imag")
 TIME_RTOL = 1e-3
 
 
-def _number(text, column, line, source):
+# Accepted ranges: a signal relative to S(0) = 1 stays far below 1e6; sigma as a cluster file's noise.
+MAX_SIGNAL = 1e6
+MAX_FILE_BYTES = 256 * 2**20    # 256 MiB: about 3 million rows
+MAX_FIELD_CHARS = 10_000        # one CSV field (experiment name or number)
+
+
+def _short(text) -> str:
+    text = repr(text)
+    return text if len(text) <= 40 else text[:24] + f"... ({len(text)} characters)"
+
+
+def _number(text, column, line, source, low=None, high=None):
     try:
         v = float(text)
     except (TypeError, ValueError):
-        raise QhlInputError(f"line {line}: {column}: expected a number, got {text!r}", source=source) from None
+        raise QhlInputError(f"line {line}: {column}: expected a number, got {_short(text)}", source=source) from None
     if not math.isfinite(v):
-        raise QhlInputError(f"line {line}: {column}: NaN or infinite value {text!r}", source=source)
+        raise QhlInputError(f"line {line}: {column}: NaN or infinite value {_short(text)}", source=source)
+    if (low is not None and v < low) or (high is not None and v > high):
+        raise QhlInputError(f"line {line}: {column}: expected a value in [{low:g}, {high:g}], got {_short(text)}",
+                            source=source)
     return v
+
+
+def _read_rows(path, source):
+    """All CSV rows; missing, oversized, non-UTF-8 or malformed files -> one-line QhlInputError."""
+    try:
+        size = os.stat(path).st_size
+        if size > MAX_FILE_BYTES:
+            raise QhlInputError(f"file of {size:,} bytes; expected at most {MAX_FILE_BYTES:,}", source=source)
+        with open(path, "rb") as f:
+            data = f.read()
+    except FileNotFoundError:
+        raise QhlInputError("no such file", source=source) from None
+    except OSError as e:
+        raise QhlInputError(f"cannot read file: {e.strerror or type(e).__name__}", source=source) from None
+    try:
+        text = data.decode("utf-8-sig")
+    except UnicodeDecodeError as e:
+        line = data[:e.start].count(b"\n") + 1
+        raise QhlInputError(f"line {line}: byte {data[e.start]:#04x} is not UTF-8 text", source=source) from None
+    reader = csv.reader(io.StringIO(text, newline=""))
+    rows = []
+    try:
+        for r in reader:
+            if any(len(c) > MAX_FIELD_CHARS for c in r):
+                raise QhlInputError(f"line {reader.line_num}: a field of more than {MAX_FIELD_CHARS:,} characters",
+                                    source=source)
+            rows.append(r)
+    except csv.Error as e:
+        raise QhlInputError(f"line {reader.line_num}: malformed CSV ({str(e).splitlines()[0][:120]})",
+                            source=source) from None
+    return rows
 
 
 def load_signals_csv(path, cluster, sigma=None) -> Dataset:
@@ -56,13 +108,7 @@ def load_signals_csv(path, cluster, sigma=None) -> Dataset:
         array([1.+0.j])
     """
     source = str(path)
-    try:
-        with open(path, newline="") as f:
-            rows = list(csv.reader(f))
-    except FileNotFoundError:
-        raise QhlInputError("no such file", source=source) from None
-    except (OSError, UnicodeDecodeError) as e:
-        raise QhlInputError(f"cannot read file: {getattr(e, 'strerror', None) or e}", source=source) from None
+    rows = _read_rows(path, source)
     rows = [(k + 1, r) for k, r in enumerate(rows) if r and any(c.strip() for c in r)]
     if not rows:
         raise QhlInputError(f"empty file: expected a header {','.join(REQUIRED_COLUMNS)}", source=source)
@@ -73,8 +119,8 @@ def load_signals_csv(path, cluster, sigma=None) -> Dataset:
                             f"{','.join(REQUIRED_COLUMNS)}[,sigma], got {','.join(header)}", source=source)
     col = {c: header.index(c) for c in header}
     has_sigma = "sigma" in col
-    if sigma is not None and (not math.isfinite(float(sigma)) or float(sigma) <= 0):
-        raise QhlInputError(f"sigma must be positive, got {sigma}", source=source, key="sigma")
+    if sigma is not None:
+        sigma = checked_number(sigma, "sigma", source, low=NOISE_RANGE[0], high=NOISE_RANGE[1])
     known = {ex.name: ex for ex in cluster.experiments}
     per = {}
     for line, r in rows[1:]:
@@ -85,10 +131,8 @@ def load_signals_csv(path, cluster, sigma=None) -> Dataset:
             raise QhlInputError(f"line {line}: experiment '{name}' matches no experiment of the cluster: "
                                 f"expected one of {', '.join(known) or '(none)'}", source=source)
         t = _number(r[col["time_s"]], "time_s", line, source)
-        re_, im = (_number(r[col[c]], c, line, source) for c in ("real", "imag"))
-        s = _number(r[col["sigma"]], "sigma", line, source) if has_sigma else None
-        if s is not None and s <= 0:
-            raise QhlInputError(f"line {line}: sigma: expected a positive number, got {s:g}", source=source)
+        re_, im = (_number(r[col[c]], c, line, source, -MAX_SIGNAL, MAX_SIGNAL) for c in ("real", "imag"))
+        s = _number(r[col["sigma"]], "sigma", line, source, *NOISE_RANGE) if has_sigma else None
         per.setdefault(name, []).append((line, t, complex(re_, im), s))
     if not per:
         raise QhlInputError("no data rows after the header", source=source)
@@ -107,7 +151,8 @@ def load_signals_csv(path, cluster, sigma=None) -> Dataset:
                                 f"({t[k]:g} s after {t[k - 1]:g} s)", source=source)
         grid = ex.times_s
         spacing = grid[1] - grid[0]
-        nearest = np.clip(np.rint(t / spacing).astype(np.int64), 0, len(grid) - 1)
+        nearest = np.rint(np.clip(t, 0.0, grid[-1]) / spacing).astype(np.int64)   # clip: no overflow
+        nearest = np.clip(nearest, 0, len(grid) - 1)
         off = np.abs(t - grid[nearest]) > TIME_RTOL * spacing
         if np.any(off):
             k = int(np.flatnonzero(off)[0])

@@ -14,19 +14,87 @@ import numpy as np
 from ..base.errors import QhlInputError
 from .nuclei import larmor_frequency_hz, nucleus
 
-__all__ = ["Spin", "Pair", "Experiment", "Cluster", "MIN_DISTANCE_ANGSTROM"]
+__all__ = ["Spin", "Pair", "Experiment", "Cluster", "MIN_DISTANCE_ANGSTROM", "MAX_SPINS", "MAX_POINTS",
+           "MAX_FREQUENCY_HZ", "MAX_FIELD_TESLA", "MAX_T_MAX_S", "NOISE_RANGE", "checked_number",
+           "check_spin_count", "check_experiment"]
 
 MIN_DISTANCE_ANGSTROM = 0.5
 
+# Accepted ranges of every number in a cluster (the reasons are stated once, here).
+MAX_FREQUENCY_HZ = 1e9          # |offset|, |J|, |dipolar| < 1 GHz: above any Larmor frequency in use (common practice)
+MAX_FIELD_TESLA = 100.0         # 0 < B <= 100 T: above the strongest NMR magnets, 28 T (common practice)
+MAX_COORDINATE_ANGSTROM = 1e6   # |x|, |y|, |z| <= 1e6 angstrom (0.1 mm): far beyond any cluster
+MAX_T_MAX_S = 1e3               # 0 < t_max_s <= 1000 s: far beyond any FID (T2 <= seconds, common practice)
+MAX_POINTS = 2**20              # 2 <= points <= 1,048,576: 16 MiB per complex signal and per gradient row;
+#                                 spectrometers record at most a few 1e5 complex points (common practice)
+MAX_DIPOLAR_SCALE = 10.0        # |dipolar_scale| <= 10 (scaling sequences give |s| <= 1)
+NOISE_RANGE = (1e-15, 1e3)      # noise per point relative to S(0) = 1: above round-off, below nonsense
+MAX_PPM = 1e6                   # |shift_ppm|, |reference_ppm| <= 1e6 ppm
+MAX_SPINS = 1000                # clusters above this are refused before any O(n^2) work
 
-def _finite(value, what, source):
+
+def checked_number(value, key, source, *, low=None, high=None, low_open=False, high_open=False,
+                   max_abs=None, integer=False):
+    """`value` as a float (or int with `integer`), refused unless a finite number in range.
+
+    Rejects bool, strings and other types, integers too large for a float, NaN and inf.
+    The message is one line: source, key, the value and the allowed range.
+    """
+    import numbers
+
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real):
+        raise QhlInputError(f"expected {'an integer' if integer else 'a number'}"
+                            f"{_range_text(low, high, low_open, high_open, max_abs, integer)}, "
+                            f"got {_short(value)}", source=source, key=key)
+    if integer and not isinstance(value, numbers.Integral):
+        raise QhlInputError(f"expected an integer{_range_text(low, high, low_open, high_open, max_abs, True)}, "
+                            f"got {_short(value)}", source=source, key=key)
     try:
         v = float(value)
-    except (TypeError, ValueError):
-        raise QhlInputError(f"expected a number, got {value!r}", source=source, key=what) from None
-    if not math.isfinite(v):
-        raise QhlInputError(f"expected a finite number, got {value!r}", source=source, key=what)
-    return v
+    except (OverflowError, ValueError, TypeError):
+        v = math.inf if value > 0 else -math.inf
+    bad = not math.isfinite(v)
+    if not bad and max_abs is not None:
+        bad = abs(v) > max_abs
+    if not bad and low is not None:
+        bad = v <= low if low_open else v < low
+    if not bad and high is not None:
+        bad = v >= high if high_open else v > high
+    if bad:
+        sign = "positive " if low == 0 and low_open else ""
+        raise QhlInputError(f"expected a finite {sign}{'integer' if integer else 'number'}"
+                            f"{_range_text(low, high, low_open, high_open, max_abs, integer)}, got {_short(value)}",
+                            source=source, key=key)
+    return int(value) if integer else v
+
+
+def _bytes_text(n: float) -> str:
+    for unit, size in (("EiB", 2**60), ("PiB", 2**50), ("TiB", 2**40), ("GiB", 2**30), ("MiB", 2**20)):
+        if n >= size:
+            return f"{n / size:.3g} {unit}" if n < 2**70 else f"{n / 2**60:.3g} EiB"
+    return f"{n:.0f} bytes"
+
+
+def _short(value) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:24] + f"... ({len(text)} characters)"
+
+
+def _range_text(low, high, low_open, high_open, max_abs, integer) -> str:
+    g = (lambda x: f"{x:,}") if integer else (lambda x: f"{x:g}")
+    if max_abs is not None:
+        return f" with |value| <= {g(max_abs)}"
+    if low is not None and high is not None:
+        return f" in {'(' if low_open else '['}{g(low)}, {g(high)}{')' if high_open else ']'}"
+    if low is not None:
+        return f" {'>' if low_open else '>='} {g(low)}"
+    if high is not None:
+        return f" {'<' if high_open else '<='} {g(high)}"
+    return ""
+
+
+def _finite(value, what, source):
+    return checked_number(value, what, source)
 
 
 @dataclass(frozen=True)
@@ -68,6 +136,30 @@ class Experiment:
         return np.linspace(0.0, self.t_max_s, self.points)
 
 
+def check_spin_count(n: int, source=None) -> None:
+    """Refuse more than MAX_SPINS spins, before anything quadratic in the spin count is built."""
+    if n > MAX_SPINS:
+        raise QhlInputError(
+            f"{n:,} spins: expected at most {MAX_SPINS:,} per cluster (its pairwise distances alone would take "
+            f"about {n * n * 24 / 2**30:.2f} GiB and its exact state space 2^{n}); cut smaller clusters with qhl cut",
+            source=source, key="spin")
+
+
+def check_experiment(ex, key="experiment", source=None) -> None:
+    """Check one Experiment's numbers against the stated ranges (points, t_max_s, dipolar_scale, noise)."""
+    checked_number(ex.t_max_s, key + ".t_max_s", source, low=0, high=MAX_T_MAX_S, low_open=True)
+    try:
+        checked_number(ex.points, key + ".points", source, low=2, high=MAX_POINTS, integer=True)
+    except QhlInputError as e:
+        if isinstance(ex.points, int) and ex.points > MAX_POINTS:   # say what it would have cost
+            need = 16.0 * min(ex.points, 2**100)
+            raise QhlInputError(f"{e} (one complex signal alone would need {_bytes_text(need)})") from None
+        raise
+    checked_number(ex.dipolar_scale, key + ".dipolar_scale", source, max_abs=MAX_DIPOLAR_SCALE)
+    if ex.noise is not None:
+        checked_number(ex.noise, key + ".noise", source, low=NOISE_RANGE[0], high=NOISE_RANGE[1])
+
+
 @dataclass(frozen=True)
 class Cluster:
     """A validated nuclear-spin cluster in a static field, with its experiments.
@@ -87,38 +179,52 @@ class Cluster:
 
     def __post_init__(self):
         src = self.source
-        b = _finite(self.field_tesla, "field_tesla", src)
-        if b <= 0:
-            raise QhlInputError(f"expected a positive field in tesla, got {b}", source=src, key="field_tesla")
-        d = np.asarray(self.field_direction, dtype=float)
-        if d.shape != (3,) or not np.all(np.isfinite(d)) or np.linalg.norm(d) == 0:
-            raise QhlInputError("expected a non-zero vector [x, y, z]", source=src, key="field_direction")
-        object.__setattr__(self, "field_direction", tuple(d / np.linalg.norm(d)))
-        nucleus(self.observe)  # raises on unknown / spin > 1/2
-        object.__setattr__(self, "observe", nucleus(self.observe).symbol)
+        b = checked_number(self.field_tesla, "field_tesla", src, low=0, high=MAX_FIELD_TESLA, low_open=True)
+        object.__setattr__(self, "field_tesla", b)
+        d = self.field_direction
+        if not isinstance(d, (list, tuple, np.ndarray)) or len(d) != 3:
+            raise QhlInputError(f"expected a non-zero vector [x, y, z], got {_short(d)}", source=src,
+                                key="field_direction")
+        d = np.array([checked_number(c, "field_direction", src) for c in d])
+        biggest = np.max(np.abs(d))
+        if biggest == 0:
+            raise QhlInputError(f"expected a non-zero vector [x, y, z], got {_short(self.field_direction)}",
+                                source=src, key="field_direction")
+        d = d / biggest                     # scale first: no overflow or underflow in the norm
+        object.__setattr__(self, "field_direction", tuple(float(x) for x in d / np.linalg.norm(d)))
+        if not isinstance(self.observe, str):
+            raise QhlInputError(f"expected an isotope symbol such as \"1H\", got {_short(self.observe)}",
+                                source=src, key="observe")
+        try:
+            object.__setattr__(self, "observe", nucleus(self.observe).symbol)  # raises on unknown / spin > 1/2
+        except QhlInputError as e:
+            raise QhlInputError(str(e), source=src, key="observe") from None
         if not self.spins:
             raise QhlInputError("expected at least one [[spin]] entry", source=src, key="spin")
+        check_spin_count(len(self.spins), src)
         labels = [s.label for s in self.spins]
         seen = set()
         for i, s in enumerate(self.spins):
             key = f"spin[{i}]"
             if not isinstance(s.label, str) or not s.label or "-" in s.label or ":" in s.label:
-                raise QhlInputError(f"expected a non-empty label without '-' or ':', got {s.label!r}",
+                raise QhlInputError(f"expected a non-empty label without '-' or ':', got {_short(s.label)}",
                                     source=src, key=key + ".label")
             if s.label in seen:
                 raise QhlInputError(f"duplicate label '{s.label}'", source=src, key=key + ".label")
             seen.add(s.label)
             try:
+                if not isinstance(s.isotope, str):
+                    raise QhlInputError(f"expected an isotope symbol, got {_short(s.isotope)}")
                 nucleus(s.isotope)
             except QhlInputError as e:
                 raise QhlInputError(str(e), source=src, key=key + ".isotope") from None
-            _finite(s.offset_hz, key + ".offset_hz", src)
+            checked_number(s.offset_hz, key + ".offset_hz", src, max_abs=MAX_FREQUENCY_HZ)
             if s.position_angstrom is not None:
                 p = s.position_angstrom
-                if len(p) != 3:
+                if not isinstance(p, (list, tuple, np.ndarray)) or len(p) != 3:
                     raise QhlInputError("expected [x, y, z] in angstrom", source=src, key=key + ".position_angstrom")
                 for c in p:
-                    _finite(c, key + ".position_angstrom", src)
+                    checked_number(c, key + ".position_angstrom", src, max_abs=MAX_COORDINATE_ANGSTROM)
         if self.observe not in {nucleus(s.isotope).symbol for s in self.spins}:
             raise QhlInputError(f"no spin of the observed isotope {self.observe}", source=src, key="observe")
         placed = [(s.label, np.asarray(s.position_angstrom, float)) for s in self.spins
@@ -133,34 +239,33 @@ class Cluster:
                     f"spins {placed[i][0]} and {placed[j][0]} are {dist[i, j]:.3f} A apart; "
                     f"expected at least {MIN_DISTANCE_ANGSTROM} A", source=src, key="position_angstrom")
         pair_seen = set()
+        label_set = set(labels)
         for k, pr in enumerate(self.pairs):
             key = f"pair[{k}]"
-            if len(pr.spins) != 2 or pr.spins[0] == pr.spins[1]:
-                raise QhlInputError("expected spins = [a, b] with two different labels", source=src, key=key + ".spins")
+            if (not isinstance(pr.spins, (list, tuple)) or len(pr.spins) != 2
+                    or not all(isinstance(x, str) for x in pr.spins) or pr.spins[0] == pr.spins[1]):
+                raise QhlInputError(f"expected spins = [a, b] with two different labels, got {_short(pr.spins)}",
+                                    source=src, key=key + ".spins")
             for lab in pr.spins:
-                if lab not in labels:
-                    raise QhlInputError(f"unknown spin '{lab}'", source=src, key=key + ".spins")
+                if lab not in label_set:
+                    raise QhlInputError(f"unknown spin {_short(lab)}", source=src, key=key + ".spins")
             fs = frozenset(pr.spins)
             if fs in pair_seen:
                 raise QhlInputError(f"pair {pr.spins[0]}-{pr.spins[1]} given twice", source=src, key=key + ".spins")
             pair_seen.add(fs)
             if pr.j_hz is not None:
-                _finite(pr.j_hz, key + ".j_hz", src)
+                checked_number(pr.j_hz, key + ".j_hz", src, max_abs=MAX_FREQUENCY_HZ)
             if pr.dipolar_hz is not None:
-                _finite(pr.dipolar_hz, key + ".dipolar_hz", src)
+                checked_number(pr.dipolar_hz, key + ".dipolar_hz", src, max_abs=MAX_FREQUENCY_HZ)
         names = set()
         for k, ex in enumerate(self.experiments):
             key = f"experiment[{k}]"
+            if not isinstance(ex.name, str):
+                raise QhlInputError(f"expected a name, got {_short(ex.name)}", source=src, key=key + ".name")
             if ex.name in names:
                 raise QhlInputError(f"duplicate experiment name '{ex.name}'", source=src, key=key + ".name")
             names.add(ex.name)
-            if _finite(ex.t_max_s, key + ".t_max_s", src) <= 0:
-                raise QhlInputError(f"expected t_max_s > 0, got {ex.t_max_s}", source=src, key=key + ".t_max_s")
-            if not isinstance(ex.points, (int, np.integer)) or isinstance(ex.points, bool) or ex.points < 2:
-                raise QhlInputError(f"expected an integer points >= 2, got {ex.points!r}", source=src, key=key + ".points")
-            _finite(ex.dipolar_scale, key + ".dipolar_scale", src)
-            if ex.noise is not None and _finite(ex.noise, key + ".noise", src) <= 0:
-                raise QhlInputError(f"expected noise > 0, got {ex.noise}", source=src, key=key + ".noise")
+            check_experiment(ex, key, src)
 
     @property
     def labels(self) -> list:

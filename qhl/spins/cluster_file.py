@@ -2,16 +2,22 @@
 
 TOML layout (all keys checked; unknown keys are errors):
 
-    field_tesla = 9.4                # required, > 0
-    field_direction = [0, 0, 1]      # optional unit vector
+    field_tesla = 9.4                # required, 0 < B <= 100 T
+    field_direction = [0, 0, 1]      # optional, any non-zero vector (normalised)
     observe = "1H"                   # required: the observed isotope
-    reference_ppm = 0.0              # optional carrier position for shift_ppm
+    reference_ppm = 0.0              # optional carrier of the observed isotope for shift_ppm, or one per
+                                     # isotope: reference_ppm = {"1H" = 4.7, "13C" = 100.0} (default 0 ppm)
     [[spin]]                         # one per nucleus
     label = "H1"; isotope = "1H"; position_angstrom = [0, 0, 0]; shift_ppm = 1.2  # or offset_hz
     [[pair]]
     spins = ["H1", "H2"]; j_hz = 7.0; dipolar_hz = -1500.0   # both optional
     [[experiment]]
     name = "fid"; t_max_s = 2e-4; points = 128; dipolar_scale = 1.0; noise = 1e-3
+
+Every number is checked for type (no bool, no string, no integer beyond a float) and range
+(the constants of qhl.spins.cluster: |offset|, |J|, |dipolar| <= 1e9 Hz, 0 < t_max_s <= 1e3 s,
+2 <= points <= 2^20, |dipolar_scale| <= 10, 1e-15 <= noise <= 1e3, at most 1000 spins). Files
+above 64 MiB, non-UTF-8 bytes and arrays nested deeper than 32 levels are refused.
 """
 
 from importlib import resources
@@ -20,7 +26,8 @@ import tomllib
 
 import numpy as np
 
-from .cluster import Cluster, Experiment, Pair, Spin
+from .cluster import (MAX_COORDINATE_ANGSTROM, MAX_FIELD_TESLA, MAX_FREQUENCY_HZ, MAX_PPM, Cluster, Experiment,
+                      Pair, Spin, _short, check_experiment, check_spin_count, checked_number)
 from ..base.errors import QhlInputError
 from .nuclei import larmor_frequency_hz, nucleus
 
@@ -49,61 +56,144 @@ def _require(table, key, where, source):
     return table[key]
 
 
-def parse_cluster_toml(text: str, source: str = "<string>") -> Cluster:
-    """Parse the text of a cluster file (see the module docstring) into a Cluster."""
+MAX_FILE_BYTES = 64 * 2**20     # cluster and XYZ files: 64 MiB at most (a 1000-spin file is < 1 MiB)
+MAX_NESTING = 32                # brackets/braces nested deeper than this are refused before parsing
+
+
+def _nesting_depth(text: str) -> int:
+    """Deepest nesting of [ ] and { } outside strings and comments (an upper bound is enough)."""
+    depth = deepest = 0
+    quote = None
+    i, n = 0, len(text)
+    while i < n:
+        ch = text[i]
+        if quote:
+            if ch == "\\" and quote == '"':
+                i += 2
+                continue
+            if ch == quote:
+                quote = None
+        elif ch in "\"'":
+            quote = ch
+        elif ch == "#":
+            j = text.find("\n", i)
+            i = n if j < 0 else j
+            continue
+        elif ch in "[{":
+            depth += 1
+            deepest = max(deepest, depth)
+        elif ch in "]}":
+            depth = max(depth - 1, 0)
+        i += 1
+    return deepest
+
+
+def _toml(text: str, source: str) -> dict:
+    if not isinstance(text, str):
+        raise QhlInputError(f"expected TOML text, got {type(text).__name__}", source=source)
+    if _nesting_depth(text) > MAX_NESTING:
+        raise QhlInputError(f"arrays or tables nested deeper than {MAX_NESTING} levels", source=source)
     try:
-        doc = tomllib.loads(text)
+        return tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
-        raise QhlInputError(f"TOML syntax error: {e}", source=source) from None
+        raise QhlInputError(f"TOML syntax error: {str(e).splitlines()[0]}", source=source) from None
+    except RecursionError:
+        raise QhlInputError("TOML nested too deeply", source=source) from None
+    except (ValueError, OverflowError, MemoryError) as e:   # e.g. a date the library cannot represent
+        raise QhlInputError(f"TOML value not readable: {str(e).splitlines()[0] if str(e) else type(e).__name__}",
+                            source=source) from None
+
+
+def _reference_table(reference, observe, source) -> dict:
+    """reference_ppm -> {isotope: carrier ppm}; a bare number is the observed isotope's carrier."""
+    if isinstance(reference, dict):
+        out = {}
+        for iso, v in reference.items():
+            try:
+                sym = nucleus(iso).symbol
+            except QhlInputError as e:
+                raise QhlInputError(str(e), source=source, key=f"reference_ppm.{str(iso)[:20]}") from None
+            out[sym] = checked_number(v, f"reference_ppm.{iso}", source, max_abs=MAX_PPM)
+        return out
+    return {observe: checked_number(reference, "reference_ppm", source, max_abs=MAX_PPM)}
+
+
+def _offset_from_shift(ppm, iso, reference, references, field, where, source):
+    """offset_hz = (shift_ppm - reference_ppm[isotope]) * 1e-6 * nu0(isotope)."""
+    ppm = checked_number(ppm, where + ".shift_ppm", source, max_abs=MAX_PPM)
+    if reference is None:
+        ref = 0.0
+    elif iso in references:
+        ref = references[iso]
+    elif isinstance(reference, dict):
+        raise QhlInputError(f"no carrier for {iso} in reference_ppm (it has {', '.join(references)}); "
+                            f"add \"{iso}\" = <ppm> to the reference_ppm table", source=source,
+                            key=where + ".shift_ppm")
+    else:
+        obs = next(iter(references))
+        raise QhlInputError(f"reference_ppm = {reference!r} is the carrier of the observed isotope {obs} only; "
+                            f"give one per isotope, e.g. reference_ppm = {{\"{obs}\" = {reference!r}, "
+                            f"\"{iso}\" = 0.0}}", source=source, key=where + ".shift_ppm")
+    return (ppm - ref) * 1e-6 * larmor_frequency_hz(iso, field)
+
+
+def parse_cluster_toml(text: str, source: str = "<string>") -> Cluster:
+    """Parse the text of a cluster file (see the module docstring) into a Cluster.
+
+    Raises:
+        QhlInputError: any syntax error, unknown key, wrong type or number out of range (one line
+            naming the source, the key, the value and the allowed range; ranges in qhl.spins.cluster).
+    """
+    doc = _toml(text, source)
     _check_keys(doc, _TOP, "", source)
     field = _require(doc, "field_tesla", "", source)
     observe = _require(doc, "observe", "", source)
     if not isinstance(observe, str):
-        raise QhlInputError("expected an isotope symbol such as \"1H\"", source=source, key="observe")
+        raise QhlInputError(f"expected an isotope symbol such as \"1H\", got {_short(observe)}", source=source,
+                            key="observe")
     try:
-        nucleus(observe)
+        observe = nucleus(observe).symbol
     except QhlInputError as e:
         raise QhlInputError(str(e), source=source, key="observe") from None
-    if not isinstance(field, (int, float)) or isinstance(field, bool):
-        raise QhlInputError(f"expected a number, got {field!r}", source=source, key="field_tesla")
-    if not np.isfinite(field) or field <= 0:
-        raise QhlInputError(f"expected a positive field in tesla, got {field}", source=source, key="field_tesla")
-    reference = doc.get("reference_ppm", 0.0)
-    if not isinstance(reference, (int, float)) or isinstance(reference, bool) or not np.isfinite(reference):
-        raise QhlInputError(f"expected a finite number, got {reference!r}", source=source, key="reference_ppm")
+    field = checked_number(field, "field_tesla", source, low=0, high=MAX_FIELD_TESLA, low_open=True)
+    reference = doc.get("reference_ppm")
+    references = {} if reference is None else _reference_table(reference, observe, source)
     spins = []
     raw_spins = doc.get("spin", [])
     if not isinstance(raw_spins, list):
         raise QhlInputError("expected [[spin]] entries", source=source, key="spin")
+    check_spin_count(len(raw_spins), source)
     for i, t in enumerate(raw_spins):
         where = f"spin[{i}]"
         _check_keys(t, _SPIN, where, source)
         label = _require(t, "label", where, source)
         iso = _require(t, "isotope", where, source)
         if not isinstance(iso, str):
-            raise QhlInputError(f"expected an isotope symbol, got {iso!r}", source=source, key=where + ".isotope")
+            raise QhlInputError(f"expected an isotope symbol, got {_short(iso)}", source=source, key=where + ".isotope")
         try:
             iso = nucleus(iso).symbol
         except QhlInputError as e:
             raise QhlInputError(str(e), source=source, key=where + ".isotope") from None
         if "offset_hz" in t and "shift_ppm" in t:
             raise QhlInputError("give offset_hz or shift_ppm, not both", source=source, key=where)
-        offset = t.get("offset_hz", 0.0)
+        offset = checked_number(t.get("offset_hz", 0.0), where + ".offset_hz", source, max_abs=MAX_FREQUENCY_HZ)
         if "shift_ppm" in t:
-            ppm = t["shift_ppm"]
-            if not isinstance(ppm, (int, float)) or isinstance(ppm, bool) or not np.isfinite(ppm):
-                raise QhlInputError(f"expected a finite number, got {ppm!r}", source=source, key=where + ".shift_ppm")
-            offset = (ppm - reference) * 1e-6 * larmor_frequency_hz(iso, field)
-        if isinstance(offset, bool) or not isinstance(offset, (int, float)):
-            raise QhlInputError(f"expected a number, got {offset!r}", source=source, key=where + ".offset_hz")
+            offset = _offset_from_shift(t["shift_ppm"], iso, reference, references, field, where, source)
+            if abs(offset) > MAX_FREQUENCY_HZ:
+                raise QhlInputError(f"shift gives an offset of {offset:.3g} Hz; expected |offset| <= "
+                                    f"{MAX_FREQUENCY_HZ:g} Hz", source=source, key=where + ".shift_ppm")
         pos = t.get("position_angstrom")
         if pos is not None:
-            if (not isinstance(pos, list) or len(pos) != 3
-                    or not all(isinstance(c, (int, float)) and not isinstance(c, bool) for c in pos)):
-                raise QhlInputError(f"expected [x, y, z] in angstrom, got {pos!r}", source=source,
+            if not isinstance(pos, list) or len(pos) != 3:
+                raise QhlInputError(f"expected [x, y, z] in angstrom, got {_short(pos)}", source=source,
                                     key=where + ".position_angstrom")
-            pos = tuple(float(c) for c in pos)
+            pos = tuple(checked_number(c, where + ".position_angstrom", source, max_abs=MAX_COORDINATE_ANGSTROM)
+                        for c in pos)
         spins.append(Spin(label=label, isotope=iso, position_angstrom=pos, offset_hz=offset))
+    for iso in references:
+        if iso not in {s.isotope for s in spins} and isinstance(reference, dict):
+            raise QhlInputError(f"reference_ppm names {iso}, but no spin has that isotope", source=source,
+                                key=f"reference_ppm.{iso}")
     pairs = []
     raw_pairs = doc.get("pair", [])
     if not isinstance(raw_pairs, list):
@@ -113,12 +203,11 @@ def parse_cluster_toml(text: str, source: str = "<string>") -> Cluster:
         _check_keys(t, _PAIR, where, source)
         sp = _require(t, "spins", where, source)
         if not isinstance(sp, list) or len(sp) != 2:
-            raise QhlInputError(f"expected spins = [a, b], got {sp!r}", source=source, key=where + ".spins")
-        for key in ("j_hz", "dipolar_hz"):
-            v = t.get(key)
-            if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))):
-                raise QhlInputError(f"expected a number, got {v!r}", source=source, key=f"{where}.{key}")
-        pairs.append(Pair(spins=tuple(sp), j_hz=t.get("j_hz"), dipolar_hz=t.get("dipolar_hz")))
+            raise QhlInputError(f"expected spins = [a, b], got {_short(sp)}", source=source, key=where + ".spins")
+        values = {key: None if t.get(key) is None else
+                  checked_number(t[key], f"{where}.{key}", source, max_abs=MAX_FREQUENCY_HZ)
+                  for key in ("j_hz", "dipolar_hz")}
+        pairs.append(Pair(spins=tuple(sp), **values))
     experiments = []
     raw_ex = doc.get("experiment", [])
     if not isinstance(raw_ex, list):
@@ -127,23 +216,44 @@ def parse_cluster_toml(text: str, source: str = "<string>") -> Cluster:
         where = f"experiment[{k}]"
         _check_keys(t, _EXPERIMENT, where, source)
         name = t.get("name", f"experiment{k + 1}")
+        if not isinstance(name, str):
+            raise QhlInputError(f"expected a name, got {_short(name)}", source=source, key=where + ".name")
         t_max = _require(t, "t_max_s", where, source)
         points = _require(t, "points", where, source)
-        for key, v in (("t_max_s", t_max), ("dipolar_scale", t.get("dipolar_scale", 1.0)),
-                       ("noise", t.get("noise", 1.0))):
-            if isinstance(v, bool) or not isinstance(v, (int, float)):
-                raise QhlInputError(f"expected a number, got {v!r}", source=source, key=f"{where}.{key}")
-        experiments.append(Experiment(name=str(name), t_max_s=float(t_max), points=points,
-                                      dipolar_scale=float(t.get("dipolar_scale", 1.0)),
-                                      noise=None if t.get("noise") is None else float(t["noise"])))
+        ex = Experiment(name=name, t_max_s=t_max, points=points, dipolar_scale=t.get("dipolar_scale", 1.0),
+                        noise=t.get("noise"))
+        check_experiment(ex, where, source)
+        experiments.append(Experiment(name=name, t_max_s=float(t_max), points=int(points),
+                                      dipolar_scale=float(ex.dipolar_scale),
+                                      noise=None if ex.noise is None else float(ex.noise)))
     direction = doc.get("field_direction", [0.0, 0.0, 1.0])
-    if (not isinstance(direction, list) or len(direction) != 3
-            or not all(isinstance(c, (int, float)) and not isinstance(c, bool) for c in direction)):
-        raise QhlInputError(f"expected [x, y, z], got {direction!r}", source=source, key="field_direction")
+    if not isinstance(direction, list) or len(direction) != 3:
+        raise QhlInputError(f"expected [x, y, z], got {_short(direction)}", source=source, key="field_direction")
     name = doc.get("name", Path(source).stem if source and not source.startswith("<") else "cluster")
-    return Cluster(field_tesla=float(field), observe=observe, spins=tuple(spins), pairs=tuple(pairs),
+    if not isinstance(name, str):
+        raise QhlInputError(f"expected a name, got {_short(name)}", source=source, key="name")
+    return Cluster(field_tesla=field, observe=observe, spins=tuple(spins), pairs=tuple(pairs),
                    experiments=tuple(experiments), field_direction=tuple(direction), source=source,
-                   name=str(name))
+                   name=name)
+
+
+def _read_text(path: Path) -> str:
+    """The file as UTF-8 text; missing, unreadable, too large or undecodable -> one-line QhlInputError."""
+    src = str(path)
+    try:
+        size = path.stat().st_size
+        if size > MAX_FILE_BYTES:
+            raise QhlInputError(f"file of {size:,} bytes; expected at most {MAX_FILE_BYTES:,}", source=src)
+        data = path.read_bytes()
+    except FileNotFoundError:
+        raise QhlInputError("no such file", source=src) from None
+    except OSError as e:
+        raise QhlInputError(f"cannot read file: {e.strerror or type(e).__name__}", source=src) from None
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as e:
+        line = data[:e.start].count(b"\n") + 1
+        raise QhlInputError(f"line {line}: byte {data[e.start]:#04x} is not UTF-8 text", source=src) from None
 
 
 _ELEMENT_ISOTOPE = {"H": "1H", "C": "13C", "N": "15N", "F": "19F", "P": "31P", "Si": "29Si"}
@@ -157,16 +267,15 @@ def read_xyz_atoms(path):
     """
     path = Path(path)
     src = str(path)
-    try:
-        lines = path.read_text().splitlines()
-    except OSError as e:
-        raise QhlInputError(f"cannot read file: {e.strerror}", source=src) from None
+    lines = _read_text(path).splitlines()
     if len(lines) < 2:
         raise QhlInputError("expected an atom count line and a comment line", source=src)
     try:
         count = int(lines[0].split()[0])
     except (ValueError, IndexError):
         raise QhlInputError(f"line 1: expected the number of atoms, got {lines[0]!r}", source=src) from None
+    if count < 0:
+        raise QhlInputError(f"line 1: expected a number of atoms >= 0, got {count}", source=src)
     body = [ln for ln in lines[2:] if ln.strip()]
     if len(body) < count:
         raise QhlInputError(f"expected {count} atom lines, found {len(body)}", source=src)
@@ -179,8 +288,9 @@ def read_xyz_atoms(path):
             xyz = []
         if len(parts) < 4 or len(xyz) != 3:
             raise QhlInputError(f"line {n + 3}: expected 'element x y z', got {ln!r}", source=src)
-        if not all(np.isfinite(xyz)):
-            raise QhlInputError(f"line {n + 3}: coordinates must be finite", source=src)
+        if not all(np.isfinite(xyz)) or max(abs(c) for c in xyz) > MAX_COORDINATE_ANGSTROM:
+            raise QhlInputError(f"line {n + 3}: expected finite coordinates with |value| <= "
+                                f"{MAX_COORDINATE_ANGSTROM:g} angstrom, got {_short(ln.strip())}", source=src)
         elements.append(parts[0])
         positions.append(xyz)
     return elements, np.array(positions, float).reshape(-1, 3)
@@ -223,13 +333,7 @@ def load_cluster(path) -> Cluster:
     path = Path(path)
     if path.suffix.lower() == ".xyz":
         return load_xyz(path)
-    try:
-        text = path.read_text()
-    except FileNotFoundError:
-        raise QhlInputError("no such file", source=str(path)) from None
-    except OSError as e:
-        raise QhlInputError(f"cannot read file: {e.strerror}", source=str(path)) from None
-    return parse_cluster_toml(text, source=str(path))
+    return parse_cluster_toml(_read_text(path), source=str(path))
 
 
 def demo_cluster() -> Cluster:

@@ -6,8 +6,10 @@ cluster's canonical cluster-file text (qhl.survey.structure.cluster_to_toml), th
 the settings and RESULTS_VERSION. The scan id is the hash of the sorted task ids.
 
 Results file (CSV). Two comment lines (`# qhl scan results v1`, `# scan_id=...` and a summary),
-a header row, then one row per finished task. The file is created atomically (temporary file
-and rename); each row is appended with a single write() and fsync as its task finishes, by the
+a header row, then one row per finished task. The file is opened (created if missing) and
+locked (flock) before its header is written, never replaced by a rename, so two scans on one
+file cannot both run (the second is refused); a header torn by a crash is rewritten under the
+lock. Each row is appended with a single write() and fsync as its task finishes, by the
 one process that drives the scan. A rerun reads the file, skips every task already there and
 computes the rest; a torn last row (a machine that died mid-write) is cut off and recomputed.
 A results file with another scan id is refused rather than mixed. Floats are written with
@@ -32,7 +34,7 @@ import time
 
 import numpy as np
 
-from ..spins.cluster import Cluster
+from ..spins.cluster import MAX_DIPOLAR_SCALE, Cluster
 from ..spins.cluster_file import load_cluster, parse_cluster_toml
 from .diagnostics import diagnose
 from ..exact.engine import estimate_memory_bytes
@@ -40,12 +42,13 @@ from ..base.errors import QhlInputError
 from ..base.memory import require_memory
 from ..spins.model import DEFAULT_FREE, build_model
 from .scan_settings import ScanSettings
-from .structure import cluster_to_toml, write_text_atomic
+from .structure import cluster_to_toml
 
 __all__ = ["ScanSettings", "ScanTask", "ScanDefinition", "ScanSummary", "RESULTS_VERSION", "COLUMNS",
            "define_scan", "parse_scale_range", "run_task", "read_results", "run_scan"]
 
 RESULTS_VERSION = 1
+MAX_SCALES = 10_000     # dipolar scales per scan
 _MAGIC = f"# qhl scan results v{RESULTS_VERSION}"
 
 COLUMNS = ("task_id", "cluster", "n_spins", "dipolar_scale", "n_free", "fisher_min_eigenvalue",
@@ -112,16 +115,18 @@ def parse_scale_range(text: str) -> tuple:
             values = (float(parts[0]),)
         elif len(parts) == 3:
             a, b, n = float(parts[0]), float(parts[1]), int(parts[2])
-            if n < 1:
+            if not 1 <= n <= MAX_SCALES:
                 raise ValueError
             values = tuple(float(x) for x in np.linspace(a, b, n))
         else:
             raise ValueError
     except ValueError:
-        raise QhlInputError(f"expected A:B:N (start, stop, count >= 1) or one number, got {text!r}",
+        raise QhlInputError(f"expected A:B:N (start, stop, count in [1, {MAX_SCALES:,}]) or one number, "
+                            f"got {str(text)[:40]!r}",
                             key="dipolar-scale") from None
-    if not all(math.isfinite(v) for v in values):
-        raise QhlInputError(f"expected finite dipolar scales, got {text!r}", key="dipolar-scale")
+    if not all(math.isfinite(v) and abs(v) <= MAX_DIPOLAR_SCALE for v in values):
+        raise QhlInputError(f"expected dipolar scales in [-{MAX_DIPOLAR_SCALE:g}, {MAX_DIPOLAR_SCALE:g}], "
+                            f"got {text!r}", key="dipolar-scale")
     return values
 
 
@@ -261,10 +266,15 @@ def read_results(path, repair: bool = False):
     return scan_id, rows
 
 
-def _check_results(path: Path, definition: ScanDefinition) -> set:
-    """Check an existing results file (repairing a torn last row); return the ids of tasks done."""
+def _check_results(path: Path, definition: ScanDefinition, repair: bool = False) -> set:
+    """Check an existing results file; return the ids of tasks done.
+
+    Only with `repair` (under the lock) is a torn last row cut off; a check before the lock only reads.
+    """
     if path.exists() and path.stat().st_size > 0:
-        scan_id, rows = read_results(path, repair=True)
+        if _is_torn_header(path, definition):
+            return set()
+        scan_id, rows = read_results(path, repair=repair)
         if scan_id != definition.scan_id:
             raise QhlInputError(f"holds results of another scan (scan_id {scan_id}, this scan {definition.scan_id}); "
                                 "choose another --out or the same clusters, scales and settings",
@@ -275,30 +285,51 @@ def _check_results(path: Path, definition: ScanDefinition) -> set:
     return set()
 
 
-def _create_results(path: Path, definition: ScanDefinition) -> None:
-    """Write the header of a new results file atomically (an existing file is kept)."""
-    if path.exists() and path.stat().st_size > 0:
-        return
-    head = f"{_MAGIC}\n# scan_id={definition.scan_id} {definition.describe()}\n" + ",".join(COLUMNS) + "\n"
-    try:
-        write_text_atomic(path, head)
-    except OSError as e:
-        raise QhlInputError(f"cannot write results: {e.strerror}", source=str(path), key="out") from None
+def _header(definition: ScanDefinition) -> str:
+    return f"{_MAGIC}\n# scan_id={definition.scan_id} {definition.describe()}\n" + ",".join(COLUMNS) + "\n"
+
+
+def _is_torn_header(path: Path, definition: ScanDefinition) -> bool:
+    """A file holding only a strict beginning of this scan's header (a crash while writing it)."""
+    head = _header(definition).encode()
+    size = path.stat().st_size
+    if size >= len(head):
+        return False
+    with open(path, "rb") as f:
+        return head.startswith(f.read())
 
 
 class _Appender:
-    """Appends rows with one write() each, then fsync: a crash leaves at most one torn last row.
+    """The results file, locked: created (or opened) and locked before anything is written.
 
-    Holds an exclusive advisory lock (flock) so two scans cannot append to one file at once.
+    The file is opened with O_CREAT (never replaced by a rename), then an exclusive advisory lock
+    (flock) is taken on it; only then is a new or torn header written, so two scans on one file
+    cannot both proceed. Rows are appended with one write() each, then fsync: a crash leaves at
+    most one torn last row.
     """
 
-    def __init__(self, path: Path):
-        self.fd = os.open(path, os.O_WRONLY | os.O_APPEND)
+    def __init__(self, path: Path, definition: ScanDefinition):
+        self.path = path
+        try:
+            self.fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+        except OSError as e:
+            raise QhlInputError(f"cannot write results: {e.strerror}", source=str(path), key="out") from None
         try:
             fcntl.flock(self.fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except OSError:
             os.close(self.fd)
             raise QhlInputError("is being written by another running scan", source=str(path), key="out") from None
+        try:
+            if os.fstat(self.fd).st_size == 0 or _is_torn_header(path, definition):
+                os.ftruncate(self.fd, 0)
+                os.write(self.fd, _header(definition).encode())
+                os.fsync(self.fd)
+        except OSError as e:
+            os.close(self.fd)
+            raise QhlInputError(f"cannot write results: {e.strerror}", source=str(path), key="out") from None
+        except BaseException:
+            os.close(self.fd)
+            raise
 
     def write(self, row: dict):
         os.write(self.fd, _row_line(row).encode())
@@ -409,10 +440,9 @@ def run_scan(definition: ScanDefinition, out, *, scheduler: str | None = None, w
         if workers or scheduler:
             client, local = _connect(scheduler, workers, processes, connect_timeout)
             used = len(client.scheduler_info().get("workers", {}))
-        _create_results(path, definition)
-        appender = _Appender(path)                    # holds an exclusive lock on the file
+        appender = _Appender(path, definition)        # lock first, then (under it) the header
         try:
-            done = _check_results(path, definition)   # again, under the lock
+            done = _check_results(path, definition, repair=True)   # again, under the lock
             pending = [t for t in definition.tasks if t.task_id not in done]
             skipped = len(definition.tasks) - len(pending)
             if stop_after is not None:

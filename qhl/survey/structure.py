@@ -29,7 +29,7 @@ from importlib import resources
 
 import numpy as np
 
-from ..spins.cluster import Cluster, Experiment, Spin
+from ..spins.cluster import MAX_COORDINATE_ANGSTROM, Cluster, Experiment, Spin
 from ..spins.cluster_file import load_cluster, read_xyz_atoms
 from ..base.errors import QhlInputError
 from ..spins.nuclei import larmor_frequency_hz, nucleus
@@ -106,8 +106,9 @@ def nuclei_from_atoms(elements, positions, isotopes=("1H",), source="<atoms>", n
         raise QhlInputError(f"no nuclei of isotope {', '.join(by_element.values())} "
                             f"(found elements: {', '.join(sorted(set(elements))) or 'none'})",
                             source=source, key="isotope")
-    if not np.all(np.isfinite(pos[keep])):
-        raise QhlInputError("coordinates must be finite", source=source)
+    if not np.all(np.isfinite(pos[keep])) or np.max(np.abs(pos[keep])) > MAX_COORDINATE_ANGSTROM:
+        raise QhlInputError(f"coordinates must be finite with |value| <= {MAX_COORDINATE_ANGSTROM:g} angstrom",
+                            source=source)
     counters, labels, isos = {}, [], []
     for i in keep:
         e = elements[i]
@@ -117,18 +118,44 @@ def nuclei_from_atoms(elements, positions, isotopes=("1H",), source="<atoms>", n
     return Nuclei(tuple(labels), tuple(isos), pos[keep].copy(), source, name)
 
 
+MAX_STRUCTURE_BYTES = 256 * 2**20   # PDB/mmCIF files above 256 MiB are refused before parsing
+
+
+def _check_text_file(path: Path) -> None:
+    """Refuse an empty, oversized or non-UTF-8 file before the structure library sees it."""
+    src = str(path)
+    size = path.stat().st_size
+    if size == 0:
+        raise QhlInputError("empty file: expected PDB or mmCIF records", source=src)
+    if size > MAX_STRUCTURE_BYTES:
+        raise QhlInputError(f"file of {size:,} bytes; expected at most {MAX_STRUCTURE_BYTES:,}", source=src)
+    data = path.read_bytes()
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as e:
+        line = data[:e.start].count(b"\n") + 1
+        raise QhlInputError(f"line {line}: byte {data[e.start]:#04x} is not UTF-8 text", source=src) from None
+    if not text.strip():
+        raise QhlInputError("empty file: expected PDB or mmCIF records", source=src)
+
+
 def _read_gemmi_atoms(path: Path):
     import gemmi
 
     src = str(path)
+    _check_text_file(path)
     try:
         st = gemmi.read_structure(src)
-    except (RuntimeError, ValueError) as e:
-        raise QhlInputError(f"cannot read structure: {str(e).splitlines()[0]}", source=src) from None
-    if len(st) == 0:
-        raise QhlInputError("no model in the structure", source=src)
+        if len(st) == 0:
+            raise QhlInputError("no model in the structure", source=src)
+        model = st[0]
+    except QhlInputError:
+        raise
+    except (Exception, MemoryError) as e:       # the library's own errors, whatever their type
+        reason = str(e).splitlines()[0] if str(e).strip() else type(e).__name__
+        raise QhlInputError(f"cannot read structure: {reason[:200]}", source=src) from None
     elements, positions = [], []
-    for chain in st[0]:
+    for chain in model:
         for residue in chain:
             # first alternative conformation only (atoms without altloc, or the residue's first letter);
             # gemmi's own remover also merges atoms sharing a name, which some writers produce
@@ -171,7 +198,7 @@ def read_structure(path, isotopes=("1H",)) -> Nuclei:
         else:
             raise QhlInputError(f"unknown structure format '{suffix}': expected .pdb, .cif or .xyz", source=src)
     except OSError as e:
-        raise QhlInputError(f"cannot read file: {e.strerror}", source=src) from None
+        raise QhlInputError(f"cannot read file: {e.strerror or type(e).__name__}", source=src) from None
     stem = re.sub(r"[^A-Za-z0-9_]+", "_", path.stem) or "structure"
     return nuclei_from_atoms(elements, positions, isotopes, source=src, name=stem)
 
@@ -210,7 +237,8 @@ def invented_offsets_hz(nuclei: Nuclei, spread_ppm: float, field_tesla: float = 
 
 
 def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None = None,
-                 field_tesla: float = 9.4, experiments=(DEFAULT_EXPERIMENT,), offsets_hz=None) -> list:
+                 field_tesla: float = 9.4, experiments=(DEFAULT_EXPERIMENT,), offsets_hz=None,
+                 observe: str | None = None) -> list:
     """Cut clusters of `size` nuclei around `centres` centres (see the module docstring).
 
     Args:
@@ -221,6 +249,8 @@ def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None =
         field_tesla: static field of the written clusters (along z of the structure's frame).
         experiments: experiments attached to every cluster (default one FID).
         offsets_hz: optional offset per nucleus (e.g. invented_offsets_hz); default all zero.
+        observe: the observed isotope (default: that of the first nucleus); a cluster without a
+            spin of it observes its first spin's isotope.
 
     Returns:
         list of Cluster, named <structure>-<centre label>-n<spins>, spins nearest first.
@@ -243,7 +273,7 @@ def cut_clusters(nuclei: Nuclei, size: int, centres: int, radius: float | None =
     offsets = np.zeros(n) if offsets_hz is None else np.asarray(offsets_hz, float).ravel()
     if offsets.shape != (n,) or not np.all(np.isfinite(offsets)):
         raise QhlInputError(f"expected {n} finite offsets", source=src, key="offsets_hz")
-    observe = nuclei.isotopes[0]
+    observe = nuclei.isotopes[0] if observe is None else nucleus(observe).symbol
     clusters, seen = [], set()
     for c in choose_centres(pos, centres):
         dist = np.linalg.norm(pos - pos[c], axis=1)

@@ -1,0 +1,101 @@
+"""Command-line abuse: out-of-range options, Ctrl-C at start-up, warnings before errors, cut's observe.
+
+Convention (common practice for this project): bad input prints one line `qhl: error: ...`
+naming the option, the value and the allowed range, and exits with status 2.
+"""
+
+import warnings
+
+import numpy as np
+import pytest
+
+import qhl.cli as cli
+from qhl import QhlInputError, load_cluster
+from qhl.cli import main
+from qhl.survey.structure import demo_structure_path
+
+
+def _error_line(capsys, argv):
+    with pytest.raises(SystemExit) as e:
+        main(argv)
+    err = capsys.readouterr().err
+    assert e.value.code == 2 and err.count("\n") == 1 and err.startswith("qhl: error: ")
+    return err
+
+
+@pytest.mark.parametrize("argv,pattern", [
+    (["check", "--time", "1e-4", "--steps", "1", "--shots", "10", "--seed", "-1"], r"--seed: expected an integer in \[0, "),
+    (["learn", "--seed", "-1"], r"--seed: expected an integer in \[0, "),
+    (["check", "--time", "1e-4", "--steps", "1", "--shots", "1e20"], r"--shots: .*\[1, 100,000,000\], got '1e20'"),
+    (["learn", "--gradients", "emulated", "--shots", "1e20"], r"--shots: .*\[1, 100,000,000\]"),
+    (["budget", "--precision", "1e-320"], r"--precision: expected a number in \[1e-09, 1\)"),
+    (["budget", "--time", "1e300"], r"--time: expected a number in \(0, 1000\], got '1e300'"),
+    (["check", "--time", "1e300", "--steps", "1", "--shots", "1"], r"--time: .*\(0, 1000\]"),
+    (["circuits", "--time", "1e300"], r"--time: .*\(0, 1000\]"),
+    (["circuits", "--time", "1e-4", "--steps", "1e11"], r"--steps: expected an integer in \[1, 1,000,000\]"),
+    (["check", "--time", "1e-4", "--steps", "100000000000", "--shots", "1"], r"--steps: .*\[1, 1,000,000\]"),
+    (["scan", "x.toml", "--out", "r.csv", "--dipolar-scale", "1e-5:1e-4:100000000"],
+     r"--dipolar-scale: expected A:B:N with N an integer in \[1, 10,000\]"),
+    (["budget", "--sweep-time", "1e-4:1e-3:1000000"], r"--sweep-time: .*\[1, 1,000\]"),
+    (["fisher", "--noise", "nan"], r"--noise: expected a number in \[1e-15, 1000\]"),
+    (["cut", "x.pdb", "--size", "2", "--centres", "1", "--out", "o", "--field", "1e9"], r"--field: .*\(0, 100\]"),
+    (["cut", "x.pdb", "--size", "100000", "--centres", "1", "--out", "o"], r"--size: .*\[2, 1,000\]"),
+    (["scan", "x.toml", "--out", "r.csv", "--dipolar-scale", "1", "--points", "1e9"], r"--points: .*1,048,576"),
+])
+def test_option_out_of_range_is_one_line(capsys, argv, pattern):
+    import re
+    assert re.search(pattern, _error_line(capsys, argv))
+
+
+def test_integers_may_be_written_in_float_notation(capsys, tmp_path):
+    assert cli.common.SHOTS("1e6") == 10**6 and cli.common.SEED("0") == 0
+    assert cli.common.STEPS("12") == 12
+
+
+def test_ctrl_c_during_start_up_prints_no_traceback(capsys, monkeypatch):
+    def interrupted():
+        raise KeyboardInterrupt
+    monkeypatch.setattr(cli, "build_parser", interrupted)
+    assert main(["signal"]) == 130
+    assert capsys.readouterr().err == "qhl: interrupted\n"
+
+
+def test_warnings_do_not_precede_a_one_line_error(capsys, monkeypatch):
+    import qhl.cli.cmd_signal as cmd_signal
+
+    def warn_then_refuse(args):
+        np.log(np.zeros(1))                      # RuntimeWarning: divide by zero
+        raise QhlInputError("refused", key="cluster")
+    monkeypatch.setattr(cmd_signal, "cluster_from_args", warn_then_refuse)
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        assert main(["signal"]) == 2
+    assert capsys.readouterr().err == "qhl: error: cluster: refused\n"
+
+
+def test_cut_observes_the_first_isotope_given(tmp_path, capsys):
+    # the demo structure lists a carbon before any proton; --isotope 1H first means 1H is observed
+    assert main(["cut", str(demo_structure_path()), "--isotope", "1H", "--isotope", "13C", "--size", "4",
+                 "--centres", "3", "--out", str(tmp_path)]) == 0
+    files = sorted(tmp_path.glob("*.toml"))
+    assert files and all(load_cluster(f).observe == "1H" for f in files if "H" in f.read_text())
+    assert all('observe = "1H"' in f.read_text() for f in files if 'isotope = "1H"' in f.read_text())
+    assert main(["cut", str(demo_structure_path()), "--isotope", "13C", "--isotope", "1H", "--size", "4",
+                 "--centres", "3", "--out", str(tmp_path / "c")]) == 0
+    assert all(load_cluster(f).observe == "13C" for f in (tmp_path / "c").glob("*.toml"))
+
+
+@pytest.mark.parametrize("command", ["fisher", "learn"])
+def test_missing_noise_names_the_option(tmp_path, capsys, command):
+    from pathlib import Path
+    demo = (Path(cli.__file__).parents[1] / "data" / "demo_cluster.toml").read_text()
+    p = tmp_path / "quiet.toml"
+    p.write_text(demo.replace("noise = 1.0e-3\n", ""))
+    assert main([command, str(p)]) == 2
+    err = capsys.readouterr().err
+    assert "--noise" in err and err.count("\n") == 1
+
+
+def test_integer_options_with_hundreds_of_digits(capsys):
+    assert "--seed: expected an integer" in _error_line(capsys, ["learn", "--seed", "9" * 400])
+    assert "--shots: expected an integer" in _error_line(capsys, ["learn", "--shots", "9" * 5000])
