@@ -7,7 +7,7 @@ sectors, eigenbases or divided differences.
 import numpy as np
 import scipy.linalg as sla
 
-from qhl.cluster import Cluster, Experiment, Pair, Spin
+from qhl.spins.cluster import Cluster, Experiment, Pair, Spin
 
 
 def random_cluster(rng, n, hetero=False, experiments=None, with_j=True):

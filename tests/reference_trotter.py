@@ -9,9 +9,9 @@ The gradient differentiates each factor with the Frechet derivative of the matri
 import numpy as np
 import scipy.linalg as sla
 
-from qhl.cluster import Cluster, Experiment, Pair, Spin
-from qhl.model import build_model
-from qhl.trotter import trotter_terms, trotter_unitary
+from qhl.spins.cluster import Cluster, Experiment, Pair, Spin
+from qhl.spins.model import build_model
+from qhl.circuits.trotter import trotter_terms, trotter_unitary
 
 
 def small_cluster(hetero=False, n=3):
