@@ -171,3 +171,42 @@ def test_bad_input():
 def test_report_from_fisher_all_zero_matrix():
     rep = report_from_fisher(["a", "b"], [1.0, 2.0], np.zeros((2, 2)))
     assert np.all(np.isinf(rep.crb_hz)) and len(rep.unlearnable) == 2
+
+
+def _rotation(angle):
+    c, s = np.cos(angle), np.sin(angle)
+    return np.array([[c, -s, 0.0], [s, c, 0.0], [0.0, 0.0, 1.0]])
+
+
+def test_weak_but_learnable_direction_keeps_finite_bound():
+    """A direction with a 0.44 Hz bound next to a 1e-6 Hz one (eigenvalue ratio 5e-12) is learnable.
+
+    F = R diag(1e12, 5.2, 0) R^T with R a rotation by 1e-5 rad between the first two parameters;
+    the third has no effect. Expected bounds from numpy.linalg.inv of the 2 x 2 learnable block
+    (Cramer 1946; Rao 1945): a fixed relative cut-off of 1e-10 marked all three infinite.
+    """
+    r = _rotation(1e-5)
+    F = r @ np.diag([1e12, 5.2, 0.0]) @ r.T
+    rep = report_from_fisher(["a", "b", "c"], [1000.0, 50.0, 20.0], F)
+    ref = np.sqrt(np.diag(np.linalg.inv(F[:2, :2])))
+    np.testing.assert_allclose(rep.crb_hz[:2], ref, rtol=1e-6)
+    assert rep.crb_hz[1] == pytest.approx(1 / np.sqrt(5.2), rel=1e-6)     # 0.4385 Hz
+    assert np.isinf(rep.crb_hz[2])
+    assert rep.unlearnable_mask.tolist() == [True, False, False]
+    assert [u["combination"] for u in rep.unlearnable] == [{"c": pytest.approx(1.0)}]
+
+
+def test_direction_with_bound_above_limit_is_unlearnable():
+    """Bound 1e8 Hz on parameters of ~100 Hz exceeds 1e3 x the largest value (1e5 Hz): unlearnable."""
+    rep = report_from_fisher(["a", "b"], [100.0, 50.0], np.diag([1e4, 1e-16]))
+    assert rep.bound_limit_hz == pytest.approx(1e5)
+    assert np.isinf(rep.crb_hz[1]) and rep.crb_hz[0] == pytest.approx(1e-2)
+    assert "1e+05 Hz" in rep.rule
+
+
+def test_cli_fisher_states_cutoff_and_relative_error(capsys):
+    assert main(["fisher"]) == 0
+    out = capsys.readouterr().out
+    rep = fisher_report(demo_cluster())
+    rel = np.sqrt(np.sum(rep.crb_hz ** 2)) / np.linalg.norm(rep.values_hz)
+    assert f"{rel:.3e}" in out and "cut-off:" in out and "Hz" in out.split("cut-off:")[1]

@@ -23,6 +23,9 @@ def run(args):
     from ..learning.fisher_report import describe_combination, fisher_report
     cluster = cluster_from_args(args)
     rep = fisher_report(cluster, free=args.free, sigma=args.noise)
+    if rep.hidden:
+        print(f"qhl: note: left out of the default free set (the signal cannot see them): "
+              f"{', '.join(rep.hidden)}", file=sys.stderr)
     for u in rep.unlearnable:
         combo = describe_combination(u["combination"])
         print(f"qhl: warning: singular Fisher matrix: {combo} is unlearnable "
@@ -47,4 +50,8 @@ def run(args):
         flag = "  UNLEARNABLE" if rep.unlearnable_mask[k] else ""
         comps = " ".join(f"{v[j]:+.2f}*{rep.names[j]}" for j in top)
         print(f"  {lam:>11.4g}  {bound:>10.4g} Hz  {comps}{flag}")
+    print()
+    print(f"Cramer-Rao-limited relative error sqrt(sum CRB^2)/||h|| = {rep.crb_relative_error:.3e} "
+          f"({100 * rep.crb_relative_error:.3g}%)")
+    print(f"cut-off: {rep.rule}")
     return 0

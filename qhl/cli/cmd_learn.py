@@ -50,10 +50,22 @@ def run(args):
     report = learn(cluster, free=args.free, data_path=args.data, sigma=args.noise, seed=args.seed,
                    start_offset=args.start_offset, method=args.method, gradients=args.gradients,
                    shots=args.shots, max_iter=args.max_iter, progress=None if args.json else _progress)
-    if args.plot:
+    if args.plot and not report.fit.diverged:
         from ..learning.fit_plots import plot_fit
         plot_fit(report, args.plot)
     fit = report.fit
+    if report.model.hidden:
+        print(f"qhl: note: left out of the default free set (the signal cannot see them): "
+              f"{', '.join(report.model.hidden)}", file=sys.stderr)
+    if report.fixed_unlearnable:
+        print(f"qhl: note: kept fixed at the cluster's values (the signal cannot see them): "
+              f"{', '.join(report.fixed_unlearnable)}", file=sys.stderr)
+    if fit.diverged:
+        print(f"qhl: error: {fit.message}; no result (try a closer --start-offset, fewer --free "
+              f"parameters or --method gn)", file=sys.stderr)
+        if args.json:
+            print_json(report.to_json())
+        return 1
     if not fit.converged:
         print(f"qhl: warning: {fit.message}", file=sys.stderr)
     for u in fit.unlearnable:

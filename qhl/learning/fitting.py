@@ -21,18 +21,20 @@ Optimisers:
 For 'cg' and 'lbfgs' each parameter is measured in units of 1/sqrt(F_nn) at the start (diagonal
 preconditioning, common practice): offsets and couplings differ in scale by orders of magnitude.
 
-Every optimiser keeps the lowest-cost point it evaluated and says whether it converged. With a
-noisy provider 'gn' is the method to use: its steps are accepted only when the cost falls, and it
+Every optimiser keeps the lowest-cost point it evaluated and says whether it converged. A fit
+that diverges (a non-finite value or cost, a parameter farther than DIVERGENCE_FACTOR times the
+largest |starting value| from its start, or a cost rising over DIVERGENCE_RISES iterations in a
+row) stops at once with `diverged` set: its values are not a result. With a noisy provider 'gn' is the method to use: its steps are accepted only when the cost falls, and it
 stops when the cost stalls at the noise floor of the gradient estimates.
 """
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import scipy.optimize as sopt
 
 from ..base.errors import QhlInputError
-from .fisher_report import report_from_fisher
+from .fisher_report import crb_relative_error, report_from_fisher
 from ..exact.likelihood import Dataset
 from ..exact.provider import ExactGradientProvider, GradientProvider
 from .methods import METHODS
@@ -40,7 +42,7 @@ from .methods import METHODS
 __all__ = ["GradientProvider", "ExactGradientProvider", "CostPoint", "FitResult", "evaluate_cost",
            "fit", "perturbed_start", "emulated_gradient_provider", "relative_error", "METHODS",
            "LearnReport", "learn",
-           "DECREMENT_TOL", "NOISY_STALL_TOL", "NOISY_PATIENCE"]
+           "DECREMENT_TOL", "NOISY_STALL_TOL", "NOISY_PATIENCE", "DIVERGENCE_FACTOR", "DIVERGENCE_RISES"]
 
 
 # Converged when the full Gauss-Newton step would lower the cost by less than this many nats:
@@ -50,6 +52,15 @@ DECREMENT_TOL = 1e-6
 # that many iterations (common practice).
 NOISY_STALL_TOL = 1e-2
 NOISY_PATIENCE = 3
+# Divergence: a parameter this many times the largest |starting value| away from its start
+# (no NMR parameter moves by 1e4 times the cluster's own scale in a fit; common practice), or
+# the recorded cost rising this many iterations in a row.
+DIVERGENCE_FACTOR = 1e4
+DIVERGENCE_RISES = 5
+
+
+class _Diverged(Exception):
+    """Raised inside the loop to stop a diverging fit (caught in `fit`)."""
 
 
 def emulated_gradient_provider(model, experiments, shots, seed=0, **options):
@@ -112,6 +123,7 @@ class FitResult:
         cost: the cost there (nats).
         iterations: optimiser iterations.
         converged: whether the stopping test was met (else `message` says why not).
+        diverged: the fit ran away (module docstring) and stopped; `values_hz` is no result.
         history: per iteration {'iteration', 'cost', 'gradient_norm'} (gradient norm in the
             preconditioned units sqrt(g^T diag(F)^-1 g), dimensionless).
         unlearnable: [{'eigenvalue', 'combination': {name: weight}}] combinations the data do not
@@ -130,6 +142,7 @@ class FitResult:
     history: list = field(default_factory=list)
     unlearnable: list = field(default_factory=list)
     evaluations: int = 0
+    diverged: bool = False
 
 
 def relative_error(fitted_hz, true_hz) -> float:
@@ -149,10 +162,15 @@ def perturbed_start(values_hz, relative: float, seed: int = 0) -> np.ndarray:
 def _scales(fisher):
     """1/sqrt(F_nn), with parameters the data do not touch given the median scale."""
     d = np.diag(fisher).copy()
-    ok = d > 1e-300
+    ok = d > max(1e-300, ZERO_DIAGONAL_RTOL * float(np.max(d, initial=0.0)))
     fill = np.median(d[ok]) if np.any(ok) else 1.0
     d[~ok] = fill
     return 1.0 / np.sqrt(d)
+
+
+# A diagonal Fisher entry below this times the largest one is a parameter the data do not touch:
+# scaling by 1/sqrt(F_nn) would turn rounding noise into an enormous step.
+ZERO_DIAGONAL_RTOL = 1e-14
 
 
 def _gradient_norm(point):
@@ -175,16 +193,14 @@ def _levenberg_marquardt(evaluate, start, max_iter, tol, record, noisy=False):
             return point, k - 1, True, (f"converged to the noise floor of the gradients: the cost fell by less "
                                         f"than {NOISY_STALL_TOL:g} nats over {NOISY_PATIENCE} iterations")
         g, F = point.gradient, point.fisher
-        d = np.diag(F).copy()
-        d[d <= 1e-300] = 1.0
-        scale = 1.0 / np.sqrt(d)
+        scale = _scales(F)
         # The full Gauss-Newton step in scaled variables; its predicted decrease is the test.
         fs, gs = F * np.outer(scale, scale), g * scale
         newton = np.linalg.lstsq(fs, -gs, rcond=1e-12)[0]
         decrement = -0.5 * float(gs @ newton)
         if decrement < tol:
             return point, k - 1, True, f"converged: predicted decrease {decrement:.2e} nats"
-        step = np.linalg.lstsq(fs + mu * np.eye(len(d)), -gs, rcond=1e-12)[0] * scale
+        step = np.linalg.lstsq(fs + mu * np.eye(len(scale)), -gs, rcond=1e-12)[0] * scale
         predicted = -float(g @ step) - 0.5 * float(step @ F @ step)
         trial = evaluate(point.values_hz + step)
         gain = (point.cost - trial.cost) / predicted if predicted > 0 else -1.0
@@ -230,7 +246,7 @@ def _scipy(evaluate, start, method, max_iter, record):
 
 
 def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "gn",
-        max_iter: int = 50, tol: float = DECREMENT_TOL, rcond: float = 1e-10, progress=None) -> FitResult:
+        max_iter: int = 50, tol: float = DECREMENT_TOL, invisible=None, progress=None) -> FitResult:
     """Maximum-likelihood fit of the provider's free parameters to `dataset`.
 
     Args:
@@ -241,7 +257,8 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
         max_iter: iteration limit; reaching it gives converged=False and keeps the best point.
         tol: 'gn' stops when the predicted decrease of a full step is below tol nats; 'cg' and
             'lbfgs' use scipy's own tests (gtol 1e-5 in the preconditioned variables).
-        rcond: relative eigenvalue below which a Fisher direction counts as unlearnable.
+        invisible: optional (P, k) combinations the model says the signal cannot see
+            (qhl.spins.identifiability), marked unlearnable in the result.
         progress: optional callable given each history entry as it is recorded.
 
     Returns:
@@ -271,12 +288,23 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
     _check_dataset(dataset)
     best = {}
     count = [0]
+    reach = DIVERGENCE_FACTOR * max(float(np.max(np.abs(start), initial=0.0)), 1.0)
 
     def evaluate(values):
+        values = np.asarray(values, float)
+        if not np.all(np.isfinite(values)):
+            raise _Diverged("a parameter became non-finite")
+        far = np.abs(values - start) > reach
+        if np.any(far):
+            k = int(np.argmax(np.abs(values - start)))
+            raise _Diverged(f"{names[k]} reached {values[k]:.3g} Hz, more than {DIVERGENCE_FACTOR:.0e} times "
+                            f"the largest starting value from its start")
         p = evaluate_cost(provider, dataset, values)
         count[0] += 1
-        if not np.isfinite(p.cost):
-            raise QhlInputError("the cost is not finite at the current point", key="data")
+        if not np.isfinite(p.cost) or not np.all(np.isfinite(p.gradient)):
+            if not best:
+                raise QhlInputError("the cost is not finite at the starting point", key="data")
+            raise _Diverged("the cost became non-finite")
         if "point" not in best or p.cost < best["point"].cost:
             best["point"] = p
         return p
@@ -287,18 +315,27 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
         history.append({"iteration": k, "cost": point.cost, "gradient_norm": _gradient_norm(point)})
         if progress is not None:
             progress(history[-1])
+        costs = [h["cost"] for h in history[-DIVERGENCE_RISES - 1:]]
+        if len(costs) > DIVERGENCE_RISES and all(b > a for a, b in zip(costs, costs[1:])):
+            raise _Diverged(f"the cost rose {DIVERGENCE_RISES} iterations in a row")
 
-    if method == "gn":
-        _, iterations, converged, message = _levenberg_marquardt(evaluate, start, int(max_iter), tol, record,
-                                                                 bool(getattr(provider, "noisy", False)))
-    else:
-        converged, iterations, message = _scipy(evaluate, start, method, int(max_iter), record)
-        if not converged:
-            message = f"did not converge in {iterations} iterations ({message}); best point kept"
+    diverged = False
+    try:
+        if method == "gn":
+            _, iterations, converged, message = _levenberg_marquardt(evaluate, start, int(max_iter), tol, record,
+                                                                     bool(getattr(provider, "noisy", False)))
+        else:
+            converged, iterations, message = _scipy(evaluate, start, method, int(max_iter), record)
+            if not converged:
+                message = f"did not converge in {iterations} iterations ({message}); best point kept"
+    except _Diverged as e:
+        diverged, converged = True, False
+        iterations = max(len(history) - 1, 0)
+        message = f"the fit diverged after {iterations} iterations: {e}"
     point = best["point"]
-    report = report_from_fisher(names, point.values_hz, point.fisher, rcond)
+    report = report_from_fisher(names, point.values_hz, point.fisher, invisible)
     return FitResult(names, point.values_hz, report.crb_hz, point.fisher, point.cost, iterations, converged,
-                     message, method, history, report.unlearnable, count[0])
+                     message, method, history, report.unlearnable, count[0], diverged)
 
 
 @dataclass
@@ -313,6 +350,8 @@ class LearnReport:
         true_hz: the true values (synthetic data) or None (measured data).
         fitted_signals: {experiment name: S(t) at the fit, at the data's times}.
         gradients: 'exact' or 'emulated'.
+        fixed_unlearnable: explicitly freed parameters the signal cannot see
+            (qhl.spins.identifiability), kept fixed at the cluster's values instead of fitted.
     """
 
     fit: FitResult
@@ -322,6 +361,7 @@ class LearnReport:
     true_hz: np.ndarray | None
     fitted_signals: dict
     gradients: str = "exact"
+    fixed_unlearnable: tuple = ()
 
     @property
     def relative_error(self):
@@ -332,7 +372,7 @@ class LearnReport:
     def crb_relative_error(self) -> float:
         """The Cramer-Rao-limited relative error sqrt(tr F^-1) / ||h||, at the fit."""
         ref = self.fit.values_hz if self.true_hz is None else self.true_hz
-        return float(np.sqrt(np.sum(self.fit.stderr_hz ** 2)) / np.linalg.norm(ref))
+        return crb_relative_error(self.fit.stderr_hz, ref)
 
     def to_json(self) -> dict:
         f = self.fit
@@ -343,7 +383,9 @@ class LearnReport:
         return {"parameters": params, "iterations": f.iterations, "converged": f.converged,
                 "message": f.message, "method": f.method, "gradients": self.gradients,
                 "history": f.history, "cost": f.cost, "relative_error": self.relative_error,
-                "crb_relative_error": self.crb_relative_error, "unlearnable": f.unlearnable}
+                "crb_relative_error": self.crb_relative_error, "unlearnable": f.unlearnable,
+                "diverged": f.diverged, "fixed_unlearnable": list(self.fixed_unlearnable),
+                "hidden": list(self.model.hidden)}
 
 
 def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, seed: int = 0,
@@ -367,6 +409,10 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
     Returns:
         LearnReport.
 
+    Parameters the signal cannot see (qhl.spins.identifiability) are not fitted: the default
+    free set leaves them out (model.hidden), explicitly freed ones stay fixed at the cluster's
+    values (`fixed_unlearnable`).
+
     Raises:
         QhlInputError: bad data file, sigma <= 0, no experiments, emulator unavailable.
     """
@@ -383,9 +429,14 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
     if not cluster.experiments:
         raise QhlInputError("the cluster defines no experiments: add an [[experiment]]", source=cluster.source,
                             key="experiment")
+    from ..spins.identifiability import unidentifiable_parameters
     model = build_model(cluster, free=free)
+    fixed = tuple(unidentifiable_parameters(model))
+    if fixed:
+        model = replace(model, free=tuple(f for f in model.free if f not in fixed))
     if not model.free:
-        raise QhlInputError("no free parameters to fit", key="free")
+        raise QhlInputError("no free parameters to fit" + (f" (the signal cannot see {', '.join(fixed)})"
+                                                           if fixed else ""), key="free")
     engine = ExactEngine(model)
     truth = model.free_values_hz
     if data_path is None:
@@ -406,4 +457,4 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
         provider = ExactGradientProvider(engine, experiments)
     result = fit(provider, dataset, start, method=method, max_iter=max_iter, progress=progress)
     fitted = {ex.name: engine.signal(ex, dataset.signals[ex.name][0], result.values_hz) for ex in experiments}
-    return LearnReport(result, model, dataset, start, true_hz, fitted, gradients)
+    return LearnReport(result, model, dataset, start, true_hz, fitted, gradients, fixed)

@@ -12,6 +12,11 @@ Generators (Levitt, "Spin Dynamics", 2nd ed., 2008):
     j:i-j homo         G = I_i.I_j = (XX + YY + ZZ) / 4
     j:i-j hetero       G = Iz_i Iz_j = ZZ / 4
 Dipolar values come from qhl.spins.dipolar unless a pair gives `dipolar_hz`.
+
+The default free set (DEFAULT_FREE) leaves out parameters the observed signal cannot see
+(qhl.spins.identifiability: generators that, alone or combined, commute with every term of H,
+with rho0 and with O, e.g. the offset of a lone spin of an unobserved isotope); they are listed
+in `HamiltonianModel.hidden`.
 """
 
 from dataclasses import dataclass, replace
@@ -72,6 +77,8 @@ class HamiltonianModel:
         observed: tuple of bools, spins of the observed isotope.
         parameters: all parameters, fixed and free.
         free: names of the free parameters, in parameter order.
+        hidden: parameters left out of the default free set because the signal cannot see them
+            (qhl.spins.identifiability); empty for an explicit free set.
     """
 
     labels: tuple
@@ -79,6 +86,7 @@ class HamiltonianModel:
     observed: tuple
     parameters: tuple
     free: tuple
+    hidden: tuple = ()
 
     @property
     def n_spins(self) -> int:
@@ -116,7 +124,7 @@ class HamiltonianModel:
         for pat in patterns:
             if not any(fnmatchcase(p.name, pat) for p in self.parameters) and pat not in DEFAULT_FREE:
                 raise QhlInputError(f"no parameter matches '{pat}'", key="free")
-        return replace(self, free=tuple(chosen))
+        return replace(self, free=tuple(chosen), hidden=())
 
     def with_values(self, values_hz, free_only: bool = True) -> "HamiltonianModel":
         """A copy with new values for the free parameters (or all, with free_only=False)."""
@@ -184,7 +192,9 @@ def build_model(cluster: Cluster, free=DEFAULT_FREE, orientation=None) -> Hamilt
     (its value from geometry, or the pair's `dipolar_hz`); pairs with `j_hz` get a J term.
 
     Args:
-        free: glob patterns of free parameter names (default offsets and dipolar couplings).
+        free: glob patterns of free parameter names. The default (DEFAULT_FREE, offsets and dipolar
+            couplings) leaves out the parameters the signal cannot see and lists them in
+            `hidden`; naming patterns explicitly keeps every match.
         orientation: optional field direction overriding the cluster's (for powder averages).
     """
     n = cluster.n_spins
@@ -220,4 +230,10 @@ def build_model(cluster: Cluster, free=DEFAULT_FREE, orientation=None) -> Hamilt
     model = HamiltonianModel(labels=labels, isotopes=isotopes, observed=observed,
                              parameters=tuple(params), free=())
     patterns = [free] if isinstance(free, str) else list(free)
-    return model.with_free(patterns) if patterns else model
+    model = model.with_free(patterns) if patterns else model
+    if tuple(patterns) == tuple(DEFAULT_FREE):
+        from .identifiability import unidentifiable_parameters
+        hidden = unidentifiable_parameters(model)
+        if hidden:
+            model = replace(model, free=tuple(f for f in model.free if f not in hidden), hidden=tuple(hidden))
+    return model
