@@ -240,7 +240,7 @@ class BudgetModel:
     @property
     def default_time_s(self):
         """The shortest experiment window among experiments that see every free parameter."""
-        full = [ex.t_max_s for x, ex in enumerate(self.experiments) if np.all(self.near.scales[x] > 0)]
+        full = [ex.t_max_s for x, ex in enumerate(self.experiments) if np.all(self.near.scales[x] != 0)]
         return float(min(full or [ex.t_max_s for ex in self.experiments]))
 
     # ------------------------------------------------------------------ fault-tolerant pieces
