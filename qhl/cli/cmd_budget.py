@@ -146,6 +146,8 @@ def _print_budget(b, bm):
         ("shots per full Hessian", None, nt["shots_per_hessian_bound"]),
         ("shots per Fisher matrix", nt["shots_per_fisher"], nt["shots_per_fisher_bound"]),
         (f"shots per learning run ({nt['iterations']} it.)", nt["shots_per_learning_run"], None),
+        (f"  with signals, {nt['learning_run']['method']} ({nt['learning_run']['evaluations']} eval.)",
+         nt["learning_run"]["shots_total"], None),
     ]
     print(f"{'near-term':<36}{'R^2 - mu^2':>16}{'bound R^2':>16}")
     for name, a, c in rows:

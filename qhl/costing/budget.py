@@ -20,7 +20,7 @@ from ..exact.engine import ExactEngine
 from ..base.errors import QhlInputError
 from ..spins.model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
-from . import family_variance, trotter_order4
+from . import family_variance, learning_run, trotter_order4
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
 from .near_term import near_term_model
 from .trotter_cost import ORDERS, empirical_trotter_steps, trotter_model
@@ -40,7 +40,7 @@ def all_assumptions(settings=None) -> dict:
     """Every constant and model choice used, with its source."""
     out = {}
     for mod in (shots, family_variance, amplitude_estimation, synthesis, trotter_order4, trotter_cost, fault_tolerant,
-                surface_code):
+                surface_code, learning_run):
         out.update(mod.ASSUMPTIONS)
     out["precision_unit"] = "eps is a standard error on dS/dh with h in units of unit_hz (default 1 kHz)"
     out["time_grids"] = "each experiment's time grid is rescaled to end at t (points kept)"
@@ -82,6 +82,7 @@ class BudgetSettings:
     cycle_time_s: float = 1e-6
     failure_budget: float = 0.01
     empirical_trotter: bool = True
+    learning_method: str = "gn"
     hessian_exact: bool = True
     circuit_variance_max_spins: int = 6
     circuit_variance_steps: int = 8
@@ -319,6 +320,10 @@ class BudgetModel:
             "shots_per_fisher_bound": math.ceil(grad["fisher_bound"]),
             "iterations": its,
             "shots_per_learning_run": its * math.ceil(grad["opt_exact"]),
+            "learning_run": learning_run.learning_run_cost(
+                learning_run.signal_shots(self.experiments, nt.kappa), math.ceil(grad["opt_exact"]),
+                math.ceil(grad["fisher_exact"]), s.iterations if iterations is None else iterations,
+                s.learning_method).to_json(),
             "strata": int(strata["strata"]),
             "per_parameter": {name: {"shots_exact": math.ceil(per_e[k] / eps**2), "shots_bound": math.ceil(per_b[k] / eps**2)}
                               for k, name in enumerate(nt.names)},
