@@ -170,3 +170,23 @@ def test_cli_writes_the_clifford_t_step_and_reports_t_depth(tmp_path, capsys):
     assert ft["depth"] >= ft["t_depth"] > 0
     assert d["surface_code"]["limited_by"] in ("reaction", "code cycles", "factories")
     assert d["surface_code"]["wall_time_s"] >= ft["t_depth"] * 1e-5   # at least one reaction time per T layer
+
+
+def test_order4_clifford_t_step_is_the_suzuki_step():
+    # Suzuki 1990 S4 from five S2 stages (one with negative duration); the Clifford+T step against
+    # the exact S4 step (qiskit Operator of the unsynthesised stages), within rotations x eps.
+    from qhl.costing.trotter_order4 import SUZUKI4_U as u
+    c = four_spins()
+    terms = trotter_terms(build_model(c), c.experiments[0], grouping="pairs")
+    tau, eps = 3e-6, 1e-5
+    exact = np.eye(16, dtype=complex)
+    for f in (u, u, 1 - 4 * u, u, u):
+        m = Operator(trotter_circuit(terms, abs(f) * tau, 1, 2)).data
+        exact = (m if f > 0 else m.conj().T) @ exact
+    ct = clifford_t_circuit(terms, 4, tau, eps)
+    u_ct = Operator(ct).data
+    phase = np.trace(exact.conj().T @ u_ct)
+    phase /= abs(phase)
+    n_rot = synthesised_step(terms, 4, tau, eps, marginal=False).rotations   # five stages' rotations
+    dist = np.linalg.norm(u_ct - phase * exact, 2)
+    assert 0 < dist <= n_rot * eps

@@ -261,7 +261,8 @@ def clifford_t_circuit(terms, order: int, tau: float, eps: float):
         stages = [(order, tau)]
     out = QuantumCircuit(terms.n_qubits, name=f"trotter{order}_clifford_t")
     for base, dur in stages:
-        one = _transpile_fixed(trotter_circuit(terms, dur, 1, base))
+        stage = trotter_circuit(terms, abs(dur), 1, base)
+        one = _transpile_fixed(stage if dur >= 0 else stage.inverse())   # S2(-x) = S2(x)^dag (symmetric)
         for inst in one.data:
             qs = [one.find_bit(q).index for q in inst.qubits]
             if _is_rotation(inst):
