@@ -8,7 +8,7 @@ import pytest
 from qhl.costing import BudgetModel, BudgetSettings
 from qhl.costing.shots import (gradient_shot_range, hoeffding_shots, optimal_allocation, optimal_allocation_shots,
                                two_valued_variance, uniform_allocation_shots, variance_shots)
-from qhl import demo_cluster
+from qhl import build_model, demo_cluster
 
 
 def test_hoeffding_reference_value():
@@ -64,10 +64,25 @@ def test_optimal_allocation_beats_uniform_and_reaches_eps():
     assert optimal_allocation_shots(flat, flat, eps) == pytest.approx(uniform_allocation_shots(flat, flat, eps))
 
 
-def test_hadamard_range_formula():
-    # +-2 t ||c||_1 single-shot values (Banchi and Crooks, Quantum 5, 386 (2021); vetted in the
-    # project's references), times 2 pi s (H = 2 pi h G), kappa and the unit.
-    assert gradient_shot_range(1e-4, 0.75, 1.0, 1.0, 1.0) == pytest.approx(2e-4 * 0.75 * 2 * math.pi)
+@pytest.mark.parametrize("scale", [1.0, -0.5])
+def test_range_is_that_of_the_compiled_hadamard_test(scale):
+    # The single-shot range of the compiled Hadamard-test family (qhl.circuits.gradient_circuits,
+    # its own weights, via qhl.costing.family_variance) against the range formula, for a positive
+    # and a negative dipolar scale (a range is a magnitude).
+    from qhl.costing.family_variance import component_circuit_variance
+    from qhl.spins.cluster import Cluster, Experiment, Spin
+    spins = (Spin("A", "1H", (0.0, 0.0, 0.0), -200.0), Spin("B", "1H", (1.9, 0.0, 0.3), 310.0),
+             Spin("C", "1H", (0.2, 2.0, 0.0), 90.0))
+    c = Cluster(9.4, "1H", spins, (), (Experiment("fid", 2e-4, 16, scale, 1e-3),), name="three")
+    model = build_model(c)
+    t = 1.5e-4
+    for name in ("dipolar:A-B", "offset:B"):
+        _, r_circ, _ = component_circuit_variance(model, c.experiments[0], name, t, 4, 2, 1e3)
+        l1 = float(np.sum(np.abs(model.parameter(name).generator.coeffs)))
+        s = scale if name.startswith("dipolar") else 1.0
+        r = gradient_shot_range(t, l1, s, float(sum(model.observed)), 1e3)
+        assert r > 0
+        assert r == pytest.approx(r_circ, rel=1e-9)
 
 
 @pytest.fixture(scope="module")
@@ -87,3 +102,23 @@ def test_exact_derivatives_lie_within_the_single_shot_range(demo_budget_model):
         t = ex.times_s[-1]
         _, _, h = nt.engine.hessian(ex, times=[t])
         assert np.all(np.abs(h[:, :, 0] * nt.unit_hz**2) <= nt.hessian_ranges(t)[x] * (1 + 1e-12) + 1e-15)
+
+
+def _four(scale):
+    from qhl.spins.cluster import Cluster, Experiment, Spin
+    spins = (Spin("A", "1H", (0.0, 0.0, 0.0), -350.0), Spin("B", "1H", (1.8, 0.1, 0.0), 120.0),
+             Spin("C", "1H", (0.4, 2.1, 0.5), 560.0), Spin("D", "1H", (2.1, 1.9, -1.1), -60.0))
+    return Cluster(9.4, "1H", spins, (), (Experiment("fid", 2e-4, 32, scale, 1e-3),), name="four")
+
+
+@pytest.mark.xfail(strict=True, reason="qhl/costing/near_term.py NearTermModel.worst_range_index takes argmax of "
+                                       "l1 * scales (signed); it needs np.abs(self.scales) (file of the budget rework)")
+def test_budget_ranges_do_not_depend_on_the_sign_of_the_dipolar_scale():
+    # A range is a magnitude (Banchi and Crooks 2021: +-2 t ||c||_1 |s|): the range-based counts and
+    # the worst component of s = -1 equal those of s = +1 (exact-variance counts may differ: H differs).
+    st = BudgetSettings(empirical_trotter=False, circuit_variance_max_spins=0, hessian_exact=False)
+    plus, minus = (BudgetModel(_four(s), settings=st).budget(2e-4, 0.01) for s in (1.0, -1.0))
+    for key in ("shots_per_component_bound", "shots_per_gradient_bound", "shots_per_hessian_entry_bound",
+                "component_range"):
+        assert minus.near_term[key] == pytest.approx(plus.near_term[key], rel=1e-12), key
+    assert minus.fault_tolerant["worst_component"] == plus.fault_tolerant["worst_component"]

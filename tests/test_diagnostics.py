@@ -9,7 +9,7 @@ from qiskit.quantum_info import SparsePauliOp
 from qhl import Cluster, Experiment, Spin, build_model, demo_cluster, ExactEngine
 from qhl.survey.diagnostics import (GOE_MEAN_R, POISSON_MEAN_R, diagnose, fractal_dimension_d2,
                              inverse_participation_ratio, mean_spacing_ratio, participation_ratio,
-                             spacing_ratios, symmetry_sector_levels)
+                             random_vector_d2, spacing_ratios, symmetry_sector_levels)
 
 
 def _cluster(offsets_hz, seed=3, n=6):
@@ -24,10 +24,34 @@ def _cluster(offsets_hz, seed=3, n=6):
     return Cluster(field_tesla=9.4, observe="1H", spins=spins)
 
 
-def test_reference_values():
-    # Atas, Bogomolny, Giraud, Roux, PRL 110, 084101 (2013): Poisson 2 ln 2 - 1, GOE 0.5307.
-    assert POISSON_MEAN_R == pytest.approx(0.38629, abs=1e-5)
-    assert GOE_MEAN_R == 0.5307
+def test_reference_values_from_the_ratio_distributions():
+    # Atas, Bogomolny, Giraud, Roux, PRL 110, 084101 (2013): for Poisson levels the ratio
+    # r~ = min/max has density 2/(1+r)^2 on [0, 1]; its mean, integrated here with scipy,
+    # is 2 ln 2 - 1. The GOE 3x3 surmise P(r) = (27/8)(r + r^2)/(1 + r + r^2)^(5/2) on [0, inf)
+    # gives <r~> = 4 - 2 sqrt 3 = 0.5359; large GOE matrices 0.5307, just below (same paper).
+    from scipy.integrate import quad
+    poisson = quad(lambda r: r * 2 / (1 + r) ** 2, 0, 1)[0]
+    assert POISSON_MEAN_R == pytest.approx(poisson, abs=1e-9)
+    surmise = lambda r: 27 / 8 * (r + r * r) / (1 + r + r * r) ** 2.5  # noqa: E731
+    goe_surmise = quad(lambda r: r * 2 * surmise(r), 0, 1)[0]   # min(r, 1/r): fold [1, inf) onto [0, 1]
+    assert goe_surmise == pytest.approx(4 - 2 * math.sqrt(3), abs=1e-9)
+    assert goe_surmise - 0.01 < GOE_MEAN_R < goe_surmise
+
+
+def test_random_vector_d2_against_sampled_vectors():
+    # D2 of random real unit vectors (numpy samples, 400 vectors per N) against ln((N+2)/3)/ln N
+    # (REFERENCES.md, derived and checked numerically): 0.74 at N = 70 (so D2 < 1 at one N alone
+    # is no sign of multifractality). Tolerance 0.01 in D2 is > 5 standard errors.
+    rng = np.random.default_rng(4)
+    for n in (20, 70, 300):
+        ipr = inverse_participation_ratio(rng.normal(size=(n, 400)))
+        assert float(random_vector_d2(n)) == pytest.approx(-math.log(np.mean(ipr)) / math.log(n), abs=0.01)
+    assert float(random_vector_d2(70)) == pytest.approx(0.74, abs=0.01)
+    assert float(random_vector_d2(70)) == pytest.approx(1 - math.log(3) / math.log(70), abs=3 / 70)
+    d = diagnose(_cluster(np.linspace(-500, 500, 6)), 1.0)
+    s = d.summary()
+    assert d.d2_random.shape == d.d2.shape
+    assert 0 < s["mean_d2_random"] < 1 and np.isfinite(s["mean_d2"])
 
 
 def test_goe_mean_ratio():

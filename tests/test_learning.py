@@ -71,16 +71,18 @@ def test_provider_interface_is_abstract():
         GradientProvider()
 
 
-def test_emulated_gradients_give_clear_error_until_emulator_exists():
-    try:
-        import qhl.emulation as em  # noqa: F401
-        if hasattr(em, "gradient_provider"):
-            pytest.skip("qhl.emulation provides gradient_provider: emulated fits are tested there")
-    except ImportError:
-        pass
+def test_emulated_provider_wraps_the_emulator():
+    # qhl.emulation.gradient_provider exists: the learning stage's wrapper hands it through
+    # (emulated fits themselves are tested in tests/test_emulator.py).
+    from qhl.emulation import EmulatedGradientProvider
     c = three_spin_cluster()
-    with pytest.raises(QhlInputError, match="emulator"):
-        emulated_gradient_provider(build_model(c), c.experiments, shots=100)
+    model = build_model(c)
+    prov = emulated_gradient_provider(model, c.experiments, shots=100, steps=2)
+    assert isinstance(prov, EmulatedGradientProvider) and isinstance(prov, GradientProvider)
+    assert prov.noisy is True and prov.parameter_names == tuple(model.free)
+    with pytest.raises(QhlInputError) as info:
+        emulated_gradient_provider(model, c.experiments, shots=0)
+    assert "\n" not in str(info.value)
 
 
 # ---------------------------------------------------------------- the demo cluster
@@ -313,16 +315,8 @@ def test_cli_learn_text_and_non_convergence_warning(capsys):
     assert "Cramer-Rao-limited" in cap.out and "offset:H6" in cap.out
 
 
-def test_cli_learn_emulated_is_one_line_exit_2(capsys):
+def test_cli_learn_emulated_needs_shots_one_line_exit_2(capsys):
     from qhl.cli import main
-    try:
-        import qhl.emulation as em
-        if hasattr(em, "gradient_provider"):
-            pytest.skip("the emulator exists: its own tests cover emulated fits")
-    except ImportError:
-        pass
-    assert main(["learn", "--gradients", "emulated", "--shots", "1000"]) == 2
-    err = capsys.readouterr().err
-    assert err.count("\n") == 1 and "emulator" in err
     assert main(["learn", "--gradients", "emulated"]) == 2
-    assert "--shots" in capsys.readouterr().err
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "--shots" in err

@@ -36,6 +36,8 @@ def register(sub):
     p.add_argument("--iterations", type=ITERATIONS, default=50, help="learning iterations (default 50)")
     p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
+    p.add_argument("--clifford-t", metavar="FILE.qasm",
+                   help="write one Trotter step, every rotation synthesised to Clifford+T, as OpenQASM 3")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=run)
 
@@ -82,6 +84,8 @@ def run(args):
         check_precision(precs, "--sweep-precision")
     if args.plot:
         check_output_path(args.plot, "--plot")
+    if args.clifford_t:
+        check_output_path(args.clifford_t, "--clifford-t")
     cluster = cluster_from_args(args)
     settings = BudgetSettings(iterations=args.iterations, synthesis=args.synthesis,
                               physical_error=args.physical_error, cycle_time_s=args.cycle_time,
@@ -90,6 +94,13 @@ def run(args):
     bm = BudgetModel(cluster, free=args.free, settings=settings)
     t = bm.default_time_s if args.time is None else args.time
     budget = bm.budget(t, args.precision)
+    if args.clifford_t:
+        from ..costing.synthesis import write_clifford_t_step
+        ft = budget.fault_tolerant
+        x = [e.name for e in bm.experiments].index(ft["worst_component"]["experiment"])
+        budget.fault_tolerant["clifford_t_step"] = write_clifford_t_step(
+            bm.trotter[x].terms, ft["trotter_order"], budget.time_s / ft["trotter_steps"], ft["rotation_error"],
+            args.clifford_t)
     sweep = None
     if times is not None or precs is not None or args.plot:
         if times is None and precs is None:   # default grid for a plot
@@ -136,6 +147,8 @@ def _print_budget(b, bm):
         ("shots per full Hessian", None, nt["shots_per_hessian_bound"]),
         ("shots per Fisher matrix", nt["shots_per_fisher"], nt["shots_per_fisher_bound"]),
         (f"shots per learning run ({nt['iterations']} it.)", nt["shots_per_learning_run"], None),
+        (f"  with signals, {nt['learning_run']['method']} ({nt['learning_run']['evaluations']} eval.)",
+         nt["learning_run"]["shots_total"], None),
     ]
     print(f"{'near-term':<36}{'R^2 - mu^2':>16}{'bound R^2':>16}")
     for name, a, c in rows:
@@ -143,21 +156,24 @@ def _print_budget(b, bm):
     print()
     print(f"{'fault-tolerant (per component)':<36}{'chosen':>16}" + "".join(f"{'order ' + p:>14}" for p in ft["orders"]))
     prow = [("Trotter steps r", "trotter_steps", "steps"),
-            ("  from the commutator bound", None, "steps_trotter"),
+            ("  from the commutator bound", None, "steps_trotter_bound"),
             ("  exact propagator (same error)", None, "steps_trotter_empirical"),
             ("  from the time quadrature", None, "steps_quadrature"),
             ("AE queries M", "queries", "queries"),
             ("depth (Trotter steps)", "depth_trotter_steps", "depth_steps"),
             ("depth (gate layers)", "depth", "gate_layers"),
+            ("T-depth (T layers)", "t_depth", "t_depth"),
             ("rotations", "rotations", "rotations"),
             ("T-count", "t_count", "t_count"),
             ("logical qubits", "logical_qubits", "logical_qubits")]
     for name, key, okey in prow:
         chosen = ft[key] if key else None
         print(f"{name:<36}{_fmt(chosen):>16}" + "".join(f"{_fmt(o.get(okey)):>14}" for o in ft["orders"].values()))
-    print(f"chosen Trotter order {ft['trotter_order']}; {ft['t_per_rotation']:.0f} T per rotation ({ft['synthesis']}, "
-          f"rotation error {ft['rotation_error']:.2e}); AE success >= {ft['success_probability']:.3f} per run, "
-          f"{ft['median_repetitions']} runs for 95%")
+    print(f"chosen Trotter order {ft['trotter_order']} (steps from the {ft['trotter_steps_source']}); "
+          f"{ft['t_per_rotation']:.0f} T per rotation measured by gridsynth (rule 3 log2(1/eps): "
+          f"{ft['t_per_rotation_rule']:.0f}; rotation error {ft['rotation_error']:.2e}); T-depth per step "
+          f"{ft['step_t_depth']} ({ft['step_rotation_depth']} rotations on the critical path); AE success >= "
+          f"{ft['success_probability']:.3f} per run, {ft['median_repetitions']} runs for 95% (in the totals)")
     if ft.get("gradient"):
         g = ft["gradient"]
         print(f"full gradient (coherent sums): T-count {_fmt(g['t_count'])}, gate layers {_fmt(g['gate_layers'])}, "
@@ -166,7 +182,8 @@ def _print_budget(b, bm):
     print(f"error budget: Trotter {e['trotter']:.3g} + synthesis {e['synthesis']:.3g} + estimation {e['estimation']:.3g}"
           f" = {b.precision:g}")
     c = b.comparison
-    print(f"total gate layers executed per component: near-term {_fmt(c['near_term_total_layers_per_component'])}"
+    nt_layers = c.get("near_term_total_layers_per_component_circuit") or c["near_term_total_layers_per_component"]
+    print(f"total gate layers executed per component: near-term {_fmt(nt_layers)}"
           f" (shots x {_fmt(c['near_term_layers_per_shot'])}), fault-tolerant "
           f"{_fmt(c['fault_tolerant_total_layers_per_component'])}: "
           f"{'fault-tolerant' if c['fault_tolerant_cheaper'] else 'near-term'} is cheaper")
@@ -175,7 +192,10 @@ def _print_budget(b, bm):
         print(f"surface code at p = {s['physical_error']:g}: distance {s['code_distance']}, "
               f"{_fmt(s['physical_qubits'])} physical qubits ({s['factories']} factories, "
               f"{s['distillation_levels']} distillation level(s)), wall time {s['wall_time_s']:.3g} s "
-              f"at {s['cycle_time_s']:g} s per cycle")
+              f"at {s['cycle_time_s']:g} s per cycle (limited by {s['limited_by']})")
+    if ft.get("clifford_t_step"):
+        c = ft["clifford_t_step"]
+        print(f"wrote {c['path']}: one Clifford+T Trotter step, T-count {c['t_count']}, T-depth {c['t_depth']}")
     print(f"{len(b.assumptions)} assumptions with sources: qhl budget --json (key 'assumptions')")
 
 

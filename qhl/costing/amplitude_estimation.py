@@ -9,6 +9,10 @@ eps / (2R). Worst case a = 1/2: M ~ pi R / eps. The success probability 8/pi^2 ~
 1 - delta by the median of k runs: by Hoeffding's inequality the median fails with probability
 <= exp(-2 k (p - 1/2)^2), so k = ceil(ln(1/delta) / (2 (p - 1/2)^2)).
 
+Variant costed: the canonical phase-estimation algorithm of that theorem, with an m-qubit phase
+register and M = 2^m (the smallest power of two meeting the bound; `phase_register_queries`);
+all k median runs are in the budget's totals.
+
 The time integral of the gradient (insertion time s in [0, t]) is done coherently: a register
 over the r + 1 Trotter step boundaries, prepared with trapezoid weights, controls where the
 Pauli insertion happens (and a second register selects the Pauli term with weights |c_k|), so one
@@ -20,7 +24,7 @@ import math
 import numpy as np
 
 __all__ = ["SUCCESS_PROBABILITY", "amplitude_error_bound", "queries_for_amplitude_error",
-           "median_repetitions", "ASSUMPTIONS"]
+           "phase_register_queries", "median_repetitions", "ASSUMPTIONS"]
 
 SUCCESS_PROBABILITY = 8 / math.pi**2
 
@@ -28,11 +32,12 @@ ASSUMPTIONS = {
     "amplitude_estimation": "|a~ - a| <= 2 pi sqrt(a(1-a))/M + pi^2/M^2 with probability >= 8/pi^2 "
                             "(Brassard, Hoyer, Mosca, Tapp, Contemp. Math. 305, 53 (2002)); worst case a = 1/2",
     "amplitude_encoding": "mu = R (2a - 1) from the Hadamard-test ancilla, so the amplitude error is eps/(2R)",
-    "queries": "M need not be a power of two (maximum-likelihood or iterative variants, e.g. Grinko et al., "
-               "npj Quantum Inf. 7, 52 (2021)); canonical phase-estimation AE rounds up to 2^m (at most 2x)",
+    "queries": "canonical phase-estimation AE: M rounded up to 2^m with an m-qubit phase register (at most 2x "
+               "the bound's M); queries_bhmt is the unrounded M",
     "coherent_time_integral": "register over the r+1 Trotter step boundaries with trapezoid weights selects "
                               "the insertion time; a second register selects the Pauli term by |c_k|",
-    "median_boost": "median of k runs fails with probability <= exp(-2k(p-1/2)^2), p = 8/pi^2 (Hoeffding 1963)",
+    "median_boost": "median of k runs fails with probability <= exp(-2k(p-1/2)^2), p = 8/pi^2 (Hoeffding 1963); "
+                    "the k runs are in every fault-tolerant total",
 }
 
 
@@ -59,6 +64,20 @@ def queries_for_amplitude_error(amplitude_error, a=0.5):
     # guard against rounding just below the target
     m = np.where(amplitude_error_bound(a, m) > e, m + 1, m)
     return int(m) if np.ndim(m) == 0 else m
+
+
+def phase_register_queries(queries):
+    """(M' = 2^m, m) with m = ceil(log2 M): the canonical algorithm's iterate count and phase qubits.
+
+    Example:
+        >>> phase_register_queries(13539)
+        (16384, 14)
+    """
+    m = np.ceil(np.log2(np.maximum(np.asarray(queries, float), 1.0)))
+    out = 2.0 ** m
+    if np.ndim(out) == 0:
+        return int(out), int(m)
+    return out, m
 
 
 def median_repetitions(delta, success_probability=SUCCESS_PROBABILITY):

@@ -20,7 +20,7 @@ from ..exact.engine import ExactEngine
 from ..base.errors import QhlInputError
 from ..spins.model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
-from . import family_variance, trotter_order4
+from . import family_variance, learning_run, trotter_order4
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
 from .near_term import near_term_model
 from .trotter_cost import ORDERS, empirical_trotter_steps, trotter_model
@@ -40,13 +40,14 @@ def all_assumptions(settings=None) -> dict:
     """Every constant and model choice used, with its source."""
     out = {}
     for mod in (shots, family_variance, amplitude_estimation, synthesis, trotter_order4, trotter_cost, fault_tolerant,
-                surface_code):
+                surface_code, learning_run):
         out.update(mod.ASSUMPTIONS)
     out["precision_unit"] = "eps is a standard error on dS/dh with h in units of unit_hz (default 1 kHz)"
     out["time_grids"] = "each experiment's time grid is rescaled to end at t (points kept)"
     out["nll_weights"] = "NLL-gradient strata weighted 1/sigma_x (residuals of the size of the noise), normalised to 1"
-    out["comparison"] = "total gate layers executed: shots x layers of one circuit (near-term) against the AE " \
-                        "circuit's layers (fault-tolerant)"
+    out["comparison"] = "total gate layers executed: shots x layers of one circuit (near-term, the smallest shot " \
+                        "count available: compiled estimator's exact variance where computed) against the AE " \
+                        "circuits' T layers + Clifford layers, all median runs (fault-tolerant)"
     if settings is not None:
         out["settings"] = settings.to_json()
     return out
@@ -81,6 +82,7 @@ class BudgetSettings:
     cycle_time_s: float = 1e-6
     failure_budget: float = 0.01
     empirical_trotter: bool = True
+    learning_method: str = "gn"
     hessian_exact: bool = True
     circuit_variance_max_spins: int = 6
     circuit_variance_steps: int = 8
@@ -239,7 +241,7 @@ class BudgetModel:
     @property
     def default_time_s(self):
         """The shortest experiment window among experiments that see every free parameter."""
-        full = [ex.t_max_s for x, ex in enumerate(self.experiments) if np.all(self.near.scales[x] > 0)]
+        full = [ex.t_max_s for x, ex in enumerate(self.experiments) if np.all(self.near.scales[x] != 0)]
         return float(min(full or [ex.t_max_s for ex in self.experiments]))
 
     # ------------------------------------------------------------------ fault-tolerant pieces
@@ -250,10 +252,10 @@ class BudgetModel:
                                       self.settings.unit_hz)
         return x, n, float(r)
 
-    def _ft(self, value_range, t, eps, x, n_terms, extra_select=1.0):
+    def _ft(self, value_range, t, eps, x, n_terms, extra_select=1.0, **kw):
         s = self.settings
         return ft_cost_arrays(value_range, t, eps, self.trotter[x], self._quad[x], n_terms, self.model.n_spins,
-                              s.split_dict(), s.synthesis, ORDERS, extra_select)
+                              s.split_dict(), s.synthesis, ORDERS, extra_select, delta=s.delta, **kw)
 
     def _ft_gradient(self, strata, t, eps):
         """Fault-tolerant full gradient: one coherent sum per parameter, costed on the costliest experiment."""
@@ -267,8 +269,8 @@ class BudgetModel:
             order, ch = choose_order(c)
             if total is None:
                 total = {k: np.zeros(np.broadcast_shapes(order.shape)) for k in ("t_count", "gate_layers", "rotations",
-                                                                                 "logical_qubits")}
-            for k in ("t_count", "gate_layers", "rotations"):
+                                                                                 "logical_qubits", "t_depth")}
+            for k in ("t_count", "gate_layers", "rotations", "t_depth"):
                 total[k] = total[k] + ch[k]
             total["logical_qubits"] = np.maximum(total["logical_qubits"], ch["logical_qubits"])
         return total
@@ -318,24 +320,29 @@ class BudgetModel:
             "shots_per_fisher_bound": math.ceil(grad["fisher_bound"]),
             "iterations": its,
             "shots_per_learning_run": its * math.ceil(grad["opt_exact"]),
+            "learning_run": learning_run.learning_run_cost(
+                learning_run.signal_shots(self.experiments, nt.kappa), math.ceil(grad["opt_exact"]),
+                math.ceil(grad["fisher_exact"]), s.iterations if iterations is None else iterations,
+                s.learning_method).to_json(),
             "strata": int(strata["strata"]),
             "per_parameter": {name: {"shots_exact": math.ceil(per_e[k] / eps**2), "shots_bound": math.ceil(per_b[k] / eps**2)}
                               for k, name in enumerate(nt.names)},
         }
-        ft_all = self._ft(r_comp, t, eps, x, self._n_terms[n])
+        emp = {p: empirical_trotter_steps(self.trotter[x].terms, p, t, s.split_dict()["trotter"] * eps / (8 * r_comp))
+               for p in ORDERS} if s.empirical_trotter else {}
+        ft_all = self._ft(r_comp, t, eps, x, self._n_terms[n], trotter_steps={p: v[0] for p, v in emp.items()},
+                          synthesise=True)
         order, ch = choose_order(ft_all)
         order = int(order)
         per_order = {}
         for p in ORDERS:
             c = ft_all[p]
-            entry = {k: float(c[k]) for k in ("steps", "steps_trotter", "steps_quadrature", "queries", "t_count",
-                                              "gate_layers", "rotations", "depth_steps", "logical_qubits")}
+            entry = {k: float(c[k]) for k in ("steps", "steps_trotter", "steps_trotter_bound", "steps_quadrature",
+                                              "queries", "t_count", "t_depth", "gate_layers", "rotations",
+                                              "depth_steps", "logical_qubits", "t_per_rotation", "step_t_depth")}
             entry["step_error_constant"] = self.trotter[x].constants[p]
             if s.empirical_trotter:
-                r_emp, err = empirical_trotter_steps(self.trotter[x].terms, p, t,
-                                                     float(ft_all["split"]["trotter"]) / (8 * r_comp))
-                entry["steps_trotter_empirical"] = r_emp
-                entry["empirical_error"] = err
+                entry["steps_trotter_empirical"], entry["empirical_error"] = emp[p]
             per_order[str(p)] = entry
         # the same queries at the component's actual amplitude a = (1 + mu/R)/2 (mu: exact engine)
         _, g = self.engine.gradient(self.experiments[x], times=[t], parameters=[nt.names[n]])
@@ -348,6 +355,14 @@ class BudgetModel:
             "trotter_order": order,
             "trotter_steps": int(ch["steps"]),
             "depth": int(ch["gate_layers"]),
+            "t_depth": int(ch["t_depth"]),
+            "clifford_layers": int(ch["clifford_layers"]),
+            "step_t_depth": int(ch["step_t_depth"]),
+            "step_rotation_depth": int(ch["step_rotation_depth"]),
+            "trotter_steps_source": "exact propagator" if ch["steps_trotter"] < ch["steps_trotter_bound"] else
+                                    "commutator bound",
+            "phase_qubits": int(ch["phase_qubits"]),
+            "queries_total": int(ch["queries_total"]),
             "depth_trotter_steps": int(ch["depth_steps"]),
             "t_count": int(ch["t_count"]),
             "rotations": int(ch["rotations"]),
@@ -355,6 +370,7 @@ class BudgetModel:
             "queries_at_exact_amplitude": q_exact,
             "exact_amplitude": a_exact,
             "t_per_rotation": float(ch["t_per_rotation"]),
+            "t_per_rotation_rule": float(ch["t_per_rotation_rule"]),
             "rotation_error": float(ch["rotation_error"]),
             "synthesis": s.synthesis,
             "success_probability": amplitude_estimation.SUCCESS_PROBABILITY,
@@ -363,8 +379,10 @@ class BudgetModel:
             "orders": per_order,
             "gradient": {k: float(np.ravel(v)[0]) for k, v in ftg.items()} if ftg else None,
         }
+        exact_variance_note = self._add_circuit_variance(near, t, eps)
         layers_shot = float(ch["layers_per_shot"])
         nt_layers = near["shots_per_component"] * layers_shot
+        nt_best = min(nt_layers, (near["shots_per_component_circuit"] or math.inf) * layers_shot)
         nt_grad_layers = near["shots_per_gradient"] * layers_shot
         comparison = {
             "near_term_layers_per_shot": layers_shot,
@@ -372,15 +390,18 @@ class BudgetModel:
             "fault_tolerant_total_layers_per_component": float(ch["gate_layers"]),
             "near_term_total_layers_per_gradient": nt_grad_layers,
             "fault_tolerant_total_layers_per_gradient": ftg["gate_layers"].item() if ftg else None,
-            "fault_tolerant_cheaper": bool(ch["gate_layers"] < nt_layers),
+            "near_term_total_layers_per_component_circuit": (near["shots_per_component_circuit"] * layers_shot
+                                                             if near["shots_per_component_circuit"] else None),
+            "fault_tolerant_cheaper": bool(ch["gate_layers"] < nt_best),
         }
         sc = None
         if s.physical_error is not None:
             sc = surface_code.surface_code_estimate(ft["logical_qubits"], ft["depth"], ft["t_count"],
-                                                    s.physical_error, s.cycle_time_s, s.failure_budget).to_json()
+                                                    s.physical_error, s.cycle_time_s, s.failure_budget,
+                                                    t_depth=ft["t_depth"]).to_json()
         err = {k: float(v) for k, v in ft_all["split"].items()}
         assumptions = all_assumptions(s)
-        assumptions["exact_variance_used"] = self._add_circuit_variance(near, t, eps)
+        assumptions["exact_variance_used"] = exact_variance_note
         return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name)
 
     def _add_circuit_variance(self, near, t, eps):

@@ -23,7 +23,9 @@ Formulas (each in one place):
     drawn with probability |c_k| / ||c||_1 and the insertion time s ~ U[0, t], each shot is
     +-2 t ||c||_1 times the observable factor kappa = N_obs (observed spins) for the normalised
     signal (qhl.circuits.state_prep: one shot of the signal estimator lies in [-N_obs, N_obs]); this is the
-    +-2 W N_obs range of qhl.circuits.gradient_circuits with W = t 2 pi s_n ||c||_1.
+    +-2 W N_obs range of qhl.circuits.gradient_circuits with W = t 2 pi |s_n| ||c||_1. A range is a
+    magnitude: a negative scale factor (dipolar_scale < 0, legal for some decoupling sequences)
+    enters as |s_n|.
 """
 
 import math
@@ -121,19 +123,19 @@ def gradient_shot_range(t, coefficient_l1, scale, kappa, unit_hz=1e3):
     Args:
         t: evolution time(s) in seconds (broadcasts).
         coefficient_l1: ||c||_1 of the parameter's Pauli generator G = sum_k c_k P_k.
-        scale: the experiment's scale factor s_n of the parameter (dipolar_scale or 1).
+        scale: the experiment's scale factor s_n of the parameter (dipolar_scale or 1; its magnitude is used).
         kappa: observable factor (observable_factor).
         unit_hz: frequency unit of h (1e3: derivatives per kHz).
     """
-    return 2.0 * np.asarray(t, float) * np.asarray(coefficient_l1, float) * 2 * np.pi * np.asarray(scale, float) \
+    return 2.0 * np.asarray(t, float) * np.asarray(coefficient_l1, float) * 2 * np.pi * np.abs(np.asarray(scale, float)) \
         * kappa * unit_hz
 
 
 def hessian_shot_range(t, l1_m, l1_n, scale_m, scale_n, kappa, unit_hz=1e3):
-    """R = (2t)^2 ||c_m||_1 ||c_n||_1 (2 pi)^2 s_m s_n kappa unit_hz^2 for d2S/dh_m dh_n."""
+    """R = (2t)^2 ||c_m||_1 ||c_n||_1 (2 pi)^2 |s_m s_n| kappa unit_hz^2 for d2S/dh_m dh_n."""
     t = np.asarray(t, float)
     return (2 * t) ** 2 * np.asarray(l1_m, float) * np.asarray(l1_n, float) * (2 * np.pi) ** 2 \
-        * np.asarray(scale_m, float) * np.asarray(scale_n, float) * kappa * unit_hz**2
+        * np.abs(np.asarray(scale_m, float) * np.asarray(scale_n, float)) * kappa * unit_hz**2
 
 
 def optimal_allocation_shots(weights, sigmas, eps, axis=-1):

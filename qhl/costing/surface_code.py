@@ -6,11 +6,18 @@ qubits", Quantum 5, 433 (2021); Litinski, "A game of surface codes", Quantum 3, 
     (threshold p = 1%: at or above it no distance lowers p_L, so such rates are refused);
     about 2 d^2 physical qubits per logical patch;
     15-to-1 distillation: output T-state error 35 p_in^3 (levels stacked until good enough).
-Assumptions stated with the result (common practice unless named): each logical gate layer takes
-d code cycles; a 15-to-1 factory occupies FACTORY_PATCHES patches and yields one T state per
-FACTORY_CYCLES_PER_D * d cycles; enough factories that T supply keeps pace with the gate layers;
-routing space doubles the data patches (ROUTING_FACTOR); the failure budget is split equally
-between data qubits and T states.
+Assumptions stated with the result (common practice unless named): each Clifford layer takes
+d code cycles; each T layer takes max(d cycles, reaction time): a lattice-surgery measurement of
+d cycles whose outcome must be read and decoded before the next dependent T layer (its
+classically controlled correction) can start (REACTION_TIME_S = 10 us, Gidney and Ekera 2021,
+from memory); a 15-to-1 factory occupies FACTORY_PATCHES patches and yields one T state per
+FACTORY_CYCLES_PER_D * d cycles per distillation level; enough factories that T supply keeps pace
+with the T layers (or at most `max_factories`); routing space doubles the data patches
+(ROUTING_FACTOR); the failure budget is split equally between data qubits and T states.
+Wall time = max(depth-limited time, factory-limited time):
+    depth-limited   t_depth max(d tau, t_react) + clifford_layers d tau,
+    factory-limited t_count (FACTORY_CYCLES_PER_D d levels tau) / factories;
+`limited_by` says which ('reaction', 'code cycles' or 'factories').
 """
 
 from dataclasses import dataclass
@@ -26,12 +33,17 @@ QUBITS_PER_PATCH_PER_D2 = 2
 FACTORY_PATCHES = 16
 FACTORY_CYCLES_PER_D = 10
 ROUTING_FACTOR = 2.0
+REACTION_TIME_S = 10e-6
 
 ASSUMPTIONS = {
     "logical_error": "p_L = 0.1 (100 p)^((d+1)/2) per patch per cycle (Gidney and Ekera, Quantum 5, 433 (2021))",
     "patch_qubits": "2 d^2 physical qubits per logical patch (Gidney and Ekera 2021; Litinski, Quantum 3, 128 (2019))",
     "distillation": "15-to-1 output error 35 p^3 per level (Gidney and Ekera 2021)",
-    "layer_cycles": "one logical gate layer takes d code cycles (common practice)",
+    "layer_cycles": "one Clifford layer takes d code cycles (common practice); one T layer takes max(d cycles, "
+                    "reaction time)",
+    "reaction_time": "10 us from a measurement to the dependent classically controlled correction (Gidney and "
+                     "Ekera, Quantum 5, 433 (2021), from memory)",
+    "wall_time": "max(T-depth x max(d cycle, reaction) + Clifford layers x d cycles, T-count / factory throughput)",
     "factory": f"one 15-to-1 factory = {FACTORY_PATCHES} patches, one T state per {FACTORY_CYCLES_PER_D} d cycles "
                "(from memory)",
     "routing": f"routing space: data patches times {ROUTING_FACTOR:g} (common practice)",
@@ -103,51 +115,81 @@ class SurfaceCodeEstimate:
     wall_time_s: float
     cycle_time_s: float
     failure_budget: float
+    t_depth: float = 0.0
+    reaction_time_s: float = REACTION_TIME_S
+    time_depth_limited_s: float = 0.0
+    time_factory_limited_s: float = 0.0
+    limited_by: str = "code cycles"
 
     def to_json(self):
         return dict(self.__dict__)
 
 
 def surface_code_estimate(logical_qubits, gate_layers, t_count, physical_error=1e-3, cycle_time_s=1e-6,
-                          failure_budget=0.01) -> SurfaceCodeEstimate:
+                          failure_budget=0.01, t_depth=0.0, reaction_time_s=REACTION_TIME_S,
+                          max_factories=None) -> SurfaceCodeEstimate:
     """Distance, physical qubits and wall time so the whole circuit fails with probability <= budget.
 
     Args:
         logical_qubits: data qubits of the algorithm.
-        gate_layers: logical depth (each layer d code cycles).
+        gate_layers: logical depth (T layers + Clifford layers).
         t_count: T gates (T states to distil).
         physical_error: p per physical operation, below THRESHOLD.
         cycle_time_s: surface-code cycle time (1 us, Gidney and Ekera 2021).
         failure_budget: allowed total failure probability.
+        t_depth: T layers among gate_layers (0: every layer a Clifford layer).
+        reaction_time_s: measurement-to-correction latency bounding each T layer.
+        max_factories: cap on the number of factories (None: enough to keep pace).
 
     Raises:
         QhlInputError: p at or above threshold, or non-positive inputs.
     """
     p = check_physical_error(physical_error)
-    if not (cycle_time_s > 0 and 0 < failure_budget < 1):
-        raise QhlInputError("cycle time must be positive and the failure budget in (0, 1)", key="surface-code")
+    if not (cycle_time_s > 0 and 0 < failure_budget < 1 and reaction_time_s >= 0):
+        raise QhlInputError("cycle time must be positive, the failure budget in (0, 1) and the reaction time >= 0",
+                            key="surface-code")
     layers = max(float(gate_layers), 1.0)
+    t_layers = min(max(float(t_depth), 0.0), layers)
+    c_layers = layers - t_layers
     patches = max(1.0, ROUTING_FACTOR * logical_qubits)
     half = failure_budget / 2
-    d = 3
-    for _ in range(200):   # cycles depend on d: iterate to a fixed point (monotone in d)
-        cycles = layers * d
-        d_new = code_distance_for(p, half / (patches * cycles))
-        if d_new <= d:
-            break
-        d = d_new
-    cycles = layers * d
     levels, t_err = 0, p
     while t_count > 0 and t_count * t_err > half:
         levels += 1
         t_err = distilled_error(p, levels)
         if levels > 4:
             break
-    factories = 0
-    if t_count > 0:
-        per_factory = cycles / (FACTORY_CYCLES_PER_D * d * max(levels, 1))
-        factories = max(1, math.ceil(t_count / max(per_factory, 1e-300)))
+
+    def timing(d):
+        depth_time = t_layers * max(d * cycle_time_s, reaction_time_s) + c_layers * d * cycle_time_s
+        per_state = FACTORY_CYCLES_PER_D * d * max(levels, 1) * cycle_time_s
+        factories = 0
+        fact_time = 0.0
+        if t_count > 0:
+            factories = max(1, math.ceil(t_count * per_state / max(depth_time, 1e-300)))
+            if max_factories is not None:
+                factories = min(factories, int(max_factories))
+            fact_time = t_count * per_state / factories
+        return depth_time, fact_time, factories
+
+    d = 3
+    for _ in range(200):   # cycles depend on d: iterate to a fixed point (monotone in d)
+        depth_time, fact_time, factories = timing(d)
+        cycles = max(depth_time, fact_time) / cycle_time_s
+        d_new = code_distance_for(p, half / (patches * cycles))
+        if d_new <= d:
+            break
+        d = d_new
+    depth_time, fact_time, factories = timing(d)
+    wall = max(depth_time, fact_time)
+    if fact_time > depth_time:
+        limited = "factories"
+    elif t_layers > 0 and reaction_time_s > d * cycle_time_s:
+        limited = "reaction"
+    else:
+        limited = "code cycles"
     factory_patches = factories * FACTORY_PATCHES * (15 ** max(levels - 1, 0))
     qubits = int(QUBITS_PER_PATCH_PER_D2 * d**2 * (patches + factory_patches))
-    return SurfaceCodeEstimate(p, d, logical_error_rate(p, d), cycles, levels, factories, qubits,
-                               cycles * cycle_time_s, cycle_time_s, failure_budget)
+    return SurfaceCodeEstimate(p, d, logical_error_rate(p, d), wall / cycle_time_s, levels, factories, qubits,
+                               wall, cycle_time_s, failure_budget, t_layers, reaction_time_s, depth_time, fact_time,
+                               limited)

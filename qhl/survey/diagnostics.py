@@ -18,6 +18,10 @@ Ergodicity of H = 2 pi sum_n s_n h_n G_n (qhl.spins.model) at the given dipolar 
     Inverse participation ratio of a normalised state psi in the computational basis
         IPR = sum_k |psi_k|^4,   D2 = -log(IPR) / log(N)
     with N the dimension of the state's sector (a basis state: IPR 1, D2 0; fully spread: D2 1).
+    At finite N even a structureless state has D2 < 1: a random real unit vector (a GOE
+    eigenvector) has <IPR> = 3/(N+2), so D2_GOE(N) = ln((N+2)/3)/ln N = 1 - ln 3/ln N + O(1/N)
+    (0.748 at N = 70). D2 is therefore reported beside D2_GOE at the same N (`d2_random`); only
+    D2 below D2_GOE at the same N points to non-ergodic (multifractal) eigenstates.
 """
 
 from dataclasses import dataclass
@@ -33,7 +37,7 @@ from ..exact.likelihood import cramer_rao_bounds, fisher_information
 from ..spins.model import DEFAULT_FREE, build_model
 
 __all__ = ["POISSON_MEAN_R", "GOE_MEAN_R", "participation_ratio", "inverse_participation_ratio",
-           "fractal_dimension_d2", "spacing_ratios", "mean_spacing_ratio", "symmetry_sector_levels",
+           "fractal_dimension_d2", "random_vector_d2", "spacing_ratios", "mean_spacing_ratio", "symmetry_sector_levels",
            "Diagnostics", "diagnose"]
 
 # Atas, Bogomolny, Giraud, Roux, PRL 110, 084101 (2013): Poisson 2 ln 2 - 1, GOE 0.5307 (large N).
@@ -66,6 +70,17 @@ def fractal_dimension_d2(ipr, dimension) -> np.ndarray:
     """D2 = -log(IPR) / log(N) for IPR values of states in dimension N > 1."""
     dimension = np.asarray(dimension, float)
     return -np.log(np.asarray(ipr, float)) / np.log(dimension)
+
+
+def random_vector_d2(dimension) -> np.ndarray:
+    """D2_GOE(N) = ln((N+2)/3)/ln N: D2 of the mean IPR 3/(N+2) of random real unit vectors in dimension N > 1.
+
+    Example:
+        >>> round(float(random_vector_d2(70)), 3)
+        0.748
+    """
+    n = np.asarray(dimension, float)
+    return np.log((n + 2) / 3) / np.log(n)
 
 
 def spacing_ratios(levels, degeneracy_tol: float = 0.0) -> np.ndarray:
@@ -139,6 +154,7 @@ class Diagnostics:
         sector_mean_r: <r> per resolved symmetry sector (nan for sectors without a ratio).
         mean_r: <r> over all ratios of all sectors pooled; n_ratios: how many.
         ipr, d2: per eigenstate (states of 1-dimensional sectors are left out of d2).
+        d2_random: D2_GOE of a random real vector at each d2 state's sector dimension.
     """
 
     cluster: str
@@ -156,6 +172,7 @@ class Diagnostics:
     ipr: np.ndarray
     d2: np.ndarray
     seconds: float
+    d2_random: np.ndarray = None
 
     @property
     def median_crb_hz(self) -> float:
@@ -177,6 +194,8 @@ class Diagnostics:
             "n_ratios": self.n_ratios,
             "mean_ipr": float(np.mean(self.ipr)),
             "mean_d2": float(np.mean(self.d2)) if self.d2.size else float("nan"),
+            "mean_d2_random": float(np.mean(self.d2_random)) if self.d2_random is not None and self.d2_random.size
+            else float("nan"),
             "fisher_eigenvalues": tuple(float(x) for x in ev),
             "fisher_participation": tuple(float(x) for x in self.fisher_participation),
             "sector_mean_r": tuple(float(x) for x in self.sector_mean_r),
@@ -222,16 +241,17 @@ def diagnose(cluster: Cluster, dipolar_scale: float, *, t_max_s: float = 5e-4, p
     ratios = [spacing_ratios(e, tol) for e in levels]
     sector_r = np.array([float(np.mean(r)) if r.size else np.nan for r in ratios])
     pooled = np.concatenate(ratios) if ratios else np.zeros(0)
-    ipr, d2 = [], []
+    ipr, d2, d2_random = [], [], []
     for v in spec.vectors:
         q = inverse_participation_ratio(v)
         ipr.append(q)
         if v.shape[0] > 1:
             d2.append(fractal_dimension_d2(q, v.shape[0]))
+            d2_random.append(np.full(q.shape, random_vector_d2(v.shape[0])))
     return Diagnostics(
         cluster=cluster.name, n_spins=cluster.n_spins, dipolar_scale=float(dipolar_scale), free=model.free,
         fisher_eigenvalues=evals, fisher_eigenvectors=evecs, fisher_participation=participation_ratio(evecs),
         crb_hz=crb, unlearnable=bad, sector_mean_r=sector_r,
         mean_r=float(np.mean(pooled)) if pooled.size else float("nan"), n_ratios=int(pooled.size),
         ipr=np.concatenate(ipr), d2=np.concatenate(d2) if d2 else np.zeros(0),
-        seconds=time.perf_counter() - start)
+        seconds=time.perf_counter() - start, d2_random=np.concatenate(d2_random) if d2_random else np.zeros(0))
