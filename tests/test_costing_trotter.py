@@ -113,3 +113,28 @@ def test_order4_step_counts_against_the_transpiled_suzuki_circuit(static_model):
     model = static_model.step_counts(4)
     for key in ("rotations", "cx", "depth"):
         assert model[key] == pytest.approx(two[key] - one[key], rel=0.05), key
+
+
+def test_order4_locality_bound_is_never_below_the_nested_sum():
+    # the nested sum of trotter_order4 (checked above against dense enumeration) is exact for the Pauli
+    # decomposition; the locality bound must lie above it
+    from qhl.costing.trotter_cost import _order4_locality_constant
+    from qhl.costing.trotter_order4 import order4_step_error_constant
+    from test_pauli_commutators import _cluster
+    from qhl.circuits.trotter import trotter_terms
+    for n in (3, 5):
+        c = _cluster(n, n)
+        terms = trotter_terms(build_model(c), c.experiments[0])
+        assert order4_step_error_constant(terms.hamiltonian()) <= _order4_locality_constant(terms.operators())
+
+
+def test_large_cluster_counts_come_from_the_rule_without_a_circuit(monkeypatch):
+    # 20 spins: per-step counts by qhl.circuits.step_counts; building a circuit would fail here
+    import qhl.costing.trotter_cost as tc
+    from test_pauli_commutators import _cluster
+    monkeypatch.setattr(tc, "trotter_circuit", None)
+    c = _cluster(20, 1)
+    m = trotter_model(build_model(c), c.experiments[0])
+    assert m.counts_method == "count rule"
+    assert m.step_counts(1)["cx"] == 3 * 190          # every homonuclear pair: XX, YY, ZZ -> 3 CX
+    assert m.methods[1] == "pauli-1-norm"

@@ -13,8 +13,10 @@ Over r steps errors add (unitaries, triangle inequality): eps(t, r) <= r alpha_p
 
 Assumptions: spectral norm (operator 2-norm) of a unitary difference; H in rad/s, t in s.
 Norms of the commutators are either bounded by the 1-norm of their Pauli coefficients
-(norm='pauli', always an upper bound since ||P|| = 1) or computed exactly from the dense
-matrix (norm='exact', n <= EXACT_NORM_MAX_QUBITS); 'auto' picks exact when small enough.
+(norm='pauli', always an upper bound since ||P|| = 1; computed in the symplectic representation
+by qhl.circuits.pauli_commutators, which falls back to its locality bound for very large
+clusters) or computed exactly from the dense matrix (norm='exact', n <= EXACT_NORM_MAX_QUBITS);
+'auto' picks exact when small enough.
 Because the bound is even in t, it also bounds the reversed product.
 """
 
@@ -25,9 +27,10 @@ from qiskit.quantum_info import SparsePauliOp
 
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
+from .pauli_commutators import trotter_prefactor
 from .trotter import TrotterTerms
 
-__all__ = ["commutator", "operator_norm", "commutator_prefactor", "trotter_error_bound",
+__all__ = ["commutator", "operator_norm", "commutator_prefactor", "prefactor_and_method", "trotter_error_bound",
            "trotter_steps_for", "EXACT_NORM_MAX_QUBITS"]
 
 EXACT_NORM_MAX_QUBITS = 8
@@ -92,7 +95,25 @@ def commutator_prefactor(terms, order: int, norm: str = "auto") -> float:
         >>> round(commutator_prefactor([SparsePauliOp("XI", 0.5), SparsePauliOp("ZZ", 0.5)], 2), 6)
         0.0625
     """
+    return prefactor_and_method(terms, order, norm)[0]
+
+
+def prefactor_and_method(terms, order: int, norm: str = "auto"):
+    """(alpha_p, method): method 'spectral' (dense norms), 'pauli-1-norm' or 'locality-bound'
+    (qhl.circuits.pauli_commutators)."""
+    if norm not in ("pauli", "exact", "auto"):
+        raise QhlInputError(f"unknown norm '{norm}': expected pauli, exact or auto", key="norm")
+    if order not in (1, 2):
+        raise QhlInputError(f"expected product-formula order 1 or 2, got {order!r}", key="order")
     ops = _operators(terms)
+    n = ops[0].num_qubits
+    if norm == "pauli" or (norm == "auto" and n > EXACT_NORM_MAX_QUBITS):
+        return trotter_prefactor(ops, order)
+    return _dense_prefactor(ops, order, norm), "spectral"
+
+
+def _dense_prefactor(ops, order, norm):
+    """alpha_p from SparsePauliOp commutators and dense spectral norms (small n)."""
     n = ops[0].num_qubits
     zero = SparsePauliOp("I" * n, 0.0)
     tails = [zero] * len(ops)

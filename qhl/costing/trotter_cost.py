@@ -11,8 +11,19 @@ strings by the triangle inequality).
 
 Gates per step: qhl.circuits.circuit_counts on qhl.circuits.trotter.trotter_circuit (transpiled to cx, rz, sx, x,
 all-to-all connectivity), taken as the marginal cost of one more step (counts at r = 2 minus
-r = 1, so merged exponentials between steps are not double counted). Order 4 is five
-second-order stages per step: five times the marginal second-order step (common practice).
+r = 1, so merged exponentials between steps are not double counted), up to
+TRANSPILE_MAX_QUBITS qubits; above, the count rule of qhl.circuits.step_counts (no circuit is
+built). Order 4 is five second-order stages per step: five times the marginal second-order step
+(common practice).
+
+Large clusters: C_1 and C_2 come from qhl.circuits.pauli_commutators (exact Pauli 1-norms, or its
+locality bound when the products would be too many; `TrotterModel.methods` says which). C_4 uses
+trotter_order4's prefactor with the nested sum replaced by the locality bound
+    alpha_comm <= Lambda prod_{d=1..4} 2 (d+1) Lambda_max
+(before the d-th commutator the nested product of one- and two-qubit terms acts on at most d+1
+qubits, and a term that anticommutes with it must touch one of them; Lambda = sum |c|,
+Lambda_max = the largest sum of |c| over the terms touching one qubit). Up to
+ORDER4_EXACT_MAX_QUBITS qubits the smaller of this and trotter_order4's own sum is used.
 
 The empirical step count applies the product formula to the dense propagator (n <= 8 qubits)
 and finds the smallest r (to within 1%) whose exact error ||S(t/r)^r - exp(-iHt)||_2 is within
@@ -23,18 +34,23 @@ from dataclasses import dataclass, field
 import math
 
 import numpy as np
+from qiskit.quantum_info import SparsePauliOp
 
 from ..circuits.circuit_counts import circuit_counts
 from ..base.errors import QhlInputError
 from ..circuits.trotter import trotter_circuit, trotter_terms
-from ..circuits.trotter_bounds import commutator_prefactor
-from .trotter_order4 import SUZUKI4_U, order4_step_error_constant
+from ..circuits.pauli_commutators import pauli_arrays
+from ..circuits.step_counts import step_counts_rule
+from ..circuits.trotter_bounds import prefactor_and_method
+from .trotter_order4 import SUZUKI4_U, nested_commutator_sum, order4_step_error_constant
 
 __all__ = ["ORDERS", "TrotterModel", "trotter_model", "steps_from_constant", "empirical_trotter_steps",
            "product_formula_unitary", "ASSUMPTIONS"]
 
 ORDERS = (1, 2, 4)
 EMPIRICAL_MAX_QUBITS = 8
+TRANSPILE_MAX_QUBITS = 8
+ORDER4_EXACT_MAX_QUBITS = 16
 _COUNT_TIME_S = 1e-6      # any generic duration: rotation angles must not be Clifford multiples of pi/2
 
 ASSUMPTIONS = {
@@ -67,6 +83,7 @@ class TrotterModel:
 
     terms: object
     constants: dict
+    methods: dict = field(default_factory=dict)
     _counts: dict = field(default_factory=dict)
 
     @property
@@ -78,6 +95,8 @@ class TrotterModel:
 
     def step_counts(self, order) -> dict:
         """Marginal {cx, depth, rotations} of one Trotter step of `order`."""
+        if order not in self._counts and self.terms.n_qubits > TRANSPILE_MAX_QUBITS:
+            self._counts[order] = step_counts_rule(self.terms, order)
         if order not in self._counts:
             base = 2 if order == 4 else order
             one = circuit_counts(trotter_circuit(self.terms, _COUNT_TIME_S, 1, base)).to_dict()
@@ -87,6 +106,10 @@ class TrotterModel:
                 per = {k: 5 * v for k, v in per.items()}
             self._counts[order] = per
         return self._counts[order]
+
+    @property
+    def counts_method(self):
+        return "count rule" if self.terms.n_qubits > TRANSPILE_MAX_QUBITS else "transpiled"
 
     def rotations_per_step(self, order):
         return self.step_counts(order)["rotations"]
@@ -100,9 +123,25 @@ def trotter_model(model, experiment=None) -> TrotterModel:
     terms = trotter_terms(model, experiment, grouping="pairs")
     if not terms.groups:
         raise QhlInputError("the Hamiltonian has no non-identity terms", key="hamiltonian")
-    constants = {1: float(commutator_prefactor(terms, 1)), 2: float(commutator_prefactor(terms, 2)),
-                 4: order4_step_error_constant(terms.hamiltonian())}
-    return TrotterModel(terms, constants)
+    ops = terms.operators()
+    (c1, m1), (c2, m2) = prefactor_and_method(ops, 1), prefactor_and_method(ops, 2)
+    c4, m4 = _order4_locality_constant(ops), "locality-bound"
+    if terms.n_qubits <= ORDER4_EXACT_MAX_QUBITS:
+        nested = order4_step_error_constant(terms.hamiltonian())
+        if nested <= c4:
+            c4, m4 = nested, "nested commutators"
+    return TrotterModel(terms, {1: float(c1), 2: float(c2), 4: float(c4)}, {1: m1, 2: m2, 4: m4})
+
+
+def _order4_locality_constant(ops):
+    """C_4 of trotter_order4 with its nested sum bounded by locality (module docstring)."""
+    arr = pauli_arrays(ops)
+    absc = np.abs(arr.coeffs)
+    lam, lam_max = float(absc.sum()), float(arr.qubit_weights().max())
+    nested = lam * math.prod(2 * (d + 1) * lam_max for d in range(1, 5))
+    # trotter_order4's prefactor C_4 / alpha_comm, read off a two-term example (one place for it)
+    probe = SparsePauliOp(["XI", "ZZ"], [1.0, 1.0])
+    return nested * order4_step_error_constant(probe) / nested_commutator_sum(probe, 4)
 
 
 # ---------------------------------------------------------------------- exact product formulas

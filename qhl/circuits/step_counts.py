@@ -1,0 +1,71 @@
+"""Gate counts of one Trotter step from a count rule, without building or transpiling a circuit.
+
+Rule (the circuits of qhl.circuits.trotter after qhl.circuits.circuit_counts' transpile to
+[cx, rz, sx, x] at optimisation level 2, all-to-all connectivity):
+    spin block (offset Z_i)                         0 CX, 1 arbitrary rotation, 1 layer;
+    pair block with k of XX, YY, ZZ (non-zero)      k rotations; 2 CX for k <= 2, 3 CX for k = 3
+        (the transpiler merges the block into one two-qubit unitary of the XX/YY/ZZ family; a
+        generic one needs 3 CX, one or two of the three interactions 2 CX: Vatan and Williams,
+        Phys. Rev. A 69, 032315 (2004), from memory); layers of one block alone: BLOCK_LAYERS
+        (measured once on qiskit 2.x transpiles of single blocks; common practice).
+A step's counts are marginal, like TrotterModel's transpiled counts: counts of two steps minus
+one step over the slots of qhl.circuits.trotter.product_formula_slots (merged exponentials
+between steps counted once). Depth: blocks scheduled as soon as their qubits are free
+(as-soon-as-possible layering, block by block). Rotations: an upper bound on the transpiled count
+(the transpiler can merge an offset rz into a neighbouring block's single-qubit gates); CX: equal.
+tests/test_step_counts.py checks the rule against transpiled circuits for n <= 12.
+"""
+
+import numpy as np
+
+from .trotter import product_formula_slots
+
+__all__ = ["BLOCK_LAYERS", "block_counts", "step_counts_rule"]
+
+BLOCK_LAYERS = {1: 3, 2: 11, 3: 10}     # pair blocks by k (k = 1: ZZ; XX alone 9, YY alone 7)
+_PAIR_CX = {1: 2, 2: 2, 3: 3}
+
+
+def block_counts(block):
+    """(qubits, cx, rotations, layers) of one TermBlock by the rule; rotations with a zero angle dropped."""
+    k = int(np.count_nonzero(np.asarray(block.coeffs)))
+    if k == 0:
+        return block.qubits, 0, 0, 0
+    if len(block.qubits) == 1:
+        return block.qubits, 0, k, k
+    if len(block.qubits) == 2:
+        return block.qubits, _PAIR_CX[k], k, BLOCK_LAYERS[k]
+    w = len(block.qubits)          # a general Pauli string (not produced by qhl's models): CX ladders
+    return block.qubits, k * 2 * (w - 1), k, k * (2 * w - 1)
+
+
+def _count(terms, slots, blocks):
+    frontier = np.zeros(terms.n_qubits, dtype=np.int64)
+    cx = rot = 0
+    for slot in slots:
+        for qubits, c, r, layers in blocks[slot.group]:
+            if layers == 0:
+                continue
+            q = list(qubits)
+            start = int(frontier[q].max())
+            frontier[q] = start + layers
+            cx += c
+            rot += r
+    return cx, rot, int(frontier.max())
+
+
+def step_counts_rule(terms, order: int) -> dict:
+    """Marginal {cx, depth, rotations} of one step of order 1 or 2 (order 4: five order-2 steps).
+
+    Args:
+        terms: qhl.circuits.trotter.TrotterTerms.
+        order: 1, 2 or 4.
+    """
+    base = 2 if order == 4 else order
+    blocks = [[block_counts(b) for b in g.blocks] for g in terms.groups]
+    one = _count(terms, product_formula_slots(len(terms.groups), 1.0, 1, base), blocks)
+    two = _count(terms, product_formula_slots(len(terms.groups), 2.0, 2, base), blocks)
+    per = {k: max(b - a, 1) for k, a, b in zip(("cx", "rotations", "depth"), one, two)}
+    if order == 4:
+        per = {k: 5 * v for k, v in per.items()}
+    return per
