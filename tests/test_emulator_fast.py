@@ -252,3 +252,22 @@ def test_emulate_gradients_batches_parameters_and_times(small):
             e = out[p, k]
             assert e.value == again[p, k].value
             assert abs(e.re.value - g[p].real) < 4 * e.re.stderr and abs(e.im.value - g[p].imag) < 4 * e.im.stderr
+
+
+def test_uncached_sweeps_give_the_same_probabilities(small, monkeypatch):
+    """With no cache budget the forward states and suffixes are recomputed per call for the
+    positions asked only (the large-cluster path): same probabilities to 1e-12."""
+    from qhl.emulation import fast_path
+    model, ex, names = small
+    fam = hessian_circuit(model, ex, (names[1], names[4]), T, 2)
+    angles, _ = fam.inputs.enumerate()
+    rows = np.repeat(np.arange(len(fam.insertions)), len(angles))
+    inputs = np.tile(np.arange(len(angles)), len(fam.insertions))
+    fast_path.clear_cache()
+    cached = FastFamily(fam).probabilities(angles, rows, inputs, "im")
+    fast_path.clear_cache()
+    monkeypatch.setattr(fast_path, "_CACHE_BYTES", 0.0)
+    fresh = FastFamily(fam)
+    np.testing.assert_allclose(fresh.probabilities(angles, rows, inputs, "im"), cached, atol=1e-12, rtol=0)
+    assert fresh.tables._states is None
+    fast_path.clear_cache()

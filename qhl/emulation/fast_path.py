@@ -42,7 +42,7 @@ __all__ = ["FAST_KINDS", "MAX_FAST_QUBITS", "supports_fast_path", "FastFamily", 
            "clear_cache"]
 
 FAST_KINDS = ("signal", "gradient", "hessian")
-MAX_FAST_QUBITS = 14          # dense 2^n x 2^n suffixes: 4 GiB at n = 14 per position is refused earlier
+MAX_FAST_QUBITS = 10          # dense 2^n x 2^n suffixes (16 MiB each at n = 10); larger clusters stay on Aer
 _PAULI = {"X": np.array([[0, 1], [1, 0]], complex), "Y": np.array([[0, -1j], [1j, 0]], complex),
           "Z": np.array([[1, 0], [0, -1]], complex)}
 _CACHE: "OrderedDict" = OrderedDict()
@@ -134,20 +134,37 @@ class EvolutionTables:
 
     # ---------------------------------------------------------------- forward states
     def states(self, angles, positions):
-        """(forward states {p: (2^n, K)}, final (2^n, K)) for the input rows `angles` (K, n)."""
+        """(forward states {p: (2^n, K)}, final (2^n, K)) for the input rows `angles` (K, n).
+
+        The states of every position are cached for all inputs seen so far while that table fits
+        in the cache budget; beyond it one sweep keeps only the positions asked for.
+        """
         angles = np.asarray(angles, float)
         cols = [self._inputs.get(a.tobytes()) for a in angles]
         if any(c is None for c in cols) or self._states is None:
+            known = len(self._inputs) + len(angles)
+            if 16.0 * 2 ** self.n * known * (len(self.gates) + 1) > _CACHE_BYTES:
+                return self._sweep(angles, positions)
             self._extend(angles)
             cols = [self._inputs[a.tobytes()] for a in angles]
         cols = np.asarray(cols, int)
         return {p: self._states[p][:, cols] for p in positions}, self._final[:, cols]
 
+    def _sweep(self, angles, positions):
+        wanted = set(int(p) for p in positions)
+        require_memory("fast-path forward states", 16.0 * 2 ** self.n * len(angles) * (len(wanted) + 2))
+        psi = product_states(angles)
+        out = {}
+        for p, (qubits, g) in enumerate(self.gates):
+            psi = apply_gate(g, qubits, psi, self.n)
+            if p in wanted:
+                out[p] = psi
+        return out, psi
+
     def _extend(self, angles):
         new = [a for a in np.unique(angles, axis=0) if a.tobytes() not in self._inputs]
         known = [np.frombuffer(k) for k in self._inputs]
         every = np.array(known + new) if known else np.array(new)
-        require_memory("fast-path forward states", 16.0 * 2 ** self.n * len(every) * (len(self.gates) + 2))
         psi = product_states(every)
         out = np.empty((len(self.gates),) + psi.shape, complex)
         for p, (qubits, g) in enumerate(self.gates):
