@@ -10,8 +10,11 @@ r = 8) through qhl.emulation.check.check_derivatives with the fast path; the pre
 Goal: under 10 s and >= 10x.
 Part 3: an invented 8-spin cluster, full gradient (36 parameters, Re and Im, 10^4 shots, r = 4)
 through qhl.emulation.derivatives.emulate_gradients (one batched call). Goal: under 30 s.
+Part 4 (--large): one gradient component of an invented 16-spin chain on Aer's statevector
+method (beyond the fast path's 10 spins) and of a 30-spin chain on the matrix_product_state
+method, r = 2, 200 shots per part: they complete and are timed.
 Run:
-    python benchmarks/bench_emulator.py [--quick]
+    python benchmarks/bench_emulator.py [--quick] [--large]
 """
 
 import sys
@@ -117,13 +120,36 @@ def part3(shots):
           f"({circuits} distinct settings; goal under 30 s)")
 
 
-def main(quick=False):
+def chain_cluster(n):
+    """Invented: n protons in a chain, offsets up to 300 Hz, nearest-neighbour dipolar couplings only."""
+    rng = np.random.default_rng(n)
+    spins = tuple(Spin(f"C{i}", "1H", None, float(rng.uniform(-300, 300))) for i in range(n))
+    pairs = tuple(Pair((f"C{i}", f"C{i + 1}"), dipolar_hz=float(rng.uniform(-400, 400))) for i in range(n - 1))
+    return Cluster(9.4, "1H", spins, pairs, (Experiment("static", 1e-3, 8, 1.0, 1e-3),), name=f"chain{n}")
+
+
+def part4(shots=200):
+    for n, method in ((16, "auto"), (30, "mps")):
+        c = chain_cluster(n)
+        m = build_model(c)
+        fam = gradient_circuit(m, c.experiments[0], "dipolar:C0-C1", 5e-4, 2)
+        start = time.perf_counter()
+        runner = FamilyRunner(fam, method=method)
+        e = estimate_family(fam, shots, 0, runner=runner)
+        print(f"{n}-spin chain, one gradient component, r = 2, {shots} shots per part, method "
+              f"{runner.simulator.options.method}: {time.perf_counter() - start:.1f} s, "
+              f"{e.circuits_run} distinct settings, value {e.value:.3g} +- {abs(e.stderr):.2g}")
+
+
+def main(quick=False, large=False):
     shots = 10_000
     part1(shots, 1 if quick else 3)
     part2(shots)
     if not quick:
         part3(shots)
+    if large:
+        part4()
 
 
 if __name__ == "__main__":
-    main("--quick" in sys.argv)
+    main("--quick" in sys.argv, "--large" in sys.argv)

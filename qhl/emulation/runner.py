@@ -38,12 +38,13 @@ import numpy as np
 from ..circuits.circuit_family import PARTS, SAMPLINGS
 from ..base.errors import QhlInputError
 from ..base.blas import single_thread_blas
+from ..base.memory import require_memory
 from .estimate import Estimate
 from .noise import NOISY_BASIS, NoiseSpec, noisy_layers
 
 __all__ = ["FamilyRunner", "outcome_values", "group_settings", "METHODS", "AUDIT_TOLERANCE"]
 
-METHODS = ("auto", "fast", "aer")
+METHODS = ("auto", "fast", "aer", "mps")
 AUDIT_TOLERANCE = 1e-9
 
 
@@ -115,7 +116,14 @@ class FamilyRunner:
             cores). Results do not depend on it: Aer seeds each bound setting from
             `seed_simulator` and its index (checked in tests/test_emulator.py).
         method: 'auto' (default: the numpy fast path for noiseless signal, Hadamard-gradient and
-            Hessian families, Aer otherwise), 'fast' (refuse when it does not apply) or 'aer'.
+            Hessian families of at most fast_path.MAX_FAST_QUBITS spins, Aer's statevector method
+            otherwise), 'fast' (refuse when it does not apply), 'aer' (statevector) or 'mps'
+            (Aer's matrix_product_state method, for clusters beyond the statevector memory).
+        mps_truncation, mps_max_bond: Aer's matrix_product_state_truncation_threshold (Schmidt
+            coefficients are dropped while the discarded weight stays below it; Aer's default
+            1e-16) and matrix_product_state_max_bond_dimension (None: unbounded), qiskit-aer
+            documentation. With the defaults the MPS is exact up to rounding; a bound on the bond
+            dimension makes it an approximation whose error Aer does not report.
         sampling: 'stratified' (default) or 'iid' (see CircuitFamily.sample).
         audit: distinct settings per run whose fast-path probabilities are recomputed by Aer
             (statevector method) and must agree to AUDIT_TOLERANCE (0: none).
@@ -127,7 +135,8 @@ class FamilyRunner:
     """
 
     def __init__(self, family, noise: NoiseSpec | None = None, threads: int | None = None, *,
-                 method: str = "auto", sampling: str = "stratified", audit: int = 0):
+                 method: str = "auto", sampling: str = "stratified", audit: int = 0,
+                 mps_truncation: float = 1e-16, mps_max_bond: int | None = None):
         from .fast_path import FastFamily, supports_fast_path
 
         if method not in METHODS:
@@ -138,11 +147,14 @@ class FamilyRunner:
         self.noise = noise if noise is not None else NoiseSpec()
         self.threads = int(threads or os.cpu_count() or 1)
         self.sampling, self.audit_settings = sampling, int(audit)
+        self.method = method
+        self.mps_options = dict(matrix_product_state_truncation_threshold=float(mps_truncation),
+                                matrix_product_state_max_bond_dimension=mps_max_bond)
         fast_ok = self.noise.is_noiseless and supports_fast_path(family)
         if method == "fast" and not fast_ok:
             raise QhlInputError("the fast path needs a noiseless signal, Hadamard-gradient or Hessian family",
                                 key="method")
-        self.uses_fast_path = fast_ok and method != "aer"
+        self.uses_fast_path = fast_ok and method in ("auto", "fast")
         self.fast = FastFamily(family) if self.uses_fast_path else None
         self._transpiled = self._simulator = self._audit_circuit = None
         self.values = outcome_values(family)
@@ -155,6 +167,12 @@ class FamilyRunner:
 
         opts = dict(method="statevector", max_parallel_threads=self.threads,
                     max_parallel_experiments=self.threads, max_parallel_shots=1)
+        nq = self.family.circuit.num_qubits
+        if self.method == "mps":
+            opts.update(method="matrix_product_state", **self.mps_options)
+        else:
+            require_memory(f"Aer statevectors of {nq} qubits ({self.threads} in parallel; use method='mps')",
+                           16.0 * 2 ** nq * self.threads * (1 if self.noise.is_noiseless else 2))
         measured = self.family.with_measurements(self.family.circuit)
         if self.noise.is_noiseless:
             self._simulator = AerSimulator(**opts)
