@@ -284,3 +284,18 @@ def test_matrix_product_state_method_estimates_the_same_gradient(small):
     e = estimate_family(fam, 2000, 3, runner=r)
     ref = family_reference_value(fam)
     assert abs(e.re.value - ref.real) < 4 * e.re.stderr and abs(e.im.value - ref.imag) < 4 * e.im.stderr
+
+
+def test_outcome_values_without_a_table_match_qiskit(small):
+    """values_of_outcomes (bit masks, no 2^m table) = <k|O|k> from qiskit Statevector.from_int
+    for every outcome of a two-ancilla family (qiskit documentation)."""
+    from qhl.emulation.runner import observable_masks, values_of_outcomes
+    model, ex, names = small
+    fam = hessian_circuit(model, ex, (names[0], names[3]), T, 1)
+    nq = fam.circuit.num_qubits
+    outcomes = np.arange(2 ** len(fam.measured_qubits))
+    vals = values_of_outcomes(observable_masks(fam), outcomes)
+    for o in outcomes:
+        k = sum(((int(o) >> c) & 1) << q for c, q in enumerate(fam.measured_qubits))
+        ref = np.real(Statevector.from_int(k, 2 ** nq).expectation_value(fam.observable))
+        assert vals[o] == pytest.approx(ref, abs=1e-14)

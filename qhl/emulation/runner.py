@@ -42,10 +42,12 @@ from ..base.memory import require_memory
 from .estimate import Estimate
 from .noise import NOISY_BASIS, NoiseSpec, noisy_layers
 
-__all__ = ["FamilyRunner", "outcome_values", "group_settings", "METHODS", "AUDIT_TOLERANCE"]
+__all__ = ["FamilyRunner", "outcome_values", "observable_masks", "values_of_outcomes", "group_settings", "METHODS",
+           "AUDIT_TOLERANCE"]
 
 METHODS = ("auto", "fast", "aer", "mps")
 AUDIT_TOLERANCE = 1e-9
+MAX_TABLE_BITS = 20      # outcome-value tables up to 2^20 entries; beyond, values per measured key
 
 
 def outcome_values(family) -> np.ndarray:
@@ -53,24 +55,14 @@ def outcome_values(family) -> np.ndarray:
 
     Returns:
         (2^m,) real array indexed by the integer whose bit k is clbit k.
+
+    Raises:
+        QhlInputError: a non-diagonal observable; MemoryBudgetError: a table that would not fit.
     """
-    measured = list(family.measured_qubits)
-    m = len(measured)
-    where = {q: k for k, q in enumerate(measured)}
-    obs = family.observable
-    if np.any(obs.paulis.x):
-        raise QhlInputError("the family observable must be diagonal (Z's only)", key="observable")
-    outcomes = np.arange(2 ** m)
-    values = np.zeros(2 ** m)
-    for zrow, c in zip(obs.paulis.z, obs.coeffs):
-        mask = 0
-        for q in np.flatnonzero(zrow):
-            if int(q) not in where:
-                raise QhlInputError(f"observable acts on unmeasured qubit {q}", key="observable")
-            mask |= 1 << where[int(q)]
-        parity = np.array([bin(int(o) & mask).count("1") & 1 for o in outcomes])
-        values += float(np.real(c)) * (1 - 2 * parity)
-    return values
+    masks = observable_masks(family)
+    m = len(family.measured_qubits)
+    require_memory("the outcome-value table", 16.0 * 2 ** m)
+    return values_of_outcomes(masks, np.arange(2 ** m, dtype=np.int64))
 
 
 _ANGLE_CODES = (0.0, np.pi, np.pi / 2, -np.pi / 2)   # |0>, |1>, |+>, |-> (qhl.circuits.state_prep)
@@ -97,6 +89,33 @@ def _distinct_settings(settings, prep):
     key = settings.insertion_rows.astype(np.int64) * 4 ** angles.shape[1] + code
     _, first, counts = np.unique(key, return_index=True, return_counts=True)
     return first, counts
+
+
+def observable_masks(family):
+    """[(coefficient, bit mask over classical bits)] of the diagonal family observable, so that the
+    value of outcome o is sum_c coefficient_c (1 - 2 parity(o & mask_c)) (no 2^m table)."""
+    where = {q: k for k, q in enumerate(family.measured_qubits)}
+    obs = family.observable
+    if np.any(obs.paulis.x):
+        raise QhlInputError("the family observable must be diagonal (Z's only)", key="observable")
+    out = []
+    for zrow, c in zip(obs.paulis.z, obs.coeffs):
+        mask = 0
+        for q in np.flatnonzero(zrow):
+            if int(q) not in where:
+                raise QhlInputError(f"observable acts on unmeasured qubit {q}", key="observable")
+            mask |= 1 << where[int(q)]
+        out.append((float(np.real(c)), mask))
+    return out
+
+
+def values_of_outcomes(masks, outcomes) -> np.ndarray:
+    """Observable values of integer outcomes (any number of classical bits up to 62)."""
+    outcomes = np.asarray(outcomes, np.int64)
+    vals = np.zeros(outcomes.shape)
+    for c, mask in masks:
+        vals += c * (1.0 - 2.0 * (np.bitwise_count(outcomes & np.int64(mask)) & 1).astype(float))
+    return vals
 
 
 def group_settings(settings):
@@ -157,7 +176,9 @@ class FamilyRunner:
         self.uses_fast_path = fast_ok and method in ("auto", "fast")
         self.fast = FastFamily(family) if self.uses_fast_path else None
         self._transpiled = self._simulator = self._audit_circuit = None
-        self.values = outcome_values(family)
+        self.masks = observable_masks(family)
+        m = len(family.measured_qubits)
+        self.values = outcome_values(family) if m <= MAX_TABLE_BITS else None
         self.last_audit = None
 
     # ---------------------------------------------------------------- Aer, built on first use
@@ -205,17 +226,17 @@ class FamilyRunner:
         return int(np.max(np.sum(self.family.observable.paulis.z, axis=1)))
 
     def _simulate(self, rows, shots, seed):
-        """Counts (len(rows), 2^m) from one Aer run of every row with `shots` shots."""
+        """[(outcome integers, counts)] per row from one Aer run of every row with `shots` shots."""
         self.transpiled
         binds = {p: rows[:, k].tolist() for p, k in self._bound}
         result = self.simulator.run(self.transpiled, parameter_binds=[binds] if binds else None, shots=int(shots),
                                     seed_simulator=int(seed)).result()
         if not result.success:
             raise RuntimeError(f"Aer run failed: {result.status}")
-        out = np.zeros((len(rows), len(self.values)), np.int64)
+        out = []
         for i in range(len(rows)):
-            for key, c in result.data(i)["counts"].items():
-                out[i, int(key, 16)] += c
+            counts = result.data(i)["counts"]
+            out.append((np.array([int(k, 16) for k in counts], np.int64), np.array(list(counts.values()), np.int64)))
         return out
 
     def aer_probabilities(self, rows) -> np.ndarray:
@@ -266,8 +287,7 @@ class FamilyRunner:
             with single_thread_blas(2 ** self.fast.n):
                 per_row, per_row_sq = self._draw_fast(params, ins_rows, scale, counts, part, rng)
         else:
-            kept = self._draw_aer(params, counts, rng)
-            per_row, per_row_sq = kept @ self.values, kept @ self.values ** 2
+            per_row, per_row_sq = self._draw_aer(params, counts, rng)
         total = float(np.sum(scale * per_row))
         total_sq = float(np.sum(scale ** 2 * per_row_sq))
         strat = None
@@ -317,14 +337,17 @@ class FamilyRunner:
         return per_row, per_row_sq
 
     def _draw_aer(self, params, counts, rng):
+        """(sum of a, sum of a^2) per distinct setting from Aer counts (module docstring)."""
         if self.noise.has_gate_noise:
             buckets = 2 ** np.ceil(np.log2(counts)).astype(int)
         else:
             buckets = np.full(len(counts), counts.max())
-        kept = np.zeros((len(params), len(self.values)), np.int64)
+        per_row, per_row_sq = np.zeros(len(params)), np.zeros(len(params))
         for b in np.unique(buckets):
             sel = np.flatnonzero(buckets == b)
             drawn = self._simulate(params[sel], b, rng.integers(0, 2 ** 31 - 1))
-            for i, d in zip(sel, drawn):
-                kept[i] = d if counts[i] == b else rng.multivariate_hypergeometric(d, int(counts[i]))
-        return kept
+            for i, (keys, d) in zip(sel, drawn):
+                kept = d if counts[i] == b else rng.multivariate_hypergeometric(d, int(counts[i]))
+                a = values_of_outcomes(self.masks, keys)
+                per_row[i], per_row_sq[i] = float(kept @ a), float(kept @ a ** 2)
+        return per_row, per_row_sq
