@@ -88,7 +88,10 @@ def invisible_directions(model, names=None) -> np.ndarray:
     stacked = np.vstack([m.real, m.imag, m0.real, m0.imag])
     if stacked.shape[0] == 0:
         return np.eye(len(names))
-    return null_space(stacked, rcond=1e-10)
+    # QR first: the tall matrix (one row per commutator Pauli) reduces to a P x P triangle with
+    # the same null space, so the SVD stays small.
+    r = np.linalg.qr(stacked, mode="r")
+    return null_space(r, rcond=1e-10)
 
 
 def unidentifiable_parameters(model, names=None) -> list:
