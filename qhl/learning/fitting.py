@@ -390,7 +390,7 @@ class LearnReport:
 
 def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, seed: int = 0,
           start_offset=None, method: str = "gn", gradients: str = "exact", shots=None,
-          max_iter: int = 200, progress=None) -> LearnReport:
+          max_iter: int = 200, progress=None, evaluation_progress=None) -> LearnReport:
     """Fit `cluster`'s free parameters to measured (CSV) or synthetic signals.
 
     Synthetic data: the cluster's own values plus Gaussian noise `sigma` (default each
@@ -405,6 +405,8 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
         sigma: noise per point (synthetic noise, or CSV noise without a sigma column).
         seed, start_offset, method, max_iter, progress: see `fit` and `perturbed_start`.
         gradients: 'exact' (ExactEngine) or 'emulated' (circuit emulator, `shots` per estimate).
+        evaluation_progress: callable(done, total, label) within each evaluation of the emulated
+            provider (one circuit family at a time); ignored for exact gradients.
 
     Returns:
         LearnReport.
@@ -453,6 +455,7 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
         if shots is None:
             raise QhlInputError("--gradients emulated needs --shots N", key="--shots")
         provider = emulated_gradient_provider(model, experiments, shots, seed)
+        provider.progress = evaluation_progress
     else:
         provider = ExactGradientProvider(engine, experiments)
     result = fit(provider, dataset, start, method=method, max_iter=max_iter, progress=progress)
