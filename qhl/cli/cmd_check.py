@@ -42,22 +42,31 @@ class _Bars:
         self._bar("rows", "emulated derivatives", total).update(done, label[:40])
 
 
-def _plot(report, path):
+def check_figure(report, title):
+    """Emulated vs exact derivatives with error bars; the legend sits right of the axes, off the data."""
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     rows = report.rows
-    fig, ax = plt.subplots(figsize=(max(6, 0.35 * len(rows)), 4))
+    fig, ax = plt.subplots(figsize=(max(6, 0.35 * len(rows)) + 2.5, 4.2))
     x = range(len(rows))
     ax.errorbar(x, [r["emulated"] for r in rows], yerr=[r["stderr"] for r in rows], fmt="o", ms=3,
                 label="emulated +- stderr")
     ax.plot(x, [r["trotter_exact"] for r in rows], "x", label="exact Trotterised")
     ax.plot(x, [r["exact"] for r in rows], "+", label="exact (continuous)")
+    ax.axhline(0.0, color="0.7", lw=0.8)
     ax.set_xticks(list(x), [f"{r['parameter']} {r['part']}" for r in rows], rotation=90, fontsize=6)
     ax.set_ylabel("derivative of S (1/Hz or 1/Hz^2)")
-    ax.legend(fontsize=7)
+    ax.set_title(title, fontsize=9)
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
     fig.tight_layout()
-    fig.savefig(path, dpi=120)
+    return fig
+
+
+def _plot(report, path, title):
+    import matplotlib.pyplot as plt
+    fig = check_figure(report, title)
+    fig.savefig(path, dpi=120, bbox_inches="tight")
     plt.close(fig)
 
 
@@ -81,7 +90,8 @@ def run(args):
     if report.interrupted:
         print(f"\nqhl check: interrupted; {len(report.rows)} of {report.planned} rows finished", file=sys.stderr)
     if args.plot and report.rows:
-        _plot(report, args.plot)
+        _plot(report, args.plot, f"qhl check {cluster.name}: t = {report.time_s:g} s, r = {report.steps}, "
+                                 f"{args.shots} shots per part; {report.status.upper()}")
     for w in report.warnings():
         print(f"qhl: warning: {w}", file=sys.stderr)
     if args.json:
