@@ -70,6 +70,9 @@ def run(args):
     if args.plot:
         check_output_path(args.plot, "--plot")
     bars = _Progress(args.max_iter)
+    if not args.json:
+        print(f"qhl learn: {cluster.n_spins} spins, {args.gradients} gradients; the first line comes after "
+              f"the starting point is evaluated", file=sys.stderr)
     report = learn(cluster, free=args.free, data_path=args.data, sigma=args.noise, seed=args.seed,
                    start_offset=args.start_offset, method=args.method, gradients=args.gradients,
                    shots=args.shots, max_iter=args.max_iter, progress=None if args.json else bars.iteration,
@@ -92,6 +95,11 @@ def run(args):
         return 1
     if not fit.converged:
         print(f"qhl: warning: {fit.message}", file=sys.stderr)
+    gof = report.goodness_of_fit
+    if gof["p_value"] < 1e-6:
+        print(f"qhl: warning: the cost is far above the noise: 2 x cost = {gof['chi2']:.4g} against a chi-square "
+              f"with {gof['dof']} degrees of freedom (p = {gof['p_value']:.1e}); a local minimum or a wrong "
+              f"noise level: try another --seed or a smaller --start-offset", file=sys.stderr)
     for u in fit.unlearnable:
         combo = describe_combination(u["combination"])
         print(f"qhl: warning: the data do not determine {combo} (Fisher eigenvalue {u['eigenvalue']:.2e})",

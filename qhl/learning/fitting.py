@@ -374,6 +374,17 @@ class LearnReport:
         ref = self.fit.values_hz if self.true_hz is None else self.true_hz
         return crb_relative_error(self.fit.stderr_hz, ref)
 
+    @property
+    def goodness_of_fit(self) -> dict:
+        """2C against chi-square with N - P degrees of freedom (N real data values: Re and Im of
+        every point). For a fit at the global optimum with the right sigma, 2C ~ chi2(N - P)
+        (Kay 1993, ch. 7); a p-value below 1e-6 points to a local minimum or a wrong sigma."""
+        from scipy.stats import chi2
+        n = 2 * sum(int(np.size(v[1])) for v in self.dataset.signals.values())
+        dof = max(n - len(self.fit.names), 1)
+        stat = 2.0 * self.fit.cost
+        return {"chi2": stat, "dof": dof, "p_value": float(chi2.sf(stat, dof))}
+
     def to_json(self) -> dict:
         f = self.fit
         params = [{"name": n, "fitted_hz": v, "stderr_hz": e,
@@ -385,7 +396,7 @@ class LearnReport:
                 "history": f.history, "cost": f.cost, "relative_error": self.relative_error,
                 "crb_relative_error": self.crb_relative_error, "unlearnable": f.unlearnable,
                 "diverged": f.diverged, "fixed_unlearnable": list(self.fixed_unlearnable),
-                "hidden": list(self.model.hidden)}
+                "hidden": list(self.model.hidden), "goodness_of_fit": self.goodness_of_fit}
 
 
 def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, seed: int = 0,
