@@ -70,9 +70,6 @@ def run(args):
     if args.plot:
         check_output_path(args.plot, "--plot")
     bars = _Progress(args.max_iter)
-    if not args.json:
-        print(f"qhl learn: {cluster.n_spins} spins, {args.gradients} gradients; the first line comes after "
-              f"the starting point is evaluated", file=sys.stderr)
     report = learn(cluster, free=args.free, data_path=args.data, sigma=args.noise, seed=args.seed,
                    start_offset=args.start_offset, method=args.method, gradients=args.gradients,
                    shots=args.shots, max_iter=args.max_iter, progress=None if args.json else bars.iteration,
