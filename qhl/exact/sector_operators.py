@@ -189,6 +189,7 @@ def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: fl
             else:
                 offabs[rows] += np.abs(val)
     mat = sps.csr_matrix((data, indices, indptr), shape=(d, d))
+    mat.sort_indices()                      # in place; sorted columns make the products faster
     if not bounds:
         return mat
     lo = float(np.min(diag - offabs)) if d else 0.0

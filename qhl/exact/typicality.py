@@ -33,9 +33,10 @@ import math
 
 import numpy as np
 
+from ..base.blas import single_thread_blas
 from ..base.errors import QhlInputError
 from ..base.memory import available_memory_bytes, require_memory
-from .chebyshev import chebyshev_terms, chebyshev_window
+from .chebyshev import chebyshev_window, lanczos_bounds
 from .sector_operators import SectorSpace, csr_bytes, ladder_block, pauli_groups, sector_matrix
 from .sectors import conserves_magnetisation
 
@@ -202,7 +203,8 @@ class TypicalEngine:
             w = window if window is not None else self._window(ds + dp, m, n_times)
             mats = csr_bytes(self._nnz(s), ds) + csr_bytes(self._nnz(p), dp)
             ladders = 2 * csr_bytes(dp * len(self.observed), ds)
-            work = (ds + dp) * (8.0 * 2 * m * 5 + 16.0 * m * (w + 1) + 16.0)
+            blk = self._window(max(ds, dp), m, 16)
+            work = (ds + dp) * (8.0 * 2 * m * 5 + 16.0 * m * (w + 1) + 16.0) + 16.0 * max(ds, dp) * m * blk
             gens = n_gradient * 2 * csr_bytes(2 * (ds + dp), ds + dp)
             peak = max(peak, mats + ladders + work + gens)
         return peak + self.space.index_bytes() + 2**self.model.n_spins * 4.0 + 64e6
@@ -242,9 +244,16 @@ class TypicalEngine:
                  parameters=None) -> TypicalEstimate:
         """S(t) (and dS/dh for `parameters`, default all free, when gradient=True) with errors.
 
+        BLAS runs on one thread: the dense work here is skinny products (a few columns), which
+        multithreaded BLAS slows down on a shared machine (qhl.base.blas).
+
         Raises:
             MemoryBudgetError: the estimate would not fit (the message gives the estimate).
         """
+        with single_thread_blas(0):
+            return self._estimate(experiment, times, free_values_hz, gradient, parameters)
+
+    def _estimate(self, experiment, times, free_values_hz, gradient, parameters):
         model = self.model
         t = self._times(experiment, times)
         order = np.argsort(t, kind="stable")
@@ -275,15 +284,26 @@ class TypicalEngine:
                 for old in [key for key in cache if key not in current]:
                     del cache[old]
                 st = sp.states(k)
-                mat, lo, hi = sector_matrix(sp, k, h_groups, states=st, bounds=True)
+                mat, glo, ghi = sector_matrix(sp, k, h_groups, states=st, bounds=True)
+                llo, lhi = lanczos_bounds(mat, seed=self.seed)
                 gens = [sector_matrix(sp, k, g, states=st) for g in g_groups]
-                cache[k] = (st, mat, lo, hi, gens)
+                cache[k] = [st, mat, max(glo, llo), min(ghi, lhi), gens, (glo, ghi)]
             return cache[k]
+
+        def propagate(k, apply, x, taus):
+            entry = cache[k]
+            out = chebyshev_window(apply, x, taus, entry[2], entry[3], self.tol, block=blk)
+            n0 = np.linalg.norm(x[:, :R], axis=0) ** 2 + np.linalg.norm(x[:, m:m + R], axis=0) ** 2
+            n1 = np.sum(np.abs(out[:, :, :R]) ** 2, axis=1)
+            if np.any(np.abs(n1 - n0[None, :]) > 1e-8 * np.maximum(n0, 1e-300)[None, :]):
+                entry[2], entry[3] = entry[5]          # the Lanczos estimate was too tight
+                out = chebyshev_window(apply, x, taus, entry[2], entry[3], self.tol, block=blk)
+            return out
 
         for bi, (s, p) in enumerate(self.blocks):
             current = {s, p}
-            st_s, h_s, lo_s, hi_s, g_s = ham(s)
-            st_p, h_p, lo_p, hi_p, g_p = ham(p)
+            st_s, h_s, _, _, g_s, _ = ham(s)
+            st_p, h_p, _, _, g_p, _ = ham(p)
             ds, dp = st_s.size, st_p.size
             lower = ladder_block(sp, s, p, self.observed, raising=False, row_states=st_s, col_states=st_p)
             raise_op = ladder_block(sp, p, s, self.observed, raising=True, row_states=st_p, col_states=st_s)
@@ -295,14 +315,15 @@ class TypicalEngine:
             xb[:, :R], xb[:, m:m + R] = 0.5 * (lower @ re), 0.5 * (lower @ im)
             del re, im
             w = self._window(ds + dp, m, t.size)
+            blk = self._window(max(ds, dp), m, 16)
             apply_a = _augmented(h_p, g_p, R, m)
             apply_b = _augmented(h_s, g_s, R, m)
             tc = 0.0
             for start in range(0, t.size, w):
                 sl = slice(start, min(start + w, t.size))
                 taus = ts[sl] - tc
-                out_a = chebyshev_window(apply_a, xa, taus, lo_p, hi_p, self.tol)
-                out_b = chebyshev_window(apply_b, xb, taus, lo_s, hi_s, self.tol)
+                out_a = propagate(p, apply_a, xa, taus)
+                out_b = propagate(s, apply_b, xb, taus)
                 for j, ti in enumerate(range(sl.start, sl.stop)):
                     ob = (raise_op @ out_b[j].view(float)).view(complex)     # (dp, m)
                     a = out_a[j].reshape(dp, 1 + P, R)
