@@ -40,7 +40,8 @@ from .chebyshev import chebyshev_window, lanczos_bounds
 from .sector_operators import SectorSpace, csr_bytes, ladder_block, pauli_groups, sector_matrix
 from .sectors import conserves_magnetisation
 
-__all__ = ["TypicalEngine", "TypicalEstimate", "typical_memory_bytes", "MAX_TYPICAL_SPINS"]
+__all__ = ["TypicalEngine", "TypicalEstimate", "typical_memory_bytes", "pair_memory_bytes", "window_points",
+           "MAX_TYPICAL_SPINS"]
 
 MAX_TYPICAL_SPINS = 30
 
@@ -114,6 +115,32 @@ def typical_memory_bytes(model, n_times: int = 64, replicas: int = 4, n_gradient
     eng = TypicalEngine.__new__(TypicalEngine)
     eng._setup(model)
     return eng.memory_bytes(n_times, replicas, n_gradient, window)
+
+
+def window_points(d_pair: float, m: int, n_times: int, window_bytes: float = 2.0**29) -> int:
+    """Time points per Chebyshev window: as many as `window_bytes` holds (complex outputs of two
+    sectors, m columns), at most 32 and at most n_times."""
+    return int(max(1, min(n_times, 32, window_bytes // max(16.0 * d_pair * m, 1.0))))
+
+
+def pair_memory_bytes(ds, dp, nnz_s, nnz_p, n_obs, replicas, n_times, n_gradient=0,
+                      window_bytes=2.0**29, window=None) -> float:
+    """Peak memory (bytes) while one sector pair (dimensions ds, dp) is propagated.
+
+    Two sector Hamiltonians (CSR), two ladder blocks (at most n_obs entries per row), and per
+    sector the Chebyshev work arrays (6 real arrays of 2M columns, M = replicas (1 + n_gradient)),
+    the window's complex outputs twice (the outputs and the product added to them) and the
+    blocked accumulation buffer, plus the generators of
+    the differentiated parameters (at most two entries per row each).
+    """
+    m = replicas * (1 + n_gradient)
+    w = window if window is not None else window_points(ds + dp, m, n_times, window_bytes)
+    blk = window_points(max(ds, dp), m, 16, window_bytes)
+    mats = csr_bytes(nnz_s, ds) + csr_bytes(nnz_p, dp)
+    ladders = 2 * csr_bytes(dp * n_obs, ds)
+    work = (ds + dp) * (8.0 * 2 * m * 6 + 16.0 * m * (2 * w + 1) + 16.0) + 16.0 * max(ds, dp) * m * blk
+    gens = n_gradient * 2 * csr_bytes(2 * (ds + dp), ds + dp)
+    return mats + ladders + work + gens
 
 
 class TypicalEngine:
@@ -195,22 +222,14 @@ class TypicalEngine:
                      window: int | None = None) -> float:
         """Estimated peak memory (bytes) of one estimate (see typical_memory_bytes)."""
         r = self.replicas if replicas is None else replicas
-        m = r * (1 + n_gradient)
         dims = self.space.dims
-        peak = 0.0
-        for s, p in self.blocks:
-            ds, dp = dims[s], dims[p]
-            w = window if window is not None else self._window(ds + dp, m, n_times)
-            mats = csr_bytes(self._nnz(s), ds) + csr_bytes(self._nnz(p), dp)
-            ladders = 2 * csr_bytes(dp * len(self.observed), ds)
-            blk = self._window(max(ds, dp), m, 16)
-            work = (ds + dp) * (8.0 * 2 * m * 5 + 16.0 * m * (w + 1) + 16.0) + 16.0 * max(ds, dp) * m * blk
-            gens = n_gradient * 2 * csr_bytes(2 * (ds + dp), ds + dp)
-            peak = max(peak, mats + ladders + work + gens)
-        return peak + self.space.index_bytes() + 2**self.model.n_spins * 4.0 + 64e6
+        peak = max(pair_memory_bytes(dims[s], dims[p], self._nnz(s), self._nnz(p), len(self.observed), r,
+                                     n_times, n_gradient, self.window_bytes, window)
+                   for s, p in self.blocks)
+        return max(peak + self.space.index_bytes(), 32.0 * 2**self.model.n_spins)
 
     def _window(self, d_pair, m, n_times):
-        return int(max(1, min(n_times, 32, self.window_bytes // max(16.0 * d_pair * m, 1.0))))
+        return window_points(d_pair, m, n_times, self.window_bytes)
 
     # ------------------------------------------------------------------ estimates
     def _times(self, experiment, times):
