@@ -9,7 +9,7 @@ calls, cached) and the known scaling of the method:
   memory = qhl.exact.engine.estimate_memory_bytes (the engine's own model; sum d^2 scaling).
 * 'pure-state' (the typical engine, qhl.exact.typicality): sparse Chebyshev propagation of
   random states, sector pair by sector pair,
-      seconds = c_term * 2M * K * sum_(s,p) (nnz_s + nnz_p) + c_build * sum_s nnz_s,
+      seconds = (c_fixed + c_term * 2M) * K * sum_(s,p) (nnz_s + nnz_p) + c_build * sum_s nnz_s,
   with M = replicas complex columns (2M real ones), K Chebyshev terms per propagation
   (qhl.exact.chebyshev.chebyshev_terms over the engine's time windows, spectral half-width
   w = rho * sum_P |c_P|, rho measured by Lanczos on a sub-cluster of at most 12 spins of this
@@ -51,6 +51,11 @@ class Calibration:
     c_gemm: float        # s per d^3 of a dense matrix product
     c_term: float        # s per (nonzero x real column) of one Chebyshev term, accumulation included
     c_build: float       # s per nonzero of building a sector Hamiltonian
+    c_term_fixed: float = 0.0   # s per nonzero of one Chebyshev term, independent of the columns
+
+    def term_seconds(self, nnz: float, real_columns: int) -> float:
+        """Seconds of one Chebyshev term on `nnz` nonzeros with `real_columns` vectors."""
+        return nnz * (self.c_term_fixed + self.c_term * real_columns)
 
 
 def _median_time(fun, repeats=3):
@@ -64,7 +69,8 @@ def _median_time(fun, repeats=3):
 
 def calibrate(force: bool = False) -> Calibration:
     """Measure the rates once per process (about 1-2 s): dense eigh and product at d = 600, and
-    a 16-spin sector Hamiltonian (invented all-to-all couplings) built and propagated."""
+    a 16-spin sector Hamiltonian (invented all-to-all couplings) built and propagated with 4 and
+    8 real columns (cost per term = nnz (c_fixed + c_term columns))."""
     if "cal" in _CACHE and not force:
         return _CACHE["cal"]
     import scipy.linalg as sla
@@ -93,14 +99,18 @@ def calibrate(force: bool = False) -> Calibration:
         t0 = time.perf_counter()
         mat = sector_matrix(space, n // 2, pauli_groups(op))
         c_build = (time.perf_counter() - t0) / mat.nnz
-        x0 = rng.standard_normal((mat.shape[0], 8))
         hw = float(np.abs(op.coeffs).sum())
         taus = np.linspace(0, 40.0 / hw, 16)
         from ..exact.chebyshev import chebyshev_terms
         k = chebyshev_terms(hw * taus[-1], 1e-10)
-        dt = _median_time(lambda: chebyshev_window(lambda y: mat @ y, x0, taus, -hw, hw, 1e-10), 2)
-        c_term = dt / (k * mat.nnz * 8)
-    cal = Calibration(c_eigh, c_gemm, c_term, c_build)
+        per = {}
+        for cols in (4, 8):
+            x0 = rng.standard_normal((mat.shape[0], cols))
+            dt = _median_time(lambda: chebyshev_window(lambda y: mat @ y, x0, taus, -hw, hw, 1e-10), 2)
+            per[cols] = dt / (k * mat.nnz)
+        c_term = max((per[8] - per[4]) / 4, 0.0)
+        c_fixed = max(per[4] - 4 * c_term, 0.0)
+    cal = Calibration(c_eigh, c_gemm, c_term, c_build, c_fixed)
     _CACHE["cal"] = cal
     return cal
 
@@ -186,7 +196,7 @@ def route_costs(n, flip_pairs, half_width, t_max, n_times, n_obs=None, replicas=
         k_total += chebyshev_terms(half_width * (seg[-1] - tc), tol)
         tc = seg[-1]
     work = sum(nnz[s] + nnz[p] for s, p in pairs)
-    ps_s = cal.c_term * 2 * m * k_total * work + cal.c_build * sum(nnz)
+    ps_s = cal.term_seconds(work, 2 * m) * k_total + cal.c_build * sum(nnz)
     ps_m = max(pair_memory_bytes(dims[s], dims[p], nnz[s], nnz[p], n_obs, replicas, n_times)
                for s, p in pairs) + 8.0 * 2**n
     ps_m = max(ps_m, 32.0 * 2**n)
