@@ -186,8 +186,9 @@ def test_stated_95_percent_intervals_cover():
 
 
 def test_memory_refusal_states_the_estimate(monkeypatch):
-    import qhl.base.memory as memory
-    monkeypatch.setattr(memory, "available_memory_bytes", lambda: 1e6)
+    import qhl.exact.typicality as typicality
+    # patch the globals the engine's require_memory really reads (robust to duplicate module copies)
+    monkeypatch.setitem(typicality.require_memory.__globals__, "available_memory_bytes", lambda: 1e3)
     with pytest.raises(MemoryBudgetError, match="GiB"):
         TypicalEngine(build_model(invented_cluster(8)))
 
