@@ -52,3 +52,24 @@ def test_table_names_the_method(capsys):
     assert main(["signal", "--method", "typical", "--replicas", "2"]) == 0
     out = capsys.readouterr().out
     assert "method: typical" in out and "max stderr" in out
+
+
+def test_ctrl_c_keeps_finished_experiments():
+    # RULES: Ctrl-C keeps what is done (common practice); simulated with an engine that is
+    # interrupted during the second experiment
+    from qhl.exact.signals import compute_signals
+
+    class Interrupted(TypicalEngine):
+        calls = 0
+
+        def estimate(self, *a, **k):
+            Interrupted.calls += 1
+            if Interrupted.calls == 2:
+                raise KeyboardInterrupt
+            return super().estimate(*a, **k)
+
+    c = demo_cluster()
+    rep = compute_signals(c, engine=Interrupted(build_model(c, free="offset:*"), replicas=2))
+    assert [e.name for e in rep.experiments] == [c.experiments[0].name]
+    assert "interrupted: 1 of 4" in rep.note
+    assert rep.to_json()["experiments"][0]["signal_stderr_real"] is not None

@@ -295,6 +295,8 @@ def classical_cost(cluster, replicas: int = 4, n_times: int | None = None, cal=N
     assumptions = [
         "rates measured on this machine once per process (dense eigh and product at d = 600; a 16-spin "
         "sector Hamiltonian built and propagated); one node as fast as this machine",
+        "the calibration sector fits in cache: larger sectors run slower (measured 3.0x at 18 spins, "
+        "benchmarks/bench_typical.py), so pure-state times above 16 spins are optimistic",
         f"one signal of the costliest experiment{(' (' + ex.name + ')') if ex else ''} "
         f"({t_max:g} s, {points} points); a gradient multiplies the pure-state time by about 1 + P",
         "sectors of one isotope (an upper bound for heteronuclear clusters)",

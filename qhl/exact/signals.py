@@ -70,6 +70,8 @@ def compute_signals(cluster, free=DEFAULT_FREE, gradient: bool = False, engine=N
         method: 'exact', 'typical' or 'auto' (ignored when `engine` is given).
         replicas, seed: random states of the typical engine (errors fall as 1/sqrt(replicas)).
         progress: optional callback(fraction) for the typical engine.
+
+    Ctrl-C after the first experiment returns the experiments finished so far (`note` says so).
     """
     note = ""
     if engine is None:
@@ -79,19 +81,27 @@ def compute_signals(cluster, free=DEFAULT_FREE, gradient: bool = False, engine=N
         model = engine.model
         method = "typical" if hasattr(engine, "estimate") else "exact"
     signals, grads, errs, gerrs = {}, {}, {}, {}
-    for ex in cluster.experiments:
-        if method == "typical":
-            est = engine.estimate(ex, gradient=gradient)
-            signals[ex.name] = est.signal
-            errs[ex.name] = (est.signal_stderr_real, est.signal_stderr_imag)
-            if gradient:
-                grads[ex.name] = est.gradient
-                gerrs[ex.name] = (est.gradient_stderr_real, est.gradient_stderr_imag)
-        elif gradient:
-            signals[ex.name], grads[ex.name] = engine.gradient(ex)
-        else:
-            signals[ex.name] = engine.signal(ex)
-    return SignalReport(cluster, model, list(cluster.experiments), signals, grads, method, errs, gerrs,
+    done = []
+    try:
+        for ex in cluster.experiments:
+            if method == "typical":
+                est = engine.estimate(ex, gradient=gradient)
+                signals[ex.name] = est.signal
+                errs[ex.name] = (est.signal_stderr_real, est.signal_stderr_imag)
+                if gradient:
+                    grads[ex.name] = est.gradient
+                    gerrs[ex.name] = (est.gradient_stderr_real, est.gradient_stderr_imag)
+            elif gradient:
+                signals[ex.name], grads[ex.name] = engine.gradient(ex)
+            else:
+                signals[ex.name] = engine.signal(ex)
+            done.append(ex)
+    except KeyboardInterrupt:
+        if not done:
+            raise
+        note = (note + "; " if note else "") + (f"interrupted: {len(done)} of {len(cluster.experiments)} "
+                                                "experiments computed, the rest left out")
+    return SignalReport(cluster, model, done, signals, grads, method, errs, gerrs,
                         getattr(engine, "replicas", 0), note)
 
 
