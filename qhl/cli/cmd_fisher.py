@@ -24,13 +24,13 @@ def run(args):
     from ..exact.engine_choice import make_engine
     from ..learning.fisher_report import describe_combination, fisher_report
     from ..spins.model import build_model
-    from .cmd_signal import StderrProgress
+    from .cmd_signal import StderrProgress, announce_typical
     cluster = cluster_from_args(args)
     progress = StderrProgress("typical engine")
     engine, method, note = make_engine(build_model(cluster, free=args.free), args.method,
                                        replicas=args.replicas, seed=args.seed, progress=progress)
-    if note:
-        print(f"qhl: note: {note}", file=sys.stderr)
+    if method == "typical":
+        announce_typical(cluster, note, args.replicas, len(engine.model.free))
     try:
         rep = fisher_report(cluster, free=args.free, sigma=args.noise, engine=engine)
     finally:

@@ -53,15 +53,32 @@ def register(sub):
     p.set_defaults(func=run)
 
 
+def announce_typical(cluster, note, replicas, n_gradient=0):
+    """Say on stderr why the typical engine runs and, from 16 spins on, about how long one signal takes."""
+    if note:
+        print(f"qhl: note: {note}", file=sys.stderr)
+    if cluster.n_spins >= 16:
+        from ..costing.classical_cost import classical_cost
+        secs = next(r["seconds"] for r in classical_cost(cluster, replicas=replicas).routes
+                    if r["method"] == "pure-state") * (1 + n_gradient)
+        print(f"qhl: note: the typical engine needs about {secs / 60:.3g} min for the costliest experiment "
+              "(estimate from `qhl classical`; optimistic on a busy machine)", file=sys.stderr)
+
+
 def run(args):
+    from ..exact.engine_choice import make_engine
     from ..exact.signals import compute_signals
+    from ..spins.model import build_model
     cluster = cluster_from_args(args)
     if args.plot:
         check_output_path(args.plot, "--plot")
     progress = StderrProgress("typical engine")
+    engine, method, note = make_engine(build_model(cluster, free=args.free), args.method,
+                                       replicas=args.replicas, seed=args.seed, progress=progress)
+    if method == "typical":
+        announce_typical(cluster, note, args.replicas, len(engine.model.free) if args.gradient else 0)
     try:
-        report = compute_signals(cluster, free=args.free, gradient=args.gradient, method=args.method,
-                                 replicas=args.replicas, seed=args.seed, progress=progress)
+        report = compute_signals(cluster, gradient=args.gradient, engine=engine)
     finally:
         progress.close()
     if report.note:
