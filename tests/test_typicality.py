@@ -217,3 +217,23 @@ def test_heteronuclear_within_stated_error(observe):
         d, ref, er, ei = val[..., 1:], ref[..., 1:], er[..., 1:], ei[..., 1:]
         assert np.max(np.abs(d.real - ref.real) / er) < 6
         assert np.max(np.abs(d.imag - ref.imag) / ei) < 6
+
+
+def test_rf_term_full_space_within_stated_error():
+    # an x-axis RF term mixes the sectors: the engine works in the full space (one 'sector');
+    # reference: the exact engine, which does the same (qhl.exact.engine). R = 32, 6 sigma.
+    c = invented_cluster(6)
+    m = build_model(c).with_rf_term("1H", 3000.0)
+    ex = c.experiments[0]
+    eng = TypicalEngine(m, replicas=32, seed=2)
+    assert not eng.symmetric
+    est = eng.estimate(ex)
+    s = ExactEngine(m).signal(ex)
+    assert np.max(np.abs(est.signal.real - s.real)[1:] / est.signal_stderr_real[1:]) < 6
+    assert np.max(np.abs(est.signal.imag - s.imag)[1:] / est.signal_stderr_imag[1:]) < 6
+
+
+def test_memory_model_function_matches_engine():
+    from qhl.exact.typicality import typical_memory_bytes
+    m = build_model(invented_cluster(8))
+    assert typical_memory_bytes(m, 64, 4) == TypicalEngine(m, replicas=4).memory_bytes(64)

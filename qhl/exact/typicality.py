@@ -104,16 +104,15 @@ def _flip_fraction(xm, label, groups_bits):
 
 
 def typical_memory_bytes(model, n_times: int = 64, replicas: int = 4, n_gradient: int = 0,
-                         window: int = 16) -> float:
-    """Peak-memory model of TypicalEngine for the largest pair of neighbouring sectors.
+                         window: int | None = None) -> float:
+    """Peak-memory model of TypicalEngine.estimate without building the engine's tables.
 
-    Counts: key and rank tables (8 bytes per basis state), two sector Hamiltonians (CSR, nnz
-    from the exact fraction of flip-flop entries per sector), two ladder blocks, and per sector
-    the Chebyshev work arrays (5 real arrays of 2M columns) plus `window` complex outputs of M
-    columns, M = replicas * (1 + n_gradient), plus the generators of the differentiated parameters.
+    The key and rank tables (8 bytes per basis state) plus the largest sector pair's
+    pair_memory_bytes (window: time points held at once; default the engine's own rule).
     """
     eng = TypicalEngine.__new__(TypicalEngine)
     eng._setup(model)
+    eng.replicas, eng.window_bytes = replicas, 2.0**29
     return eng.memory_bytes(n_times, replicas, n_gradient, window)
 
 
@@ -325,6 +324,9 @@ class TypicalEngine:
             st_p, h_p, _, _, g_p, _ = ham(p)
             ds, dp = st_s.size, st_p.size
             lower = ladder_block(sp, s, p, self.observed, raising=False, row_states=st_s, col_states=st_p)
+            if not sp.masks:        # one sector (H mixes magnetisations): rho0 = (I+ + I-) / 2 in full
+                lower = lower + ladder_block(sp, s, p, self.observed, raising=True, row_states=st_s,
+                                             col_states=st_p)
             raise_op = ladder_block(sp, p, s, self.observed, raising=True, row_states=st_p, col_states=st_s)
             re, im = self._random_vectors(bi, dp)
             m = R * (1 + P)
