@@ -28,10 +28,10 @@ def run(args):
         print_json({"cluster": cluster.name, "spins": cluster.n_spins, "classical": cost.to_json()})
         return 0
     print(f"cluster {cluster.name}: {cluster.n_spins} spins, {cost.couplings_per_spin:.2f} flip-flop couplings per spin")
-    print(f"{'route':<20}{'memory (GiB)':>14}{'time':>14}  feasible here")
+    print(f"{'route':<20}{'memory (GiB)':>14} {'time':>16}  feasible here")
     for r in cost.routes:
         mark = " (best)" if r["method"] == cost.method else ""
-        print(f"{r['method']:<20}{r['memory_bytes'] / 2**30:>14.3g}{_human_seconds(r['seconds']):>14}  "
+        print(f"{r['method']:<20}{r['memory_bytes'] / 2**30:>14.3g} {_human_seconds(r['seconds']):>16}  "
               f"{'yes' if r['feasible_here'] else 'no'}{mark}")
     cross = cost.crossover_spins
     print("classical simulation exceeds a day and 1 TiB from "
