@@ -16,13 +16,26 @@ def register(sub):
     p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    from .cmd_signal import add_method_arguments
+    add_method_arguments(p)
     p.set_defaults(func=run)
 
 
 def run(args):
+    from ..exact.engine_choice import make_engine
     from ..learning.fisher_report import describe_combination, fisher_report
+    from ..spins.model import build_model
+    from .cmd_signal import StderrProgress, announce_typical
     cluster = cluster_from_args(args)
-    rep = fisher_report(cluster, free=args.free, sigma=args.noise)
+    progress = StderrProgress("typical engine")
+    engine, method, note = make_engine(build_model(cluster, free=args.free), args.method,
+                                       replicas=args.replicas, seed=args.seed, progress=progress)
+    if method == "typical":
+        announce_typical(cluster, note, args.replicas, len(engine.model.free))
+    try:
+        rep = fisher_report(cluster, free=args.free, sigma=args.noise, engine=engine)
+    finally:
+        progress.close()
     if rep.hidden:
         print(f"qhl: note: left out of the default free set (the signal cannot see them): "
               f"{', '.join(rep.hidden)}", file=sys.stderr)
@@ -31,10 +44,12 @@ def run(args):
         print(f"qhl: warning: singular Fisher matrix: {combo} is unlearnable "
               f"(eigenvalue {u['eigenvalue']:.2e})", file=sys.stderr)
     if args.json:
-        print_json(rep.to_json())
+        print_json({**rep.to_json(), "method": method})
         return 0
     print(f"cluster {cluster.name}: {len(rep.names)} free parameters, experiments "
           f"{', '.join(ex.name for ex in cluster.experiments)}")
+    print(f"method: {method}" + (" (gradients estimated from random states: the Fisher matrix is an "
+                                 "estimate, biased up by the gradients' variance)" if method == "typical" else ""))
     print(f"{'parameter':<20}{'value (Hz)':>14}{'CRB (Hz)':>12}{'CRB/|value|':>13}")
     for n, v, b in zip(rep.names, rep.values_hz, rep.crb_hz):
         rel = b / abs(v) if v != 0 else float("inf")

@@ -1,27 +1,88 @@
-"""`qhl signal`: exact signals of a cluster's experiments (and gradients)."""
+"""`qhl signal`: signals of a cluster's experiments (and gradients), exact or estimated."""
+
+import sys
+import time
 
 import numpy as np
 
-from .common import add_cluster_argument, check_output_path, cluster_from_args, print_json
+from .common import add_cluster_argument, check_output_path, cluster_from_args, integer_at_least, print_json
+
+
+def add_method_arguments(p):
+    """--method, --replicas, --seed (shared with `qhl fisher`)."""
+    p.add_argument("--method", choices=("exact", "typical", "auto"), default="auto",
+                   help="exact engine, typical (random pure states, with error bars), or auto "
+                        "(exact when it fits in memory; default)")
+    p.add_argument("--replicas", type=integer_at_least(2), default=4, metavar="R",
+                   help="random states per sector pair for --method typical (default 4)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the random states (default 0)")
+
+
+class StderrProgress:
+    """Progress on stderr, shown once a run has taken more than `after` seconds."""
+
+    def __init__(self, what, after=2.0, stream=None):
+        self.what, self.after = what, after
+        self.stream = stream or sys.stderr
+        self.t0 = time.monotonic()
+        self.last = 0.0
+        self.shown = False
+
+    def __call__(self, fraction):
+        now = time.monotonic()
+        if now - self.t0 > self.after and (now - self.last > 0.5 or fraction >= 1):
+            self.shown = True
+            self.last = now
+            self.stream.write(f"\r{self.what}: {100 * fraction:5.1f} %")
+            self.stream.flush()
+
+    def close(self):
+        if self.shown:
+            self.stream.write("\n")
 
 
 def register(sub):
-    p = sub.add_parser("signal", help="exact NMR signals of a cluster's experiments")
+    p = sub.add_parser("signal", help="NMR signals of a cluster's experiments (exact or estimated)")
     add_cluster_argument(p)
     p.add_argument("--plot", metavar="FILE.png", help="write the FIDs and spectra as a PNG")
     p.add_argument("--json", action="store_true", help="print one JSON object")
-    p.add_argument("--gradient", action="store_true", help="add exact dS/dh for the free parameters")
+    p.add_argument("--gradient", action="store_true", help="add dS/dh for the free parameters")
+    add_method_arguments(p)
     p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
     p.set_defaults(func=run)
 
 
+def announce_typical(cluster, note, replicas, n_gradient=0):
+    """Say on stderr why the typical engine runs and, from 16 spins on, about how long one signal takes."""
+    if note:
+        print(f"qhl: note: {note}", file=sys.stderr)
+    if cluster.n_spins >= 16:
+        from ..costing.classical_cost import classical_cost
+        secs = next(r["seconds"] for r in classical_cost(cluster, replicas=replicas).routes
+                    if r["method"] == "pure-state") * (1 + n_gradient)
+        print(f"qhl: note: the typical engine needs about {secs / 60:.3g} min for the costliest experiment "
+              "(estimate from `qhl classical`; optimistic on a busy machine)", file=sys.stderr)
+
+
 def run(args):
+    from ..exact.engine_choice import make_engine
     from ..exact.signals import compute_signals
+    from ..spins.model import build_model
     cluster = cluster_from_args(args)
     if args.plot:
         check_output_path(args.plot, "--plot")
-    report = compute_signals(cluster, free=args.free, gradient=args.gradient)
+    progress = StderrProgress("typical engine")
+    engine, method, note = make_engine(build_model(cluster, free=args.free), args.method,
+                                       replicas=args.replicas, seed=args.seed, progress=progress)
+    if method == "typical":
+        announce_typical(cluster, note, args.replicas, len(engine.model.free) if args.gradient else 0)
+    try:
+        report = compute_signals(cluster, gradient=args.gradient, engine=engine)
+    finally:
+        progress.close()
+    if report.note:
+        print(f"qhl: note: {report.note}", file=sys.stderr)
     if args.plot:
         from ..exact.signal_plots import plot_signals
         plot_signals(report, args.plot)
@@ -31,15 +92,26 @@ def run(args):
     m = report.model
     print(f"cluster {cluster.name}: {cluster.n_spins} spins, {cluster.field_tesla:g} T, observe {cluster.observe}")
     print(f"{len(m.parameters)} parameters ({len(m.free)} free)")
+    if report.method == "typical":
+        print(f"method: typical ({report.replicas} random states per sector pair; "
+              "values are estimates, +- one standard error)")
+    else:
+        print("method: exact")
     print(f"{'parameter':<22}{'value (Hz)':>14}  free")
     for prm in m.parameters:
         print(f"{prm.name:<22}{prm.value_hz:>14.2f}  {'yes' if prm.name in m.free else ''}")
     print()
-    print(f"{'experiment':<14}{'points':>7}{'t_max (s)':>12}{'dip. scale':>11}{'|S(t_max)|':>12}{'min Re S':>10}")
+    typical = report.method == "typical"
+    print(f"{'experiment':<14}{'points':>7}{'t_max (s)':>12}{'dip. scale':>11}{'|S(t_max)|':>12}{'min Re S':>10}"
+          + (f"{'max stderr':>12}" if typical else ""))
     for ex in report.experiments:
         s = report.signals[ex.name]
+        extra = ""
+        if typical:
+            er, ei = report.stderr[ex.name]
+            extra = f"{max(er.max(), ei.max()):>12.2e}"
         print(f"{ex.name:<14}{ex.points:>7}{ex.t_max_s:>12.3g}{ex.dipolar_scale:>11.3g}"
-              f"{abs(s[-1]):>12.4f}{s.real.min():>10.4f}")
+              f"{abs(s[-1]):>12.4f}{s.real.min():>10.4f}{extra}")
     if args.gradient:
         print()
         print("largest |dS/dh| per experiment (1/Hz):")

@@ -23,6 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..exact.engine import ExactEngine
+from ..exact.engine_choice import make_engine
 from ..base.errors import QhlInputError
 from ..exact.likelihood import fisher_information
 from ..spins.model import DEFAULT_FREE, build_model
@@ -158,7 +159,7 @@ def report_from_fisher(names, values_hz, fisher, invisible=None, hidden=()) -> F
 
 
 def fisher_report(cluster, free=DEFAULT_FREE, sigma=None, experiments=None, free_values_hz=None,
-                  engine=None) -> FisherReport:
+                  engine=None, method: str = "exact") -> FisherReport:
     """Fisher matrix and Cramer-Rao bounds of `cluster`'s experiments at its parameter values.
 
     Args:
@@ -167,6 +168,7 @@ def fisher_report(cluster, free=DEFAULT_FREE, sigma=None, experiments=None, free
         sigma: noise per point overriding each experiment's `noise`.
         experiments: subset of the cluster's experiments (default all).
         free_values_hz: where to evaluate (default the cluster's values).
+        method: 'exact', 'typical' or 'auto' engine (qhl.exact.engine_choice) when no engine is given.
 
     Returns:
         FisherReport.
@@ -180,7 +182,9 @@ def fisher_report(cluster, free=DEFAULT_FREE, sigma=None, experiments=None, free
         >>> rep.crb_hz.shape, rep.singular
         ((6,), False)
     """
-    engine = engine or ExactEngine(build_model(cluster, free=free))
+    if engine is None:
+        model = build_model(cluster, free=free)
+        engine = ExactEngine(model) if method == "exact" else make_engine(model, method)[0]
     model = engine.model
     experiments = list(cluster.experiments if experiments is None else experiments)
     if not experiments:
