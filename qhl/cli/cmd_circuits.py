@@ -5,7 +5,7 @@ import sys
 from ..base.errors import QhlInputError
 from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float, positive_int,
                      print_json)
-from .common import STEPS, TIME_S, TROTTER_EPS  # range-checked option types
+from .common import STEPS, TIME_S, TROTTER_EPS, check_steps  # range-checked option types
 
 KINDS = ("signal", "gradient", "hessian")
 _LARGE = 2000
@@ -87,6 +87,7 @@ def run(args):
         if args.eps is None:
             raise QhlInputError("give --steps R or --eps EPS", key="--steps")
         steps = trotter_steps_for(terms, args.time, args.eps, args.order)
+        check_steps(steps, "--eps")
     else:
         steps = args.steps
     family = build_family(model, experiment, args.kind, params, args.time, steps, args.order, args.method,
