@@ -248,12 +248,19 @@ def read_results(path, repair: bool = False):
     if len(lines) < 3 or lines[0] != _MAGIC or not lines[1].startswith("# scan_id="):
         raise QhlInputError(f"not a qhl scan results file (expected first line '{_MAGIC}')", source=src,
                             key="out")
-    scan_id = lines[1].split()[1].split("=", 1)[1]
-    header = next(csv.reader([lines[2]]))
+    try:
+        scan_id = lines[1].split()[1].split("=", 1)[1]
+        header = next(csv.reader([lines[2]]))
+    except (IndexError, csv.Error):
+        raise QhlInputError("malformed results header", source=src, key="out") from None
     if tuple(header) != COLUMNS:
         raise QhlInputError("results header does not match this version of qhl", source=src, key="out")
+    try:
+        parsed = list(enumerate(csv.reader(lines[3:]), start=4))
+    except csv.Error as e:
+        raise QhlInputError(f"malformed results row ({str(e)[:80]})", source=src, key="out") from None
     rows, seen = [], set()
-    for n, values in enumerate(csv.reader(lines[3:]), start=4):
+    for n, values in parsed:
         if len(values) != len(COLUMNS):
             raise QhlInputError(f"line {n}: expected {len(COLUMNS)} fields, got {len(values)}", source=src)
         try:
