@@ -159,12 +159,12 @@ def define_scan(clusters, dipolar_scales, settings: ScanSettings = ScanSettings(
     loaded = []
     for c in clusters:
         c = c if isinstance(c, Cluster) else load_cluster(c)
+        require_memory(f"a scan task on {c.source} ({c.n_spins} spins)",      # before building anything
+                       estimate_memory_bytes(c.n_spins, _sector_dimensions(c), settings.points))
         try:
             build_model(c).with_free(settings.free)
         except QhlInputError as e:
             raise QhlInputError(str(e), source=c.source, key="free") from None
-        require_memory(f"a scan task on {c.source} ({c.n_spins} spins)",
-                       estimate_memory_bytes(c.n_spins, _sector_dimensions(c), settings.points))
         loaded.append(c)
     tasks, seen, names = [], set(), []
     for c in loaded:
