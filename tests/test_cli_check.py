@@ -53,13 +53,16 @@ def test_table_and_verdict(cluster, capsys, tmp_path):
     assert main(_args(cluster, "--plot", str(png))) == 0
     cap = capsys.readouterr()
     assert "PASS: all |z| < 4" in cap.out and "offset:A" in cap.out and "dipolar:A-B" in cap.out
-    assert "trotter" in cap.out and "4/4" not in cap.out and "2/2" in cap.err   # progress bar on stderr
+    assert "trotter" in cap.out and "4/4" not in cap.out and "2/2" in cap.err   # progress on stderr
+    assert "Trotterised reference (slots)" in cap.err and "elapsed" in cap.err
     assert png.stat().st_size > 1000
 
 
 def test_json_contract_and_reproducible(cluster, capsys):
     assert main(_args(cluster, "--json")) == 0
-    rows = json.loads(capsys.readouterr().out)
+    out = json.loads(capsys.readouterr().out)
+    assert isinstance(out, dict) and {"rows", "status", "verdict", "shots", "circuits_run", "seconds"} <= set(out)
+    rows = out["rows"]
     assert len(rows) == 4
     keys = {"parameter", "exact", "trotter_exact", "emulated", "stderr", "z", "trotter_bias", "shots",
             "circuits_run", "seconds"}
@@ -69,14 +72,14 @@ def test_json_contract_and_reproducible(cluster, capsys):
         assert r["trotter_bias"] == pytest.approx(r["trotter_exact"] - r["exact"])
         assert r["shots"] == 1500 and abs(r["z"]) < 4
     assert main(_args(cluster, "--json")) == 0
-    again = json.loads(capsys.readouterr().out)
+    again = json.loads(capsys.readouterr().out)["rows"]
     assert [r["emulated"] for r in again] == [r["emulated"] for r in rows]
 
 
 def test_hessian_rows(cluster, capsys):
     assert main(["check", cluster, "--time", "2e-4", "--steps", "2", "--shots", "800", "--param", "offset:A",
                  "--hessian", "--json"]) == 0
-    rows = json.loads(capsys.readouterr().out)
+    rows = json.loads(capsys.readouterr().out)["rows"]
     assert [r["parameter"] for r in rows] == ["offset:A", "offset:A", "offset:A x offset:A", "offset:A x offset:A"]
 
 
@@ -110,3 +113,46 @@ def test_ctrl_c_prints_what_finished(cluster, capsys, monkeypatch):
     cap = capsys.readouterr()
     assert "interrupted; 2 of 4 rows finished" in cap.err
     assert "offset:A" in cap.out and "dipolar:A-B" not in cap.out.split("\n", 2)[2]
+
+
+def test_no_power_gives_inconclusive_not_pass(cluster, capsys):
+    """20 shots: every stderr exceeds |value|/3, so no row could detect a 100% error (POWER_RULE)."""
+    assert main(["check", cluster, "--time", "2e-4", "--steps", "3", "--shots", "20", "--seed", "1",
+                 "--param", "offset:A", "dipolar:A-B", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    for r in out["rows"]:
+        assert r["stderr"] > max(abs(r["exact"]), abs(r["trotter_exact"])) / 3 and r["power"] is False
+    assert out["status"] == "inconclusive" and out["verdict"].startswith("INCONCLUSIVE")
+    assert main(["check", cluster, "--time", "2e-4", "--steps", "3", "--shots", "20", "--seed", "1",
+                 "--param", "offset:A", "dipolar:A-B"]) == 0
+    text = capsys.readouterr().out
+    assert "INCONCLUSIVE" in text and "PASS" not in text and "no-power" in text
+
+
+def test_trotter_bias_larger_than_value_is_flagged(cluster, capsys):
+    """One step over 4e-4 s: the Trotterised Re dS/d offset:A has the opposite sign of the exact one
+    (values from the exact engine and the dense Trotter reference: -1.79e-6 and +1.63e-4)."""
+    assert main(["check", cluster, "--time", "4e-4", "--steps", "1", "--shots", "200", "--seed", "1",
+                 "--param", "offset:A", "--json"]) == 0
+    cap = capsys.readouterr()
+    row = [r for r in json.loads(cap.out)["rows"] if r["part"] == "re"][0]
+    assert row["exact"] < 0 < row["trotter_exact"]
+    assert row["sign_flip"] and row["bias_exceeds_value"]
+    assert "Trotter bias" in cap.err and "sign flipped" in cap.err
+    assert main(["check", cluster, "--time", "4e-4", "--steps", "1", "--shots", "200", "--seed", "1",
+                 "--param", "offset:A"]) == 0
+    assert "BIAS>VALUE" in capsys.readouterr().out
+
+
+def test_exact_column_does_not_depend_on_param_order(cluster, capsys):
+    """--param in an order other than the model's used to pair a parameter's Trotterised value with
+    another parameter's exact value. Reference: qhl's exact engine with that parameter alone free."""
+    from qhl import ExactEngine, build_model
+    from qhl.spins.cluster_file import load_cluster
+    c = load_cluster(cluster)
+    ref = ExactEngine(build_model(c, free=["dipolar:A-B"])).gradient(c.experiments[0], [2e-4])[1][0, 0]
+    assert main(["check", cluster, "--time", "2e-4", "--steps", "2", "--shots", "50", "--param", "dipolar:A-B",
+                 "offset:C", "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)["rows"]
+    re = [r for r in rows if r["parameter"] == "dipolar:A-B" and r["part"] == "re"][0]
+    assert re["exact"] == pytest.approx(ref.real, rel=1e-9)

@@ -78,6 +78,7 @@ def test_eps_chooses_steps(capsys):
     BASE + ["--qasm", "/nonexistent-folder/out.qasm"],                # unwritable output
     BASE + ["--experiment", "spinning"],                              # unknown experiment
     BASE + ["--kind", "hessian", "--param", "offset:H1", "offset:H2", "offset:H3"],
+    BASE + ["--eps", "0.01"],                                         # --steps and --eps together
 ])
 def test_bad_input_exits_2_with_one_line(capsys, argv):
     try:
@@ -87,3 +88,13 @@ def test_bad_input_exits_2_with_one_line(capsys, argv):
     err = capsys.readouterr().err.strip()
     assert rc == 2
     assert len(err.splitlines()) == 1 and err.startswith("qhl: error:")
+
+
+def test_bound_above_one_gets_a_note(capsys):
+    """||U - V|| <= 2 for unitaries (common practice): a commutator bound above 1 says nothing."""
+    rc, out, err = _run(capsys, ["circuits", "--time", "2e-4", "--steps", "1", "--json"])
+    assert rc == 0
+    data = json.loads(out)
+    assert data["trotter_error_bound"] > 1 and "says nothing" in err and data["notes"]
+    rc, out, err = _run(capsys, ["circuits", "--time", "1e-6", "--steps", "4", "--json"])
+    assert json.loads(out)["trotter_error_bound"] < 1 and "says nothing" not in err

@@ -279,5 +279,10 @@ def test_emulated_fit_converges_within_3_cramer_rao_errors():
     res = fit(prov, ds, truth + 200.0, method="gn", max_iter=10)
     z = (res.values_hz - truth) / res.stderr_hz
     print(f"\n  emulated fit: {res.iterations} iterations, z = {np.round(z, 2)}, CR = {np.round(res.stderr_hz, 2)} Hz")
-    assert np.all(200.0 / res.stderr_hz > 3)
+    # the start is > 3 Cramer-Rao errors off, judged at the truth (exact Jacobian): the fitted CR
+    # depends on where the fit lands (the noise-free fit of these data lands 93 Hz off on B, CR 82 Hz)
+    _, g = ExactEngine(model).gradient(ex, times)
+    jac = np.concatenate([g.real, g.imag], axis=1).T
+    cr_truth = 0.05 * np.sqrt(np.diag(np.linalg.inv(jac.T @ jac)))
+    assert np.all(200.0 / cr_truth > 3)
     assert np.all(np.abs(z) < 3)

@@ -180,3 +180,14 @@ def test_cli_diverged_fit_exits_nonzero_without_table(monkeypatch, capsys):
     assert "diverged" in cap.err and "fitted (Hz)" not in cap.out
     assert main(["learn", "--max-iter", "3", "--json"]) == 1
     assert json.loads(capsys.readouterr().out)["diverged"] is True
+
+
+def test_local_minimum_is_flagged_by_goodness_of_fit(capsys):
+    """Seed 0 on the fragment stops in a local minimum (cost ~1056 nats for 384 data values).
+    Reference: 2C ~ chi-square(N - P) at the optimum (Kay 1993, ch. 7), p from scipy.stats.chi2."""
+    from scipy.stats import chi2
+    bad = learn(cnh_fragment(), max_iter=60, seed=0)
+    good = learn(cnh_fragment(), max_iter=60, seed=1)
+    assert bad.goodness_of_fit["dof"] == 384 - 10
+    assert bad.goodness_of_fit["p_value"] == pytest.approx(chi2.sf(2 * bad.fit.cost, 374))
+    assert bad.goodness_of_fit["p_value"] < 1e-6 < good.goodness_of_fit["p_value"]

@@ -124,7 +124,7 @@ def test_exact_variance_equals_the_emulated_per_shot_variance(hadamard, part):
     fam = gradient_circuit(model, ex, "dipolar:S0-S1", T, 3, 1)
     mo = family_moments(fam, part)
     n = 100_000
-    est = FamilyRunner(fam, threads=1).run(n, np.random.default_rng(11), part)
+    est = FamilyRunner(fam, threads=1, sampling="iid").run(n, np.random.default_rng(11), part)
     assert abs(est.value - mo.mean) < 4.5 * math.sqrt(mo.variance / n)
     sd_v = math.sqrt((mo.fourth_central_moment - mo.variance ** 2) / n)
     assert abs(est.variance - mo.variance) < 4.5 * sd_v
@@ -144,7 +144,7 @@ def test_predicted_shots_reach_the_target_standard_error(hadamard, steps, part, 
     n = math.ceil(circuit_variance_shots(fam, eps, part))
     assert 19_999 <= n <= 20_001
     assert math.sqrt(mo.kurtosis - 1) / (2 * math.sqrt(n)) < 0.10 / 6
-    est = FamilyRunner(fam, threads=1).run(n, np.random.default_rng(seed), part)
+    est = FamilyRunner(fam, threads=1, sampling="iid").run(n, np.random.default_rng(seed), part)
     assert abs(est.stderr / eps - 1) < 0.10
     # the range-based counts never fall below the exact-variance count
     assert mo.value_range ** 2 / eps ** 2 >= n - 1

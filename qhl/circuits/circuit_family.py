@@ -11,7 +11,15 @@ parameter, so sampling binds values and never rebuilds the circuit.
 Monte Carlo (common practice, importance sampling): draw j with probability |w_ins[j]| / W,
 W = sum_j |w_ins[j]|, and k from the input ensemble; one shot gives the outcome a of `observable`
 (a product of +-1 outcomes times the observable's coefficients); the estimate
-W sign(w_ins[j]) w_in[k] a is unbiased for Re X or Im X.
+W sign(w_ins[j]) w_in[k] a is unbiased for Re X or Im X ('iid' sampling).
+
+Stratified sampling (common practice; Cochran, "Sampling Techniques", 3rd ed. (1977), ch. 5,
+from memory): row j gets a fixed number n_j >= 1 of the N shots (`stratified_counts`), the input
+stays random; a shot of row j has value (w_ins[j] N / n_j) w_in[k] a, so the mean over all N
+shots is sum_j w_ins[j] ybar_j with ybar_j the mean of w_in[k] a over row j's shots: unbiased for
+any n_j >= 1, with variance sum_j w_ins[j]^2 sigma_j^2 / n_j (sigma_j^2 the variance of
+w_in[k] a within row j). Its standard error needs the within-row sample variances
+(qhl.emulation.estimate.Estimate.mean_variance), not the pooled one.
 """
 
 from dataclasses import dataclass, field
@@ -26,9 +34,10 @@ from .state_prep import InputEnsemble
 from .trotter_reference import family_reference_value
 
 __all__ = ["InsertionTable", "CircuitFamily", "ShotSettings", "exact_expectation", "circuit_builds",
-           "PARTS"]
+           "PARTS", "SAMPLINGS", "stratified_counts"]
 
 PARTS = ("re", "im")
+SAMPLINGS = ("stratified", "iid")
 _BASIS_ANGLE = {"re": 0.0, "im": -np.pi / 2}   # rz(mu) then h: measure X (re) or Y (im)
 _BUILDS = [0]
 
@@ -77,6 +86,7 @@ class ShotSettings:
     scale: np.ndarray
     insertion_rows: np.ndarray
     part: str
+    strata: np.ndarray | None = None      # shots per insertion row when stratified, else None
 
 
 @dataclass
@@ -176,24 +186,63 @@ class CircuitFamily:
             out += float(np.real(c)) * np.prod(z[:, [col[q] for q in qubits]], axis=1)
         return out
 
-    def sample(self, rng, size: int, part: str = "re") -> ShotSettings:
-        """Draw `size` shot settings (insertion rows by |w_ins|, inputs from the ensemble).
+    def sample(self, rng, size: int, part: str = "re", sampling: str = "iid") -> ShotSettings:
+        """Draw `size` shot settings.
+
+        Args:
+            sampling: 'iid' (insertion rows drawn i.i.d. by |w_ins|; the original scheme) or
+                'stratified' (row j gets the fixed share n_j of `stratified_counts`, the input
+                stays random per shot; scale W_j = w_j size / n_j; see the module docstring).
+                'stratified' with fewer than 2 shots per nonzero row falls back to 'iid'.
 
         Returns:
             ShotSettings whose values bind `circuit` per shot (see the module docstring).
         """
         if part not in PARTS:
             raise QhlInputError(f"unknown part '{part}': expected re or im", key="part")
+        if sampling not in SAMPLINGS:
+            raise QhlInputError(f"unknown sampling '{sampling}': expected {' or '.join(SAMPLINGS)}", key="sampling")
         w = self.insertions.weights
         total = self.insertions.total_weight
-        rows = rng.choice(len(w), size=size, p=np.abs(w) / total)
+        counts = stratified_counts(w, size) if sampling == "stratified" else None
+        if counts is None:
+            rows = rng.choice(len(w), size=size, p=np.abs(w) / total)
+            row_scale = total * np.sign(w)
+        else:
+            rows = np.repeat(np.arange(len(w)), counts)
+            row_scale = np.divide(w * size, counts, out=np.zeros(len(w)), where=counts > 0)
         angles, win = self.inputs.sample(rng, size)
         values = np.empty((size, self.num_parameters))
         values[:, self._index["prep"]] = angles
         values[:, self._index["basis"]] = _BASIS_ANGLE[part]
         values[:, self._index["ins"]] = self.insertions.values[rows]
-        scale = total * np.sign(w[rows]) * win
-        return ShotSettings(values, scale, rows, part)
+        scale = row_scale[rows] * win
+        return ShotSettings(values, scale, rows, part, counts)
+
+
+def stratified_counts(weights, size: int, minimum: int = 2):
+    """Shots per insertion row for stratified sampling, or None when size < minimum per nonzero row.
+
+    Every row with w_j != 0 gets `minimum` shots and the rest, size - minimum J, is shared in
+    proportion to |w_j| by the largest-remainder rule (so first-order formulas give equal shots to
+    every Trotter step of one Pauli). The estimate sum_j w_j ybar_j is unbiased for any n_j >= 1
+    and, with n_j proportional to |w_j|, has per-shot variance W sum_j |w_j| sigma_j^2 <= that of
+    i.i.d. rows (proportional allocation; Cochran, "Sampling Techniques", 3rd ed. (1977), ch. 5;
+    from memory).
+    """
+    w = np.abs(np.asarray(weights, float))
+    live = w > 0
+    spare = int(size) - minimum * int(live.sum())
+    if spare < 0:
+        return None
+    share = spare * w / w.sum()
+    counts = np.floor(share).astype(int)
+    left = spare - int(counts.sum())
+    if left:
+        order = np.argsort(-(share - counts), kind="stable")
+        counts[order[:left]] += 1
+    counts[live] += minimum
+    return counts
 
 
 def exact_expectation(family: CircuitFamily, parts=PARTS, method: str = "reference") -> complex:

@@ -20,40 +20,59 @@ def register(sub):
     p.add_argument("--experiment", metavar="NAME", help="experiment setting the dipolar scale (default: first)")
     p.add_argument("--order", type=int, choices=(1, 2), default=1, help="product-formula order (default 1)")
     p.add_argument("--plot", metavar="FILE.png", help="draw emulated vs exact with error bars")
-    p.add_argument("--json", action="store_true", help="print a JSON list of rows")
+    p.add_argument("--json", action="store_true", help="print one JSON object (rows, status, verdict, totals)")
     p.set_defaults(func=run)
 
 
-def _progress_bar(done, total, label):
-    width = 30
-    fill = int(width * done / total)
-    sys.stderr.write(f"\r[{'#' * fill}{'.' * (width - fill)}] {done}/{total} {label[:40]:<40}")
-    if done == total:
-        sys.stderr.write("\n")
-    sys.stderr.flush()
+class _Bars:
+    """Progress lines (qhl.base.progress) for the reference sweep and the emulated rows."""
+
+    def __init__(self):
+        self.bars = {}
+
+    def _bar(self, key, label, total):
+        from ..base.progress import Progress
+        if key not in self.bars:
+            self.bars[key] = Progress(label, total)
+        return self.bars[key]
+
+    def reference(self, done, total):
+        self._bar("reference", "Trotterised reference (slots)", total).update(done)
+
+    def rows(self, done, total, label):
+        self._bar("rows", "emulated derivatives", total).update(done, label[:40])
 
 
-def _plot(report, path):
+def check_figure(report, title):
+    """Emulated vs exact derivatives with error bars; the legend sits right of the axes, off the data."""
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     rows = report.rows
-    fig, ax = plt.subplots(figsize=(max(6, 0.35 * len(rows)), 4))
+    fig, ax = plt.subplots(figsize=(max(6, 0.35 * len(rows)) + 2.5, 4.2))
     x = range(len(rows))
     ax.errorbar(x, [r["emulated"] for r in rows], yerr=[r["stderr"] for r in rows], fmt="o", ms=3,
                 label="emulated +- stderr")
     ax.plot(x, [r["trotter_exact"] for r in rows], "x", label="exact Trotterised")
     ax.plot(x, [r["exact"] for r in rows], "+", label="exact (continuous)")
+    ax.axhline(0.0, color="0.7", lw=0.8)
     ax.set_xticks(list(x), [f"{r['parameter']} {r['part']}" for r in rows], rotation=90, fontsize=6)
     ax.set_ylabel("derivative of S (1/Hz or 1/Hz^2)")
-    ax.legend(fontsize=7)
+    ax.set_title(title, fontsize=9)
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
     fig.tight_layout()
-    fig.savefig(path, dpi=120)
+    return fig
+
+
+def _plot(report, path, title):
+    import matplotlib.pyplot as plt
+    fig = check_figure(report, title)
+    fig.savefig(path, dpi=120, bbox_inches="tight")
     plt.close(fig)
 
 
 def run(args):
-    from ..emulation.check import check_derivatives
+    from ..emulation.check import BIAS_RULE, POWER_RULE, check_derivatives
     from ..emulation.noise import NoiseSpec
     from ..base.errors import QhlInputError
     if args.shots < 1:
@@ -65,25 +84,34 @@ def run(args):
     if args.plot:
         check_output_path(args.plot, "--plot")
     cluster = cluster_from_args(args)
+    bars = _Bars()
     report = check_derivatives(cluster, args.time, args.steps, args.shots, args.seed, noise, args.hessian,
-                               args.param, args.experiment, args.order, progress=_progress_bar)
+                               args.param, args.experiment, args.order, progress=bars.rows,
+                               reference_progress=bars.reference)
     if report.interrupted:
         print(f"\nqhl check: interrupted; {len(report.rows)} of {report.planned} rows finished", file=sys.stderr)
     if args.plot and report.rows:
-        _plot(report, args.plot)
+        _plot(report, args.plot, f"qhl check {cluster.name}: t = {report.time_s:g} s, r = {report.steps}, "
+                                 f"{args.shots} shots per part; {report.status.upper()}")
+    for w in report.warnings():
+        print(f"qhl: warning: {w}", file=sys.stderr)
     if args.json:
-        print_json(report.rows)
+        print_json(report.to_json())
         return 130 if report.interrupted else 0
     print(f"cluster {cluster.name}: t = {report.time_s:g} s, r = {report.steps} steps, {args.shots} shots per part, "
           f"seed {args.seed}, noise {args.noise:g}")
     head = (f"{'parameter':<28}{'part':>5}{'exact':>13}{'trotter':>13}{'emulated':>13}{'stderr':>11}"
-            f"{'z':>7}{'bias':>11}")
+            f"{'z':>7}{'bias':>11}  flags")
     print(head)
     for r in report.rows:
+        flags = ("" if r["power"] else " no-power") + (" BIAS>VALUE" if r["bias_exceeds_value"] else "") \
+            + (" SIGN-FLIP" if r["sign_flip"] else "")
         print(f"{r['parameter']:<28}{r['part']:>5}{r['exact']:>13.4e}{r['trotter_exact']:>13.4e}"
-              f"{r['emulated']:>13.4e}{r['stderr']:>11.2e}{r['z']:>7.2f}{r['trotter_bias']:>11.2e}")
+              f"{r['emulated']:>13.4e}{r['stderr']:>11.2e}{r['z']:>7.2f}{r['trotter_bias']:>11.2e} {flags}")
     print(f"shots {report.shots}, circuits run {report.circuits_run}, {report.seconds:.1f} s")
     print(report.verdict())
+    if report.biased or report.without_power:
+        print(f"flags: no-power = a row without {POWER_RULE}; {BIAS_RULE}")
     if args.plot and report.rows:
         print(f"wrote {args.plot}")
     return 130 if report.interrupted else 0

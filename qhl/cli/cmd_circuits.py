@@ -3,9 +3,8 @@
 import sys
 
 from ..base.errors import QhlInputError
-from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float, positive_int,
-                     print_json)
-from .common import STEPS, TIME_S, TROTTER_EPS, check_steps  # range-checked option types
+from .common import (STEPS, TIME_S, TROTTER_EPS, add_cluster_argument, check_output_path, check_steps,
+                     cluster_from_args, print_json)
 
 KINDS = ("signal", "gradient", "hessian")
 _LARGE = 2000
@@ -18,9 +17,10 @@ def register(sub):
     p.add_argument("--param", nargs="+", metavar="NAME", default=None,
                    help="parameter to differentiate (gradient: one; hessian: one or two names)")
     p.add_argument("--time", type=TIME_S, required=True, metavar="T", help="evolution time in seconds")
-    p.add_argument("--steps", type=STEPS, metavar="R", help="Trotter steps")
-    p.add_argument("--eps", type=TROTTER_EPS, metavar="EPS",
-                   help="instead of --steps: fewest steps whose commutator bound is <= EPS")
+    how = p.add_mutually_exclusive_group()
+    how.add_argument("--steps", type=STEPS, metavar="R", help="Trotter steps (or --eps; not both)")
+    how.add_argument("--eps", type=TROTTER_EPS, metavar="EPS",
+                     help="instead of --steps: fewest steps whose commutator bound is <= EPS")
     p.add_argument("--order", type=int, choices=(1, 2), default=1, help="product-formula order (default 1)")
     p.add_argument("--experiment", metavar="NAME", help="experiment setting the dipolar scale (default: first)")
     p.add_argument("--method", choices=("hadamard", "shift"), default="hadamard",
@@ -53,6 +53,15 @@ def _parameters(kind, names):
             raise QhlInputError(f"--kind hessian takes one or two --param names, got {len(names)}", key="--param")
         return (names[0], names[-1])
     return tuple(names)
+
+
+def bound_notes(bound: float) -> list:
+    """A note when the commutator bound exceeds 1: ||U_trot - U|| <= 2 always, so such a bound
+    says nothing about the error (spectral norm of a difference of unitaries; common practice)."""
+    if bound > 1:
+        return [f"the Trotter error bound {bound:.3g} is above 1 and says nothing (any two unitaries differ "
+                f"by at most 2 in norm): use more --steps, --order 2 or --eps"]
+    return []
 
 
 def build_family(model, experiment, kind, params, time, steps, order, method, grouping, ordering):
@@ -99,6 +108,9 @@ def run(args):
     transpiled = transpile_for_counts(measured)
     counts = family_counts(family, transpiled)
     bound = trotter_error_bound(terms, args.time, steps, args.order)
+    notes = bound_notes(bound)
+    for note in notes:
+        print(f"qhl: note: {note}", file=sys.stderr)
     if args.qasm:
         with open(args.qasm, "w") as fh:
             fh.write(qasm3.dumps(transpiled))
@@ -111,7 +123,8 @@ def run(args):
         report = dict(counts)
         report.update({"kind": family.kind, "parameters": list(params), "time_s": args.time, "order": args.order,
                        "experiment": None if experiment is None else experiment.name,
-                       "insertion_settings": len(family.insertions), "trotter_error_bound": bound})
+                       "insertion_settings": len(family.insertions), "trotter_error_bound": bound,
+                       "notes": notes})
         if args.qasm:
             report["qasm"] = args.qasm
         if drawing is not None:

@@ -36,9 +36,32 @@ def register(sub):
     p.set_defaults(func=run)
 
 
-def _progress(entry):
-    print(f"iteration {entry['iteration']:>3}: cost {entry['cost']:.6g}  "
-          f"scaled gradient {entry['gradient_norm']:.3g}", file=sys.stderr)
+class _Progress:
+    """Per iteration: cost, time per iteration and the time left if the fit ran to --max-iter;
+    within an emulated evaluation: circuit families done with an estimate of the time left."""
+
+    def __init__(self, max_iter):
+        import time
+        self.clock = time.monotonic
+        self.start = self.clock()
+        self.max_iter = max_iter
+        self.inner = None
+
+    def iteration(self, entry):
+        from ..base.progress import format_seconds
+        k = entry["iteration"]
+        elapsed = self.clock() - self.start
+        per = elapsed / (k + 1)          # iteration 0 is the starting point's evaluation
+        print(f"iteration {k:>3}: cost {entry['cost']:.6g}  scaled gradient {entry['gradient_norm']:.3g}  "
+              f"{format_seconds(per)} per iteration, {format_seconds(elapsed)} elapsed, at most "
+              f"{format_seconds(per * (self.max_iter - k))} left (--max-iter {self.max_iter})", file=sys.stderr)
+        self.inner = None
+
+    def evaluation(self, done, total, label):
+        from ..base.progress import Progress
+        if self.inner is None or done == 1:
+            self.inner = Progress("  circuit families this evaluation", total)
+        self.inner.update(done, label[:40])
 
 
 def run(args):
@@ -47,9 +70,11 @@ def run(args):
     cluster = cluster_from_args(args)
     if args.plot:
         check_output_path(args.plot, "--plot")
+    bars = _Progress(args.max_iter)
     report = learn(cluster, free=args.free, data_path=args.data, sigma=args.noise, seed=args.seed,
                    start_offset=args.start_offset, method=args.method, gradients=args.gradients,
-                   shots=args.shots, max_iter=args.max_iter, progress=None if args.json else _progress)
+                   shots=args.shots, max_iter=args.max_iter, progress=None if args.json else bars.iteration,
+                   evaluation_progress=None if args.json else bars.evaluation)
     if args.plot and not report.fit.diverged:
         from ..learning.fit_plots import plot_fit
         plot_fit(report, args.plot)
@@ -68,6 +93,11 @@ def run(args):
         return 1
     if not fit.converged:
         print(f"qhl: warning: {fit.message}", file=sys.stderr)
+    gof = report.goodness_of_fit
+    if gof["p_value"] < 1e-6:
+        print(f"qhl: warning: the cost is far above the noise: 2 x cost = {gof['chi2']:.4g} against a chi-square "
+              f"with {gof['dof']} degrees of freedom (p = {gof['p_value']:.1e}); a local minimum or a wrong "
+              f"noise level: try another --seed or a smaller --start-offset", file=sys.stderr)
     for u in fit.unlearnable:
         combo = describe_combination(u["combination"])
         print(f"qhl: warning: the data do not determine {combo} (Fisher eigenvalue {u['eigenvalue']:.2e})",

@@ -20,7 +20,7 @@ from ..exact.engine import ExactEngine
 from ..base.errors import QhlInputError
 from ..spins.model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
-from . import family_variance, learning_run, trotter_order4
+from . import coherent_input, family_variance, learning_run, trotter_order4
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
 from .near_term import near_term_model
 from .trotter_cost import ORDERS, empirical_trotter_steps, trotter_model
@@ -40,7 +40,7 @@ def all_assumptions(settings=None) -> dict:
     """Every constant and model choice used, with its source."""
     out = {}
     for mod in (shots, family_variance, amplitude_estimation, synthesis, trotter_order4, trotter_cost, fault_tolerant,
-                surface_code, learning_run):
+                surface_code, learning_run, coherent_input):
         out.update(mod.ASSUMPTIONS)
     out["precision_unit"] = "eps is a standard error on dS/dh with h in units of unit_hz (default 1 kHz)"
     out["time_grids"] = "each experiment's time grid is rescaled to end at t (points kept)"
@@ -255,7 +255,8 @@ class BudgetModel:
     def _ft(self, value_range, t, eps, x, n_terms, extra_select=1.0, **kw):
         s = self.settings
         return ft_cost_arrays(value_range, t, eps, self.trotter[x], self._quad[x], n_terms, self.model.n_spins,
-                              s.split_dict(), s.synthesis, ORDERS, extra_select, delta=s.delta, **kw)
+                              s.split_dict(), s.synthesis, ORDERS, extra_select, delta=s.delta,
+                              n_observed=int(self.near.kappa), **kw)
 
     def _ft_gradient(self, strata, t, eps):
         """Fault-tolerant full gradient: one coherent sum per parameter, costed on the costliest experiment."""

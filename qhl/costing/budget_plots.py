@@ -8,16 +8,18 @@ import numpy as np  # noqa: E402
 
 __all__ = ["plot_budget_sweep", "PLOTTED"]
 
+# key, legend, colour, line style, marker: every entry has its own marker, so curves that lie
+# exactly on top of one another (equal budgets) stay visible.
 PLOTTED = (
-    ("near_term_component_bound", "NT shots/component (bound)", "C0", "-"),
-    ("near_term_component_exact", "NT shots/component (exact var.)", "C0", "--"),
-    ("near_term_gradient_exact", "NT shots/gradient (optimal alloc.)", "C1", "-"),
-    ("near_term_gradient_uniform_exact", "NT shots/gradient (uniform)", "C1", ":"),
-    ("near_term_hessian_entry_bound", "NT shots/Hessian entry (bound)", "C2", "-"),
-    ("fault_tolerant_depth", "FT depth (gate layers)", "C3", "-"),
-    ("fault_tolerant_t_count", "FT T-count", "C4", "-"),
-    ("near_term_total_layers", "NT total layers executed", "C5", "--"),
-    ("fault_tolerant_total_layers", "FT total layers executed", "C3", ":"),
+    ("near_term_component_bound", "NT shots/component (bound)", "C0", "-", "o"),
+    ("near_term_component_exact", "NT shots/component (exact var.)", "C0", "--", "s"),
+    ("near_term_gradient_exact", "NT shots/gradient (optimal alloc.)", "C1", "-", "^"),
+    ("near_term_gradient_uniform_exact", "NT shots/gradient (uniform)", "C1", ":", "v"),
+    ("near_term_hessian_entry_bound", "NT shots/Hessian entry (bound)", "C2", "-", "D"),
+    ("fault_tolerant_depth", "FT depth (gate layers)", "C3", "-", "x"),
+    ("fault_tolerant_t_count", "FT T-count", "C4", "-", "+"),
+    ("near_term_total_layers", "NT total layers executed", "C5", "--", "<"),
+    ("fault_tolerant_total_layers", "FT total layers executed", "C3", ":", ">"),
 )
 
 
@@ -37,11 +39,14 @@ def plot_budget_sweep(sweep, path, time_index=None, precision_index=None):
     panels = [p for p in panels if p[3] > 1] or panels[:1]
     fig, axes = plt.subplots(1, len(panels), figsize=(6.5 * len(panels), 4.8), squeeze=False)
     for ax, (x, cut, label, _) in zip(axes[0], panels):
-        for key, name, color, style in PLOTTED:
+        for k, (key, name, color, style, marker) in enumerate(PLOTTED):
             y = np.asarray(cut(np.broadcast_to(sweep.tables[key], (nt, ne))), float)
             ok = y > 0
             if ok.any():
-                ax.loglog(x[ok], y[ok], style, color=color, label=name)
+                # markers on staggered points and decreasing sizes keep coincident curves apart
+                ax.loglog(x[ok], y[ok], linestyle=style, marker=marker, color=color, label=name,
+                          markevery=(k % 3, 3) if ok.sum() > 6 else None, markersize=8 - 0.5 * k,
+                          markerfacecolor="none")
         ax.set_xlabel(label)
         ax.set_ylabel("count")
         ax.grid(True, which="both", alpha=0.3)

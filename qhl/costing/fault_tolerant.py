@@ -32,7 +32,9 @@ Counts of one run (M iterate applications, calls = 2M + 1 of A or A^dag):
     reflection about |0..0> on Q + 1 qubits by a ladder of Q - 1 ANDs (same costs, from memory),
     and the inverse QFT's m (m - 1) / 2 controlled phases as two rotations each (placed in series);
     Clifford layers  calls (r C_step + 2K) + M 2 (Q + 1);  gate layers = T-depth + Clifford layers;
-    logical qubits Q + m, Q = n + 1 + ceil(log2(r + 1)) + ceil(log2 L_n) + ceil(log2 S) + ceil(log2 K).
+    logical qubits Q + m, Q = n + 1 + ceil(log2(r + 1)) + ceil(log2 L_n) + ceil(log2 S) + ceil(log2 K)
+        + the coherent input's qubits (qhl.costing.coherent_input: n partners, the (j, k) pair
+        register and a parity flag; its T-count and T-depth are added to every call of A).
 Totals multiply one run by the k median repetitions.
 """
 
@@ -59,7 +61,8 @@ ASSUMPTIONS = {
                   "m phase qubits, inverse QFT m(m-1)/2 controlled phases (2 rotations each); only the reflections "
                   "are controlled; k median runs, all in the totals",
     "logical_qubits": "n + 1 ancilla + ceil(log2(r+1)) time register + ceil(log2 L) term register + "
-                      "ceil(log2 S) strata + ceil(log2 K) unary-iteration work qubits + m phase qubits",
+                      "ceil(log2 S) strata + ceil(log2 K) unary-iteration work qubits + m phase qubits + the "
+                      "purified input's n partners, pair register and parity flag",
     "trotter_steps_used": "the smaller of the commutator-bound count and the exact-propagator count (both valid; the "
                           "exact one where the dense propagator fits, n <= 8), never below the quadrature count",
 }
@@ -79,7 +82,7 @@ def step_profile(trotter, order):
 
 def ft_cost_arrays(value_range, t, eps, trotter, quadrature, n_terms_insert, n_qubits, split=None,
                    synthesis="ross-selinger", orders=ORDERS, extra_select=1.0, delta=0.05, trotter_steps=None,
-                   synthesise=False):
+                   synthesise=False, n_observed=None):
     """Fault-tolerant counts for every order (arrays broadcast over value_range/t and eps).
 
     Args:
@@ -98,6 +101,8 @@ def ft_cost_arrays(value_range, t, eps, trotter, quadrature, n_terms_insert, n_q
             the smaller valid count is used (scalar budgets only).
         synthesise: synthesise the actual rotations of one step at the budgeted error (scalar inputs;
             otherwise the median measured T per rotation times the step's rotation depth).
+        n_observed: observed spins; when given, the purified coherent input of
+            qhl.costing.coherent_input is counted in every call of A (qubits, T, T-depth, Cliffords).
 
     Returns:
         {order: dict of arrays}: queries (per run), runs, queries_total, steps, steps_trotter,
@@ -123,6 +128,9 @@ def ft_cost_arrays(value_range, t, eps, trotter, quadrature, n_terms_insert, n_q
     g2 = 2 * c2 + 2 * c1**2
     r_quad = np.maximum(np.ceil(np.sqrt(r_range * t**2 * g2 / (6 * e_t))), 1.0)
     scalar = r_range.size == 1 and t.size == 1 and eps.size == 1
+    from .coherent_input import coherent_input_counts
+    cin = coherent_input_counts(n_qubits, n_observed) if n_observed else \
+        {"qubits": 0, "t_count": 0, "t_depth": 0, "rotations": 0, "clifford_layers": 0}
     out = {}
     for p in orders:
         r_bound = trotter.steps(p, t, e_t / (8 * safe_r))
@@ -132,7 +140,7 @@ def ft_cost_arrays(value_range, t, eps, trotter, quadrature, n_terms_insert, n_q
         r = np.maximum(r_trot, r_quad)
         prof = step_profile(trotter, p)
         k = (r + 1) * n_terms_insert * extra_select
-        n_prep = (r + 1) + n_terms_insert + extra_select
+        n_prep = (r + 1) + n_terms_insert + extra_select + cin["rotations"]
         rot_a = r * prof["rotations"] + n_prep
         eps_rot = np.minimum(e_s / (4 * safe_r) / rot_a, 0.5)
         t_rot = np.asarray(measured_t_per_rotation(eps_rot), float)
@@ -143,13 +151,15 @@ def ft_cost_arrays(value_range, t, eps, trotter, quadrature, n_terms_insert, n_q
             ss = synthesised_step(trotter.terms, p, float(t) / float(r), float(eps_rot))
             step_t, step_d, step_c = (np.asarray(float(v)) for v in (ss.t_count, ss.t_depth, ss.clifford_layers))
             t_rot = np.asarray(ss.t_per_rotation)
-        q = n_qubits + 1 + _clog2(r + 1) + _clog2(n_terms_insert) + _clog2(extra_select) + _clog2(k)
+        q = n_qubits + 1 + _clog2(r + 1) + _clog2(n_terms_insert) + _clog2(extra_select) + _clog2(k) + cin["qubits"]
         calls = 2 * queries + 1
         qft_rot = m_bits * (m_bits - 1)
         ands = np.maximum(q - 1, 0)
-        t_run = calls * (r * step_t + n_prep * t_rot + 4 * (k - 1)) + queries * 4 * ands + qft_rot * t_rot
-        td_run = calls * (r * step_d + n_prep * t_rot + 2 * (k - 1)) + queries * 2 * ands + qft_rot * t_rot
-        cl_run = calls * (r * step_c + 2 * k) + queries * 2 * (q + 1)
+        t_run = calls * (r * step_t + n_prep * t_rot + 4 * (k - 1) + cin["t_count"]) + queries * 4 * ands \
+            + qft_rot * t_rot
+        td_run = calls * (r * step_d + n_prep * t_rot + 2 * (k - 1) + cin["t_depth"]) + queries * 2 * ands \
+            + qft_rot * t_rot
+        cl_run = calls * (r * step_c + 2 * k + cin["clifford_layers"]) + queries * 2 * (q + 1)
         out[p] = {"queries": queries, "queries_bhmt": m_bhmt, "runs": runs + 0 * queries,
                   "queries_total": runs * queries, "steps": r, "steps_trotter": r_trot,
                   "steps_trotter_bound": r_bound, "steps_quadrature": r_quad,

@@ -7,6 +7,13 @@ For each parameter (and part Re / Im) at one time t with r Trotter steps:
     z              (emulated - trotter_exact) / stderr          (noiseless: ~ N(0, 1))
     trotter_bias   trotter_exact - exact
 With `hessian`, rows for every entry (m, n), m <= n, of d2S/dh_m dh_n are added.
+
+Power and bias (POWER_RULE, BIAS_RULE): a row can detect an error as large as the value it tests
+only when stderr <= max(|exact|, |trotter_exact|) / POWER_RATIO (an error of 100% of the value then
+gives |z| >= POWER_RATIO; common practice for a 3-sigma test). When no row can, the verdict is
+INCONCLUSIVE, whatever the z values. A Trotter bias larger than the value, |trotter_exact - exact|
+> |exact| (which includes a sign flip between exact and Trotterised), is flagged: the check then
+tests the product formula, not the derivative the fit needs.
 """
 
 from dataclasses import dataclass, field
@@ -21,15 +28,30 @@ from .derivatives import as_generator, check_shots, emulate_gradient, emulate_he
 from .noise import NoiseSpec
 from ..circuits.trotter_reference import trotter_gradient_exact, trotter_hessian_exact
 
-__all__ = ["CheckReport", "check_derivatives", "Z_LIMIT"]
+__all__ = ["CheckReport", "check_derivatives", "Z_LIMIT", "POWER_RATIO", "POWER_RULE", "BIAS_RULE",
+           "annotate_row"]
 
 Z_LIMIT = 4.0
+POWER_RATIO = 3.0
+POWER_RULE = (f"power: stderr <= |value|/{POWER_RATIO:g} with |value| = max(|exact|, |trotter_exact|), so an "
+              f"error as large as the value gives |z| >= {POWER_RATIO:g}")
+BIAS_RULE = "BIAS>VALUE: |trotter_exact - exact| > |exact| (includes a sign flip)"
+
+
+def annotate_row(row: dict) -> dict:
+    """Add 'power', 'bias_exceeds_value' and 'sign_flip' to a row (module docstring)."""
+    size = max(abs(row["exact"]), abs(row["trotter_exact"]))
+    row["power"] = bool(size > 0 and row["stderr"] <= size / POWER_RATIO)
+    row["bias_exceeds_value"] = bool(abs(row["trotter_bias"]) > abs(row["exact"]))
+    row["sign_flip"] = bool(row["exact"] * row["trotter_exact"] < 0)
+    return row
 
 
 @dataclass
 class CheckReport:
-    """Rows (dicts with parameter, part, exact, trotter_exact, emulated, stderr, z, trotter_bias),
-    totals and whether the run was interrupted before all rows were done."""
+    """Rows (dicts with parameter, part, exact, trotter_exact, emulated, stderr, z, trotter_bias,
+    shots, circuits_run, seconds, power, bias_exceeds_value, sign_flip), totals and whether the
+    run was interrupted before all rows were done."""
 
     rows: list = field(default_factory=list)
     shots: int = 0
@@ -44,12 +66,48 @@ class CheckReport:
     def failed(self) -> list:
         return [r for r in self.rows if not (abs(r["z"]) < Z_LIMIT)]
 
+    @property
+    def without_power(self) -> list:
+        return [r for r in self.rows if not r.get("power", True)]
+
+    @property
+    def biased(self) -> list:
+        return [r for r in self.rows if r.get("bias_exceeds_value")]
+
+    @property
+    def status(self) -> str:
+        """'fail' (some |z| >= Z_LIMIT), 'inconclusive' (no row has power, POWER_RULE) or 'pass'."""
+        if self.failed:
+            return "fail"
+        if not self.rows or len(self.without_power) == len(self.rows):
+            return "inconclusive"
+        return "pass"
+
     def verdict(self) -> str:
         done = f"{len(self.rows)} of {self.planned} rows" if self.interrupted else f"{len(self.rows)} rows"
-        if not self.failed:
-            return f"PASS: all |z| < {Z_LIMIT:g} ({done})"
-        names = ", ".join(f"{r['parameter']} ({r['part']}, z = {r['z']:.2f})" for r in self.failed)
-        return f"FAIL: |z| >= {Z_LIMIT:g} for {names} ({done})"
+        if self.status == "fail":
+            names = ", ".join(f"{r['parameter']} ({r['part']}, z = {r['z']:.2f})" for r in self.failed)
+            return f"FAIL: |z| >= {Z_LIMIT:g} for {names} ({done})"
+        bias = f"; Trotter bias larger than the value in {len(self.biased)}" if self.biased else ""
+        if self.status == "inconclusive":
+            return (f"INCONCLUSIVE: all |z| < {Z_LIMIT:g}, but no row could detect an error as large as its "
+                    f"value (stderr > |value|/{POWER_RATIO:g}); use more --shots ({done}{bias})")
+        weak = len(self.without_power)
+        note = f"; {weak} without power" if weak else ""
+        return f"PASS: all |z| < {Z_LIMIT:g} ({done}{note}{bias})"
+
+    def warnings(self) -> list:
+        """One line per row whose Trotter bias exceeds its value (BIAS_RULE)."""
+        return [f"Trotter bias {r['trotter_bias']:.2e} larger than the value {r['exact']:.2e} for "
+                f"{r['parameter']} ({r['part']}){', sign flipped' if r['sign_flip'] else ''}: use more --steps "
+                f"or --order 2" for r in self.biased]
+
+    def to_json(self) -> dict:
+        return {"rows": self.rows, "status": self.status, "verdict": self.verdict(),
+                "warnings": self.warnings(), "power_rule": POWER_RULE, "bias_rule": BIAS_RULE,
+                "shots": self.shots, "circuits_run": self.circuits_run, "seconds": self.seconds,
+                "time_s": self.time_s, "steps": self.steps, "interrupted": self.interrupted,
+                "planned": self.planned}
 
 
 def _experiment(cluster, name):
@@ -66,7 +124,8 @@ def check_time(time) -> float:
 
 
 def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | None = None, hessian=False,
-                      parameters=None, experiment=None, order: int = 1, progress=None) -> CheckReport:
+                      parameters=None, experiment=None, order: int = 1, progress=None,
+                      reference_progress=None) -> CheckReport:
     """Emulated dS/dh_n (and Hessian entries) at one time against the exact and Trotterised values.
 
     Args:
@@ -75,6 +134,8 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
         parameters: names (default the cluster's free offsets and dipolar couplings).
         experiment: name (default the first; none: dipolar scale 1).
         progress: callable(done, total, label) after each row pair.
+        reference_progress: callable(done, total) during the dense Trotterised reference (slots of
+            its forward and backward sweeps; minutes for 12 spins).
 
     Returns:
         CheckReport (partial, interrupted=True, after Ctrl-C).
@@ -92,6 +153,7 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
     for nm in names:
         base.parameter(nm)
     model = build_model(cluster, free=names)
+    free = list(model.free)         # the exact engine's rows follow the model's parameter order
     engine = ExactEngine(model)
     rng = as_generator(seed)
     tasks = [("gradient", (nm,)) for nm in names]
@@ -101,29 +163,31 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
     start = _time.perf_counter()
     try:
         _, grad_exact = engine.gradient(ex, [t])
-        _, grad_trot = trotter_gradient_exact(model, ex, t, steps, order, names)
+        _, grad_trot = trotter_gradient_exact(model, ex, t, steps, order, names, progress=reference_progress)
         if hessian:
             _, _, hess_exact = engine.hessian(ex, [t])
             hess_trot = trotter_hessian_exact(model, ex, t, steps, order, names)
         for k, (kind, pars) in enumerate(tasks):
             if kind == "gradient":
-                i = names.index(pars[0])
-                exact, trot = complex(grad_exact[i, 0]), complex(grad_trot[i])
+                i, fi = names.index(pars[0]), free.index(pars[0])
+                exact, trot = complex(grad_exact[fi, 0]), complex(grad_trot[i])
                 est = emulate_gradient(model, ex, pars[0], t, steps, shots, rng, order, noise)
                 label = pars[0]
             else:
                 i, j = names.index(pars[0]), names.index(pars[1])
-                exact, trot = complex(hess_exact[i, j, 0]), complex(hess_trot[i, j])
+                fi, fj = free.index(pars[0]), free.index(pars[1])
+                exact, trot = complex(hess_exact[fi, fj, 0]), complex(hess_trot[i, j])
                 est = emulate_hessian(model, ex, pars, t, steps, shots, rng, order, noise)
                 label = f"{pars[0]} x {pars[1]}"
             for part in ("re", "im"):
                 e = est.part(part)
                 pick = (lambda z: z.real) if part == "re" else (lambda z: z.imag)
                 z = (e.value - pick(trot)) / e.stderr if e.stderr > 0 else (0.0 if e.value == pick(trot) else np.inf)
-                report.rows.append({"parameter": label, "part": part, "kind": kind, "exact": pick(exact),
-                                    "trotter_exact": pick(trot), "emulated": e.value, "stderr": e.stderr,
-                                    "z": float(z), "trotter_bias": pick(trot) - pick(exact),
-                                    "shots": e.shots, "circuits_run": e.circuits_run, "seconds": e.seconds})
+                report.rows.append(annotate_row(
+                    {"parameter": label, "part": part, "kind": kind, "exact": pick(exact),
+                     "trotter_exact": pick(trot), "emulated": e.value, "stderr": e.stderr,
+                     "z": float(z), "trotter_bias": pick(trot) - pick(exact),
+                     "shots": e.shots, "circuits_run": e.circuits_run, "seconds": e.seconds}))
             report.shots += est.shots
             report.circuits_run += est.circuits_run
             if progress is not None:

@@ -7,6 +7,12 @@ rho0 ensemble) and estimates its Re and Im parts with `shots` shots each, on ind
 random streams spawned from `seed` (numpy SeedSequence), so equal seeds give equal numbers.
 The estimates are unbiased for the Trotterised quantities (qhl.circuits.trotter_reference),
 not for the continuous-time ones: the difference is the Trotter bias.
+
+Emulator options (keywords of every function here; see qhl.emulation.runner.FamilyRunner):
+method 'auto' (numpy fast path when noiseless, else Aer), 'fast' or 'aer'; sampling
+'stratified' (default) or 'iid' (the original scheme); audit: settings per run re-checked on Aer.
+`emulate_gradients` batches every parameter and time of a gradient: the families of one time
+share one cached evolution (qhl.emulation.fast_path.EvolutionTables).
 """
 
 import numpy as np
@@ -18,7 +24,8 @@ from .estimate import ComplexEstimate
 from .noise import NoiseSpec
 from .runner import FamilyRunner
 
-__all__ = ["as_generator", "estimate_family", "emulate_signal", "emulate_gradient", "emulate_hessian"]
+__all__ = ["as_generator", "estimate_family", "emulate_signal", "emulate_gradient", "emulate_hessian",
+           "emulate_gradients"]
 
 
 def as_generator(seed) -> np.random.Generator:
@@ -37,13 +44,15 @@ def check_shots(shots) -> int:
 
 
 def estimate_family(family, shots: int, seed=0, noise: NoiseSpec | None = None, parts=PARTS,
-                    runner: FamilyRunner | None = None) -> ComplexEstimate:
+                    runner: FamilyRunner | None = None, *, method: str = "auto", sampling: str = "stratified",
+                    audit: int = 0) -> ComplexEstimate:
     """Re and Im of a CircuitFamily's X with `shots` shots per part (see qhl.emulation.runner).
 
     Args:
         family: CircuitFamily; shots: per part (>= 1); seed: int or Generator.
         noise: NoiseSpec or None; parts: subset of ('re', 'im') (a part left out stays empty).
-        runner: a FamilyRunner of this family to reuse (transpiled once).
+        runner: a FamilyRunner of this family to reuse (transpiled once); method, sampling,
+            audit: FamilyRunner options (ignored when `runner` is given).
 
     Returns:
         ComplexEstimate.
@@ -53,7 +62,7 @@ def estimate_family(family, shots: int, seed=0, noise: NoiseSpec | None = None, 
     """
     shots = check_shots(shots)
     rng = as_generator(seed)
-    runner = runner or FamilyRunner(family, noise)
+    runner = runner or FamilyRunner(family, noise, method=method, sampling=sampling, audit=audit)
     streams = dict(zip(PARTS, rng.spawn(2)))
     out = {}
     for p in parts:
@@ -63,14 +72,15 @@ def estimate_family(family, shots: int, seed=0, noise: NoiseSpec | None = None, 
     return ComplexEstimate(**out)
 
 
-def emulate_signal(model, experiment, time, steps, shots, seed=0, order=1, noise=None, **compile_options):
+def emulate_signal(model, experiment, time, steps, shots, seed=0, order=1, noise=None, *, method="auto",
+                   sampling="stratified", audit=0, **compile_options):
     """S_trot(t) with `shots` shots per part. compile_options go to signal_circuit."""
     family = signal_circuit(model, experiment, time, steps, order, **compile_options)
-    return estimate_family(family, shots, seed, noise)
+    return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit)
 
 
-def emulate_gradient(model, experiment, parameter, time, steps, shots, seed=0, order=1, noise=None,
-                     **compile_options):
+def emulate_gradient(model, experiment, parameter, time, steps, shots, seed=0, order=1, noise=None, *,
+                     method="auto", sampling="stratified", audit=0, **compile_options):
     """dS_trot/dh_n (1/Hz) with `shots` shots per part (Hadamard-test family by default).
 
     Example:
@@ -81,11 +91,50 @@ def emulate_gradient(model, experiment, parameter, time, steps, shots, seed=0, o
         (400, True)
     """
     family = gradient_circuit(model, experiment, parameter, time, steps, order, **compile_options)
-    return estimate_family(family, shots, seed, noise)
+    return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit)
 
 
-def emulate_hessian(model, experiment, parameters, time, steps, shots, seed=0, order=1, noise=None,
-                    **compile_options):
+def emulate_hessian(model, experiment, parameters, time, steps, shots, seed=0, order=1, noise=None, *,
+                    method="auto", sampling="stratified", audit=0, **compile_options):
     """d2S_trot/dh_m dh_n (1/Hz^2) with `shots` shots per part (two-ancilla family)."""
     family = hessian_circuit(model, experiment, tuple(parameters), time, steps, order, **compile_options)
-    return estimate_family(family, shots, seed, noise)
+    return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit)
+
+
+def emulate_gradients(model, experiment, parameters, times, steps, shots, seed=0, order=1, noise=None, *,
+                      method="auto", sampling="stratified", audit=0, progress=None, **compile_options):
+    """dS_trot/dh_n for every parameter and time in one call (one estimate per entry).
+
+    Every (parameter, time) family gets its own random stream spawned from `seed` (row-major),
+    and the families of one time share the cached evolution of the fast path, so the forward
+    states and suffix unitaries are built once per time.
+
+    Args:
+        parameters: names; times: seconds (> 0); steps: r (int) or one r per time.
+        progress: callable(done, total, label) after each entry (e.g. a stderr progress line).
+        Other arguments as in emulate_gradient.
+
+    Returns:
+        (len(parameters), len(times)) object array of ComplexEstimate.
+
+    Raises:
+        QhlInputError: bad shots, seed, steps, time or parameter.
+    """
+    shots = check_shots(shots)
+    names = list(parameters)
+    times = np.atleast_1d(np.asarray(times, float))
+    steps_of = np.broadcast_to(np.asarray(steps), times.shape)
+    streams = as_generator(seed).spawn(len(names) * len(times))
+    out = np.empty((len(names), len(times)), object)
+    done = 0
+    for k, (t, r) in enumerate(zip(times, steps_of)):
+        if int(r) != r or r < 1:
+            raise QhlInputError(f"expected steps >= 1, got {r!r}", key="--steps")
+        for p, nm in enumerate(names):
+            family = gradient_circuit(model, experiment, nm, float(t), int(r), order, **compile_options)
+            out[p, k] = estimate_family(family, shots, streams[p * len(times) + k], noise, method=method,
+                                        sampling=sampling, audit=audit)
+            done += 1
+            if progress is not None:
+                progress(done, out.size, f"{nm} at t = {t:g} s")
+    return out

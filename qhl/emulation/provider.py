@@ -33,6 +33,7 @@ class EmulatedGradientProvider(GradientProvider):
 
     Attributes:
         shots_used, circuits_run, seconds: totals over all calls.
+        progress: optional callable(done, total, label) after each circuit family of a call.
     """
 
     noisy = True
@@ -49,6 +50,7 @@ class EmulatedGradientProvider(GradientProvider):
         self.steps, self.eps, self.order, self.noise = steps, float(eps), int(order), noise
         self.shots_used = self.circuits_run = 0
         self.seconds = 0.0
+        self.progress = None
 
     def steps_for(self, experiment, time, values_all) -> int:
         if self.steps is not None:
@@ -67,6 +69,16 @@ class EmulatedGradientProvider(GradientProvider):
         values_all = self.model.values_hz.copy()
         values_all[self.model.free_indices] = np.asarray(values_hz, float)
         out = {}
+        total = sum(int(np.count_nonzero(np.atleast_1d(np.asarray(t, float))))
+                    for t in times_by_experiment.values()) * (1 + len(self.parameter_names))
+        done = 0
+
+        def tick(label):
+            nonlocal done
+            done += 1
+            if self.progress is not None:
+                self.progress(done, total, label)
+
         for name, times in times_by_experiment.items():
             if name not in self.experiments:
                 raise QhlInputError(f"no experiment named '{name}': expected one of {', '.join(self.experiments)}",
@@ -80,8 +92,10 @@ class EmulatedGradientProvider(GradientProvider):
                     continue
                 r = self.steps_for(ex, t, values_all)
                 sig[k] = self._estimate(signal_circuit(self.model, ex, t, r, self.order, values_hz=values_all))
+                tick(f"{name} t={t:.3g} s signal")
                 for p, nm in enumerate(self.parameter_names):
                     grad[p, k] = self._estimate(gradient_circuit(self.model, ex, nm, t, r, self.order,
                                                                  values_hz=values_all))
+                    tick(f"{name} t={t:.3g} s {nm}")
             out[name] = (sig, grad)
         return out

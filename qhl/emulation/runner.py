@@ -14,6 +14,17 @@ separate noisy trajectory, so settings are batched by n_g rounded up to a power 
 calls, at most twice the shots). The single-shot value is scale_g * a, with a the observable's
 eigenvalue on the measured bit string.
 
+Fast path (default without noise; qhl.emulation.fast_path): step 3 is replaced by the exact
+outcome probabilities p_g of every distinct setting from numpy state vectors, and setting g's
+n_g shots are n_g i.i.d. draws from p_g (inverse transform sampling; common practice). Aer
+stays for noisy runs, for `method='aer'`, and for `audit`: a random subset of the distinct
+settings whose probabilities Aer's statevector method (save_probabilities) must reproduce to
+AUDIT_TOLERANCE.
+
+Sampling (qhl.circuits.circuit_family.CircuitFamily.sample): 'stratified' (default: fixed shots
+per insertion row, the standard error from the within-row variances) or 'iid' (the original
+scheme: rows drawn per shot).
+
 Seeds: the Generator drives the draws and Aer's seed_simulator (drawn from it), and Aer runs
 single-threaded, so the same seed gives the same numbers.
 """
@@ -24,12 +35,19 @@ import os
 
 import numpy as np
 
-from ..circuits.circuit_family import PARTS
+from ..circuits.circuit_family import PARTS, SAMPLINGS
 from ..base.errors import QhlInputError
+from ..base.blas import single_thread_blas
+from ..base.memory import require_memory
 from .estimate import Estimate
 from .noise import NOISY_BASIS, NoiseSpec, noisy_layers
 
-__all__ = ["FamilyRunner", "outcome_values", "group_settings"]
+__all__ = ["FamilyRunner", "outcome_values", "observable_masks", "values_of_outcomes", "group_settings", "METHODS",
+           "AUDIT_TOLERANCE"]
+
+METHODS = ("auto", "fast", "aer", "mps")
+AUDIT_TOLERANCE = 1e-9
+MAX_TABLE_BITS = 20      # outcome-value tables up to 2^20 entries; beyond, values per measured key
 
 
 def outcome_values(family) -> np.ndarray:
@@ -37,24 +55,67 @@ def outcome_values(family) -> np.ndarray:
 
     Returns:
         (2^m,) real array indexed by the integer whose bit k is clbit k.
+
+    Raises:
+        QhlInputError: a non-diagonal observable; MemoryBudgetError: a table that would not fit.
     """
-    measured = list(family.measured_qubits)
-    m = len(measured)
-    where = {q: k for k, q in enumerate(measured)}
+    masks = observable_masks(family)
+    m = len(family.measured_qubits)
+    require_memory("the outcome-value table", 16.0 * 2 ** m)
+    return values_of_outcomes(masks, np.arange(2 ** m, dtype=np.int64))
+
+
+_ANGLE_CODES = (0.0, np.pi, np.pi / 2, -np.pi / 2)   # |0>, |1>, |+>, |-> (qhl.circuits.state_prep)
+
+
+def _distinct_settings(settings, prep):
+    """(index of the first shot of every distinct setting, shots per setting).
+
+    A setting is fixed by its insertion row and its input (the part is the same for all shots,
+    and the scale follows from row and input), so shots are keyed by row * 4^n + input code
+    (two bits per qubit for the four ry angles); other angles fall back to np.unique over rows.
+    """
+    angles = settings.values[:, prep]
+    code = np.zeros(len(angles), np.int64)
+    known = np.zeros(angles.shape, bool)
+    for c, a in enumerate(_ANGLE_CODES):
+        hit = angles == a
+        known |= hit
+        code += (hit * c * (4 ** np.arange(angles.shape[1]))).sum(axis=1)
+    if not known.all() or angles.shape[1] > 25:
+        key = np.column_stack([settings.insertion_rows, angles, settings.scale])
+        _, first, counts = np.unique(key, axis=0, return_index=True, return_counts=True)
+        return first, counts
+    key = settings.insertion_rows.astype(np.int64) * 4 ** angles.shape[1] + code
+    _, first, counts = np.unique(key, return_index=True, return_counts=True)
+    return first, counts
+
+
+def observable_masks(family):
+    """[(coefficient, bit mask over classical bits)] of the diagonal family observable, so that the
+    value of outcome o is sum_c coefficient_c (1 - 2 parity(o & mask_c)) (no 2^m table)."""
+    where = {q: k for k, q in enumerate(family.measured_qubits)}
     obs = family.observable
     if np.any(obs.paulis.x):
         raise QhlInputError("the family observable must be diagonal (Z's only)", key="observable")
-    outcomes = np.arange(2 ** m)
-    values = np.zeros(2 ** m)
+    out = []
     for zrow, c in zip(obs.paulis.z, obs.coeffs):
         mask = 0
         for q in np.flatnonzero(zrow):
             if int(q) not in where:
                 raise QhlInputError(f"observable acts on unmeasured qubit {q}", key="observable")
             mask |= 1 << where[int(q)]
-        parity = np.array([bin(int(o) & mask).count("1") & 1 for o in outcomes])
-        values += float(np.real(c)) * (1 - 2 * parity)
-    return values
+        out.append((float(np.real(c)), mask))
+    return out
+
+
+def values_of_outcomes(masks, outcomes) -> np.ndarray:
+    """Observable values of integer outcomes (any number of classical bits up to 62)."""
+    outcomes = np.asarray(outcomes, np.int64)
+    vals = np.zeros(outcomes.shape)
+    for c, mask in masks:
+        vals += c * (1.0 - 2.0 * (np.bitwise_count(outcomes & np.int64(mask)) & 1).astype(float))
+    return vals
 
 
 def group_settings(settings):
@@ -65,7 +126,7 @@ def group_settings(settings):
 
 
 class FamilyRunner:
-    """Transpiles one CircuitFamily once and estimates its Re/Im parts with shots on AerSimulator.
+    """Estimates the Re/Im parts of one CircuitFamily with shots (fast path or AerSimulator).
 
     Args:
         family: a qhl.circuits.circuit_family.CircuitFamily.
@@ -73,32 +134,91 @@ class FamilyRunner:
         threads: Aer threads, spent on running distinct settings in parallel (default: all
             cores). Results do not depend on it: Aer seeds each bound setting from
             `seed_simulator` and its index (checked in tests/test_emulator.py).
+        method: 'auto' (default: the numpy fast path for noiseless signal, Hadamard-gradient and
+            Hessian families of at most fast_path.MAX_FAST_QUBITS spins, Aer's statevector method
+            otherwise), 'fast' (refuse when it does not apply), 'aer' (statevector) or 'mps'
+            (Aer's matrix_product_state method, for clusters beyond the statevector memory).
+        mps_truncation, mps_max_bond: Aer's matrix_product_state_truncation_threshold (Schmidt
+            coefficients are dropped while the discarded weight stays below it; Aer's default
+            1e-16) and matrix_product_state_max_bond_dimension (None: unbounded), qiskit-aer
+            documentation. With the defaults the MPS is exact up to rounding; a bound on the bond
+            dimension makes it an approximation whose error Aer does not report.
+        sampling: 'stratified' (default) or 'iid' (see CircuitFamily.sample).
+        audit: distinct settings per run whose fast-path probabilities are recomputed by Aer
+            (statevector method) and must agree to AUDIT_TOLERANCE (0: none).
 
     Attributes:
-        transpiled: the measured, transpiled circuit that every setting binds.
+        transpiled: the measured, transpiled circuit that every setting binds (built on first use).
         layers: noisy layers L of `transpiled` (qhl.emulation.noise), 0 without gate noise.
+        uses_fast_path: whether `run` computes probabilities with numpy.
     """
 
-    def __init__(self, family, noise: NoiseSpec | None = None, threads: int | None = None):
+    def __init__(self, family, noise: NoiseSpec | None = None, threads: int | None = None, *,
+                 method: str = "auto", sampling: str = "stratified", audit: int = 0,
+                 mps_truncation: float = 1e-16, mps_max_bond: int | None = None):
+        from .fast_path import FastFamily, supports_fast_path
+
+        if method not in METHODS:
+            raise QhlInputError(f"unknown emulator method '{method}': expected {', '.join(METHODS)}", key="method")
+        if sampling not in SAMPLINGS:
+            raise QhlInputError(f"unknown sampling '{sampling}': expected {' or '.join(SAMPLINGS)}", key="sampling")
+        self.family = family
+        self.noise = noise if noise is not None else NoiseSpec()
+        self.threads = int(threads or os.cpu_count() or 1)
+        self.sampling, self.audit_settings = sampling, int(audit)
+        self.method = method
+        self.mps_options = dict(matrix_product_state_truncation_threshold=float(mps_truncation),
+                                matrix_product_state_max_bond_dimension=mps_max_bond)
+        fast_ok = self.noise.is_noiseless and supports_fast_path(family)
+        if method == "fast" and not fast_ok:
+            raise QhlInputError("the fast path needs a noiseless signal, Hadamard-gradient or Hessian family",
+                                key="method")
+        self.uses_fast_path = fast_ok and method in ("auto", "fast")
+        self.fast = FastFamily(family) if self.uses_fast_path else None
+        self._transpiled = self._simulator = self._audit_circuit = None
+        self.masks = observable_masks(family)
+        m = len(family.measured_qubits)
+        self.values = outcome_values(family) if m <= MAX_TABLE_BITS else None
+        self.last_audit = None
+
+    # ---------------------------------------------------------------- Aer, built on first use
+    def _build_aer(self):
         from qiskit import transpile
         from qiskit_aer import AerSimulator
 
-        self.family = family
-        self.noise = noise if noise is not None else NoiseSpec()
-        threads = int(threads or os.cpu_count() or 1)
-        opts = dict(method="statevector", max_parallel_threads=threads, max_parallel_experiments=threads,
-                    max_parallel_shots=1)
-        measured = family.with_measurements(family.circuit)
-        if self.noise.is_noiseless:
-            self.simulator = AerSimulator(**opts)
-            self.transpiled = transpile(measured, self.simulator, optimization_level=0)
+        opts = dict(method="statevector", max_parallel_threads=self.threads,
+                    max_parallel_experiments=self.threads, max_parallel_shots=1)
+        nq = self.family.circuit.num_qubits
+        if self.method == "mps":
+            opts.update(method="matrix_product_state", **self.mps_options)
         else:
-            self.simulator = AerSimulator(noise_model=self.noise.noise_model(), **opts)
-            self.transpiled = transpile(measured, basis_gates=list(NOISY_BASIS), optimization_level=1)
-        self.layers = noisy_layers(self.transpiled) if self.noise.has_gate_noise else 0
-        order = {p: k for k, p in enumerate(family.circuit.parameters)}
-        self._bound = [(p, order[p]) for p in self.transpiled.parameters]
-        self.values = outcome_values(family)
+            require_memory(f"Aer statevectors of {nq} qubits ({self.threads} in parallel; use method='mps')",
+                           16.0 * 2 ** nq * self.threads * (1 if self.noise.is_noiseless else 2))
+        measured = self.family.with_measurements(self.family.circuit)
+        if self.noise.is_noiseless:
+            self._simulator = AerSimulator(**opts)
+            self._transpiled = transpile(measured, self._simulator, optimization_level=0)
+        else:
+            self._simulator = AerSimulator(noise_model=self.noise.noise_model(), **opts)
+            self._transpiled = transpile(measured, basis_gates=list(NOISY_BASIS), optimization_level=1)
+        order = {p: k for k, p in enumerate(self.family.circuit.parameters)}
+        self._bound = [(p, order[p]) for p in self._transpiled.parameters]
+
+    @property
+    def transpiled(self):
+        if self._transpiled is None:
+            self._build_aer()
+        return self._transpiled
+
+    @property
+    def simulator(self):
+        if self._simulator is None:
+            self._build_aer()
+        return self._simulator
+
+    @property
+    def layers(self) -> int:
+        return noisy_layers(self.transpiled) if self.noise.has_gate_noise else 0
 
     @property
     def observable_weight(self) -> int:
@@ -106,51 +226,128 @@ class FamilyRunner:
         return int(np.max(np.sum(self.family.observable.paulis.z, axis=1)))
 
     def _simulate(self, rows, shots, seed):
-        """Counts (len(rows), 2^m) from one Aer run of every row with `shots` shots."""
+        """[(outcome integers, counts)] per row from one Aer run of every row with `shots` shots."""
+        self.transpiled
         binds = {p: rows[:, k].tolist() for p, k in self._bound}
         result = self.simulator.run(self.transpiled, parameter_binds=[binds] if binds else None, shots=int(shots),
                                     seed_simulator=int(seed)).result()
         if not result.success:
             raise RuntimeError(f"Aer run failed: {result.status}")
-        out = np.zeros((len(rows), len(self.values)), np.int64)
+        out = []
         for i in range(len(rows)):
-            for key, c in result.data(i)["counts"].items():
-                out[i, int(key, 16)] += c
+            counts = result.data(i)["counts"]
+            out.append((np.array([int(k, 16) for k in counts], np.int64), np.array(list(counts.values()), np.int64)))
         return out
 
+    def aer_probabilities(self, rows) -> np.ndarray:
+        """Exact outcome probabilities (len(rows), 2^m) of parameter rows from Aer's statevector
+        method (save_probabilities on the measured qubits; qiskit-aer documentation)."""
+        from qiskit import transpile
+        from qiskit_aer import AerSimulator
+
+        if self._audit_circuit is None:
+            qc = self.family.circuit.copy()
+            qc.save_probabilities(list(self.family.measured_qubits))
+            sim = AerSimulator(method="statevector", max_parallel_threads=1)
+            tqc = transpile(qc, sim, optimization_level=0)
+            order = {p: k for k, p in enumerate(self.family.circuit.parameters)}
+            self._audit_circuit = (sim, tqc, [(p, order[p]) for p in tqc.parameters])
+        sim, tqc, bound = self._audit_circuit
+        rows = np.atleast_2d(rows)
+        binds = {p: rows[:, k].tolist() for p, k in bound}
+        result = sim.run(tqc, parameter_binds=[binds] if binds else None).result()
+        return np.array([np.asarray(result.data(i)["probabilities"], float) for i in range(len(rows))])
+
+    # ---------------------------------------------------------------- runs
     def run(self, shots: int, rng, part: str = "re") -> Estimate:
         """Estimate Re X (part 're') or Im X ('im') of the family with `shots` shots.
 
         Args:
             shots: N >= 1.
-            rng: numpy Generator (draws settings, subsamples, seeds Aer).
+            rng: numpy Generator (draws settings, outcomes, seeds Aer).
 
         Returns:
-            Estimate (per-shot sums, N, distinct circuits run, wall seconds).
+            Estimate (per-shot sums, N, distinct settings computed, wall seconds; stratified:
+            the variance of its mean).
 
         Raises:
             QhlInputError: shots < 1 or an unknown part.
+            RuntimeError: an audited setting whose probabilities disagree with Aer's.
         """
         if int(shots) != shots or shots < 1:
             raise QhlInputError(f"expected shots >= 1, got {shots!r}", key="--shots")
         if part not in PARTS:
             raise QhlInputError(f"unknown part '{part}': expected re or im", key="part")
         start = _time.perf_counter()
-        settings = self.family.sample(rng, int(shots), part)
-        rows, counts = group_settings(settings)
-        params, scale = rows[:, :-1], rows[:, -1]
+        settings = self.family.sample(rng, int(shots), part, self.sampling)
+        first, counts = _distinct_settings(settings, self.family._index["prep"])
+        params, scale = settings.values[first], settings.scale[first]
+        ins_rows = settings.insertion_rows[first]
+        if self.uses_fast_path:
+            with single_thread_blas(2 ** self.fast.n):
+                per_row, per_row_sq = self._draw_fast(params, ins_rows, scale, counts, part, rng)
+        else:
+            per_row, per_row_sq = self._draw_aer(params, counts, rng)
+        total = float(np.sum(scale * per_row))
+        total_sq = float(np.sum(scale ** 2 * per_row_sq))
+        strat = None
+        if settings.strata is not None:
+            n_j = settings.strata.astype(float)
+            s_j = np.bincount(ins_rows, scale * per_row, len(n_j))
+            q_j = np.bincount(ins_rows, scale ** 2 * per_row_sq, len(n_j))
+            live = n_j >= 2
+            var_j = np.zeros(len(n_j))
+            var_j[live] = np.maximum(0.0, (q_j[live] - s_j[live] ** 2 / n_j[live]) / (n_j[live] - 1))
+            strat = float(np.sum((n_j[live] / shots) ** 2 * var_j[live] / n_j[live]))
+        return Estimate(total, total_sq, int(shots), len(first), _time.perf_counter() - start, strat)
+
+    def _draw_fast(self, params, ins_rows, scale, counts, part, rng):
+        """(sum of a, sum of a^2) over each distinct setting's shots, drawn from exact probabilities.
+
+        Setting g's counts[g] outcomes are i.i.d. draws from p_g by inverse transform sampling (one
+        uniform number per shot, searchsorted in the cumulative p_g; common practice).
+        """
+        prep = self.family._index["prep"]
+        live = scale != 0                          # zero-weight inputs add 0 whatever they measure
+        per_row, per_row_sq = np.zeros(len(params)), np.zeros(len(params))
+        if not np.any(live):
+            return per_row, per_row_sq
+        idx = np.flatnonzero(live)
+        angles, inputs = np.unique(params[idx][:, prep], axis=0, return_inverse=True)
+        probs = np.clip(self.fast.probabilities(angles, ins_rows[idx], inputs.ravel(), part), 0.0, None)
+        cdf = np.cumsum(probs, axis=1)
+        cdf /= cdf[:, -1:]
+        cdf[:, -1] = 1.0 + 1e-12
+        k = cdf.shape[1]
+        shot_setting = np.repeat(np.arange(len(idx)), counts[idx])
+        u = rng.random(len(shot_setting))
+        flat = (cdf + 2.0 * np.arange(len(idx))[:, None]).ravel()
+        outcome = np.searchsorted(flat, u + 2.0 * shot_setting, side="right") - shot_setting * k
+        a = self.values[outcome]
+        per_row[idx] = np.bincount(shot_setting, a, len(idx))
+        per_row_sq[idx] = np.bincount(shot_setting, a * a, len(idx))
+        if self.audit_settings > 0:
+            pick = rng.choice(len(idx), size=min(self.audit_settings, len(idx)), replace=False)
+            ref = self.aer_probabilities(params[idx][pick])
+            diff = float(np.max(np.abs(ref - probs[pick])))
+            self.last_audit = diff
+            if not diff <= AUDIT_TOLERANCE:
+                raise RuntimeError(f"fast path disagrees with Aer by {diff:.3g} on audited settings "
+                                   f"(tolerance {AUDIT_TOLERANCE:g})")
+        return per_row, per_row_sq
+
+    def _draw_aer(self, params, counts, rng):
+        """(sum of a, sum of a^2) per distinct setting from Aer counts (module docstring)."""
         if self.noise.has_gate_noise:
             buckets = 2 ** np.ceil(np.log2(counts)).astype(int)
         else:
             buckets = np.full(len(counts), counts.max())
-        kept = np.zeros((len(rows), len(self.values)), np.int64)
+        per_row, per_row_sq = np.zeros(len(params)), np.zeros(len(params))
         for b in np.unique(buckets):
             sel = np.flatnonzero(buckets == b)
             drawn = self._simulate(params[sel], b, rng.integers(0, 2 ** 31 - 1))
-            for i, d in zip(sel, drawn):
-                kept[i] = d if counts[i] == b else rng.multivariate_hypergeometric(d, int(counts[i]))
-        per_row = kept @ self.values
-        per_row_sq = kept @ self.values ** 2
-        total = float(np.sum(scale * per_row))
-        total_sq = float(np.sum(scale ** 2 * per_row_sq))
-        return Estimate(total, total_sq, int(shots), len(rows), _time.perf_counter() - start)
+            for i, (keys, d) in zip(sel, drawn):
+                kept = d if counts[i] == b else rng.multivariate_hypergeometric(d, int(counts[i]))
+                a = values_of_outcomes(self.masks, keys)
+                per_row[i], per_row_sq[i] = float(kept @ a), float(kept @ a ** 2)
+        return per_row, per_row_sq

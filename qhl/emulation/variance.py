@@ -127,7 +127,9 @@ def family_moments(family, part: str = "re") -> FamilyMoments:
     if nq > MAX_QUBITS:
         raise QhlInputError(f"exact estimator variance needs at most {MAX_QUBITS} qubits, the family has {nq}",
                             key="qubits")
-    require_memory("exact estimator variance", 16.0 * 4 ** nq * 6)
+    # rho moments (4), their product with a row unitary and that product times U^* (2), and the
+    # cached prefix unitaries and working matrices of row_unitaries (row_unitaries_matrices).
+    require_memory("exact estimator variance", 16.0 * 4 ** nq * (6 + row_unitaries_matrices(family)))
     n_anc = nq - family.inputs.n_qubits
     start = np.zeros((2 ** n_anc, 2 ** n_anc))
     start[0, 0] = 1.0
@@ -175,13 +177,9 @@ def _items_operator(instructions, index, binding, n):
     return u
 
 
-def row_unitaries(family, part: str = "re"):
-    """Yield (j, w_j, U_j) for every insertion row with w_j != 0: the bound circuit's unitary with
-    every input angle 0 (the inputs enter as operators, see the module docstring).
-    """
+def _segments(family):
+    """The circuit's instructions cut into static runs and runs that use an insertion parameter."""
     qc = family.circuit
-    n = qc.num_qubits
-    index = {q: k for k, q in enumerate(qc.qubits)}
     ins = set(family.insertions.parameters)
     items = []                                   # (dynamic?, instructions, insertion parameters used)
     for inst in qc.data:
@@ -193,6 +191,29 @@ def row_unitaries(family, part: str = "re"):
             items.append((bool(used), [inst], used))
         else:
             items[-1][1].append(inst)
+    return items
+
+
+def row_unitaries_matrices(family) -> int:
+    """Dense 2^q x 2^q matrices row_unitaries holds at once: one cached prefix per segment plus
+    one, and the row's unitary with two temporaries of a product."""
+    return _row_matrices(len(_segments(family)))
+
+
+def _row_matrices(n_segments: int) -> int:
+    return n_segments + 1 + 3
+
+
+def row_unitaries(family, part: str = "re"):
+    """Yield (j, w_j, U_j) for every insertion row with w_j != 0: the bound circuit's unitary with
+    every input angle 0 (the inputs enter as operators, see the module docstring).
+    """
+    qc = family.circuit
+    n = qc.num_qubits
+    index = {q: k for k, q in enumerate(qc.qubits)}
+    ins = set(family.insertions.parameters)
+    items = _segments(family)
+    require_memory("exact row unitaries", 16.0 * 4 ** n * _row_matrices(len(items)))
     read_out = set(family.basis)                 # prep angles 0, read-out basis of `part`
     values = family.parameter_values(np.zeros(len(family.prep)), 0, part)
     base = {p: (float(v) if p in read_out else 0.0) for p, v in zip(qc.parameters, values)

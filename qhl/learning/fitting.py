@@ -374,6 +374,17 @@ class LearnReport:
         ref = self.fit.values_hz if self.true_hz is None else self.true_hz
         return crb_relative_error(self.fit.stderr_hz, ref)
 
+    @property
+    def goodness_of_fit(self) -> dict:
+        """2C against chi-square with N - P degrees of freedom (N real data values: Re and Im of
+        every point). For a fit at the global optimum with the right sigma, 2C ~ chi2(N - P)
+        (Kay 1993, ch. 7); a p-value below 1e-6 points to a local minimum or a wrong sigma."""
+        from scipy.stats import chi2
+        n = 2 * sum(int(np.size(v[1])) for v in self.dataset.signals.values())
+        dof = max(n - len(self.fit.names), 1)
+        stat = 2.0 * self.fit.cost
+        return {"chi2": stat, "dof": dof, "p_value": float(chi2.sf(stat, dof))}
+
     def to_json(self) -> dict:
         f = self.fit
         params = [{"name": n, "fitted_hz": v, "stderr_hz": e,
@@ -385,12 +396,12 @@ class LearnReport:
                 "history": f.history, "cost": f.cost, "relative_error": self.relative_error,
                 "crb_relative_error": self.crb_relative_error, "unlearnable": f.unlearnable,
                 "diverged": f.diverged, "fixed_unlearnable": list(self.fixed_unlearnable),
-                "hidden": list(self.model.hidden)}
+                "hidden": list(self.model.hidden), "goodness_of_fit": self.goodness_of_fit}
 
 
 def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, seed: int = 0,
           start_offset=None, method: str = "gn", gradients: str = "exact", shots=None,
-          max_iter: int = 200, progress=None) -> LearnReport:
+          max_iter: int = 200, progress=None, evaluation_progress=None) -> LearnReport:
     """Fit `cluster`'s free parameters to measured (CSV) or synthetic signals.
 
     Synthetic data: the cluster's own values plus Gaussian noise `sigma` (default each
@@ -405,6 +416,8 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
         sigma: noise per point (synthetic noise, or CSV noise without a sigma column).
         seed, start_offset, method, max_iter, progress: see `fit` and `perturbed_start`.
         gradients: 'exact' (ExactEngine) or 'emulated' (circuit emulator, `shots` per estimate).
+        evaluation_progress: callable(done, total, label) within each evaluation of the emulated
+            provider (one circuit family at a time); ignored for exact gradients.
 
     Returns:
         LearnReport.
@@ -453,6 +466,7 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
         if shots is None:
             raise QhlInputError("--gradients emulated needs --shots N", key="--shots")
         provider = emulated_gradient_provider(model, experiments, shots, seed)
+        provider.progress = evaluation_progress
     else:
         provider = ExactGradientProvider(engine, experiments)
     result = fit(provider, dataset, start, method=method, max_iter=max_iter, progress=progress)

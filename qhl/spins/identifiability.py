@@ -14,12 +14,18 @@ criterion: the Heisenberg-picture argument of any quantum-mechanics text, e.g. L
 Dynamics", 2nd ed., 2008, ch. 15; common practice.)
 
 The commutators are computed with qiskit's Pauli algebra (SparsePauliOp); the directions v are
-the null space of the linear map v -> ([K, G_m], [K, rho0], [K, O]) (scipy.linalg.null_space).
+the null space of the linear map v -> ([K, G_m], [K, rho0], [K, O]) (Gram-matrix eigenvectors).
 A parameter is individually identifiable only if its unit vector is orthogonal to that null space.
+
+Scaling (clusters of hundreds of spins): the null space is found in two exact stages. Stage 1
+keeps the v with [K, rho0] = [K, O] = 0 (two test operators only); the commutator matrix is held
+sparse and splits into connected components (parameters whose commutators share a Pauli string),
+each solved densely. Stage 2 tests only those few candidate combinations against every generator.
 """
 
 import numpy as np
-from scipy.linalg import null_space
+import scipy.sparse as sp
+from scipy.sparse.csgraph import connected_components
 from qiskit.quantum_info import PauliList, SparsePauliOp
 
 __all__ = ["invisible_directions", "unidentifiable_parameters", "WEIGHT_TOL"]
@@ -38,25 +44,82 @@ def _stack(ops):
     return paulis, coeffs, owner
 
 
-def _commutator_matrix(columns, tests) -> np.ndarray:
-    """Matrix M with M[(test, pauli), c] = coefficient of that Pauli in [columns[c], tests[t]].
+def _commutator_matrix(columns, tests) -> sp.csr_matrix:
+    """Sparse M with M[(test, pauli), c] = coefficient of that Pauli in [columns[c], tests[t]].
 
     For Pauli strings [P, Q] = 2 PQ when they anticommute and 0 when they commute; the symplectic
     test x_P.z_Q + z_P.x_Q (mod 2) decides which (qiskit.quantum_info.PauliList).
     """
     a, ca, oa = _stack(columns)
     b, cb, ob = _stack(tests)
-    sym = (a.x.astype(np.int64) @ b.z.T.astype(np.int64) + a.z.astype(np.int64) @ b.x.T.astype(np.int64)) % 2
-    ia, ib = np.nonzero(sym)
+    # symplectic products by BLAS in float32 (exact: the counts are at most n < 2^24)
+    ax, az = a.x.astype(np.float32), a.z.astype(np.float32)
+    bx, bz = b.x.astype(np.float32).T, b.z.astype(np.float32).T
+    ia_parts, ib_parts = [], []
+    chunk = max(1, int(2e7 // max(1, len(b))))            # bounded work array (about 80 MB)
+    for start in range(0, len(a), chunk):
+        sym = np.rint(ax[start:start + chunk] @ bz + az[start:start + chunk] @ bx).astype(np.int64) % 2
+        ia, ib = np.nonzero(sym)
+        ia_parts.append(ia + start)
+        ib_parts.append(ib)
+    ia, ib = np.concatenate(ia_parts), np.concatenate(ib_parts)
     if ia.size == 0:
-        return np.zeros((0, len(columns)), complex)
+        return sp.csr_matrix((0, len(columns)), dtype=complex)
     prod = a[ia].dot(b[ib])
     coef = 2 * ca[ia] * cb[ib] * (-1j) ** prod.phase
-    keys = np.hstack([ob[ib][:, None], prod.x, prod.z]).astype(np.int64)
-    uniq, row = np.unique(keys, axis=0, return_inverse=True)
-    m = np.zeros((len(uniq), len(columns)), complex)
-    np.add.at(m, (row.ravel(), oa[ia]), coef)
-    return m
+    # one row per (test operator, Pauli string): bytes of the owner and the packed x|z bits
+    keys = np.ascontiguousarray(np.hstack([ob[ib].astype(">u4").view(np.uint8).reshape(-1, 4),
+                                           np.packbits(prod.x, axis=1), np.packbits(prod.z, axis=1)]))
+    _, row = np.unique(keys.view(np.dtype((np.void, keys.shape[1]))).ravel(), return_inverse=True)
+    row = row.ravel()
+    uniq = np.arange(row.max() + 1)
+    return sp.csr_matrix((coef, (row.ravel(), oa[ia])), shape=(len(uniq), len(columns)))
+
+
+def _real_rows(m: sp.spmatrix, dipolar: np.ndarray) -> sp.csr_matrix:
+    """Stack Re, Im of M and of M with the dipolar columns zeroed (scale s = 0 and s = 1)."""
+    m0 = m @ sp.diags(np.where(dipolar, 0.0, 1.0))
+    return sp.vstack([m.real, m.imag, m0.real, m0.imag]).tocsc()
+
+
+# Null directions: singular values below this fraction of the largest. The matrices hold the
+# generators' O(1) Pauli coefficients, so exact symmetries give singular values at rounding level
+# and real constraints O(1e-2) or more: any cut in between gives the same answer.
+NULL_RCOND = 1e-6
+
+
+def _sparse_null_space(m: sp.csc_matrix) -> np.ndarray:
+    """Orthonormal null space of sparse M, per connected component of its columns.
+
+    Each component's null space is that of its Gram matrix M_c^T M_c (small and dense: one row and
+    column per parameter of the component), keeping eigenvalues below NULL_RCOND^2 of the largest.
+    """
+    n_cols = m.shape[1]
+    pattern = (abs(m) > 0).astype(np.int8)
+    adjacency = (pattern.T @ pattern).tocsr()
+    n_comp, label = connected_components(adjacency, directed=False)
+    order = np.argsort(label, kind="stable")
+    bounds = np.searchsorted(label[order], np.arange(n_comp + 1))
+    touched = np.asarray(pattern.sum(axis=0)).ravel() > 0
+    free_cols = np.flatnonzero(~touched)              # commutators all zero: null directions as they are
+    blocks = []
+    if free_cols.size:
+        unit = np.zeros((n_cols, free_cols.size))
+        unit[free_cols, np.arange(free_cols.size)] = 1.0
+        blocks.append(unit)
+    for comp in range(n_comp):
+        cols = order[bounds[comp]:bounds[comp + 1]]
+        if cols.size == 1:
+            continue                                  # a lone column: zero (kept above) or not null
+        sub = m[:, cols]
+        gram = np.real((sub.conj().T @ sub).toarray())
+        w, v = np.linalg.eigh(gram)
+        keep = w <= NULL_RCOND ** 2 * max(float(w[-1]), 0.0) if w.size else np.zeros(0, bool)
+        if np.any(keep):
+            full = np.zeros((n_cols, int(keep.sum())))
+            full[cols] = v[:, keep]
+            blocks.append(full)
+    return np.hstack(blocks) if blocks else np.zeros((n_cols, 0))
 
 
 def invisible_directions(model, names=None) -> np.ndarray:
@@ -74,21 +137,32 @@ def invisible_directions(model, names=None) -> np.ndarray:
         return np.zeros((0, 0))
     n = model.n_spins
     obs = model.observed_qubits()
-    tests = [p.generator for p in model.parameters]
-    if obs:
-        tests.append(SparsePauliOp.from_sparse_list([("X", [q], 1.0) for q in obs], num_qubits=n))
-        tests.append(SparsePauliOp.from_sparse_list([("Y", [q], 1.0) for q in obs], num_qubits=n))
     by_name = {p.name: p for p in model.parameters}
     gens = [by_name[nm].generator for nm in names]
-    dipolar = np.array([by_name[nm].kind == "dipolar" for nm in names])
-    m = _commutator_matrix(gens, tests)
     # Experiments scale dipolar terms by s (Experiment.dipolar_scale). Requiring commutation at
     # s = 0 and s = 1 (the dipolar part and the rest separately) covers every s at once.
-    m0 = m * np.where(dipolar, 0.0, 1.0)[None, :]
-    stacked = np.vstack([m.real, m.imag, m0.real, m0.imag])
-    if stacked.shape[0] == 0:
-        return np.eye(len(names))
-    return null_space(stacked, rcond=1e-10)
+    dipolar = np.array([by_name[nm].kind == "dipolar" for nm in names])
+    # stage 1: commute with rho0 = sum Ix and O = sum I+ (both spanned by sum X, sum Y of the observed spins)
+    if obs:
+        probes = [SparsePauliOp.from_sparse_list([(axis, [q], 1.0) for q in obs], num_qubits=n) for axis in "XY"]
+        candidates = _sparse_null_space(_real_rows(_commutator_matrix(gens, probes), dipolar))
+    else:
+        candidates = np.eye(len(names))
+    if candidates.shape[1] == 0:
+        return candidates
+    # stage 2: the candidate combinations K_j (and their non-dipolar parts) against every generator
+    combos, combos0 = [], []
+    for j in range(candidates.shape[1]):
+        idx = np.flatnonzero(np.abs(candidates[:, j]) > 0)
+        ops = [gens[k] * candidates[k, j] for k in idx]
+        ops0 = [gens[k] * candidates[k, j] for k in idx if not dipolar[k]]
+        combos.append(SparsePauliOp.sum(ops).simplify(atol=0))
+        combos0.append(SparsePauliOp.sum(ops0).simplify(atol=0) if ops0 else SparsePauliOp("I" * n, 0.0))
+    tests = [p.generator for p in model.parameters]
+    k = len(combos)
+    m = _commutator_matrix(combos + combos0, tests).tocsc()
+    stacked = sp.vstack([m[:, :k].real, m[:, :k].imag, m[:, k:].real, m[:, k:].imag]).tocsc()
+    return candidates @ _sparse_null_space(stacked)
 
 
 def unidentifiable_parameters(model, names=None) -> list:

@@ -1,0 +1,354 @@
+"""Exact outcome probabilities of a circuit family's settings from numpy state vectors (no Aer).
+
+Without noise every shot of a setting (input k, insertion row j, part) is a draw from the Born
+distribution of one pure state, so the emulator computes that distribution once per distinct
+setting and draws the setting's shots from it (multinomial; common practice). The states are
+built from the family's Trotterised evolution (qhl.circuits.trotter: the same
+`append_block_rotations` that writes the circuit, turned into 4x4 or 2x2 block matrices by
+qiskit.quantum_info.Operator), on the n system qubits only, because the ancillas of the
+Hadamard-test families (qhl.circuits.gradient_circuits) are untouched by the evolution:
+
+  Gradient (one ancilla a in |+>, controlled-((-i)^w P) after block p, then p(lambda), h):
+      x_0 = U psi_k,   x_1 = (-i)^w e^{i lambda} U_{>p} P U_{<=p} psi_k
+      amplitude of ancilla outcome o:  (x_0 + (-1)^o x_1) / 2
+  Hessian (ancillas a1 for h_m, a2 for h_n; the earlier insertion e nested inside the later l):
+      x_{c1 c2} = phases * U_{>l} P_l^{c_l} U_{(e, l]} P_e^{c_e} U_{<=e} psi_k
+      amplitude of (o1, o2):  sum_c (-1)^{o.c} x_c / 4
+  Signal: U psi_k.
+followed by the read-out rz(mu), h on every observed spin. U_{<=p} psi_k (the states after
+block p, shared by every setting of input k) come from one forward sweep and the dense suffixes
+U_{>p} from one backward sweep; both are cached per evolution (`EvolutionTables`), so the families of
+every parameter at one time share them. The probabilities are checked against Aer's own
+statevector probabilities (`FamilyRunner.audit`, tests/test_emulator_fast.py) to 1e-10.
+
+The stochastic-parameter-shift family ('gradient-shift') and noisy runs stay on Aer.
+"""
+
+from collections import OrderedDict
+from dataclasses import dataclass
+
+import numpy as np
+from qiskit import QuantumCircuit
+from qiskit.circuit.library import HGate, RZGate
+from qiskit.quantum_info import Operator
+
+from ..base.errors import QhlInputError
+from ..base.memory import require_memory
+from ..circuits.circuit_family import _BASIS_ANGLE
+from ..circuits.gradient_circuits import insertion_points
+from ..circuits.trotter import append_block_rotations, product_formula_slots, trotter_terms
+
+__all__ = ["FAST_KINDS", "MAX_FAST_QUBITS", "supports_fast_path", "FastFamily", "EvolutionTables",
+           "clear_cache"]
+
+FAST_KINDS = ("signal", "gradient", "hessian")
+MAX_FAST_QUBITS = 10          # dense 2^n x 2^n suffixes (16 MiB each at n = 10); larger clusters stay on Aer
+_PAULI = {"X": np.array([[0, 1], [1, 0]], complex), "Y": np.array([[0, -1j], [1j, 0]], complex),
+          "Z": np.array([[1, 0], [0, -1]], complex)}
+_CACHE: "OrderedDict" = OrderedDict()
+_CACHE_SIZE = 2
+_CACHE_BYTES = 1.5 * 2 ** 30   # tables above this are not kept for the whole evolution
+
+
+def supports_fast_path(family) -> bool:
+    """True for signal, Hadamard-gradient and Hessian families with a recorded evolution."""
+    return (family.kind in FAST_KINDS and family.evolution is not None
+            and family.inputs.n_qubits <= MAX_FAST_QUBITS)
+
+
+def clear_cache() -> None:
+    """Forget the cached evolution tables (tests; memory)."""
+    _CACHE.clear()
+
+
+def apply_gate(gate, qubits, states, n):
+    """`gate` (2^k x 2^k, qiskit order: qubits[0] least significant) on the rows of states (2^n x K)."""
+    k = len(qubits)
+    t = states.reshape((2,) * n + (-1,))
+    axes = [n - 1 - q for q in reversed(qubits)]
+    t = np.tensordot(gate.reshape((2,) * (2 * k)), t, axes=(list(range(k, 2 * k)), axes))
+    return np.moveaxis(t, list(range(k)), axes).reshape(states.shape)
+
+
+def product_states(angles) -> np.ndarray:
+    """(2^n, K) columns prod_q ry(theta_q)|0> for the rows of angles (K, n); qubit q = bit q."""
+    angles = np.atleast_2d(np.asarray(angles, float))
+    K, n = angles.shape
+    amp = np.stack([np.cos(angles / 2), np.sin(angles / 2)], axis=-1)   # (K, n, 2)
+    psi = amp[:, n - 1, :]
+    for q in range(n - 2, -1, -1):
+        psi = np.einsum("ka,kb->kab", psi, amp[:, q, :]).reshape(K, -1)
+    return np.ascontiguousarray(psi.T.astype(complex))
+
+
+def _block_gate(block, duration, n):
+    """(qubits, matrix) of append_block_rotations(block, duration) restricted to the block's qubits."""
+    qubits = sorted(block.qubits)
+    local = {q: i for i, q in enumerate(qubits)}
+    qc = QuantumCircuit(len(qubits))
+    append_block_rotations(qc, block, duration, [local.get(q, 0) for q in range(n)])
+    return tuple(qubits), Operator(qc).data
+
+
+def _evolution_key(terms, slots):
+    blocks = tuple((b.label, b.qubits, b.paulis, np.asarray(b.coeffs, float).tobytes())
+                   for g in terms.groups for b in g.blocks)
+    return (terms.n_qubits, blocks, tuple((s.group, float(s.duration)) for s in slots))
+
+
+class EvolutionTables:
+    """The flat block sequence of one Trotterised evolution, its forward states and dense suffixes.
+
+    Position p = "just after block p" of the flat sequence (slot by slot, block by block, the
+    order in which qhl.circuits.gradient_circuits writes them and places the insertion gadgets).
+
+    Attributes:
+        terms, slots: the evolution; gates: [(qubits, matrix)] per flat block; n: qubits.
+        offsets: flat index of the first block of every slot.
+    """
+
+    def __init__(self, terms, slots):
+        self.terms, self.slots, self.n = terms, slots, terms.n_qubits
+        cache = {}
+        self.gates, self.offsets = [], []
+        for s in slots:
+            self.offsets.append(len(self.gates))
+            for bi, block in enumerate(terms.groups[s.group].blocks):
+                key = (s.group, bi, float(s.duration))
+                if key not in cache:
+                    cache[key] = _block_gate(block, s.duration, self.n)
+                self.gates.append(cache[key])
+        self._inputs = {}          # angle bytes -> column
+        self._states = None        # (P, 2^n, K) forward states for the known inputs
+        self._final = None
+        self._suffix = {}          # part -> {position: dense R_part U_{>p}}
+        self.observed = (True,) * self.n   # observed spins (read-out qubits); set by evolution_tables
+        self._readout = {}
+
+    def position(self, slot: int, block: int) -> int:
+        return self.offsets[slot] + block
+
+    @property
+    def nbytes_per_position(self) -> float:
+        return 16.0 * 4 ** self.n
+
+    # ---------------------------------------------------------------- forward states
+    def states(self, angles, positions):
+        """(forward states {p: (2^n, K)}, final (2^n, K)) for the input rows `angles` (K, n).
+
+        The states of every position are cached for all inputs seen so far while that table fits
+        in the cache budget; beyond it one sweep keeps only the positions asked for.
+        """
+        angles = np.asarray(angles, float)
+        cols = [self._inputs.get(a.tobytes()) for a in angles]
+        if any(c is None for c in cols) or self._states is None:
+            known = len(self._inputs) + len(angles)
+            if 16.0 * 2 ** self.n * known * (len(self.gates) + 1) > _CACHE_BYTES:
+                return self._sweep(angles, positions)
+            self._extend(angles)
+            cols = [self._inputs[a.tobytes()] for a in angles]
+        cols = np.asarray(cols, int)
+        return {p: self._states[p][:, cols] for p in positions}, self._final[:, cols]
+
+    def _sweep(self, angles, positions):
+        wanted = set(int(p) for p in positions)
+        require_memory("fast-path forward states", 16.0 * 2 ** self.n * len(angles) * (len(wanted) + 2))
+        psi = product_states(angles)
+        out = {}
+        for p, (qubits, g) in enumerate(self.gates):
+            psi = apply_gate(g, qubits, psi, self.n)
+            if p in wanted:
+                out[p] = psi
+        return out, psi
+
+    def _extend(self, angles):
+        new = [a for a in np.unique(angles, axis=0) if a.tobytes() not in self._inputs]
+        known = [np.frombuffer(k) for k in self._inputs]
+        every = np.array(known + new) if known else np.array(new)
+        psi = product_states(every)
+        out = np.empty((len(self.gates),) + psi.shape, complex)
+        for p, (qubits, g) in enumerate(self.gates):
+            psi = apply_gate(g, qubits, psi, self.n)
+            out[p] = psi
+        self._states, self._final = out, psi
+        self._inputs = {a.tobytes(): i for i, a in enumerate(every)}
+
+    # ---------------------------------------------------------------- suffixes
+    def readout(self, part: str) -> np.ndarray:
+        """R_part: rz(mu) then h on every observed spin, dense (2^n x 2^n)."""
+        if part in self._readout:
+            return self._readout[part]
+        one = HGate().to_matrix() @ RZGate(_BASIS_ANGLE[part]).to_matrix()
+        r = np.array([[1.0 + 0j]])
+        for q in range(self.n - 1, -1, -1):
+            r = np.kron(r, one if self.observed[q] else np.eye(2))
+        self._readout[part] = r
+        return r
+
+    def suffixes(self, positions, part: str) -> dict:
+        """{p: R_part U_{>p}} (dense 2^n x 2^n) for the positions asked (all are kept when they fit)."""
+        positions = sorted(set(int(p) for p in positions))
+        store = self._suffix.setdefault(part, {})
+        missing = [p for p in positions if p not in store]
+        if missing:
+            keep_all = 2 * self.nbytes_per_position * len(self.gates) <= _CACHE_BYTES
+            wanted = set(range(len(self.gates))) if keep_all else set(missing)
+            require_memory("fast-path suffix unitaries", self.nbytes_per_position * (len(wanted) + 2))
+            t = np.ascontiguousarray(self.readout(part).T)   # (R U_{>p})^T, built by left-multiplying B^T
+            for p in range(len(self.gates) - 1, -1, -1):
+                if p in wanted and p not in store:
+                    store[p] = np.ascontiguousarray(t.T)
+                qubits, g = self.gates[p]
+                t = apply_gate(g.T, qubits, t, self.n)
+        return {p: store[p] for p in positions}
+
+    def propagate(self, states, start: int, stop: int):
+        """Blocks start+1 .. stop applied to states (2^n x K)."""
+        for p in range(start + 1, stop + 1):
+            qubits, g = self.gates[p]
+            states = apply_gate(g, qubits, states, self.n)
+        return states
+
+
+def evolution_tables(family) -> EvolutionTables:
+    """The (cached) EvolutionTables of a family's evolution."""
+    ev = family.evolution
+    terms = trotter_terms(ev["model"], ev["experiment"], ev["values_hz"], ev["grouping"], ev["ordering"])
+    slots = product_formula_slots(len(terms.groups), family.time, family.steps, family.order)
+    observed = tuple(bool(o) for o in family.inputs.observed)
+    key = (_evolution_key(terms, slots), observed)
+    if key in _CACHE:
+        _CACHE.move_to_end(key)
+        return _CACHE[key]
+    tables = EvolutionTables(terms, slots)
+    tables.observed = observed
+    _CACHE[key] = tables
+    while len(_CACHE) > _CACHE_SIZE:
+        _CACHE.popitem(last=False)
+    return tables
+
+
+@dataclass(frozen=True)
+class _Insertion:
+    position: int
+    qubits: tuple
+    pauli: np.ndarray          # (2^w, 2^w) with the (-i)^w of the gadget
+    ancilla: int               # 0 for h_m (or the gradient's), 1 for h_n
+
+
+class FastFamily:
+    """Exact outcome probabilities of the settings of one family (see the module docstring).
+
+    Args:
+        family: a CircuitFamily of kind 'signal', 'gradient' (Hadamard) or 'hessian'.
+
+    Raises:
+        QhlInputError: another kind, or a family without a recorded evolution.
+    """
+
+    def __init__(self, family):
+        if not supports_fast_path(family):
+            raise QhlInputError(f"the fast path handles {', '.join(FAST_KINDS)} families with at most "
+                                f"{MAX_FAST_QUBITS} spins, not '{family.kind}'", key="method")
+        self.family = family
+        self.tables = evolution_tables(family)
+        self.n = family.inputs.n_qubits
+        self.n_anc = family.circuit.num_qubits - self.n
+        terms, slots = self.tables.terms, self.tables.slots
+        table = family.insertions
+        if family.kind == "signal":
+            self.rows = [()]
+        elif family.kind == "gradient":
+            pts = [self._insertion(p, 0) for p in insertion_points(terms, slots, family.parameters[0])]
+            self._check_rows(pts, len(pts), lambda j: (j,))
+            self.rows = [(pts[j],) for j in range(len(pts))]
+        else:
+            pm = [self._insertion(p, 0) for p in insertion_points(terms, slots, family.parameters[0])]
+            pn = [self._insertion(p, 1) for p in insertion_points(terms, slots, family.parameters[1])]
+            kn = len(pn)
+            self._check_rows(pm + pn, len(pm) * kn, lambda j: (j // kn, len(pm) + j % kn))
+            self.rows = [(pm[j // kn], pn[j % kn]) for j in range(len(pm) * kn)]
+        self.lam = np.asarray(table.values[:, len(table.values[0]) - self.n_anc:], float) if self.n_anc else \
+            np.zeros((len(table), 0))
+        self.measured = list(family.measured_qubits)
+        self.n_outcomes = 2 ** len(self.measured)
+
+    def _insertion(self, pt, ancilla):
+        mat = np.array([[1.0 + 0j]])
+        for ch in reversed(pt.pauli):             # pt.pauli lists the lowest qubit first
+            mat = np.kron(mat, _PAULI[ch])
+        return _Insertion(self.tables.position(pt.slot, pt.block), pt.qubits, (-1j) ** pt.weight * mat, ancilla)
+
+    def _check_rows(self, points, n_rows, columns):
+        table = self.family.insertions
+        if len(table) != n_rows or len(table.parameters) != len(points) + self.family.circuit.num_qubits - self.n:
+            raise RuntimeError("fast path: the insertion table does not match the recomputed insertion points")
+        for j in range(n_rows):
+            on = np.flatnonzero(table.values[j, :len(points)])
+            if sorted(on.tolist()) != sorted(columns(j)) or not np.allclose(table.values[j, on], np.pi):
+                raise RuntimeError(f"fast path: insertion row {j} is not a single controlled Pauli per ancilla")
+
+    def _marginal(self, amp) -> np.ndarray:
+        """(G, 2^m) outcome probabilities from amplitudes (2^q, G): sum |amp|^2 over unmeasured qubits,
+        outcome bit k = measured qubit k."""
+        q = self.n + self.n_anc
+        p = (np.abs(amp) ** 2).reshape((2,) * q + (-1,))
+        drop = tuple(q - 1 - j for j in range(q) if j not in self.measured)
+        if drop:
+            p = p.sum(axis=drop)
+        kept = [j for j in range(q - 1, -1, -1) if j in self.measured]     # axis order after the sum
+        order = [kept.index(j) for j in reversed(self.measured)] + [len(kept)]
+        return np.transpose(p, order).reshape(self.n_outcomes, -1).T
+
+    def probabilities(self, angles, rows, inputs, part: str = "re") -> np.ndarray:
+        """Outcome probabilities of the settings (input angles[inputs[g]], insertion row rows[g]).
+
+        Args:
+            angles: (K, n) distinct input angle rows; rows, inputs: (G,) indices.
+
+        Returns:
+            (G, 2^m) probabilities over outcomes (bit k = classical bit k of the family's read-out).
+        """
+        rows, inputs = np.asarray(rows, int), np.asarray(inputs, int)
+        out = np.zeros((len(rows), self.n_outcomes))
+        needed = sorted({ins.position for r in set(rows.tolist()) for ins in self.rows[r]})
+        fwd, final = self.tables.states(angles, needed)
+        final = self.tables.readout(part) @ final
+        suf = self.tables.suffixes(needed, part)
+        for j in np.unique(rows):
+            sel = np.flatnonzero(rows == j)
+            cols = inputs[sel]
+            branches = self._branches(self.rows[j], fwd, final, suf, cols)
+            out[sel] = self._marginal(self._combine(branches, self.lam[j]))
+        return out
+
+    def _branches(self, row, fwd, final, suf, cols):
+        """{ancilla bits c (tuple): R x_c (2^n, G_j)} before the ancilla phases."""
+        n = self.n
+        x = {(0,) * self.n_anc: final[:, cols]}
+        if not row:
+            return x
+        for ins in row:
+            v = apply_gate(ins.pauli, ins.qubits, fwd[ins.position][:, cols], n)
+            c = [0] * self.n_anc
+            c[ins.ancilla] = 1
+            x[tuple(c)] = suf[ins.position] @ v
+        if len(row) == 2:
+            early, late = sorted(row, key=lambda i: (i.position, i.ancilla))
+            v = apply_gate(early.pauli, early.qubits, fwd[early.position][:, cols], n)
+            v = self.tables.propagate(v, early.position, late.position)
+            v = apply_gate(late.pauli, late.qubits, v, n)
+            x[(1, 1)] = suf[late.position] @ v
+        return x
+
+    def _combine(self, branches, lam):
+        """Amplitudes (2^(n+A), G_j) after the ancillas' p(lambda) and h (module docstring)."""
+        n, A = self.n, self.n_anc
+        first = next(iter(branches.values()))
+        amp = np.zeros((2 ** A,) + first.shape, complex)
+        for c, v in branches.items():
+            phase = np.exp(1j * float(np.dot(c, lam))) if A else 1.0
+            for o in range(2 ** A):
+                sign = (-1) ** sum(((o >> a) & 1) * c[a] for a in range(A))
+                amp[o] += (sign * phase / 2.0 ** A) * v
+        return amp.reshape(2 ** A * 2 ** n, -1)
