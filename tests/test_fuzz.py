@@ -150,8 +150,12 @@ def _time_limit(seconds: float):
 @contextmanager
 def memory_guard(extra_bytes: int = 3 * 2**30):
     """Cap this process's address space at its current size + `extra_bytes` (a memory error, not the OOM killer)."""
-    with open("/proc/self/status") as f:
-        vm = next(int(line.split()[1]) * 1024 for line in f if line.startswith("VmSize:"))
+    try:
+        with open("/proc/self/status") as f:
+            vm = next(int(line.split()[1]) * 1024 for line in f if line.startswith("VmSize:"))
+    except (OSError, StopIteration):          # not Linux: no cap
+        yield
+        return
     soft, hard = resource.getrlimit(resource.RLIMIT_AS)
     limit = vm + extra_bytes
     if hard != resource.RLIM_INFINITY:

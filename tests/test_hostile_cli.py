@@ -32,8 +32,8 @@ def _error_line(capsys, argv):
     (["budget", "--time", "1e300"], r"--time: expected a number in \(0, 1000\], got '1e300'"),
     (["check", "--time", "1e300", "--steps", "1", "--shots", "1"], r"--time: .*\(0, 1000\]"),
     (["circuits", "--time", "1e300"], r"--time: .*\(0, 1000\]"),
-    (["circuits", "--time", "1e-4", "--steps", "1e11"], r"--steps: expected an integer in \[1, 1,000,000\]"),
-    (["check", "--time", "1e-4", "--steps", "100000000000", "--shots", "1"], r"--steps: .*\[1, 1,000,000\]"),
+    (["circuits", "--time", "1e-4", "--steps", "1e11"], r"--steps: expected an integer in \[1, 5,000\]"),
+    (["check", "--time", "1e-4", "--steps", "100000000000", "--shots", "1"], r"--steps: .*\[1, 5,000\]"),
     (["scan", "x.toml", "--out", "r.csv", "--dipolar-scale", "1e-5:1e-4:100000000"],
      r"--dipolar-scale: expected A:B:N with N an integer in \[1, 10,000\]"),
     (["budget", "--sweep-time", "1e-4:1e-3:1000000"], r"--sweep-time: .*\[1, 1,000\]"),
@@ -99,3 +99,10 @@ def test_missing_noise_names_the_option(tmp_path, capsys, command):
 def test_integer_options_with_hundreds_of_digits(capsys):
     assert "--seed: expected an integer" in _error_line(capsys, ["learn", "--seed", "9" * 400])
     assert "--shots: expected an integer" in _error_line(capsys, ["learn", "--shots", "9" * 5000])
+
+
+def test_step_count_derived_from_eps_is_bounded(capsys):
+    # a tight bound over a long time asks for billions of steps: refused, not built
+    assert main(["circuits", "--time", "1e-3", "--eps", "1e-6"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "--eps: needs" in err and "at most 5,000" in err

@@ -98,3 +98,13 @@ def test_plot_folder_is_checked_before_the_scan_runs(tmp_path, capsys):
         err = capsys.readouterr().err
         assert rc == 2 and msg in err and err.count("\n") == 1
         assert not (tmp_path / "r.csv").exists()            # nothing computed
+
+
+def test_results_file_with_a_huge_field_is_one_line(tmp_path):
+    definition = define_scan(_clusters(1), (0.5,))
+    out = tmp_path / "r.csv"
+    run_scan(definition, out, workers=0, progress=False)
+    with open(out, "a") as f:
+        f.write('"' + "x" * 200000 + '"\n')          # beyond the csv module's field limit
+    with pytest.raises(QhlInputError, match="malformed results row"):
+        read_results(out)

@@ -3,7 +3,8 @@
 import sys
 
 from ..base.errors import QhlInputError
-from .common import STEPS, TIME_S, TROTTER_EPS, add_cluster_argument, check_output_path, cluster_from_args, print_json
+from .common import (STEPS, TIME_S, TROTTER_EPS, add_cluster_argument, check_output_path, check_steps,
+                     cluster_from_args, print_json)
 
 KINDS = ("signal", "gradient", "hessian")
 _LARGE = 2000
@@ -95,6 +96,7 @@ def run(args):
         if args.eps is None:
             raise QhlInputError("give --steps R or --eps EPS", key="--steps")
         steps = trotter_steps_for(terms, args.time, args.eps, args.order)
+        check_steps(steps, "--eps")
     else:
         steps = args.steps
     family = build_family(model, experiment, args.kind, params, args.time, steps, args.order, args.method,

@@ -159,12 +159,12 @@ def define_scan(clusters, dipolar_scales, settings: ScanSettings = ScanSettings(
     loaded = []
     for c in clusters:
         c = c if isinstance(c, Cluster) else load_cluster(c)
+        require_memory(f"a scan task on {c.source} ({c.n_spins} spins)",      # before building anything
+                       estimate_memory_bytes(c.n_spins, _sector_dimensions(c), settings.points))
         try:
             build_model(c).with_free(settings.free)
         except QhlInputError as e:
             raise QhlInputError(str(e), source=c.source, key="free") from None
-        require_memory(f"a scan task on {c.source} ({c.n_spins} spins)",
-                       estimate_memory_bytes(c.n_spins, _sector_dimensions(c), settings.points))
         loaded.append(c)
     tasks, seen, names = [], set(), []
     for c in loaded:
@@ -248,12 +248,19 @@ def read_results(path, repair: bool = False):
     if len(lines) < 3 or lines[0] != _MAGIC or not lines[1].startswith("# scan_id="):
         raise QhlInputError(f"not a qhl scan results file (expected first line '{_MAGIC}')", source=src,
                             key="out")
-    scan_id = lines[1].split()[1].split("=", 1)[1]
-    header = next(csv.reader([lines[2]]))
+    try:
+        scan_id = lines[1].split()[1].split("=", 1)[1]
+        header = next(csv.reader([lines[2]]))
+    except (IndexError, csv.Error):
+        raise QhlInputError("malformed results header", source=src, key="out") from None
     if tuple(header) != COLUMNS:
         raise QhlInputError("results header does not match this version of qhl", source=src, key="out")
+    try:
+        parsed = list(enumerate(csv.reader(lines[3:]), start=4))
+    except csv.Error as e:
+        raise QhlInputError(f"malformed results row ({str(e)[:80]})", source=src, key="out") from None
     rows, seen = [], set()
-    for n, values in enumerate(csv.reader(lines[3:]), start=4):
+    for n, values in parsed:
         if len(values) != len(COLUMNS):
             raise QhlInputError(f"line {n}: expected {len(COLUMNS)} fields, got {len(values)}", source=src)
         try:
