@@ -9,7 +9,6 @@ before creating what it protects).
 
 import threading
 import time
-from pathlib import Path
 
 import pytest
 

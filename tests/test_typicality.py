@@ -23,7 +23,7 @@ from qhl.exact.sector_operators import SectorSpace, pauli_groups, sector_matrix
 from qhl.exact.typicality import TypicalEngine
 from qhl.survey.structure import cut_clusters, demo_structure_path, invented_offsets_hz, read_structure
 
-from reference_moments import signal_moments, taylor_signal
+from reference_moments import signal_moments
 
 EXP = Experiment("fid", 1.5e-4, 24, 1.0, 1e-3)
 

@@ -4,7 +4,7 @@ import sys
 
 import numpy as np
 
-from .common import add_cluster_argument, cluster_from_args, positive_float, print_json
+from .common import add_cluster_argument, cluster_from_args, print_json
 
 
 from .common import NOISE  # range-checked option types

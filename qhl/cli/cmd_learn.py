@@ -5,9 +5,8 @@ import sys
 import numpy as np
 
 from ..learning.methods import METHODS
-from .common import (add_cluster_argument, check_output_path, cluster_from_args, positive_float,
-                     positive_int, print_json)
-from .common import ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET  # range-checked option types
+from .common import (ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET, add_cluster_argument, check_output_path,
+                     cluster_from_args, print_json)
 
 
 def register(sub):

@@ -35,7 +35,7 @@ import numpy as np
 
 from ..base.blas import single_thread_blas
 from ..base.errors import QhlInputError
-from ..base.memory import available_memory_bytes, require_memory
+from ..base.memory import require_memory
 from .chebyshev import chebyshev_window, lanczos_bounds
 from .sector_operators import SectorSpace, csr_bytes, ladder_block, pauli_groups, sector_matrix
 from .sectors import conserves_magnetisation

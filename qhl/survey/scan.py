@@ -40,7 +40,7 @@ from .diagnostics import diagnose
 from ..exact.engine import estimate_memory_bytes
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
-from ..spins.model import DEFAULT_FREE, build_model
+from ..spins.model import build_model
 from .scan_settings import ScanSettings
 from .structure import cluster_to_toml
 
