@@ -35,7 +35,7 @@ import numpy as np
 
 from ..exact.engine import ExactEngine, estimate_memory_bytes
 from ..base.errors import MemoryBudgetError, QhlInputError
-from ..base.memory import available_memory_bytes
+from ..base.memory import available_memory_bytes, require_memory
 from ..circuits.pauli_commutators import pauli_arrays, quadrature_norms
 from ..spins.model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
@@ -45,7 +45,7 @@ from .near_term import near_term_model
 from .trotter_cost import ORDERS, empirical_flops, empirical_trotter_steps, trotter_model
 
 __all__ = ["BudgetSettings", "BudgetModel", "Budget", "BudgetSweep", "all_assumptions", "fit_exponents",
-           "EXPECTED_EXPONENTS", "exact_engine_plan", "TIERS"]
+           "EXPECTED_EXPONENTS", "exact_engine_plan", "bound_tier_memory_bytes", "TIERS"]
 
 TIERS = ("exact", "estimated", "bound")
 EXACT_MEMORY_FRACTION = 0.5
@@ -301,6 +301,17 @@ def exact_engine_plan(model, experiments, settings) -> dict:
             "hessian_reason": hreason}
 
 
+def bound_tier_memory_bytes(model, experiments) -> float:
+    """Peak-memory model of the bound tier: packed Pauli terms and their incidence matrices
+    (about 64 + n/2 bytes per term), chunks of about 2^20 term pairs (about 400 bytes each), and
+    the per-parameter strata arrays (ten float arrays of P x points), plus 200 MB for Python and
+    qiskit (common practice: a generous constant)."""
+    n, P = model.n_spins, len(model.free)
+    terms = n + 3 * n * (n - 1) / 2
+    points = max(ex.points for ex in experiments)
+    return 2e8 + terms * (64 + n / 2) * 4 + 400.0 * 2**20 + 10 * 8.0 * P * points
+
+
 class BudgetModel:
     """Everything about one cluster that a budget needs, prepared once.
 
@@ -337,6 +348,8 @@ class BudgetModel:
         if not self.experiments:
             raise QhlInputError("the cluster has no experiments", key="experiment")
         self.notes = []
+        require_memory(f"the bound-tier budget of {self.model.n_spins} spins", bound_tier_memory_bytes(
+            self.model, self.experiments))
         self.exact_plan = exact_engine_plan(self.model, self.experiments, self.settings)
         self.engine = None
         if self.exact_plan["use_engine"]:
@@ -369,6 +382,7 @@ class BudgetModel:
         self._quad = [self._quadrature(ex) for ex in self.experiments]
         self._n_terms = np.array([len(self.model.parameter(n).generator) for n in self.model.free])
         say(f"prepared in {_time.perf_counter() - t0:.1f} s")
+        self._say = say
 
     def _quadrature(self, ex):
         """(max ||[H, P]||, max ||[H, [H, P]]||) over inserted Pauli strings P (qhl.circuits.pauli_commutators)."""
@@ -432,6 +446,8 @@ class BudgetModel:
         nt = self.near
         has = nt.has_means
         tier = nt.method if has else "bound"
+        say = getattr(self, "_say", lambda msg: None)
+        say(f"near-term variances ({tier})")
         vb, ve = nt.component_variances([t])
         per_b, per_e = nt.per_parameter_component(t)
         x, n, r_comp = self._worst_component(t)
@@ -468,6 +484,7 @@ class BudgetModel:
                   "shots_per_learning_run"):
             methods_near[k] = tier
         methods_near["shots_per_hessian_entry"] = tier if he is not None else "bound"
+        say("fault-tolerant counts")
         ft_all = self._ft(r_comp, t, eps, x, self._n_terms[n])
         order, ch = choose_order(ft_all)
         order = int(order)
@@ -481,6 +498,8 @@ class BudgetModel:
                         f"(limit {s.exact_time_limit_s:g} s)")
                 if note not in self.notes:
                     self.notes.append(note)
+        if emp:
+            say(f"exact-propagator Trotter steps (about {flops / _matmul_rate():.2g} s)")
         for p in ORDERS:
             c = ft_all[p]
             entry = {k: float(c[k]) for k in ("steps", "steps_trotter", "steps_quadrature", "queries", "t_count",
@@ -500,6 +519,7 @@ class BudgetModel:
             a_exact = 0.5 * (1 + float(np.real(g[0, 0])) * s.unit_hz / r_comp)
             q_exact = amplitude_estimation.queries_for_amplitude_error(
                 float(ft_all["split"]["estimation"]) / (2 * r_comp), a_exact)
+        say("fault-tolerant full gradient")
         ftg = self._ft_gradient(strata, [t], eps)
         ft = {
             "logical_qubits": int(ch["logical_qubits"]),
