@@ -206,7 +206,7 @@ def _print_budget(b, bm):
               f"{_fmt(s['physical_qubits'])} physical qubits ({s['factories']} factories, "
               f"{s['distillation_levels']} distillation level(s)), wall time {s['wall_time_s']:.3g} s "
               f"at {s['cycle_time_s']:g} s per cycle")
-    print(f"tiers: " + ", ".join(f"{k} {v}" for k, v in b.tiers.items()))
+    print("tiers: " + ", ".join(f"{k} {v}" for k, v in b.tiers.items()))
     for note in b.notes:
         print(f"note: {note}")
     print(f"{len(b.assumptions)} assumptions with sources: qhl budget --json (key 'assumptions')")
