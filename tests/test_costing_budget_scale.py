@@ -8,7 +8,6 @@ built when it does not fit, and that large clusters give complete budgets quickl
 import json
 import math
 
-import numpy as np
 import pytest
 
 import qhl.costing.budget as budget_mod
@@ -90,7 +89,7 @@ def test_hundred_spin_budget(monkeypatch):
     c = _cluster(100, 4)
     bm = BudgetModel(c)
     b = bm.budget(bm.default_time_s, 0.01)
-    assert b.fault_tolerant["logical_qubits"] > 100 and np.isfinite(b.fault_tolerant["t_count"])
+    assert b.fault_tolerant["logical_qubits"] > 100 and math.isfinite(float(b.fault_tolerant["t_count"]))
     assert b.near_term["shots_per_gradient"] > 0
 
 
