@@ -76,7 +76,9 @@ def test_sweep_point_matches_the_single_budget(bm):
     assert math.ceil(sw.tables["near_term_component_bound"][0, 0]) == b.near_term["shots_per_component_bound"]
     assert math.ceil(sw.tables["near_term_component_exact"][0, 0]) == b.near_term["shots_per_component"]
     assert math.ceil(sw.tables["near_term_gradient_exact"][0, 0]) == b.near_term["shots_per_gradient"]
-    assert int(sw.tables["fault_tolerant_t_count"][0, 0]) == b.fault_tolerant["t_count"]
+    # the sweep prices rotations at the median gridsynth T-count per decade of eps, the single budget
+    # synthesises the step's own angles (qhl.costing.synthesis): 0.5 % apart on this cluster
+    assert sw.tables["fault_tolerant_t_count"][0, 0] == pytest.approx(b.fault_tolerant["t_count"], rel=0.02)
     assert int(sw.orders[0, 0]) == b.fault_tolerant["trotter_order"]
 
 
@@ -93,7 +95,8 @@ def test_fault_tolerant_budget_meets_its_error_shares(bm, budget):
     assert c * budget.time_s ** (order + 1) / ft["trotter_steps"] ** order <= err["trotter"] / (8 * r) * (1 + 1e-9)
     # the chosen order has the lowest T-count of the three
     assert ft["t_count"] == min(o["t_count"] for o in ft["orders"].values())
-    assert ft["depth_trotter_steps"] == (2 * ft["queries"] + 1) * ft["trotter_steps"]
+    # every median run (Hoeffding-style majority, qhl.costing.amplitude_estimation) is in the totals
+    assert ft["depth_trotter_steps"] == ft["median_repetitions"] * (2 * ft["queries"] + 1) * ft["trotter_steps"]
     assert budget.surface_code["code_distance"] >= 3
 
 

@@ -111,8 +111,6 @@ def _four(scale):
     return Cluster(9.4, "1H", spins, (), (Experiment("fid", 2e-4, 32, scale, 1e-3),), name="four")
 
 
-@pytest.mark.xfail(strict=True, reason="qhl/costing/near_term.py NearTermModel.worst_range_index takes argmax of "
-                                       "l1 * scales (signed); it needs np.abs(self.scales) (file of the budget rework)")
 def test_budget_ranges_do_not_depend_on_the_sign_of_the_dipolar_scale():
     # A range is a magnitude (Banchi and Crooks 2021: +-2 t ||c||_1 |s|): the range-based counts and
     # the worst component of s = -1 equal those of s = +1 (exact-variance counts may differ: H differs).

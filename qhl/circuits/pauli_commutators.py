@@ -204,17 +204,39 @@ def _inner(terms, rows=None):
     return PauliArrays(x, z, c, g, terms.n_qubits)
 
 
-def _second_level_work(terms, inner):
-    """Upper estimate of candidate pairs for [T_g, inner_g]: sum over inner terms of the terms on its qubits."""
-    deg = np.asarray(terms.support().sum(axis=0)).ravel()
+CHUNK_PRODUCTS = 2e6      # products held at once by the exact method (about 100 bytes each)
+
+
+def _group_chunks(terms, per_term):
+    """Row index arrays, whole groups at a time, each with sum(per_term) <= CHUNK_PRODUCTS (or one group)."""
+    order = np.argsort(terms.group, kind="stable")
+    g = terms.group[order]
+    bounds = np.flatnonzero(np.diff(g)) + 1
+    starts = np.concatenate([[0], bounds])
+    ends = np.concatenate([bounds, [g.size]])
+    cost = np.add.reduceat(np.asarray(per_term, float)[order], starts) if g.size else np.zeros(0)
+    chunk, acc = [], 0.0
+    for a, b, c in zip(starts, ends, cost):
+        if chunk and acc + c > CHUNK_PRODUCTS:
+            yield np.concatenate(chunk)
+            chunk, acc = [], 0.0
+        chunk.append(order[a:b])
+        acc += c
+    if chunk:
+        yield np.concatenate(chunk)
+
+
+def _partners(terms):
+    """Per term: the number of terms touching its qubits (an upper estimate of its partners)."""
+    sup = terms.support()
+    deg = np.asarray(sup.sum(axis=0)).ravel()
+    return np.asarray(sup @ deg).ravel(), float(deg.max(initial=0))
+
+
+def _exact_order2(terms, inner, n_groups):
+    outer = np.zeros(n_groups)
     if len(inner) == 0:
         return 0.0
-    return float(np.sum(inner.support() @ deg))
-
-
-def _exact_order2(terms, inner):
-    n_groups = int(terms.group.max()) + 1
-    outer = np.zeros(n_groups)
     later = lambda k, j: terms.group[j] > inner.group[k]      # noqa: E731
     pieces = [[], [], [], []]
     for k, j in _anticommuting_pairs(inner, terms, None, later):
@@ -278,18 +300,22 @@ def trotter_prefactor(operators, order: int, max_products: float = DEFAULT_MAX_P
         raise ValueError(f"order must be 1 or 2, got {order!r}")
     n_pairs = sum(i.size for i, _ in _anticommuting_pairs(terms, terms, None,
                                                           lambda i, j: terms.group[j] > terms.group[i]))
+    partners, deg_max = _partners(terms)
+    n_groups = int(terms.group.max()) + 1
     if order == 1:
         if n_pairs > max_products:
             return _bound_order(terms, 1), METHODS[1]
-        inner = _inner(terms)
-        n_groups = int(terms.group.max()) + 1
-        return 0.5 * float(np.sum(_per_group_norm(n_groups, inner.group, inner.coeffs))), METHODS[0]
-    if n_pairs > max_products:
+        total = 0.0
+        for rows in _group_chunks(terms, partners):
+            inner = _inner(terms, rows)
+            total += float(np.sum(_per_group_norm(n_groups, inner.group, inner.coeffs)))
+        return 0.5 * total, METHODS[0]
+    if n_pairs * 4 * deg_max > max_products:
         return _bound_order(terms, 2), METHODS[1]
-    inner = _inner(terms)
-    if _second_level_work(terms, inner) > max_products:
-        return _bound_order(terms, 2), METHODS[1]
-    return _exact_order2(terms, inner), METHODS[0]
+    total = 0.0
+    for rows in _group_chunks(terms, partners * 4 * deg_max):
+        total += _exact_order2(terms, _inner(terms, rows), n_groups)
+    return total, METHODS[0]
 
 
 def quadrature_norms(hamiltonian, inserted, max_products: float = QUADRATURE_MAX_PRODUCTS):
@@ -314,30 +340,34 @@ def quadrature_norms(hamiltonian, inserted, max_products: float = QUADRATURE_MAX
     lam_p = np.asarray(ones.support() @ h.qubit_weights()).ravel()
     c1 = np.zeros(len(p))
     c2b = np.zeros(len(p))
-    pieces = [[], [], [], []]
     n_pairs = 0
     for i, j in _anticommuting_pairs(ones, h):
         n_pairs += i.size
         w = 2.0 * absh[j]
         c1 += np.bincount(i, weights=w, minlength=len(p))
         c2b += np.bincount(i, weights=w * 2.0 * (lam_p[i] + lam_h[j]), minlength=len(p))
-        xc, zc, c = _commutator_terms(h, j, ones, i)
-        for lst, v in zip(pieces, (i, xc, zc, c)):
-            lst.append(v)
     if n_pairs == 0:
         return 0.0, 0.0, METHODS[0]
     deg = np.asarray(h.support().sum(axis=0)).ravel()
-    work = float(n_pairs) * 4 * float(deg.max())
-    if work > max_products:
+    if float(n_pairs) * 4 * float(deg.max()) > max_products:
         return float(c1.max()), float(c2b.max()), METHODS[1]
-    g, x, z, c = _combine(*(np.concatenate(v) for v in pieces))
-    k1 = PauliArrays(x, z, c, g, p.n_qubits)
-    gx, gz, gc, gg = [], [], [], []
-    for k, j in _anticommuting_pairs(k1, h):
-        xc, zc, cc = _commutator_terms(h, j, k1, k)
-        gx.append(xc), gz.append(zc), gc.append(cc), gg.append(k1.group[k])
-    if not gc:
-        return float(c1.max()), 0.0, METHODS[0]
-    g, _, _, c = _combine(np.concatenate(gg), np.concatenate(gx), np.concatenate(gz), np.concatenate(gc))
-    c2 = _per_group_norm(len(p), g, c)
-    return float(c1.max()), float(c2.max()), METHODS[0]
+    partners, deg_max = _partners(ones)
+    c2 = 0.0
+    for rows in _group_chunks(ones, partners * 4 * deg_max):
+        pieces = [[], [], [], []]
+        for i, j in _anticommuting_pairs(ones, h, rows):
+            xc, zc, c = _commutator_terms(h, j, ones, i)
+            for lst, v in zip(pieces, (i, xc, zc, c)):
+                lst.append(v)
+        if not pieces[3]:
+            continue
+        g, x, z, c = _combine(*(np.concatenate(v) for v in pieces))
+        k1 = PauliArrays(x, z, c, g, p.n_qubits)
+        gx, gz, gc, gg = [], [], [], []
+        for k, j in _anticommuting_pairs(k1, h):
+            xc, zc, cc = _commutator_terms(h, j, k1, k)
+            gx.append(xc), gz.append(zc), gc.append(cc), gg.append(k1.group[k])
+        if gc:
+            g, _, _, c = _combine(np.concatenate(gg), np.concatenate(gx), np.concatenate(gz), np.concatenate(gc))
+            c2 = max(c2, float(_per_group_norm(len(p), g, c).max()))
+    return float(c1.max()), c2, METHODS[0]

@@ -25,6 +25,7 @@ import math
 import numpy as np
 from qiskit.quantum_info import SparsePauliOp
 
+from ..base.blas import single_thread_blas
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
 from .pauli_commutators import trotter_prefactor
@@ -109,7 +110,8 @@ def prefactor_and_method(terms, order: int, norm: str = "auto"):
     n = ops[0].num_qubits
     if norm == "pauli" or (norm == "auto" and n > EXACT_NORM_MAX_QUBITS):
         return trotter_prefactor(ops, order)
-    return _dense_prefactor(ops, order, norm), "spectral"
+    with single_thread_blas(2 ** n):
+        return _dense_prefactor(ops, order, norm), "spectral"
 
 
 def _dense_prefactor(ops, order, norm):

@@ -9,11 +9,8 @@ from ..costing.shots import check_precision, check_time
 from ..costing.surface_code import check_physical_error
 from ..costing.synthesis import SYNTHESIS_METHODS
 from ..base.errors import QhlInputError
-from .common import add_cluster_argument, check_output_path, cluster_from_args, positive_float, positive_int, \
-    print_json
-
-
-from .common import CYCLE_TIME, FAILURE, ITERATIONS, PRECISION, PROBABILITY, SWEEP, TIME_S  # option ranges
+from .common import (CYCLE_TIME, FAILURE, ITERATIONS, PRECISION, PROBABILITY, SWEEP, TIME_S, add_cluster_argument,
+                     check_output_path, cluster_from_args, print_json)
 def register(sub):
     p = sub.add_parser("budget", help="near-term and fault-tolerant budgets (model-based) for learning a cluster")
     add_cluster_argument(p)
@@ -90,9 +87,13 @@ def run(args):
     settings = BudgetSettings(iterations=args.iterations, synthesis=args.synthesis,
                               physical_error=args.physical_error, cycle_time_s=args.cycle_time,
                               failure_budget=args.failure_budget)
-    _progress(f"preparing {cluster.name} (exact engine, commutator sums)")
-    bm = BudgetModel(cluster, free=args.free, settings=settings)
+    _progress(f"preparing {cluster.name}: {cluster.n_spins} spins")
+    bm = BudgetModel(cluster, free=args.free, settings=settings, progress=_progress)
+    for note in bm.notes:
+        _progress(f"note: {note}")
     t = bm.default_time_s if args.time is None else args.time
+    _progress(f"budget at t = {t:g} s, eps = {args.precision:g}")
+    known = len(bm.notes)
     budget = bm.budget(t, args.precision)
     if args.clifford_t:
         from ..costing.synthesis import write_clifford_t_step
@@ -101,6 +102,8 @@ def run(args):
         budget.fault_tolerant["clifford_t_step"] = write_clifford_t_step(
             bm.trotter[x].terms, ft["trotter_order"], budget.time_s / ft["trotter_steps"], ft["rotation_error"],
             args.clifford_t)
+    for note in bm.notes[known:]:
+        _progress(f"note: {note}")
     sweep = None
     if times is not None or precs is not None or args.plot:
         if times is None and precs is None:   # default grid for a plot
@@ -137,24 +140,33 @@ def _print_budget(b, bm):
     w = ft["worst_component"]
     print(f"worst component: {w['parameter']} in '{w['experiment']}', single-shot range R = {w['range']:.4g}")
     print()
+    mn = b.methods.get("near_term", {})
     rows = [
-        ("shots per component", nt["shots_per_component"], nt["shots_per_component_bound"]),
-        ("  (Hoeffding, delta = 0.05)", None, nt["shots_per_component_hoeffding"]),
-        ("  compiled estimator's exact variance", nt.get("shots_per_component_circuit"), None),
-        ("shots per gradient, optimal", nt["shots_per_gradient"], nt["shots_per_gradient_bound"]),
-        ("shots per gradient, uniform", nt["shots_per_gradient_uniform"], nt["shots_per_gradient_uniform_bound"]),
-        ("shots per Hessian entry", nt["shots_per_hessian_entry"], nt["shots_per_hessian_entry_bound"]),
-        ("shots per full Hessian", None, nt["shots_per_hessian_bound"]),
-        ("shots per Fisher matrix", nt["shots_per_fisher"], nt["shots_per_fisher_bound"]),
-        (f"shots per learning run ({nt['iterations']} it.)", nt["shots_per_learning_run"], None),
+        ("shots per component", nt["shots_per_component"], nt["shots_per_component_bound"], "shots_per_component"),
+        ("  (Hoeffding, delta = 0.05)", None, nt["shots_per_component_hoeffding"], "shots_per_component_hoeffding"),
+        ("  compiled estimator's exact variance", nt.get("shots_per_component_circuit"), None,
+         "shots_per_component_circuit"),
+        ("shots per gradient, optimal", nt["shots_per_gradient"], nt["shots_per_gradient_bound"], "shots_per_gradient"),
+        ("shots per gradient, uniform", nt["shots_per_gradient_uniform"], nt["shots_per_gradient_uniform_bound"],
+         "shots_per_gradient_uniform"),
+        ("shots per Hessian entry", nt["shots_per_hessian_entry"], nt["shots_per_hessian_entry_bound"],
+         "shots_per_hessian_entry"),
+        ("shots per full Hessian", None, nt["shots_per_hessian_bound"], "shots_per_hessian_bound"),
+        ("shots per Fisher matrix", nt["shots_per_fisher"], nt["shots_per_fisher_bound"], "shots_per_fisher"),
+        (f"shots per learning run ({nt['iterations']} it.)", nt["shots_per_learning_run"], None,
+         "shots_per_learning_run"),
         (f"  with signals, {nt['learning_run']['method']} ({nt['learning_run']['evaluations']} eval.)",
-         nt["learning_run"]["shots_total"], None),
+         nt["learning_run"]["shots_total"], None, "learning_run"),
     ]
-    print(f"{'near-term':<36}{'R^2 - mu^2':>16}{'bound R^2':>16}")
-    for name, a, c in rows:
-        print(f"{name:<36}{_fmt(a):>16}{_fmt(c):>16}")
+    print(f"{'near-term':<36}{'best':>16}{'bound R^2':>16}{'method':>10}")
+    for name, a, c, key in rows:
+        print(f"{name:<36}{_fmt(a):>16}{_fmt(c):>16}{mn.get(key) or '-':>10}")
+    print("  best: R^2 - mu^2 with mu from the engine where it ran (method exact/estimated), else the bound R^2.")
+    print("  A full gradient is a weighted mean of all components (weights summing to 1), so its shots can be")
+    print("  fewer than one worst component's: earlier times and smaller couplings have smaller ranges.")
     print()
-    print(f"{'fault-tolerant (per component)':<36}{'chosen':>16}" + "".join(f"{'order ' + p:>14}" for p in ft["orders"]))
+    print(f"{'fault-tolerant (per component)':<36}{'chosen':>16}" + "".join(f"{'order ' + p:>14}" for p in ft["orders"])
+          + f"  {'method'}")
     prow = [("Trotter steps r", "trotter_steps", "steps"),
             ("  from the commutator bound", None, "steps_trotter_bound"),
             ("  exact propagator (same error)", None, "steps_trotter_empirical"),
@@ -166,9 +178,16 @@ def _print_budget(b, bm):
             ("rotations", "rotations", "rotations"),
             ("T-count", "t_count", "t_count"),
             ("logical qubits", "logical_qubits", "logical_qubits")]
+    mf = b.methods.get("fault_tolerant", {})
+    how = {"trotter_steps": mf.get("commutator_sums"), "steps_trotter": mf.get("commutator_sums"),
+           "steps_trotter_empirical": "exact", "steps_quadrature": mf.get("quadrature_sums"),
+           "depth": f"bound, {mf.get('gate_counts_per_step')}", "rotations": f"bound, {mf.get('gate_counts_per_step')}"}
     for name, key, okey in prow:
         chosen = ft[key] if key else None
-        print(f"{name:<36}{_fmt(chosen):>16}" + "".join(f"{_fmt(o.get(okey)):>14}" for o in ft["orders"].values()))
+        values = [o.get(okey) for o in ft["orders"].values()]
+        method = (how.get(key or okey) or mf.get(key or okey) or "bound") \
+            if chosen is not None or any(v is not None for v in values) else "-"
+        print(f"{name:<36}{_fmt(chosen):>16}" + "".join(f"{_fmt(v):>14}" for v in values) + f"  {method}")
     print(f"chosen Trotter order {ft['trotter_order']} (steps from the {ft['trotter_steps_source']}); "
           f"{ft['t_per_rotation']:.0f} T per rotation measured by gridsynth (rule 3 log2(1/eps): "
           f"{ft['t_per_rotation_rule']:.0f}; rotation error {ft['rotation_error']:.2e}); T-depth per step "
@@ -186,7 +205,16 @@ def _print_budget(b, bm):
     print(f"total gate layers executed per component: near-term {_fmt(nt_layers)}"
           f" (shots x {_fmt(c['near_term_layers_per_shot'])}), fault-tolerant "
           f"{_fmt(c['fault_tolerant_total_layers_per_component'])}: "
-          f"{'fault-tolerant' if c['fault_tolerant_cheaper'] else 'near-term'} is cheaper")
+          f"{'fault-tolerant' if c['fault_tolerant_cheaper'] else 'near-term'} is cheaper per component")
+    if c.get("fault_tolerant_total_layers_per_gradient") is not None:
+        print(f"total gate layers per full gradient: near-term {_fmt(c['near_term_total_layers_per_gradient'])}, "
+              f"fault-tolerant {_fmt(c['fault_tolerant_total_layers_per_gradient'])}: "
+              f"{'fault-tolerant' if c['fault_tolerant_cheaper_per_gradient'] else 'near-term'} is cheaper per gradient")
+    ph = b.precision_hz
+    if ph:
+        print(f"precision: eps = {b.precision:g} per kHz = {ph['derivative_error_per_hz']:.3g} per Hz on each dS/dh; "
+              f"it resolves parameter changes of about {ph['value']:.3g} Hz (eps / |d2S/dh2| of the worst entry, "
+              f"{ph['method']})")
     if b.surface_code:
         s = b.surface_code
         print(f"surface code at p = {s['physical_error']:g}: distance {s['code_distance']}, "
@@ -196,6 +224,9 @@ def _print_budget(b, bm):
     if ft.get("clifford_t_step"):
         c = ft["clifford_t_step"]
         print(f"wrote {c['path']}: one Clifford+T Trotter step, T-count {c['t_count']}, T-depth {c['t_depth']}")
+    print("tiers: " + ", ".join(f"{k} {v}" for k, v in b.tiers.items()))
+    for note in b.notes:
+        print(f"note: {note}")
     print(f"{len(b.assumptions)} assumptions with sources: qhl budget --json (key 'assumptions')")
 
 

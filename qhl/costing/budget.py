@@ -6,27 +6,53 @@ times come from one decomposition per experiment), per-parameter ranges, and eac
 Trotter constants. `.budget(t, eps)` gives one `Budget`; `.sweep(times, precisions)` a
 `BudgetSweep` on a grid, with fitted scaling exponents.
 
+Tiers. Each quantity uses the best method that fits and says which (`Budget.methods`):
+    'exact'      means mu from the exact engine (qhl.exact.engine), used only when its memory
+                 estimate (qhl.exact.engine.estimate_memory_bytes, sector sizes counted
+                 combinatorially before anything is built) fits in EXACT_MEMORY_FRACTION of the
+                 available memory and its time estimate (floating-point operations of the
+                 eigendecompositions and gradients over a matrix-product rate measured on this
+                 machine) is below settings.exact_time_limit_s; otherwise skipped with a note;
+    'estimated'  the slot for a pure-state (typicality) engine: pass `estimator=` (an object with
+                 the ExactEngine gradient/hessian methods); not available by default;
+    'bound'      everything else, at any size: ranges and Hoeffding counts from the Pauli
+                 coefficients, commutator-bound Trotter steps (qhl.circuits.pauli_commutators),
+                 amplitude-estimation queries, rotations, T-count, logical qubits, surface code,
+                 and per-step gate counts from the count rule (qhl.circuits.step_counts) above
+                 8 qubits.
+Default time (`default_time_s`), at every size: the shortest window of an experiment that sees
+every free parameter (the experiment's own t_max; no engine needed).
+
 All numbers are model-based: each formula's assumptions and sources are collected in
 `Budget.assumptions` (also printed by `qhl budget --json`).
 """
 
 from dataclasses import dataclass, field
 import math
+import time as _time
 
 import numpy as np
-from qiskit.quantum_info import SparsePauliOp
 
-from ..exact.engine import ExactEngine
-from ..base.errors import QhlInputError
+from ..exact.engine import ExactEngine, estimate_memory_bytes
+from ..base.errors import MemoryBudgetError, QhlInputError
+from ..base.memory import available_memory_bytes, require_memory
+from ..circuits.pauli_commutators import pauli_arrays, quadrature_norms
 from ..spins.model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
 from . import coherent_input, family_variance, learning_run, trotter_order4
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
 from .near_term import near_term_model
-from .trotter_cost import ORDERS, empirical_trotter_steps, trotter_model
+from .trotter_cost import ORDERS, empirical_flops, empirical_trotter_steps, trotter_model
 
 __all__ = ["BudgetSettings", "BudgetModel", "Budget", "BudgetSweep", "all_assumptions", "fit_exponents",
-           "EXPECTED_EXPONENTS"]
+           "EXPECTED_EXPONENTS", "exact_engine_plan", "bound_tier_memory_bytes", "TIERS"]
+
+TIERS = ("exact", "estimated", "bound")
+# Up to this many spins one Trotter step is built and every rotation synthesised (qiskit gridsynth);
+# above, the median measured T per rotation times the count rule's rotation depth.
+SYNTHESIS_MAX_SPINS = 8
+EXACT_MEMORY_FRACTION = 0.5
+HESSIAN_FLOPS_PER_ELEMENT = 5000.0
 
 EXPECTED_EXPONENTS = {
     "near_term_component_bound": (2.0, -2.0),
@@ -47,7 +73,14 @@ def all_assumptions(settings=None) -> dict:
     out["nll_weights"] = "NLL-gradient strata weighted 1/sigma_x (residuals of the size of the noise), normalised to 1"
     out["comparison"] = "total gate layers executed: shots x layers of one circuit (near-term, the smallest shot " \
                         "count available: compiled estimator's exact variance where computed) against the AE " \
-                        "circuits' T layers + Clifford layers, all median runs (fault-tolerant)"
+                        "circuits' T layers + Clifford layers, all median runs (fault-tolerant); per component " \
+                        "and per full gradient"
+    out["precision_hz"] = "parameter resolution eps / |d2S/dh2| of the worst Hessian entry at t: the shift of a " \
+                          "zero of a derivative known to +-eps (first order; exact |d2S/dh2| where the engine ran, " \
+                          "else its range bound, which gives the finest resolvable change)"
+    out["tiers"] = "exact (engine means) where memory/time fit, estimated (pure-state engine, when given), " \
+                   "bound (Pauli coefficients, commutator sums, count rule) at any size"
+    out["default_time"] = "the shortest window of an experiment that sees every free parameter"
     if settings is not None:
         out["settings"] = settings.to_json()
     return out
@@ -71,6 +104,8 @@ class BudgetSettings:
         circuit_variance_max_spins: clusters with at most this many spins also get the compiled
             estimator's exact variance count (qhl.costing.family_variance); 0 turns it off.
         circuit_variance_steps, circuit_variance_order: the Trotterisation of that estimator.
+        exact_time_limit_s: skip the exact engine when its time estimate exceeds this (s).
+        use_exact: False skips the exact engine at any size (bound tier only).
     """
 
     unit_hz: float = 1e3
@@ -87,6 +122,8 @@ class BudgetSettings:
     circuit_variance_max_spins: int = 6
     circuit_variance_steps: int = 8
     circuit_variance_order: int = 2
+    exact_time_limit_s: float = 60.0
+    use_exact: bool = True
 
     def split_dict(self):
         return dict(self.split)
@@ -135,12 +172,18 @@ class Budget:
     surface_code: dict | None
     assumptions: dict
     cluster: str = ""
+    methods: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)
+    tiers: dict = field(default_factory=dict)
+    precision_hz: dict | None = None
 
     def to_json(self):
         return {"cluster": self.cluster, "time_s": self.time_s, "precision": self.precision,
                 "near_term": self.near_term, "fault_tolerant": self.fault_tolerant,
                 "error_budget": self.error_budget, "comparison": self.comparison,
-                "surface_code": self.surface_code, "assumptions": self.assumptions}
+                "surface_code": self.surface_code, "assumptions": self.assumptions,
+                "methods": self.methods, "tiers": self.tiers, "notes": self.notes,
+                "precision_hz": self.precision_hz}
 
 
 @dataclass
@@ -192,6 +235,89 @@ def fit_exponents(times, precisions, table):
     return float(got.get("t", np.nan)), float(got.get("e", np.nan))
 
 
+def _sector_dims(isotopes):
+    """Magnetisation-sector sizes (products of binomials per isotope), without building a basis."""
+    dims = np.ones(1)
+    for iso in dict.fromkeys(isotopes):
+        c = sum(1 for i in isotopes if i == iso)
+        dims = np.outer(dims, [math.comb(c, m) for m in range(c + 1)]).ravel()
+    return dims
+
+
+_RATE = {}
+
+
+def _matmul_rate():
+    """Floating-point operations per second of a 256 x 256 matrix product on this machine (measured once)."""
+    if "rate" not in _RATE:
+        a = np.random.default_rng(0).normal(size=(256, 256))
+        a @ a
+        t0 = _time.perf_counter()
+        for _ in range(8):
+            a @ a
+        _RATE["rate"] = 8 * 2 * 256**3 / max(_time.perf_counter() - t0, 1e-9)
+    return _RATE["rate"]
+
+
+def exact_engine_plan(model, experiments, settings) -> dict:
+    """Memory and time estimates of the exact parts of a budget, decided before anything is built.
+
+    Memory: qhl.exact.engine.estimate_memory_bytes on the magnetisation sectors (binomial sizes),
+    and the exact Hessian's 16 (3 d^3 + 8 d^2) bytes (qhl.exact.engine.ExactEngine.hessian, two
+    parameters). Time: per experiment 10 sum d^3 for the eigendecompositions plus, per free
+    parameter, 12 sum d^3 + 16 sum d^2 T_points for its gradient at every time point, times 1.5 for
+    the further gradient calls of a budget, over the measured matrix-product rate (common practice:
+    dense eigensolvers and products scale as d^3). The Hessian entry (second divided differences
+    on d^3 triples of each of about 2 sum d^3 block elements) is charged HESSIAN_FLOPS_PER_ELEMENT
+    per element (set from a 10-spin run here that took over 4 minutes for one entry at one time).
+
+    Returns:
+        {memory_bytes, hessian_memory_bytes, seconds, use_engine, use_hessian, reason}.
+    """
+    dims = _sector_dims(model.isotopes)
+    n, P = model.n_spins, len(model.free)
+    points = max(ex.points for ex in experiments)
+    mem = float(estimate_memory_bytes(n, dims, max(points, 256)))
+    dmax = float(dims.max())
+    hmem = 16.0 * (3 * dmax**3 + 8 * dmax**2)
+    d3, d2 = float(np.sum(dims**3)), float(np.sum(dims**2))
+    flops = 1.5 * len(experiments) * (10 * d3 + P * (12 * d3 + 16 * d2 * points))
+    seconds = flops / _matmul_rate()
+    hseconds = HESSIAN_FLOPS_PER_ELEMENT * 4 * d3 / _matmul_rate()
+    limit = EXACT_MEMORY_FRACTION * available_memory_bytes()
+    reason = ""
+    if not settings.use_exact:
+        reason = "the exact engine is turned off (bound tier only)"
+    elif n > 20:
+        reason = f"{n} spins: the exact engine handles at most 20"
+    elif mem > limit:
+        reason = f"the exact engine for {n} spins needs about {mem / 2**30:.3g} GiB ({limit / 2**30:.3g} GiB usable)"
+    elif seconds > settings.exact_time_limit_s:
+        reason = (f"the exact engine for {n} spins would take about {seconds:.3g} s "
+                  f"(limit {settings.exact_time_limit_s:g} s)")
+    use = not reason
+    hreason = ""
+    if use and settings.hessian_exact:
+        if hmem > limit:
+            hreason = f"exact Hessian entry skipped: it needs about {hmem / 2**30:.3g} GiB"
+        elif seconds + hseconds > settings.exact_time_limit_s:
+            hreason = f"exact Hessian entry skipped: about {hseconds:.3g} s estimated"
+    return {"memory_bytes": mem, "hessian_memory_bytes": hmem, "seconds": seconds, "hessian_seconds": hseconds,
+            "use_engine": use, "use_hessian": use and settings.hessian_exact and not hreason, "reason": reason,
+            "hessian_reason": hreason}
+
+
+def bound_tier_memory_bytes(model, experiments) -> float:
+    """Peak-memory model of the bound tier: packed Pauli terms and their incidence matrices
+    (about 64 + n/2 bytes per term), chunks of about 2^20 term pairs (about 400 bytes each), and
+    the per-parameter strata arrays (ten float arrays of P x points), plus 200 MB for Python and
+    qiskit (common practice: a generous constant)."""
+    n, P = model.n_spins, len(model.free)
+    terms = n + 3 * n * (n - 1) / 2
+    points = max(ex.points for ex in experiments)
+    return 2e8 + terms * (64 + n / 2) * 4 + 400.0 * 2**20 + 10 * 8.0 * P * points
+
+
 class BudgetModel:
     """Everything about one cluster that a budget needs, prepared once.
 
@@ -199,6 +325,13 @@ class BudgetModel:
         cluster: a qhl.spins.cluster.Cluster.
         free: glob patterns of free parameters.
         settings: BudgetSettings.
+        progress: optional callable(str) for stage messages (the CLI prints them on stderr).
+        estimator: optional engine for the 'estimated' tier (gradient/hessian like ExactEngine,
+            e.g. a pure-state typicality engine); used when the exact engine is skipped.
+
+    Attributes:
+        notes: one line per tier or part that was skipped, with the reason.
+        tiers: {'exact', 'estimated', 'bound'} -> what each tier did.
 
     Example:
         >>> from qhl import demo_cluster
@@ -207,35 +340,60 @@ class BudgetModel:
         True
     """
 
-    def __init__(self, cluster, free=DEFAULT_FREE, settings: BudgetSettings | None = None):
+    def __init__(self, cluster, free=DEFAULT_FREE, settings: BudgetSettings | None = None, progress=None,
+                 estimator=None):
         self.cluster = cluster
         self.settings = (settings or BudgetSettings()).validate()
+        say = progress or (lambda msg: None)
+        t0 = _time.perf_counter()
+        say(f"building the model of {cluster.n_spins} spins")
         self.model = build_model(cluster, free=free)
         if not self.model.free:
             raise QhlInputError("no free parameters to learn", key="free")
-        self.engine = ExactEngine(self.model)
         self.experiments = list(cluster.experiments)
         if not self.experiments:
             raise QhlInputError("the cluster has no experiments", key="experiment")
-        self.near = near_term_model(self.engine, self.experiments, self.settings.unit_hz)
-        self.trotter = [trotter_model(self.model, ex) for ex in self.experiments]
+        self.notes = []
+        require_memory(f"the bound-tier budget of {self.model.n_spins} spins", bound_tier_memory_bytes(
+            self.model, self.experiments))
+        self.exact_plan = exact_engine_plan(self.model, self.experiments, self.settings)
+        self.engine = None
+        if self.exact_plan["use_engine"]:
+            say(f"exact engine (about {self.exact_plan['memory_bytes'] / 2**30:.2g} GiB, "
+                f"{self.exact_plan['seconds']:.2g} s estimated)")
+            try:
+                self.engine = ExactEngine(self.model)
+            except MemoryBudgetError as e:
+                self.notes.append(f"exact tier skipped: {e}")
+        else:
+            self.notes.append(f"exact tier skipped: {self.exact_plan['reason']}")
+        if self.engine is not None and self.exact_plan["hessian_reason"]:
+            self.notes.append(self.exact_plan["hessian_reason"])
+        self.estimator = estimator if self.engine is None else None
+        means, method = (self.engine, "exact") if self.engine is not None else (self.estimator, "estimated")
+        if means is None:
+            self.notes.append("estimated tier not available (no pure-state engine given): bounds are used")
+        self.tiers = {"exact": "used" if self.engine is not None else "skipped",
+                      "estimated": "used" if self.estimator is not None else "not available",
+                      "bound": "used"}
+        self.near = near_term_model(means, self.experiments, self.settings.unit_hz, model=self.model,
+                                    method=method)
+        self.trotter = []
+        for x, ex in enumerate(self.experiments):
+            say(f"Trotter commutator sums, experiment {x + 1}/{len(self.experiments)} "
+                f"({_time.perf_counter() - t0:.1f} s)")
+            self.trotter.append(trotter_model(self.model, ex))
+        say(f"time-quadrature commutators ({_time.perf_counter() - t0:.1f} s)")
+        self._inserted = pauli_arrays([self.model.parameter(n).generator for n in self.model.free])
         self._quad = [self._quadrature(ex) for ex in self.experiments]
         self._n_terms = np.array([len(self.model.parameter(n).generator) for n in self.model.free])
+        say(f"prepared in {_time.perf_counter() - t0:.1f} s")
+        self._say = say
 
     def _quadrature(self, ex):
-        h = self.model.hamiltonian(ex)
-        c1 = c2 = 0.0
-        seen = set()
-        for name in self.model.free:
-            for lab in self.model.parameter(name).generator.paulis.to_labels():
-                if lab in seen:
-                    continue
-                seen.add(lab)
-                p = SparsePauliOp(lab)
-                k1 = (h.compose(p) - p.compose(h)).simplify(atol=1e-9)
-                k2 = (h.compose(k1) - k1.compose(h)).simplify(atol=1e-9)
-                c1 = max(c1, float(np.sum(np.abs(k1.coeffs))))
-                c2 = max(c2, float(np.sum(np.abs(k2.coeffs))))
+        """(max ||[H, P]||, max ||[H, [H, P]]||) over inserted Pauli strings P (qhl.circuits.pauli_commutators)."""
+        c1, c2, method = quadrature_norms(pauli_arrays(self.model.hamiltonian(ex)), self._inserted)
+        self._quad_method = method
         return c1, c2
 
     @property
@@ -259,21 +417,17 @@ class BudgetModel:
                               n_observed=int(self.near.kappa), **kw)
 
     def _ft_gradient(self, strata, t, eps):
-        """Fault-tolerant full gradient: one coherent sum per parameter, costed on the costliest experiment."""
+        """Fault-tolerant full gradient: one coherent sum per parameter, costed on the costliest experiment
+        (all parameters at once: the formulas broadcast over the parameter axis)."""
         x = int(np.argmax([tm.constants[2] for tm in self.trotter]))
         rng = strata["range_sum"]                                      # (T, P)
-        total = None
-        for n in range(rng.shape[1]):
-            if not np.any(rng[:, n] > 0):
-                continue
-            c = self._ft(rng[:, n][:, None], np.asarray(t)[:, None], eps, x, self._n_terms[n], strata["strata"])
-            order, ch = choose_order(c)
-            if total is None:
-                total = {k: np.zeros(np.broadcast_shapes(order.shape)) for k in ("t_count", "gate_layers", "rotations",
-                                                                                 "logical_qubits", "t_depth")}
-            for k in ("t_count", "gate_layers", "rotations", "t_depth"):
-                total[k] = total[k] + ch[k]
-            total["logical_qubits"] = np.maximum(total["logical_qubits"], ch["logical_qubits"])
+        live = np.flatnonzero(np.any(rng > 0, axis=0))
+        if live.size == 0:
+            return None
+        c = self._ft(rng[:, live], np.asarray(t)[:, None], eps, x, self._n_terms[live], strata["strata"])
+        _, ch = choose_order(c)
+        total = {k: np.sum(ch[k], axis=1) for k in ("t_count", "gate_layers", "rotations", "t_depth")}
+        total["logical_qubits"] = np.max(ch["logical_qubits"], axis=1)
         return total
 
     # ------------------------------------------------------------------ one budget
@@ -297,16 +451,22 @@ class BudgetModel:
         s = self.settings
         its = _iterations(s.iterations if iterations is None else iterations)
         nt = self.near
+        has = nt.has_means
+        tier = nt.method if has else "bound"
+        say = getattr(self, "_say", lambda msg: None)
+        say(f"near-term variances ({tier})")
         vb, ve = nt.component_variances([t])
         per_b, per_e = nt.per_parameter_component(t)
         x, n, r_comp = self._worst_component(t)
-        hb, he = nt.hessian_entry_variances(t, exact=s.hessian_exact)
+        hb, he = nt.hessian_entry_variances(t, exact=s.hessian_exact and self.exact_plan["use_hessian"])
         strata = nt.gradient_strata([t])
-        grad = {k: float(np.sum(strata[k][0]) / eps**2) for k in ("opt_bound", "opt_exact", "uni_bound",
-                                                                   "uni_exact", "fisher_bound", "fisher_exact")}
+        best = {k: (strata[k + "_exact"] if has else strata[k + "_bound"]) for k in ("opt", "uni", "fisher")}
+        grad = {k: float(np.sum(strata[k][0]) / eps**2) for k in ("opt_bound", "uni_bound", "fisher_bound")}
+        grad.update({k + "_exact": float(np.sum(v[0]) / eps**2) for k, v in best.items()})
         hess_full_bound = grad["fisher_bound"] + float(strata["hessian_bound"][0]) / eps**2
+        v_comp = float(ve[0]) if ve is not None else float(vb[0])
         near = {
-            "shots_per_component": math.ceil(float(ve[0]) / eps**2),
+            "shots_per_component": math.ceil(v_comp / eps**2),
             "shots_per_component_bound": math.ceil(float(vb[0]) / eps**2),
             "shots_per_component_hoeffding": shots.hoeffding_shots(math.sqrt(float(vb[0])), eps, s.delta),
             "component_range": math.sqrt(float(vb[0])),
@@ -326,13 +486,38 @@ class BudgetModel:
                 math.ceil(grad["fisher_exact"]), s.iterations if iterations is None else iterations,
                 s.learning_method).to_json(),
             "strata": int(strata["strata"]),
-            "per_parameter": {name: {"shots_exact": math.ceil(per_e[k] / eps**2), "shots_bound": math.ceil(per_b[k] / eps**2)}
+            "per_parameter": {name: {"shots_exact": None if per_e is None else math.ceil(per_e[k] / eps**2),
+                                     "shots_bound": math.ceil(per_b[k] / eps**2)}
                               for k, name in enumerate(nt.names)},
         }
-        emp = {p: empirical_trotter_steps(self.trotter[x].terms, p, t, s.split_dict()["trotter"] * eps / (8 * r_comp))
-               for p in ORDERS} if s.empirical_trotter else {}
-        ft_all = self._ft(r_comp, t, eps, x, self._n_terms[n], trotter_steps={p: v[0] for p, v in emp.items()},
-                          synthesise=True)
+        methods_near = {k: "bound" for k in near if k not in ("iterations", "strata", "per_parameter",
+                                                               "learning_run")}
+        for k in ("shots_per_component", "shots_per_gradient", "shots_per_gradient_uniform", "shots_per_fisher",
+                  "shots_per_learning_run"):
+            methods_near[k] = tier
+        methods_near["shots_per_hessian_entry"] = tier if he is not None else "bound"
+        say("fault-tolerant counts")
+        ft_bound = self._ft(r_comp, t, eps, x, self._n_terms[n])
+        emp = s.empirical_trotter and self.trotter[x].terms.n_qubits <= 8
+        if emp:
+            flops = sum(empirical_flops(self.trotter[x].terms, float(ft_bound[p]["steps_trotter"])) for p in ORDERS)
+            if flops / _matmul_rate() > s.exact_time_limit_s:
+                emp = False
+                note = (f"exact-propagator Trotter steps skipped: about {flops / _matmul_rate():.3g} s estimated "
+                        f"(limit {s.exact_time_limit_s:g} s)")
+                if note not in self.notes:
+                    self.notes.append(note)
+        empirical = {}
+        if emp:
+            say(f"exact-propagator Trotter steps (about {flops / _matmul_rate():.2g} s)")
+            empirical = {p: empirical_trotter_steps(self.trotter[x].terms, p, t,
+                                                    float(ft_bound["split"]["trotter"]) / (8 * r_comp))
+                         for p in ORDERS}
+        synthesise = self.model.n_spins <= SYNTHESIS_MAX_SPINS
+        if synthesise:
+            say("Clifford+T synthesis of one Trotter step (qiskit gridsynth)")
+        ft_all = self._ft(r_comp, t, eps, x, self._n_terms[n], trotter_steps={p: v[0] for p, v in empirical.items()},
+                          synthesise=synthesise)
         order, ch = choose_order(ft_all)
         order = int(order)
         per_order = {}
@@ -342,14 +527,18 @@ class BudgetModel:
                                               "queries", "t_count", "t_depth", "gate_layers", "rotations",
                                               "depth_steps", "logical_qubits", "t_per_rotation", "step_t_depth")}
             entry["step_error_constant"] = self.trotter[x].constants[p]
-            if s.empirical_trotter:
-                entry["steps_trotter_empirical"], entry["empirical_error"] = emp[p]
+            entry["step_error_constant_method"] = self.trotter[x].methods.get(p, "")
+            if p in empirical:
+                entry["steps_trotter_empirical"], entry["empirical_error"] = empirical[p]
             per_order[str(p)] = entry
-        # the same queries at the component's actual amplitude a = (1 + mu/R)/2 (mu: exact engine)
-        _, g = self.engine.gradient(self.experiments[x], times=[t], parameters=[nt.names[n]])
-        a_exact = 0.5 * (1 + float(np.real(g[0, 0])) * s.unit_hz / r_comp)
-        q_exact = amplitude_estimation.queries_for_amplitude_error(
-            float(ft_all["split"]["estimation"]) / (2 * r_comp), a_exact)
+        # the same queries at the component's actual amplitude a = (1 + mu/R)/2 (mu: the engine, if any)
+        a_exact = q_exact = None
+        if has:
+            _, g = nt.engine.gradient(self.experiments[x], times=[t], parameters=[nt.names[n]])
+            a_exact = 0.5 * (1 + float(np.real(g[0, 0])) * s.unit_hz / r_comp)
+            q_exact = amplitude_estimation.queries_for_amplitude_error(
+                float(ft_all["split"]["estimation"]) / (2 * r_comp), a_exact)
+        say("fault-tolerant full gradient")
         ftg = self._ft_gradient(strata, [t], eps)
         ft = {
             "logical_qubits": int(ch["logical_qubits"]),
@@ -394,6 +583,7 @@ class BudgetModel:
             "near_term_total_layers_per_component_circuit": (near["shots_per_component_circuit"] * layers_shot
                                                              if near["shots_per_component_circuit"] else None),
             "fault_tolerant_cheaper": bool(ch["gate_layers"] < nt_best),
+            "fault_tolerant_cheaper_per_gradient": bool(ftg["gate_layers"].item() < nt_grad_layers) if ftg else None,
         }
         sc = None
         if s.physical_error is not None:
@@ -403,7 +593,30 @@ class BudgetModel:
         err = {k: float(v) for k, v in ft_all["split"].items()}
         assumptions = all_assumptions(s)
         assumptions["exact_variance_used"] = exact_variance_note
-        return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name)
+        methods_near["shots_per_component_circuit"] = "exact" if near["shots_per_component_circuit"] else None
+        tm = self.trotter[x]
+        methods_ft = {k: "bound" for k in ("logical_qubits", "trotter_steps", "depth", "depth_trotter_steps",
+                                           "t_count", "rotations", "queries")}
+        methods_ft["queries_at_exact_amplitude"] = tier if has else None
+        methods_ft["steps_trotter_empirical"] = "exact" if \
+            per_order[str(order)].get("steps_trotter_empirical") is not None else None
+        methods_ft["commutator_sums"] = tm.methods.get(order, "")
+        methods_ft["quadrature_sums"] = getattr(self, "_quad_method", "")
+        methods_ft["gate_counts_per_step"] = tm.counts_method
+        methods = {"near_term": methods_near, "fault_tolerant": methods_ft,
+                   "surface_code": "bound" if sc else None}
+        return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name, methods,
+                      list(self.notes), dict(self.tiers), self._precision_hz(t, eps, hb))
+
+    def _precision_hz(self, t, eps, hessian_bound_sq):
+        """eps (per unit_hz) on a derivative -> the parameter change in Hz it resolves (see all_assumptions)."""
+        mu = self.near.worst_hessian_mean(t) if self.exact_plan["use_hessian"] else None
+        mu = abs(mu) if mu is not None else None
+        curv, method = (mu, self.near.method) if mu else (math.sqrt(hessian_bound_sq), "bound")
+        if not curv:
+            return None
+        return {"value": eps / curv * self.settings.unit_hz, "method": method,
+                "derivative_error_per_hz": eps / self.settings.unit_hz}
 
     def _add_circuit_variance(self, near, t, eps):
         """Put the compiled estimator's exact-variance count of the worst component into `near`
@@ -442,12 +655,15 @@ class BudgetModel:
             progress("near-term variances")
         vb, ve = nt.component_variances(times)
         strata = nt.gradient_strata(times)
+        nan = np.full(times.shape, np.nan)       # exact columns without an engine (bound tier)
         tables = {
             "near_term_component_bound": vb[:, None] / e2,
-            "near_term_component_exact": ve[:, None] / e2,
+            "near_term_component_exact": (nan if ve is None else ve)[:, None] / e2,
             "near_term_hessian_entry_bound": nt.hessian_bound_over_t(times)[:, None] / e2,
-            "near_term_gradient_exact": np.sum(strata["opt_exact"], axis=1)[:, None] / e2,
-            "near_term_gradient_uniform_exact": np.sum(strata["uni_exact"], axis=1)[:, None] / e2,
+            "near_term_gradient_exact": (nan if strata["opt_exact"] is None
+                                         else np.sum(strata["opt_exact"], axis=1))[:, None] / e2,
+            "near_term_gradient_uniform_exact": (nan if strata["uni_exact"] is None
+                                                 else np.sum(strata["uni_exact"], axis=1))[:, None] / e2,
         }
         if progress:
             progress("fault-tolerant counts")
@@ -459,7 +675,8 @@ class BudgetModel:
             "fault_tolerant_depth": ch["gate_layers"],
             "fault_tolerant_trotter_steps": ch["steps"],
             "fault_tolerant_logical_qubits": ch["logical_qubits"],
-            "near_term_total_layers": tables["near_term_component_exact"] * ch["layers_per_shot"],
+            "near_term_total_layers": (tables["near_term_component_bound"] if ve is None
+                                       else tables["near_term_component_exact"]) * ch["layers_per_shot"],
             "fault_tolerant_total_layers": ch["gate_layers"],
         })
         exps = {}

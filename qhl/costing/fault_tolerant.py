@@ -41,6 +41,8 @@ Totals multiply one run by the k median repetitions.
 import numpy as np
 
 from .amplitude_estimation import median_repetitions, phase_register_queries, queries_for_amplitude_error
+from ..circuits.step_counts import rotation_profile_rule
+from .trotter_cost import TRANSPILE_MAX_QUBITS
 from .synthesis import measured_t_per_rotation, rotation_depth_profile, synthesised_step, t_count_per_rotation
 from .trotter_cost import ORDERS
 
@@ -73,10 +75,14 @@ def _clog2(x):
 
 
 def step_profile(trotter, order):
-    """Marginal {rotations, rotation_depth, clifford_layers} of one step of `order` (cached on `trotter`)."""
+    """Marginal {rotations, rotation_depth, clifford_layers} of one step of `order` (cached on `trotter`):
+    from the decomposed step circuit up to TRANSPILE_MAX_QUBITS qubits, from the count rule above."""
     cache = trotter.__dict__.setdefault("_ft_step_profile", {})
     if order not in cache:
-        cache[order] = rotation_depth_profile(trotter.terms, order, _PROFILE_TIME_S)
+        if trotter.terms.n_qubits > TRANSPILE_MAX_QUBITS:      # no circuit is built for large clusters
+            cache[order] = rotation_profile_rule(trotter.terms, order)
+        else:
+            cache[order] = rotation_depth_profile(trotter.terms, order, _PROFILE_TIME_S)
     return cache[order]
 
 

@@ -4,6 +4,16 @@ Everything here returns *variances* V(t) (or sums of them) in units of (per unit
 shot count is V / eps^2 for any precision eps: a sweep over eps costs nothing extra, and the
 exact engine's eigendecomposition (cached per coefficient vector) serves all times at once.
 
+Tiers: ranges and bounds (R^2) come from the model's Pauli coefficients alone, at any size. The
+"exact" variances R^2 - mu^2 need the means mu from an engine with `gradient`/`hessian` like
+qhl.exact.engine.ExactEngine; without one (`engine=None`, large clusters) they are None. A
+pure-state (typicality) engine with the same methods can be passed in; `method` then says
+'estimated' instead of 'exact'.
+
+Hessian ranges factorise, R_H[x, m, n] = K t^2 a_xm a_xn with a_x = ||c||_1 s_x (qhl.costing.shots),
+so the largest entry sits at m = n = argmax |a_x| and sum_{m <= n} R_H^2 = K^2 t^4
+((sum a^2)^2 + sum a^4) / 2: no P x P array is built (P grows as n^2).
+
 Strata of the full negative-log-likelihood gradient: (experiment x, time point j, Re|Im). Each
 experiment's time grid is rescaled to end at t (its number of points kept). With residuals at
 the optimum of the size of the noise, |r| ~ sigma_x, the NLL gradient sum Re[conj(r) dS]/sigma^2
@@ -27,7 +37,7 @@ class NearTermModel:
     """Per-parameter ranges and the exact engine for one cluster's free parameters.
 
     Attributes:
-        engine: qhl.exact.engine.ExactEngine.
+        engine: qhl.exact.engine.ExactEngine, another engine with the same gradient/hessian, or None.
         experiments: the cluster's experiments.
         names: free parameter names (P).
         l1: ||c||_1 of each free generator (P,).
@@ -45,6 +55,12 @@ class NearTermModel:
     kappa: float
     unit_hz: float
     weights: np.ndarray
+    method: str = "exact"
+
+    @property
+    def has_means(self) -> bool:
+        """True when an engine gives the means mu (the R^2 - mu^2 variances)."""
+        return self.engine is not None
 
     # ------------------------------------------------------------------ ranges
     def hessian_ranges(self, t):
@@ -66,44 +82,79 @@ class NearTermModel:
     # ------------------------------------------------------------------ variances
     def worst_range_index(self):
         """(x, n) of the component with the largest single-shot range (first on ties)."""
-        x, n = np.unravel_index(np.argmax(self.l1[None, :] * self.scales), self.scales.shape)
+        x, n = np.unravel_index(np.argmax(self.l1[None, :] * np.abs(self.scales)), self.scales.shape)
         return int(x), int(n)
 
     def component_variances(self, t):
-        """The component with the largest range (real part): (bound R^2, exact R^2 - mu^2) over t."""
+        """The component with the largest range (real part): (bound R^2, exact R^2 - mu^2 or None) over t."""
         t = np.atleast_1d(np.asarray(t, float))
         x, n = self.worst_range_index()
         r = gradient_shot_range(t, self.l1[n], self.scales[x, n], self.kappa, self.unit_hz)
+        if not self.has_means:
+            return r**2, None
         _, g = self.engine.gradient(self.experiments[x], times=t, parameters=[self.names[n]])
         return r**2, two_valued_variance(r, g[0].real * self.unit_hz)
 
     def per_parameter_component(self, t):
-        """(bound (P,), exact (P,)) worst over experiments and Re/Im, at one time t."""
+        """(bound (P,), exact (P,) or None) worst over experiments and Re/Im, at one time t."""
         bound = np.zeros(len(self.names))
-        exact = np.zeros(len(self.names))
+        exact = np.zeros(len(self.names)) if self.has_means else None
         for x, ex in enumerate(self.experiments):
             r = gradient_shot_range(t, self.l1, self.scales[x], self.kappa, self.unit_hz)
+            bound = np.maximum(bound, r**2)
+            if not self.has_means:
+                continue
             _, g = self.engine.gradient(ex, times=[t])
             mu = g[:, 0] * self.unit_hz
-            bound = np.maximum(bound, r**2)
             exact = np.maximum(exact, np.maximum(two_valued_variance(r, mu.real), two_valued_variance(r, mu.imag)))
         return bound, exact
 
+    def worst_hessian_index(self):
+        """(x, m, n) of the Hessian entry with the largest range (first on ties): m = n = argmax |a_x|."""
+        a = np.abs(self.l1[None, :] * self.scales)
+        x, m = np.unravel_index(np.argmax(a), a.shape)
+        return int(x), int(m), int(m)
+
+    def _hessian_range(self, t, x, m, n):
+        s = self.scales
+        return hessian_shot_range(t, self.l1[m], self.l1[n], s[x, m], s[x, n], self.kappa, self.unit_hz)
+
     def hessian_entry_variances(self, t, exact=True):
         """The Hessian entry with the largest range at one time t (first on ties), real part:
-        (bound R^2, exact R^2 - mu^2 or None)."""
-        rh = self.hessian_ranges(t)
-        x, m, n = np.unravel_index(np.argmax(rh), rh.shape)
-        bound = float(rh[x, m, n] ** 2)
-        if not exact:
+        (bound R^2, exact R^2 - mu^2 or None; None also without an engine)."""
+        x, m, n = self.worst_hessian_index()
+        rh = float(self._hessian_range(t, x, m, n))
+        bound = rh**2
+        if not exact or not self.has_means:
             return bound, None
-        _, _, h = self.engine.hessian(self.experiments[x], times=[t], parameters=[self.names[m], self.names[n]])
-        mu = float(h[0, 1, 0].real) * self.unit_hz**2
-        return bound, float(two_valued_variance(rh[x, m, n], mu))
+        mu = self.worst_hessian_mean(t).real
+        return bound, float(two_valued_variance(rh, mu))
+
+    def worst_hessian_mean(self, t):
+        """d2S/dh_m dh_n (complex, per unit_hz^2) of the worst-range entry at t from the engine
+        (cached per t), or None."""
+        if not self.has_means:
+            return None
+        cache = self.__dict__.setdefault("_hessian_means", {})
+        if float(t) not in cache:
+            x, m, n = self.worst_hessian_index()
+            _, _, h = self.engine.hessian(self.experiments[x], times=[t], parameters=[self.names[m], self.names[n]])
+            cache[float(t)] = complex(h[0, 1, 0]) * self.unit_hz**2
+        return cache[float(t)]
 
     def hessian_bound_over_t(self, t):
         t = np.atleast_1d(np.asarray(t, float))
-        return np.max(self.hessian_ranges(1.0) ** 2) * t**4
+        x, m, n = self.worst_hessian_index()
+        return float(self._hessian_range(1.0, x, m, n)) ** 2 * t**4
+
+    def _hessian_square_sums(self):
+        """(X,) sum over m <= n of R_H[x, m, n]^2 at t = 1 (factorised, see the module docstring)."""
+        out = np.zeros(len(self.experiments))
+        for x in range(len(self.experiments)):
+            idx = np.arange(len(self.names))
+            d = np.abs(self._hessian_range(1.0, x, idx, idx))    # R_H[x,m,n]^2 = R_H[x,m,m] R_H[x,n,n]
+            out[x] = 0.5 * (np.sum(d) ** 2 + np.sum(d**2))
+        return out
 
     def gradient_strata(self, t):
         """Per-parameter stratified sums over (x, j, part) at each sweep time.
@@ -125,18 +176,22 @@ class NearTermModel:
         sum_w2_var_b = np.zeros((t.size, P))
         sum_w2_var_e = np.zeros((t.size, P))
         hess = np.zeros(t.size)
-        iu = np.triu_indices(P)
-        rh1 = self.hessian_ranges(1.0)
+        rh1_sq = self._hessian_square_sums()
         strata = 0
+        exact = self.has_means
         for x, (ex, tt) in enumerate(zip(self.experiments, self.strata_times(t))):
             strata += 2 * ex.points
-            _, g = self.engine.gradient(ex, times=tt.ravel())
-            mu = (g * self.unit_hz).reshape(P, *tt.shape)              # (P, T, J)
             r = gradient_shot_range(tt[None], self.l1[:, None, None], self.scales[x][:, None, None],
                                     self.kappa, self.unit_hz)          # (P, T, J)
-            for part in (mu.real, mu.imag):
+            if exact:
+                _, g = self.engine.gradient(ex, times=tt.ravel())
+                mu = (g * self.unit_hz).reshape(P, *tt.shape)          # (P, T, J)
+                parts = (mu.real, mu.imag)
+            else:
+                parts = (None, None)
+            for part in parts:
                 vb = r**2
-                ve = two_valued_variance(r, part)
+                ve = two_valued_variance(r, part) if exact else vb
                 sum_w_sig_b += w[x] * np.sum(np.sqrt(vb), axis=2).T
                 sum_w_sig_e += w[x] * np.sum(np.sqrt(ve), axis=2).T
                 sum_w2_var_b += w[x] ** 2 * np.sum(vb, axis=2).T
@@ -144,20 +199,30 @@ class NearTermModel:
                 out["fisher_bound"] += np.sum(vb, axis=2).T
                 out["fisher_exact"] += np.sum(ve, axis=2).T
             out["range_sum"] += 2 * w[x] * np.sum(r, axis=2).T
-            hess += 2 * float(np.sum(rh1[x][iu] ** 2)) * np.sum(tt**4, axis=1)
+            hess += 2 * float(rh1_sq[x]) * np.sum(tt**4, axis=1)
         out["opt_bound"], out["opt_exact"] = sum_w_sig_b**2, sum_w_sig_e**2
         out["uni_bound"], out["uni_exact"] = strata * sum_w2_var_b, strata * sum_w2_var_e
+        if not exact:
+            for k in ("opt_exact", "uni_exact", "fisher_exact"):
+                out[k] = None
         out["hessian_bound"] = hess
         out["strata"] = strata
         return out
 
 
-def near_term_model(engine, experiments, unit_hz=1e3) -> NearTermModel:
-    """Collect ranges and weights for `engine.model`'s free parameters (see NearTermModel)."""
-    model = engine.model
+def near_term_model(engine, experiments, unit_hz=1e3, model=None, method="exact") -> NearTermModel:
+    """Collect ranges and weights for the model's free parameters (see NearTermModel).
+
+    Args:
+        engine: an engine with gradient/hessian (its `.model` is used), or None with `model` given.
+        model: the HamiltonianModel when engine is None: ranges from its Pauli coefficients alone.
+        method: 'exact' or 'estimated', the tier of the engine's means.
+    """
+    model = engine.model if model is None else model
     free = list(model.free)
     l1 = np.array([float(np.sum(np.abs(model.parameter(n).generator.coeffs))) for n in free])
     scales = np.array([model.scale_factors(ex)[model.free_indices] for ex in experiments])
     kappa = float(sum(model.observed))
     sig = np.array([ex.noise if ex.noise else 1.0 for ex in experiments], float)
-    return NearTermModel(engine, list(experiments), free, l1, scales, kappa, unit_hz, 1.0 / sig)
+    return NearTermModel(engine, list(experiments), free, l1, scales, kappa, unit_hz, 1.0 / sig,
+                         method if engine is not None else "bound")
