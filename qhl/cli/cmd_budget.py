@@ -9,6 +9,7 @@ from ..costing.shots import check_precision, check_time
 from ..costing.surface_code import check_physical_error
 from ..costing.synthesis import SYNTHESIS_METHODS
 from ..base.errors import QhlInputError
+from ..spins.parameter_names import DEFAULT_FREE
 from .common import (CYCLE_TIME, FAILURE, ITERATIONS, PRECISION, PROBABILITY, SWEEP, TIME_S, add_cluster_argument,
                      check_output_path, cluster_from_args, print_json)
 def register(sub):
@@ -31,8 +32,13 @@ def register(sub):
     p.add_argument("--synthesis", choices=SYNTHESIS_METHODS, default="ross-selinger",
                    help="rotation synthesis T-count rule (default ross-selinger)")
     p.add_argument("--iterations", type=ITERATIONS, default=50, help="learning iterations (default 50)")
-    p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
+    p.add_argument("--free", nargs="+", default=list(DEFAULT_FREE), metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
+    p.add_argument("--typical", action="store_true",
+                   help="where the exact engine is skipped, estimate means with the pure-state engine "
+                        "(estimated tier, error bars; slow: about 1 + P signals per time)")
+    p.add_argument("--no-classical", action="store_true",
+                   help="leave out the classical-cost meter (it measures this machine's rates, a few seconds)")
     p.add_argument("--clifford-t", metavar="FILE.qasm",
                    help="write one Trotter step, every rotation synthesised to Clifford+T, as OpenQASM 3")
     p.add_argument("--json", action="store_true", help="print one JSON object")
@@ -86,9 +92,10 @@ def run(args):
     cluster = cluster_from_args(args)
     settings = BudgetSettings(iterations=args.iterations, synthesis=args.synthesis,
                               physical_error=args.physical_error, cycle_time_s=args.cycle_time,
-                              failure_budget=args.failure_budget)
+                              failure_budget=args.failure_budget, classical_meter=not args.no_classical)
     _progress(f"preparing {cluster.name}: {cluster.n_spins} spins")
-    bm = BudgetModel(cluster, free=args.free, settings=settings, progress=_progress)
+    bm = BudgetModel(cluster, free=args.free, settings=settings, progress=_progress,
+                     estimator="typical" if args.typical else None)
     for note in bm.notes:
         _progress(f"note: {note}")
     t = bm.default_time_s if args.time is None else args.time
@@ -227,7 +234,21 @@ def _print_budget(b, bm):
     print("tiers: " + ", ".join(f"{k} {v}" for k, v in b.tiers.items()))
     for note in b.notes:
         print(f"note: {note}")
+    if b.classical:
+        c = b.classical
+        print(f"classical simulation (estimate, {c['method']}): {c['memory_bytes'] / 2**30:.3g} GiB, "
+              f"{_duration(c['seconds'])} on this machine: {'feasible here' if c['feasible_here'] else 'not feasible here'}")
+        if c.get("crossover_spins"):
+            print(f"  at this density of couplings, exact classical simulation exceeds a day and 1 TiB from "
+                  f"{c['crossover_spins']} spins: the size from which a quantum computer is needed")
     print(f"{len(b.assumptions)} assumptions with sources: qhl budget --json (key 'assumptions')")
+
+
+def _duration(seconds):
+    for unit, size in (("years", 3.15576e7), ("days", 86400.0), ("h", 3600.0), ("min", 60.0)):
+        if seconds >= size:
+            return f"{seconds / size:.3g} {unit}"
+    return f"{seconds:.3g} s"
 
 
 def _print_sweep(sw, t, eps):

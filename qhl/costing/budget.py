@@ -106,6 +106,7 @@ class BudgetSettings:
         circuit_variance_steps, circuit_variance_order: the Trotterisation of that estimator.
         exact_time_limit_s: skip the exact engine when its time estimate exceeds this (s).
         use_exact: False skips the exact engine at any size (bound tier only).
+        classical_meter: put the classical-cost meter (qhl.costing.classical_cost) beside the budget.
     """
 
     unit_hz: float = 1e3
@@ -124,6 +125,7 @@ class BudgetSettings:
     circuit_variance_order: int = 2
     exact_time_limit_s: float = 60.0
     use_exact: bool = True
+    classical_meter: bool = True
 
     def split_dict(self):
         return dict(self.split)
@@ -176,6 +178,7 @@ class Budget:
     notes: list = field(default_factory=list)
     tiers: dict = field(default_factory=dict)
     precision_hz: dict | None = None
+    classical: dict | None = None
 
     def to_json(self):
         return {"cluster": self.cluster, "time_s": self.time_s, "precision": self.precision,
@@ -183,7 +186,7 @@ class Budget:
                 "error_budget": self.error_budget, "comparison": self.comparison,
                 "surface_code": self.surface_code, "assumptions": self.assumptions,
                 "methods": self.methods, "tiers": self.tiers, "notes": self.notes,
-                "precision_hz": self.precision_hz}
+                "precision_hz": self.precision_hz, "classical": self.classical}
 
 
 @dataclass
@@ -327,7 +330,9 @@ class BudgetModel:
         settings: BudgetSettings.
         progress: optional callable(str) for stage messages (the CLI prints them on stderr).
         estimator: optional engine for the 'estimated' tier (gradient/hessian like ExactEngine,
-            e.g. a pure-state typicality engine); used when the exact engine is skipped.
+            e.g. a pure-state typicality engine), or 'typical' for qhl.exact.typicality.TypicalEngine
+            on this model; used only when the exact engine is skipped. Its means carry a
+            statistical error (stated by that engine); the counts built on them are estimates.
 
     Attributes:
         notes: one line per tier or part that was skipped, with the reason.
@@ -369,6 +374,10 @@ class BudgetModel:
             self.notes.append(f"exact tier skipped: {self.exact_plan['reason']}")
         if self.engine is not None and self.exact_plan["hessian_reason"]:
             self.notes.append(self.exact_plan["hessian_reason"])
+        if isinstance(estimator, str) and self.engine is None:
+            from ..exact.engine_choice import make_engine
+            say(f"pure-state (typical) engine for the estimated tier ({self.model.n_spins} spins)")
+            estimator = make_engine(self.model, estimator)[0]
         self.estimator = estimator if self.engine is None else None
         means, method = (self.engine, "exact") if self.engine is not None else (self.estimator, "estimated")
         if means is None:
@@ -387,6 +396,11 @@ class BudgetModel:
         self._inserted = pauli_arrays([self.model.parameter(n).generator for n in self.model.free])
         self._quad = [self._quadrature(ex) for ex in self.experiments]
         self._n_terms = np.array([len(self.model.parameter(n).generator) for n in self.model.free])
+        self.classical = None
+        if self.settings.classical_meter:
+            from .classical_cost import classical_cost
+            say("classical-cost meter (rates measured on this machine)")
+            self.classical = classical_cost(cluster).to_json()
         say(f"prepared in {_time.perf_counter() - t0:.1f} s")
         self._say = say
 
@@ -549,8 +563,9 @@ class BudgetModel:
             "clifford_layers": int(ch["clifford_layers"]),
             "step_t_depth": int(ch["step_t_depth"]),
             "step_rotation_depth": int(ch["step_rotation_depth"]),
-            "trotter_steps_source": "exact propagator" if ch["steps_trotter"] < ch["steps_trotter_bound"] else
-                                    "commutator bound",
+            "trotter_steps_source": ("time quadrature" if ch["steps_quadrature"] > ch["steps_trotter"] else
+                                     "exact propagator" if ch["steps_trotter"] < ch["steps_trotter_bound"] else
+                                     "commutator bound"),
             "phase_qubits": int(ch["phase_qubits"]),
             "queries_total": int(ch["queries_total"]),
             "depth_trotter_steps": int(ch["depth_steps"]),
@@ -606,7 +621,7 @@ class BudgetModel:
         methods = {"near_term": methods_near, "fault_tolerant": methods_ft,
                    "surface_code": "bound" if sc else None}
         return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name, methods,
-                      list(self.notes), dict(self.tiers), self._precision_hz(t, eps, hb))
+                      list(self.notes), dict(self.tiers), self._precision_hz(t, eps, hb), self.classical)
 
     def _precision_hz(self, t, eps, hessian_bound_sq):
         """eps (per unit_hz) on a derivative -> the parameter change in Hz it resolves (see all_assumptions)."""
