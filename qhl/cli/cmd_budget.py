@@ -177,6 +177,7 @@ def _print_budget(b, bm):
     prow = [("Trotter steps r", "trotter_steps", "steps"),
             ("  from the commutator bound", None, "steps_trotter_bound"),
             ("  exact propagator (same error)", None, "steps_trotter_empirical"),
+            ("  signal and gradient error at t", None, "steps_trotter_signal"),
             ("  from the time quadrature", None, "steps_quadrature"),
             ("AE queries M", "queries", "queries"),
             ("depth (Trotter steps)", "depth_trotter_steps", "depth_steps"),
@@ -187,7 +188,7 @@ def _print_budget(b, bm):
             ("logical qubits", "logical_qubits", "logical_qubits")]
     mf = b.methods.get("fault_tolerant", {})
     how = {"trotter_steps": mf.get("commutator_sums"), "steps_trotter": mf.get("commutator_sums"),
-           "steps_trotter_empirical": "exact", "steps_quadrature": mf.get("quadrature_sums"),
+           "steps_trotter_empirical": "exact", "steps_trotter_signal": "exact", "steps_quadrature": mf.get("quadrature_sums"),
            "depth": f"bound, {mf.get('gate_counts_per_step')}", "rotations": f"bound, {mf.get('gate_counts_per_step')}"}
     for name, key, okey in prow:
         chosen = ft[key] if key else None

@@ -39,7 +39,7 @@ from ..base.memory import available_memory_bytes, require_memory
 from ..circuits.pauli_commutators import pauli_arrays, quadrature_norms
 from ..spins.model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
-from . import coherent_input, family_variance, learning_run, trotter_order4
+from . import coherent_input, family_variance, learning_run, signal_trotter, trotter_order4
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
 from .near_term import near_term_model
 from .trotter_cost import ORDERS, empirical_flops, empirical_trotter_steps, trotter_model
@@ -66,7 +66,7 @@ def all_assumptions(settings=None) -> dict:
     """Every constant and model choice used, with its source."""
     out = {}
     for mod in (shots, family_variance, amplitude_estimation, synthesis, trotter_order4, trotter_cost, fault_tolerant,
-                surface_code, learning_run, coherent_input):
+                surface_code, learning_run, coherent_input, signal_trotter):
         out.update(mod.ASSUMPTIONS)
     out["precision_unit"] = "eps is a standard error on dS/dh with h in units of unit_hz (default 1 kHz)"
     out["time_grids"] = "each experiment's time grid is rescaled to end at t (points kept)"
@@ -527,11 +527,23 @@ class BudgetModel:
             empirical = {p: empirical_trotter_steps(self.trotter[x].terms, p, t,
                                                     float(ft_bound["split"]["trotter"]) / (8 * r_comp))
                          for p in ORDERS}
+        signal_steps = {}
+        if s.empirical_trotter and nt.has_means and nt.method == "exact" \
+                and self.model.n_spins <= signal_trotter.SIGNAL_MAX_SPINS:
+            say("Trotter steps from the error of the signal and gradient (exact engine)")
+            for p in signal_trotter.SIGNAL_ORDERS:
+                signal_steps[p] = signal_trotter.signal_trotter_steps(
+                    self.model, self.experiments[x], nt.engine, t, p, float(ft_bound["split"]["trotter"]),
+                    s.unit_hz)
+        tighter = {}
+        for p in ORDERS:
+            found = [v[0] for v in (empirical.get(p), signal_steps.get(p)) if v and v[0]]
+            if found:
+                tighter[p] = min(found)
         synthesise = self.model.n_spins <= SYNTHESIS_MAX_SPINS
         if synthesise:
             say("Clifford+T synthesis of one Trotter step (qiskit gridsynth)")
-        ft_all = self._ft(r_comp, t, eps, x, self._n_terms[n], trotter_steps={p: v[0] for p, v in empirical.items()},
-                          synthesise=synthesise)
+        ft_all = self._ft(r_comp, t, eps, x, self._n_terms[n], trotter_steps=tighter, synthesise=synthesise)
         order, ch = choose_order(ft_all)
         order = int(order)
         per_order = {}
@@ -544,6 +556,8 @@ class BudgetModel:
             entry["step_error_constant_method"] = self.trotter[x].methods.get(p, "")
             if p in empirical:
                 entry["steps_trotter_empirical"], entry["empirical_error"] = empirical[p]
+            if signal_steps.get(p) and signal_steps[p][0]:
+                entry["steps_trotter_signal"], entry["signal_error"] = signal_steps[p]
             per_order[str(p)] = entry
         # the same queries at the component's actual amplitude a = (1 + mu/R)/2 (mu: the engine, if any)
         a_exact = q_exact = None
@@ -564,6 +578,8 @@ class BudgetModel:
             "step_t_depth": int(ch["step_t_depth"]),
             "step_rotation_depth": int(ch["step_rotation_depth"]),
             "trotter_steps_source": ("time quadrature" if ch["steps_quadrature"] > ch["steps_trotter"] else
+                                     "signal and gradient error" if signal_steps.get(order) and
+                                     ch["steps_trotter"] == signal_steps[order][0] else
                                      "exact propagator" if ch["steps_trotter"] < ch["steps_trotter_bound"] else
                                      "commutator bound"),
             "phase_qubits": int(ch["phase_qubits"]),
