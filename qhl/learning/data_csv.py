@@ -14,11 +14,11 @@ Checked on reading (one-line QhlInputError naming file, line and column): UTF-8 
 import csv
 import io
 import math
-import os
 
 import numpy as np
 
 from ..base.errors import QhlInputError
+from ..base.files import read_text_file
 from ..exact.likelihood import Dataset
 from ..spins.cluster import NOISE_RANGE, checked_number
 
@@ -55,21 +55,7 @@ def _number(text, column, line, source, low=None, high=None):
 
 def _read_rows(path, source):
     """All CSV rows; missing, oversized, non-UTF-8 or malformed files -> one-line QhlInputError."""
-    try:
-        size = os.stat(path).st_size
-        if size > MAX_FILE_BYTES:
-            raise QhlInputError(f"file of {size:,} bytes; expected at most {MAX_FILE_BYTES:,}", source=source)
-        with open(path, "rb") as f:
-            data = f.read()
-    except FileNotFoundError:
-        raise QhlInputError("no such file", source=source) from None
-    except OSError as e:
-        raise QhlInputError(f"cannot read file: {e.strerror or type(e).__name__}", source=source) from None
-    try:
-        text = data.decode("utf-8-sig")
-    except UnicodeDecodeError as e:
-        line = data[:e.start].count(b"\n") + 1
-        raise QhlInputError(f"line {line}: byte {data[e.start]:#04x} is not UTF-8 text", source=source) from None
+    text = read_text_file(path, MAX_FILE_BYTES, source=source, encoding="utf-8-sig")
     reader = csv.reader(io.StringIO(text, newline=""))
     rows = []
     try:

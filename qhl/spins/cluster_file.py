@@ -29,6 +29,7 @@ import numpy as np
 from .cluster import (MAX_COORDINATE_ANGSTROM, MAX_FIELD_TESLA, MAX_FREQUENCY_HZ, MAX_PPM, Cluster, Experiment,
                       Pair, Spin, _short, check_experiment, check_spin_count, checked_number)
 from ..base.errors import QhlInputError
+from ..base.files import read_text_file
 from .nuclei import larmor_frequency_hz, nucleus
 
 __all__ = ["load_cluster", "parse_cluster_toml", "load_xyz", "read_xyz_atoms", "demo_cluster", "DEMO_PATH"]
@@ -239,21 +240,7 @@ def parse_cluster_toml(text: str, source: str = "<string>") -> Cluster:
 
 def _read_text(path: Path) -> str:
     """The file as UTF-8 text; missing, unreadable, too large or undecodable -> one-line QhlInputError."""
-    src = str(path)
-    try:
-        size = path.stat().st_size
-        if size > MAX_FILE_BYTES:
-            raise QhlInputError(f"file of {size:,} bytes; expected at most {MAX_FILE_BYTES:,}", source=src)
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise QhlInputError("no such file", source=src) from None
-    except OSError as e:
-        raise QhlInputError(f"cannot read file: {e.strerror or type(e).__name__}", source=src) from None
-    try:
-        return data.decode("utf-8")
-    except UnicodeDecodeError as e:
-        line = data[:e.start].count(b"\n") + 1
-        raise QhlInputError(f"line {line}: byte {data[e.start]:#04x} is not UTF-8 text", source=src) from None
+    return read_text_file(path, MAX_FILE_BYTES)
 
 
 _ELEMENT_ISOTOPE = {"H": "1H", "C": "13C", "N": "15N", "F": "19F", "P": "31P", "Si": "29Si"}

@@ -32,6 +32,7 @@ import numpy as np
 from ..spins.cluster import MAX_COORDINATE_ANGSTROM, Cluster, Experiment, Spin
 from ..spins.cluster_file import load_cluster, read_xyz_atoms
 from ..base.errors import QhlInputError
+from ..base.files import read_text_file
 from ..spins.nuclei import larmor_frequency_hz, nucleus
 
 __all__ = ["Nuclei", "read_structure", "nuclei_from_atoms", "choose_centres", "cut_clusters",
@@ -123,20 +124,8 @@ MAX_STRUCTURE_BYTES = 256 * 2**20   # PDB/mmCIF files above 256 MiB are refused 
 
 def _check_text_file(path: Path) -> None:
     """Refuse an empty, oversized or non-UTF-8 file before the structure library sees it."""
-    src = str(path)
-    size = path.stat().st_size
-    if size == 0:
-        raise QhlInputError("empty file: expected PDB or mmCIF records", source=src)
-    if size > MAX_STRUCTURE_BYTES:
-        raise QhlInputError(f"file of {size:,} bytes; expected at most {MAX_STRUCTURE_BYTES:,}", source=src)
-    data = path.read_bytes()
-    try:
-        text = data.decode("utf-8")
-    except UnicodeDecodeError as e:
-        line = data[:e.start].count(b"\n") + 1
-        raise QhlInputError(f"line {line}: byte {data[e.start]:#04x} is not UTF-8 text", source=src) from None
-    if not text.strip():
-        raise QhlInputError("empty file: expected PDB or mmCIF records", source=src)
+    if not read_text_file(path, MAX_STRUCTURE_BYTES).strip():
+        raise QhlInputError("empty file: expected PDB or mmCIF records", source=str(path))
 
 
 def _read_gemmi_atoms(path: Path):
