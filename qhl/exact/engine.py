@@ -55,7 +55,7 @@ import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
 
-from ..base.blas import blas_limited
+from ..base.blas import blas_limited, blas_threads
 from ..base.errors import QhlInputError
 from .divided_differences import first_divided_difference, second_divided_difference
 from ..base.memory import require_memory
@@ -236,9 +236,10 @@ class ExactEngine:
         if h.shape[0] == 1:
             e = np.real(np.diag(h)).astype(float)
             return e if values_only else (e, np.ones((1, 1), h.dtype))
-        if values_only:
-            return sla.eigvalsh(h, driver="evd")
-        return sla.eigh(h, driver="evd")
+        with blas_threads(h.shape[0]):
+            if values_only:
+                return sla.eigvalsh(h, driver="evd")
+            return sla.eigh(h, driver="evd")
 
     @staticmethod
     def _tolerance(emax):
@@ -487,40 +488,41 @@ class ExactEngine:
             pa = w @ cp
             pa = pa[:, :n_t] + 1j * pa[:, n_t:]                   # sum_b w_ab exp(+i E_b t)
             del w
-            rx = rt.astype(dtype)
+            rx = rt.astype(dtype, copy=False)
             cpx = cp.astype(dtype)
             nxt = self._blocks[i + 1] if i + 1 < len(self._blocks) else None
             cache_ok = len(rows) * max(ds, dp) ** 2 * item <= _KCACHE_BYTES and not self.lean
-            for c0 in range(0, len(rows), chunk):
-                sub = rows[c0:c0 + chunk]
-                c = len(sub)
-                ks, gs, dms = kcache.pop((b.s, c0), None) or self._sector_chunk(b.s, es, vs, tol, sub, dtype)
-                kp, gp, dmp = kcache.pop((b.p, c0), None) or self._sector_chunk(b.p, ep, vp, tol, sub, dtype)
-                if cache_ok and nxt is not None:
-                    for k, val in ((b.s, (ks, gs, dms)), (b.p, (kp, gp, dmp))):
-                        if k in (nxt.s, nxt.p):
-                            kcache[(k, c0)] = val
-                m = (ks.reshape(c * ds, ds) @ rx).reshape(c, ds, dp)
-                # R K_p = -(K_p R^T)^T, K_p antisymmetric
-                m += (kp.reshape(c * dp, dp) @ rx.T).reshape(c, dp, ds).transpose(0, 2, 1)
-                m *= rx
-                m *= 4                                             # A = 4 R o (K_s R - R K_p)
-                x = (m.reshape(c * ds, dp) @ cpx).reshape(c, ds, 2 * n_t)
-                xc, xs = x[:, :, :n_t], x[:, :, n_t:]
-                # sum_a exp(-i E_a t) (xc + i xs), exp(-i E_a t) = cos_a - i sin_a; sums in float64
-                cos_a, sin_a = cs[:, :n_t], -cs[:, n_t:]
-                grad[c0:c0 + c] += (_contract(xc, cos_a) + _contract(xs, sin_a)
-                                    + 1j * (_contract(xs, cos_a) - _contract(xc, sin_a)))
-                if dms is None and dmp is None:
-                    deg = gp @ (eb * pb) - gs @ (ea * pa)
-                else:
-                    dms = dms if dms is not None else _diag_stack(gs)
-                    dmp = dmp if dmp is not None else _diag_stack(gp)
-                    bm = 2 * rt * (np.matmul(rt, dmp) - np.matmul(dms, rt))   # (c, d_s, d_p)
-                    y = (bm.reshape(c * ds, dp) @ cp).reshape(c, ds, 2 * n_t)
-                    deg = np.einsum("cat,at->ct", y[:, :, :n_t] + 1j * y[:, :, n_t:], ea)
-                grad[c0:c0 + c] += 1j * t[None, :] * deg
-                del m, x
+            with blas_threads(max(ds, dp)):
+                for c0 in range(0, len(rows), chunk):
+                    sub = rows[c0:c0 + chunk]
+                    c = len(sub)
+                    ks, gs, dms = kcache.pop((b.s, c0), None) or self._sector_chunk(b.s, es, vs, tol, sub, dtype)
+                    kp, gp, dmp = kcache.pop((b.p, c0), None) or self._sector_chunk(b.p, ep, vp, tol, sub, dtype)
+                    if cache_ok and nxt is not None:
+                        for k, val in ((b.s, (ks, gs, dms)), (b.p, (kp, gp, dmp))):
+                            if k in (nxt.s, nxt.p):
+                                kcache[(k, c0)] = val
+                    m = (ks.reshape(c * ds, ds) @ rx).reshape(c, ds, dp)
+                    # R K_p = -(K_p R^T)^T, K_p antisymmetric
+                    m += (kp.reshape(c * dp, dp) @ rx.T).reshape(c, dp, ds).transpose(0, 2, 1)
+                    m *= rx
+                    m *= 4                                             # A = 4 R o (K_s R - R K_p)
+                    x = (m.reshape(c * ds, dp) @ cpx).reshape(c, ds, 2 * n_t)
+                    xc, xs = x[:, :, :n_t], x[:, :, n_t:]
+                    # sum_a exp(-i E_a t) (xc + i xs), exp(-i E_a t) = cos_a - i sin_a; sums in float64
+                    cos_a, sin_a = cs[:, :n_t], -cs[:, n_t:]
+                    grad[c0:c0 + c] += (_contract(xc, cos_a) + _contract(xs, sin_a)
+                                        + 1j * (_contract(xs, cos_a) - _contract(xc, sin_a)))
+                    if dms is None and dmp is None:
+                        deg = gp @ (eb * pb) - gs @ (ea * pa)
+                    else:
+                        dms = dms if dms is not None else _diag_stack(gs)
+                        dmp = dmp if dmp is not None else _diag_stack(gp)
+                        bm = 2 * rt * (np.matmul(rt, dmp) - np.matmul(dms, rt))   # (c, d_s, d_p)
+                        y = (bm.reshape(c * ds, dp) @ cp).reshape(c, ds, 2 * n_t)
+                        deg = np.einsum("cat,at->ct", y[:, :, :n_t] + 1j * y[:, :, n_t:], ea)
+                    grad[c0:c0 + c] += 1j * t[None, :] * deg
+                    del m, x
             for key in [key for key in kcache if nxt is None or key[0] not in (nxt.s, nxt.p)]:
                 del kcache[key]
         return grad
