@@ -166,38 +166,56 @@ class ExactEngine:
         gmats = [g.to_matrix(sparse=True) for g in gens]
         self.real = all(abs(m.imag).max() == 0 if m.nnz else True for m in gmats)
         dtype = float if self.real else complex
-        self._gen_blocks = [[self._cast(m[ix][:, ix], dtype) for ix in self.sectors] for m in gmats]
-        self._h_parts = [self._stack_sector(k, dtype) for k in range(len(self.sectors))]
+        nsec = len(self.sectors)
+        self._sec_of = np.zeros(2**n, dtype=np.int64)
+        self._loc = np.zeros(2**n, dtype=np.int64)
+        for k, ix in enumerate(self.sectors):
+            self._sec_of[ix] = k
+            self._loc[ix] = np.arange(len(ix))
+        parts = [([], [], [], []) for _ in range(nsec)]
+        self._gen_blocks = []
+        for j, m in enumerate(gmats):
+            split = self._split_blocks(m, dtype)
+            row = []
+            for k in range(nsec):
+                r, c, v = split.get((k, k), (np.zeros(0, np.int64),) * 2 + (np.zeros(0, dtype),))
+                d = dims[k]
+                row.append(sp.csr_matrix((v, (r, c)), shape=(d, d)))
+                for lst, x in zip(parts[k], (r, c, np.full(len(v), j), v)):
+                    lst.append(x)
+            self._gen_blocks.append(row)
+        self._h_parts = [tuple(np.concatenate(x) for x in parts[k]) + (dims[k],) for k in range(nsec)]
         rho = model.initial_operator().to_matrix(sparse=True)
         obs = model.detection_operator().to_matrix(sparse=True)
         self.norm = float(np.real((obs @ rho).diagonal().sum()))
+        rho_split, obs_split = self._split_blocks(rho, dtype), self._split_blocks(obs, dtype)
         self._blocks = []
-        for s, p in itertools.product(range(len(self.sectors)), repeat=2):
-            r = rho[self.sectors[s]][:, self.sectors[p]]
-            o = obs[self.sectors[p]][:, self.sectors[s]]
-            if r.nnz and o.nnz and abs(r).max() > 0 and abs(o).max() > 0:
-                self._blocks.append(_Block(s, p, self._cast(r, dtype), self._cast(o, dtype)))
+        for s_, p_ in itertools.product(range(nsec), repeat=2):
+            if (s_, p_) in rho_split and (p_, s_) in obs_split:
+                r, c, v = rho_split[(s_, p_)]
+                ro, co, vo = obs_split[(p_, s_)]
+                self._blocks.append(_Block(s_, p_, sp.csr_matrix((v, (r, c)), shape=(dims[s_], dims[p_])),
+                                           sp.csr_matrix((vo, (ro, co)), shape=(dims[p_], dims[s_]))))
         # rho0_sp = O_ps^T / 2 in every block (real H): the transformed observable is 2 R
         self.mirrored = self.real and all(
             (b.rho - 0.5 * b.obs.T).count_nonzero() == 0 for b in self._blocks)
         self._cache = {}
 
-    @staticmethod
-    def _cast(m, dtype):
-        m = m.tocsr()
-        return m.real.astype(float) if dtype is float else m.astype(complex)
-
-    def _stack_sector(self, k, dtype):
-        """Rows, columns, parameter index and values of all generators in sector k (COO stack)."""
-        rows, cols, pidx, vals = [], [], [], []
-        for j, blocks in enumerate(self._gen_blocks):
-            g = blocks[k].tocoo()
-            rows.append(g.row)
-            cols.append(g.col)
-            pidx.append(np.full(g.nnz, j))
-            vals.append(g.data)
-        cat = np.concatenate
-        return (cat(rows), cat(cols), cat(pidx), cat(vals).astype(dtype), len(self.sectors[k]))
+    def _split_blocks(self, m, dtype):
+        """{(k, l): (rows, cols, values)} of a full-space sparse matrix by the sectors of its rows
+        and columns (local indices; stored zeros dropped). One pass over the entries."""
+        g = m.tocoo()
+        keep = g.data != 0
+        r, c, v = g.row[keep], g.col[keep], g.data[keep]
+        v = v.real.astype(float) if dtype is float else v.astype(complex)
+        nsec = len(self.sectors)
+        key = self._sec_of[r] * nsec + self._sec_of[c]
+        order = np.argsort(key, kind="stable")
+        key, r, c, v = key[order], r[order], c[order], v[order]
+        uniq, start = np.unique(key, return_index=True)
+        stop = np.append(start[1:], key.size)
+        return {(int(u) // nsec, int(u) % nsec): (self._loc[r[a:b]], self._loc[c[a:b]], v[a:b])
+                for u, a, b in zip(uniq, start, stop)}
 
     # ------------------------------------------------------------------ parameters
     def _coefficients(self, experiment, free_values_hz):
