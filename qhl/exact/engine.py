@@ -40,8 +40,10 @@ Adjoint (time-point) gradient. For few time points the derivative is taken per t
     Z_s += F_s o (R Lambda_p^* R_obs^T)^T  (ket side),  Z_p += conj(F_p) o (R_obs^T Lambda_s R)^T
     (bra side), F[a,a'] = f[E_a, E_a'] the first divided difference of exp(-iEt) and
     Lambda = diag(exp(-iEt)) (Daleckii-Krein; R. Bhatia, "Matrix Analysis", 1997, ch. V).
-It costs about T (d_s^2 d_p + d_s d_p^2) instead of P (d_s^2 d_p + d_s d_p^2), and is chosen when
-it is cheaper (gradient(method="auto")).
+Transformed back, Y_k = V_k Z_k^T V_k^dag, the sum runs over the stored entries of the sparse
+generators, so no eigen-generator is formed: per time point about 2 (d_s^2 d_p + d_s d_p^2) + 4 d^3
+real operations against P (d^3 + d_s^2 d_p + d_s d_p^2 + 4 d_s d_p T) for the full path; it is
+chosen when its count is lower (gradient(method="auto"), roughly T < P / 3).
 
 Memory-lean mode. Above LEAN_ABOVE_BYTES of eigenvectors (n >= 15 protons) signal and gradient
 sweep the sector pairs in order, holding the eigenvectors of only the (at most three) sectors in
