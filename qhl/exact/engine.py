@@ -41,13 +41,14 @@ Adjoint (time-point) gradient. For few time points the derivative is taken per t
     (bra side), F[a,a'] = f[E_a, E_a'] the first divided difference of exp(-iEt) and
     Lambda = diag(exp(-iEt)) (Daleckii-Krein; R. Bhatia, "Matrix Analysis", 1997, ch. V).
 Transformed back, Y_k = V_k Z_k^T V_k^dag, the sum runs over the stored entries of the sparse
-generators, so no eigen-generator is formed: per time point about 2 (d_s^2 d_p + d_s d_p^2) + 4 d^3
+generators, so no eigen-generator is formed: in all about T (2 (d_s^2 d_p + d_s d_p^2) + 4 d^3)
 real operations against P (d^3 + d_s^2 d_p + d_s d_p^2 + 4 d_s d_p T) for the full path; it is
 chosen when its count is lower (gradient(method="auto"), roughly T < P / 3).
 
 Memory-lean mode. Above LEAN_ABOVE_BYTES of eigenvectors (n >= 15 protons) signal and gradient
 sweep the sector pairs in order, holding the eigenvectors of only the (at most three) sectors in
-use; spectrum() and hessian() still hold all sectors.
+use (the gradient first runs one eigenvalue-only pass for the degeneracy tolerance); spectrum(),
+transitions(), hessian() and the adjoint path still hold all sectors.
 """
 
 from dataclasses import dataclass
