@@ -110,7 +110,9 @@ def estimate_memory_bytes(n_spins: int, sector_dims, n_times: int, gradient: boo
       * gradient: one parameter chunk (_chunk_size: K_s, K_p, products and time tables) and the
         eigen-generators kept for the next sector pair (P d^2, below _KCACHE_BYTES, not when lean);
       * time tables, 64 d T.
-    Checked against the tracemalloc peak at 10-12 spins in tests/test_engine_memory.py.
+    Checked against the tracemalloc peak at 10-12 spins in tests/test_engine_memory.py; measured
+    once at 14 spins in the lean mode (one-parameter gradient, 256 points): peak 983 MiB, estimate
+    1205 MiB.
     """
     dims = np.sort(np.asarray(sector_dims, float))[::-1]
     n_t = max(int(n_times), 1)
