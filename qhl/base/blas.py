@@ -8,8 +8,12 @@ and 55 s with two on a loaded 2-core machine (12 spins: 55 s against 125 s).
 Crossover, measured on this 2-core machine under the usual load of other jobs (load average
 about 8; square float64 products, medians, benchmarks/bench_engine.py --crossover): time with two
 threads over time with one was 0.05 at d = 256, 0.44 at 512, 0.71 at 924, 0.94 at 1716 and 1.02
-at 2400. So blocks up to SMALL_BLOCK = 2000 rows run on one thread and larger blocks on
-LARGE_BLOCK_THREADS = 2 (never more than the machine has).
+at 2400. The eigensolver (scipy eigh, driver evd, d = 2400) took 2.2-2.3 s on one thread and
+1.2 s on two on a quiet moment, but 18.9 s on two when other jobs took the second core; a 14-spin
+signal ran 2x slower than a one-thread peer with two-thread eigh. So blocks up to
+SMALL_BLOCK = 4000 rows (every sector up to 14 protons) run on one thread, and only larger blocks
+(15 protons and more, where each call is long) on LARGE_BLOCK_THREADS = 2 (never more than the
+machine has).
 """
 
 from contextlib import contextmanager, nullcontext
@@ -18,7 +22,7 @@ import os
 
 __all__ = ["SMALL_BLOCK", "LARGE_BLOCK_THREADS", "blas_threads", "single_thread_blas", "blas_limited"]
 
-SMALL_BLOCK = 2000
+SMALL_BLOCK = 4000
 LARGE_BLOCK_THREADS = 2
 _CONTROLLER = []
 
