@@ -1,29 +1,43 @@
-"""Exact-engine benchmark: qhl against dense full-space propagation, the eigen floor, and scale.
+"""Exact-engine benchmark: qhl against a general-purpose library, dense propagation and the eigh floor.
 
-Prints ratios measured side by side in one run (medians of repeats). Usage:
-    python benchmarks/bench_engine.py [--quick]
+Prints medians and ratios measured side by side in one run. Usage:
+    python benchmarks/bench_engine.py [--quick] [--n N] [--quspin-python PATH] [--scale] [--crossover]
 
-Baseline: the full-space dense approach, U(dt) = scipy.linalg.expm(-i H dt) and
-rho_{k+1} = U rho_k U^dag, one signal per evaluation, gradient by central differences
-(2P + 1 signals). It is timed over BASELINE_STEPS time steps and scaled linearly to the full
-grid (the cost per step is constant), which is stated in the output.
+Columns (one random proton cluster, offsets + all dipolar couplings free, 256 points):
+  * floor: the eigendecomposition alone (scipy eigh of every sector's H, H assembled beforehand);
+  * qhl signal (engine construction included), full gradient in double and single precision, and
+    the adjoint path against the full path at few (8) time points;
+  * peer (optional, --quspin-python or $QHL_QUSPIN_PYTHON: a Python that has QuSpin, a general-
+    purpose exact-diagonalisation library; not a qhl dependency): its signal (benchmarks/
+    quspin_peer.py; the first call, which compiles, is not timed) and its central-difference
+    gradient, 2P signals, measured as one signal times 2P (each costs the same);
+  * baseline (one BLAS thread): full-space dense U(dt) = expm(-i H dt), rho <- U rho U^dag, timed over BASELINE_STEPS
+    steps and scaled to the grid; gradient by central differences (2P + 1 signals).
+--scale adds n = 12 gradients (double, single) and n = 14 signals (qhl, peer) in fresh processes,
+with peak memory. --crossover prints BLAS one- against two-thread times of square products.
+BLAS: qhl picks its threads per block (qhl.base.blas); the peer runs with one BLAS/OpenMP thread.
 """
 
 import argparse
 import json
+import os
 import resource
+import statistics
 import subprocess
 import sys
+import tempfile
 import time
 
 import numpy as np
 import scipy.linalg as sla
 
 from qhl import ExactEngine, build_model
+from qhl.base.blas import blas_threads
 from qhl.spins.cluster import Cluster, Experiment, Spin
 from timing import median_time
 
 BASELINE_STEPS = 8
+HERE = os.path.dirname(os.path.abspath(__file__))
 
 
 def bench_cluster(n, points=256, seed=0):
@@ -53,17 +67,63 @@ def baseline_signal_time(model, ex, steps):
             out.append(np.trace(obs @ r))
         return out
 
-    return median_time(run, 1)
+    from threadpoolctl import threadpool_limits
+    with threadpool_limits(1, user_api="blas"):
+        return median_time(run, 1)
+
+
+def eigh_floor(model, ex, repeats):
+    """Median time of scipy eigh over all sectors, H assembled beforehand (nothing else timed)."""
+    eng = ExactEngine(model)
+    coeffs, _ = eng._coefficients(ex, None)
+    hs = [eng._sector_hamiltonian(k, coeffs) for k in range(len(eng.sectors))]
+
+    def run():
+        for h in hs:
+            with blas_threads(h.shape[0]):
+                sla.eigh(h, driver="evd")
+    return median_time(run, repeats)
+
+
+def signal_engine_built(model, ex, repeats):
+    """Median time of a signal on an engine built beforehand (its spectrum cache emptied)."""
+    eng = ExactEngine(model)
+
+    def run():
+        eng._cache.clear()
+        eng.signal(ex)
+    return median_time(run, repeats)
+
+
+def peer_signal(python, model, ex, repeats):
+    """(median seconds of one QuSpin signal, its signal) from benchmarks/quspin_peer.py."""
+    coeffs = 2 * np.pi * model.values_hz * model.scale_factors(ex)
+    idx = {lab: i for i, lab in enumerate(model.labels)}
+    terms = [(p.kind, [idx[s] for s in p.spins], float(c)) for p, c in zip(model.parameters, coeffs) if c != 0]
+    with tempfile.TemporaryDirectory() as tmp:
+        case = os.path.join(tmp, "case.json")
+        out = os.path.join(tmp, "signal.npy")
+        with open(case, "w") as f:
+            json.dump({"n": model.n_spins, "terms": terms, "times": list(map(float, ex.times_s)), "out": out}, f)
+        env = dict(os.environ, OMP_NUM_THREADS="1", OPENBLAS_NUM_THREADS="1", MKL_NUM_THREADS="1",
+                   NUMBA_NUM_THREADS="1")
+        env.pop("PYTHONPATH", None)
+        r = subprocess.run([python, os.path.join(HERE, "quspin_peer.py"), case, str(repeats + 1)],
+                           capture_output=True, text=True, env=env, cwd=tmp)
+        if r.returncode:
+            raise RuntimeError(r.stderr.strip().splitlines()[-1] if r.stderr.strip() else "peer failed")
+        laps = json.loads(r.stdout.strip().splitlines()[-1])["laps"][1:]   # first call compiles
+        return statistics.median(laps), np.load(out)
 
 
 def scale_case(n, kind):
     """Run in a fresh process: time and peak RSS of one n-spin signal or full gradient."""
     c = bench_cluster(n)
     t0 = time.perf_counter()
-    eng = ExactEngine(build_model(c))
+    eng = ExactEngine(build_model(c), precision="single" if kind == "gradient-single" else "double")
     ex = c.experiments[0]
-    if kind == "gradient":
-        eng.gradient(ex)
+    if kind.startswith("gradient"):
+        eng.gradient(ex, method="full")
     else:
         eng.signal(ex)
     dt = time.perf_counter() - t0
@@ -71,52 +131,106 @@ def scale_case(n, kind):
     print(json.dumps({"n": n, "kind": kind, "seconds": dt, "peak_mib": peak, "parameters": len(eng.model.free)}))
 
 
+def crossover():
+    from threadpoolctl import threadpool_limits
+    rng = np.random.default_rng(0)
+    print(f"BLAS crossover (square float64 products, median of repeats; load {os.getloadavg()[0]:.1f}):")
+    for d in (256, 512, 924, 1716, 2400):
+        a, b = rng.standard_normal((d, d)), rng.standard_normal((d, d))
+        res = {1: [], 2: []}
+        for th in (1, 2, 1, 2):
+            with threadpool_limits(th, user_api="blas"):
+                res[th].append(median_time(lambda: a @ b, max(3, int(3e9 / (2 * d**3)))))
+        t1, t2 = np.median(res[1]), np.median(res[2])
+        print(f"  d = {d:5d}: one thread {t1 * 1e3:8.1f} ms, two {t2 * 1e3:8.1f} ms, two/one {t2 / t1:5.2f}")
+
+
+def row(name, seconds, ref=None, note=""):
+    ratio = f"{seconds / ref:8.2f}" if ref else " " * 8
+    print(f"  {name:<52} {seconds:10.3f} s {ratio}  {note}")
+
+
 def main():
     ap = argparse.ArgumentParser()
-    ap.add_argument("--quick", action="store_true", help="n = 8 instead of 10, skip the scale runs")
+    ap.add_argument("--quick", action="store_true", help="n = 8, fewer repeats")
+    ap.add_argument("--n", type=int, default=None)
+    ap.add_argument("--quspin-python", default=os.environ.get("QHL_QUSPIN_PYTHON"))
+    ap.add_argument("--scale", action="store_true")
+    ap.add_argument("--crossover", action="store_true")
     ap.add_argument("--scale-case", nargs=2, metavar=("N", "KIND"), help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.scale_case:
         scale_case(int(args.scale_case[0]), args.scale_case[1])
         return
-    n = 8 if args.quick else 10
+    if args.crossover:
+        crossover()
+        return
+    n = args.n or (8 if args.quick else 10)
+    reps = 3
     c = bench_cluster(n)
     ex = c.experiments[0]
     model = build_model(c)
     P = len(model.free)
-    print(f"cluster: {n} protons, {ex.points} time points, {P} free parameters (offsets + dipolar)")
+    print(f"cluster: {n} protons, {ex.points} time points, {P} free parameters (offsets + dipolar); "
+          f"load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores; medians of {reps}")
+    t_eig = eigh_floor(model, ex, reps)
+    t_sig = median_time(lambda: ExactEngine(model).signal(ex), reps)
+    t_sig_built = signal_engine_built(model, ex, reps)
+    grads = {}
 
-    def fresh_gradient():
-        ExactEngine(model).gradient(ex)
+    def grad(prec, method="full", times=None):
+        def run():
+            grads[(prec, method, None if times is None else len(times))] = \
+                ExactEngine(model, precision=prec).gradient(ex, times=times, method=method)[1]
+        return run
 
-    def fresh_signal():
-        ExactEngine(model).signal(ex)
-
-    def eigen_floor():
-        eng = ExactEngine(model)
-        eng.spectrum(ex)
-
-    t_grad = median_time(fresh_gradient, 3)
-    t_sig = median_time(fresh_signal, 5)
-    t_eig = median_time(eigen_floor, 5)
-    t_base_steps = baseline_signal_time(model, ex, BASELINE_STEPS)
-    t_base_signal = t_base_steps * (ex.points - 1) / BASELINE_STEPS
-    t_base_grad = t_base_signal * (2 * P + 1)
-    print(f"baseline dense expm + central differences (measured over {BASELINE_STEPS} steps, scaled to "
-          f"{ex.points - 1} steps x {2 * P + 1} signals): {t_base_grad:9.1f} s")
-    print(f"qhl exact gradient (all {P} parameters, {ex.points} points, median of 3): {t_grad:9.3f} s")
-    print(f"  speed-up over baseline: {t_base_grad / t_grad:9.0f}x   (goal >= 100x)")
-    print(f"qhl signal only (median of 5): {t_sig:.4f} s;  eigendecomposition floor: {t_eig:.4f} s")
-    print(f"  signal / floor ratio: {t_sig / t_eig:.2f}   (goal <= 3)")
-    print(f"  baseline single signal / qhl signal: {t_base_signal / t_sig:.0f}x")
-    if args.quick:
+    t_gd = median_time(grad("double"), reps)
+    t_gs = median_time(grad("single"), reps)
+    few = ex.times_s[:: max(1, ex.points // 8)][:8]
+    t_full8 = median_time(grad("double", "full", few), reps)
+    t_adj8 = median_time(grad("double", "adjoint", few), reps)
+    gd, gs = grads[("double", "full", None)], grads[("single", "full", None)]
+    err_single = np.abs(gs - gd).max() / np.abs(gd).max()
+    err_adj = (np.abs(grads[("double", "adjoint", 8)] - grads[("double", "full", 8)]).max()
+               / np.abs(grads[("double", "full", 8)]).max())
+    t_base_signal = baseline_signal_time(model, ex, BASELINE_STEPS) * (ex.points - 1) / BASELINE_STEPS
+    peer = None
+    if args.quspin_python:
+        try:
+            t_peer, s_peer = peer_signal(args.quspin_python, model, ex, reps)
+            peer = (t_peer, np.abs(s_peer - ExactEngine(model).signal(ex)).max())
+        except (OSError, RuntimeError) as e:
+            print(f"  peer column skipped: {e}")
+    print(f"{'':2}{'what':<52} {'median':>12} {'ratio':>8}")
+    row("eigh floor (all sectors, H assembled beforehand)", t_eig, t_eig, "ratio to floor")
+    row("qhl signal (engine construction included)", t_sig, t_eig, "ratio to floor")
+    row("qhl signal (engine built beforehand)", t_sig_built, t_eig, "ratio to floor")
+    row(f"qhl full gradient, double ({P} parameters)", t_gd)
+    row("qhl full gradient, single", t_gs, t_gd, f"ratio to double; max error {err_single:.1e} of max |grad|")
+    row("qhl gradient at 8 points, full path", t_full8)
+    row("qhl gradient at 8 points, adjoint path", t_adj8, t_full8, f"ratio to full; difference {err_adj:.1e}")
+    row(f"dense expm baseline gradient ({2 * P + 1} signals, scaled)", t_base_signal * (2 * P + 1), t_gd,
+        "ratio to qhl double")
+    if peer:
+        t_peer, diff = peer
+        row("peer (QuSpin) signal", t_peer, t_sig, f"ratio to qhl signal; |S_peer - S_qhl| {diff:.1e}")
+        row(f"peer (QuSpin) central differences ({2 * P} signals, scaled)", 2 * P * t_peer, t_gd,
+            "ratio to qhl double")
+        row("  the same", 2 * P * t_peer, t_gs, "ratio to qhl single")
+    elif not args.quspin_python:
+        print("  peer column skipped: give --quspin-python (a Python with QuSpin installed)")
+    if not args.scale:
         return
-    for n_scale, kind in [(12, "gradient"), (14, "signal")]:
+    for n_scale, kind in [(12, "gradient"), (12, "gradient-single"), (14, "signal")]:
         r = subprocess.run([sys.executable, __file__, "--scale-case", str(n_scale), kind],
                            capture_output=True, text=True, check=True)
         d = json.loads(r.stdout.strip().splitlines()[-1])
-        print(f"scale: n = {d['n']} {d['kind']:<8} ({d['parameters']} parameters, 256 points): "
+        print(f"scale: n = {d['n']} {d['kind']:<16} ({d['parameters']} parameters, 256 points): "
               f"{d['seconds']:.1f} s, peak memory {d['peak_mib']:.0f} MiB")
+    if args.quspin_python:
+        c14 = bench_cluster(14)
+        t14, _ = peer_signal(args.quspin_python, build_model(c14), c14.experiments[0], 1)
+        print(f"scale: n = 14 peer (QuSpin) signal: {t14:.1f} s")
 
 
 if __name__ == "__main__":

@@ -242,16 +242,7 @@ class TypicalEngine:
         return t
 
     def _values(self, free_values_hz):
-        model = self.model
-        values = model.values_hz
-        if free_values_hz is not None:
-            fv = np.asarray(free_values_hz, float)
-            if fv.shape != (len(model.free),):
-                raise QhlInputError(f"expected {len(model.free)} free parameter values, got shape {fv.shape}",
-                                    key="values")
-            values = values.copy()
-            values[model.free_indices] = fv
-        return values
+        return self.model.all_values_hz(free_values_hz)
 
     def _random_vectors(self, block_index, d):
         rng = np.random.default_rng([self.seed, block_index, 7919])

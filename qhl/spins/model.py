@@ -109,6 +109,21 @@ class HamiltonianModel:
     def free_values_hz(self) -> np.ndarray:
         return self.values_hz[self.free_indices]
 
+    def all_values_hz(self, free_values_hz=None) -> np.ndarray:
+        """Every parameter value (Hz, parameter order), the free ones replaced by `free_values_hz`.
+
+        Raises:
+            QhlInputError: free_values_hz not of shape (number of free parameters,).
+        """
+        values = self.values_hz
+        if free_values_hz is not None:
+            fv = np.asarray(free_values_hz, float)
+            if fv.shape != (len(self.free),):
+                raise QhlInputError(f"expected {len(self.free)} free parameter values, got shape {fv.shape}",
+                                    key="values")
+            values[self.free_indices] = fv
+        return values
+
     def parameter(self, name: str) -> Parameter:
         for p in self.parameters:
             if p.name == name:
