@@ -532,9 +532,10 @@ class BudgetModel:
                 and self.model.n_spins <= signal_trotter.SIGNAL_MAX_SPINS:
             say("Trotter steps from the error of the signal and gradient (exact engine)")
             for p in signal_trotter.SIGNAL_ORDERS:
+                valid = min(float(ft_bound[p]["steps_trotter"]), float((empirical.get(p) or (np.inf,))[0] or np.inf))
                 signal_steps[p] = signal_trotter.signal_trotter_steps(
                     self.model, self.experiments[x], nt.engine, t, p, float(ft_bound["split"]["trotter"]),
-                    s.unit_hz)
+                    s.unit_hz, r_max=int(min(valid, 1 << 14)))
         tighter = {}
         for p in ORDERS:
             found = [v[0] for v in (empirical.get(p), signal_steps.get(p)) if v and v[0]]

@@ -33,14 +33,15 @@ ASSUMPTIONS = {
 
 
 def signal_trotter_steps(model, experiment, engine, time_s: float, order: int, target: float,
-                         unit_hz: float = 1e3, r_max: int = 1 << 14, time_limit_s: float = 30.0):
+                         unit_hz: float = 1e3, r_max: int = 1 << 14, time_limit_s: float = 5.0):
     """Smallest r whose Trotterised S(t) and dS/dh (per unit_hz) are within `target` (module docstring).
 
     Args:
         model: HamiltonianModel (its free parameters are differentiated).
         experiment: the Experiment (dipolar scale); engine: qhl.exact.engine.ExactEngine of `model`.
         time_s: t (s); order: 1 or 2; target: allowed error (units of S and of dS/dh per unit_hz).
-        r_max, time_limit_s: give up (None) beyond these.
+        r_max, time_limit_s: give up (None) beyond these (a budget passes the valid operator-norm count
+            as r_max: a larger r is never needed).
 
     Returns:
         (r, error at r), or (None, None) when the cluster is too large, the order unsupported or a
@@ -61,9 +62,9 @@ def signal_trotter_steps(model, experiment, engine, time_s: float, order: int, t
 
     lo, hi = 0, 1
     while err(hi) > target:
-        lo, hi = hi, 2 * hi
-        if hi > r_max or _time.perf_counter() - start > time_limit_s:
+        if hi >= r_max or _time.perf_counter() - start > time_limit_s:
             return None, None
+        lo, hi = hi, min(2 * hi, r_max)
     while hi - lo > 1:
         mid = (lo + hi) // 2
         if err(mid) <= target:
