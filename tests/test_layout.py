@@ -144,3 +144,16 @@ def test_the_check_catches_what_it_should(tmp_path, source, expected):
         (root / rel).write_text(text)
     problems = layout_violations(root)
     assert any(expected in p for p in problems), problems
+
+
+def test_developers_module_map_names_every_module():
+    # DEVELOPERS.md's module map must match the tree: every module named (dotted, or `cmd_x` for commands)
+    text = (PACKAGE.parent / "DEVELOPERS.md").read_text()
+    missing = []
+    for path in sorted(PACKAGE.rglob("*.py")):
+        if path.name in ("__init__.py", "__main__.py"):
+            continue
+        dotted = _module_name(path, PACKAGE)[0]
+        if dotted not in text and f"`{path.stem}`" not in text:
+            missing.append(dotted)
+    assert missing == []
