@@ -10,7 +10,8 @@ reference, qhl.circuits.trotter_reference) are within `target` of the exact engi
 (derivatives per unit_hz, the units of eps). Search: r doubles from 1 until err(r) <= target, then
 bisection to the exact integer (common practice: the error is taken to fall with r; it is checked
 at the returned r and at r - 1). Orders 1 and 2 only (the reference builds those); clusters up to
-SIGNAL_MAX_SPINS spins (dense 2^n reference), within a time limit.
+SIGNAL_MAX_SPINS spins (dense 2^n reference), within a time limit (each evaluation costs ~ r: the
+search stops before a doubling whose predicted cost would pass it).
 """
 
 import time as _time
@@ -53,18 +54,25 @@ def signal_trotter_steps(model, experiment, engine, time_s: float, order: int, t
     s_exact, g_exact = complex(s_exact[0]), np.asarray(g_exact)[:, 0]
     start = _time.perf_counter()
     cache = {}
+    per_step = [0.0]                      # seconds per Trotter step of one evaluation (cost ~ r)
 
     def err(r):
         if r not in cache:
+            t0 = _time.perf_counter()
             s, g = trotter_gradient_exact(model, experiment, time_s, r, order)
+            per_step[0] = max(per_step[0], (_time.perf_counter() - t0) / r)
             cache[r] = max(abs(s - s_exact), float(np.max(np.abs(g - g_exact))) * unit_hz)
         return cache[r]
 
+    def affordable(r):                    # the doubling and the bisection below it, predicted
+        return _time.perf_counter() - start + 2.5 * r * per_step[0] <= time_limit_s
+
     lo, hi = 0, 1
     while err(hi) > target:
-        if hi >= r_max or _time.perf_counter() - start > time_limit_s:
+        nxt = min(2 * hi, r_max)
+        if hi >= r_max or not affordable(nxt):
             return None, None
-        lo, hi = hi, min(2 * hi, r_max)
+        lo, hi = hi, nxt
     while hi - lo > 1:
         mid = (lo + hi) // 2
         if err(mid) <= target:
