@@ -381,7 +381,8 @@ class BudgetModel:
         self.estimator = estimator if self.engine is None else None
         means, method = (self.engine, "exact") if self.engine is not None else (self.estimator, "estimated")
         if means is None:
-            self.notes.append("estimated tier not used (the pure-state engine, up to about 24 spins, is opt-in: --typical, estimator=): bounds are used")
+            self.notes.append("estimated tier not used (the pure-state engine, up to about 24 spins, is opt-in: "
+                              "--typical, estimator=): bounds are used")
         self.tiers = {"exact": "used" if self.engine is not None else "skipped",
                       "estimated": "used" if self.estimator is not None else "not available",
                       "bound": "used"}
