@@ -233,29 +233,24 @@ def _partners(terms):
     return np.asarray(sup @ deg).ravel(), float(deg.max(initial=0))
 
 
+def _commutator_group_norms(terms, inner, n_groups, keep):
+    """Per-group 1-norms of sum [terms_j, inner_k] over anticommuting pairs with keep(k, j)."""
+    pieces = [[], [], [], []]
+    for k, j in _anticommuting_pairs(inner, terms, None, keep):
+        xc, zc, c = _commutator_terms(terms, j, inner, k)
+        for lst, v in zip(pieces, (inner.group[k], xc, zc, c)):
+            lst.append(v)
+    if not pieces[3]:
+        return np.zeros(n_groups)
+    g, _, _, c = _combine(*(np.concatenate(p) for p in pieces))
+    return _per_group_norm(n_groups, g, c)
+
+
 def _exact_order2(terms, inner, n_groups):
-    outer = np.zeros(n_groups)
     if len(inner) == 0:
         return 0.0
-    later = lambda k, j: terms.group[j] > inner.group[k]      # noqa: E731
-    pieces = [[], [], [], []]
-    for k, j in _anticommuting_pairs(inner, terms, None, later):
-        xc, zc, c = _commutator_terms(terms, j, inner, k)
-        for lst, v in zip(pieces, (inner.group[k], xc, zc, c)):
-            lst.append(v)
-    if pieces[3]:
-        g, _, _, c = _combine(*(np.concatenate(p) for p in pieces))
-        outer = _per_group_norm(n_groups, g, c)
-    own = np.zeros(n_groups)
-    same = lambda k, j: terms.group[j] == inner.group[k]      # noqa: E731
-    pieces = [[], [], [], []]
-    for k, j in _anticommuting_pairs(inner, terms, None, same):
-        xc, zc, c = _commutator_terms(terms, j, inner, k)
-        for lst, v in zip(pieces, (inner.group[k], xc, zc, c)):
-            lst.append(v)
-    if pieces[3]:
-        g, _, _, c = _combine(*(np.concatenate(p) for p in pieces))
-        own = _per_group_norm(n_groups, g, c)
+    outer = _commutator_group_norms(terms, inner, n_groups, lambda k, j: terms.group[j] > inner.group[k])
+    own = _commutator_group_norms(terms, inner, n_groups, lambda k, j: terms.group[j] == inner.group[k])
     return float(np.sum(outer) / 12 + np.sum(own) / 24)
 
 
