@@ -2,7 +2,11 @@
 
 The bound tier's numbers are functions of the Pauli coefficients only; the checks here are that
 they do not depend on whether the engine ran (same cluster, both tiers), that the engine is never
-built when it does not fit, and that large clusters give complete budgets quickly.
+built when it does not fit, and that large clusters give complete budgets quickly (common
+practice: a bound must not change with the method used beside it). The bounds themselves are
+checked against their sources elsewhere: the Hadamard-test range (Banchi and Crooks, Quantum 5,
+386 (2021)) in test_costing_shots.py, the commutator sums (Childs, Su, Tran, Wiebe, Zhu, PRX 11,
+011020 (2021)) against qiskit's Pauli algebra in test_pauli_commutators.py.
 """
 
 import json

@@ -1,5 +1,6 @@
 """BLAS threads per block (qhl.base.blas): the limit is really applied inside the block and
-restored after it, read back through threadpoolctl (a general-purpose library)."""
+restored after it, read back through threadpoolctl (a general-purpose library; the reference here
+is what threadpoolctl reports, common practice)."""
 
 import os
 

@@ -2,6 +2,8 @@
 
 Each case once ended in a traceback (IndexError from the structure library on an empty mmCIF,
 UnicodeDecodeError, _csv.Error on a field over 131072 characters) or a warning before the error.
+The property is the project's bad-input convention (one line naming file, key and expectation;
+common practice); UTF-8 validity as Python's codec decides it (RFC 3629, Yergeau 2003).
 """
 
 import warnings
