@@ -1,4 +1,4 @@
-"""Trotter steps from the error of the signal and its gradient (qhl.costing.signal_trotter).
+"""Trotter steps from the error of the signal and its gradient (qhl.circuits.signal_trotter).
 
 Independent references (tests/reference_dense.py and tests/reference_trotter.py import nothing of
 qhl): the exact S and dS/dh from dense expm with central differences, and the Trotterised S and
@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from qhl import ExactEngine
-from qhl.costing.signal_trotter import signal_trotter_steps
+from qhl.circuits.signal_trotter import signal_trotter_steps
 
 from made_up_clusters import small_model
 from reference_dense import central_difference, dense_signal

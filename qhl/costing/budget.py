@@ -39,7 +39,8 @@ from ..base.memory import available_memory_bytes, require_memory
 from ..circuits.pauli_commutators import pauli_arrays, quadrature_norms
 from ..spins.model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
-from . import coherent_input, family_variance, learning_run, signal_trotter, trotter_order4
+from . import coherent_input, family_variance, learning_run, trotter_order4
+from ..circuits import signal_trotter
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
 from .near_term import near_term_model
 from .trotter_cost import ORDERS, empirical_flops, empirical_trotter_steps, trotter_model

@@ -18,7 +18,7 @@ import time as _time
 
 import numpy as np
 
-from ..circuits.trotter_reference import trotter_gradient_exact
+from .trotter_reference import trotter_gradient_exact
 
 __all__ = ["signal_trotter_steps", "SIGNAL_MAX_SPINS", "SIGNAL_ORDERS", "ASSUMPTIONS"]
 
