@@ -23,8 +23,8 @@ import numpy as np
 from ..base.blas import single_thread_blas
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
-from ..circuits.circuit_family import PARTS, stratified_counts
-from .variance import MAX_QUBITS, input_moment_operator, row_unitaries
+from ..circuits.circuit_family import stratified_counts
+from .variance import check_exact_family, input_moment_operator, row_unitaries
 
 __all__ = ["RowMoments", "row_moments", "stratified_shot_variance"]
 
@@ -58,12 +58,7 @@ def row_moments(family, part: str = "re") -> RowMoments:
     Raises:
         QhlInputError: unknown part, more than variance.MAX_QUBITS qubits.
     """
-    if part not in PARTS:
-        raise QhlInputError(f"unknown part '{part}': expected re or im", key="part")
-    nq = family.circuit.num_qubits
-    if nq > MAX_QUBITS:
-        raise QhlInputError(f"exact stratified variance needs at most {MAX_QUBITS} qubits, the family has {nq}",
-                            key="qubits")
+    nq = check_exact_family(family, part, "exact stratified variance")
     require_memory("exact stratified variance", 16.0 * 4 ** nq * 4)
     n_anc = nq - family.inputs.n_qubits
     start = np.zeros((2 ** n_anc, 2 ** n_anc))

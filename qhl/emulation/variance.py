@@ -80,6 +80,16 @@ class FamilyMoments:
         return self.variance / float(eps) ** 2
 
 
+def check_exact_family(family, part: str, what: str) -> int:
+    """The family's qubit count, after refusing an unknown part or more than MAX_QUBITS qubits."""
+    if part not in PARTS:
+        raise QhlInputError(f"unknown part '{part}': expected re or im", key="part")
+    nq = family.circuit.num_qubits
+    if nq > MAX_QUBITS:
+        raise QhlInputError(f"{what} needs at most {MAX_QUBITS} qubits, the family has {nq}", key="qubits")
+    return nq
+
+
 def input_probability(ensemble) -> float:
     """p_k of each enumerated input: 2^-n ('product') or 1 / (N_obs 2^n) ('marked').
 
@@ -121,12 +131,7 @@ def family_moments(family, part: str = "re") -> FamilyMoments:
         QhlInputError: unknown part, more than MAX_QUBITS qubits.
         MemoryBudgetError: dense unitaries that would not fit.
     """
-    if part not in PARTS:
-        raise QhlInputError(f"unknown part '{part}': expected re or im", key="part")
-    nq = family.circuit.num_qubits
-    if nq > MAX_QUBITS:
-        raise QhlInputError(f"exact estimator variance needs at most {MAX_QUBITS} qubits, the family has {nq}",
-                            key="qubits")
+    nq = check_exact_family(family, part, "exact estimator variance")
     # rho moments (4), their product with a row unitary and that product times U^* (2), and the
     # cached prefix unitaries and working matrices of row_unitaries (row_unitaries_matrices).
     require_memory("exact estimator variance", 16.0 * 4 ** nq * (6 + row_unitaries_matrices(family)))
