@@ -183,21 +183,10 @@ def test_calibration_stratified_fast_path(small):
     """95% intervals of the stratified fast path cover the Trotterised value in 93-97% of 800
     intervals (200 seeds x 2 parameters x Re/Im, 400 shots). Binomial(800, 0.95): sd 0.77%, so
     the band is +-2.6 sd (false failure ~1%)."""
-    model, ex, names = small
-    picks = [names[0], names[3]]
-    _, g = trotter_gradient_exact(model, ex, T, R, 1, picks)
-    runners = [FamilyRunner(gradient_circuit(model, ex, nm, T, R), method="fast", sampling="stratified")
-               for nm in picks]
-    z = []
-    for seed in range(200):
-        for k, r in enumerate(runners):
-            e = estimate_family(r.family, 400, seed, runner=r)
-            z += [(e.re.value - g[k].real) / e.re.stderr, (e.im.value - g[k].imag) / e.im.stderr]
-    z = np.array(z)
-    cover = np.mean(np.abs(z) < 1.959964)
-    print(f"\n  coverage {cover:.4f}, mean z {z.mean():+.4f}")
+    from test_emulator import calibration
+    cover, mean_z = calibration(small, method="fast", sampling="stratified")
     assert 0.93 <= cover <= 0.97
-    assert abs(z.mean()) < 0.15
+    assert abs(mean_z) < 0.15
 
 
 # ---------------------------------------------------------------- paths and options
