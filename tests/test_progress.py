@@ -60,3 +60,21 @@ def test_learn_prints_time_per_iteration_and_time_left(capsys):
     assert main(["learn", "--free", "offset:*", "--max-iter", "5"]) == 0
     err = capsys.readouterr().err
     assert "per iteration" in err and "left (--max-iter 5)" in err
+
+
+def test_fraction_progress_is_silent_for_short_work_and_then_shows_time_left():
+    # time left = elapsed / done * (total - done) (common practice), on a clock the test drives
+    import io
+    from qhl.base.progress import FractionProgress
+    now = [0.0]
+    out = io.StringIO()
+    bar = FractionProgress("typical engine", after=2.0, stream=out, clock=lambda: now[0])
+    bar(0.1)
+    assert out.getvalue() == ""                      # under 2 s: nothing
+    now[0] = 3.0
+    bar(0.5)
+    assert "500/1000" in out.getvalue() and "~3 s left" in out.getvalue()
+    now[0] = 6.0
+    bar(1.0)
+    bar.close()
+    assert out.getvalue().rstrip().endswith("done")

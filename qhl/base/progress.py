@@ -9,7 +9,7 @@ written at most every `min_interval` seconds, and always for the last unit.
 import sys
 import time
 
-__all__ = ["Progress", "format_seconds", "time_left"]
+__all__ = ["Progress", "FractionProgress", "format_seconds", "time_left"]
 
 
 def time_left(elapsed: float, done: float, total: float) -> float:
@@ -83,3 +83,26 @@ class Progress:
             self.stream.write("\n")
             self.stream.flush()
             self._open = False
+
+
+class FractionProgress:
+    """A Progress fed with fractions done (callable(fraction)), shown only once the work has taken
+    longer than `after` seconds (short runs print nothing).
+
+    Args:
+        label: what is being done; after: seconds before the first line; other arguments as Progress.
+    """
+
+    UNITS = 1000
+
+    def __init__(self, label: str, after: float = 2.0, stream=None, clock=time.monotonic):
+        self.bar = Progress(label, self.UNITS, stream=stream, clock=clock)
+        self.after = float(after)
+
+    def __call__(self, fraction: float) -> None:
+        shown = self.bar._last is not None
+        if self.bar.clock() - self.bar.start > self.after or (fraction >= 1 and shown):
+            self.bar.update(int(round(min(max(fraction, 0.0), 1.0) * self.UNITS)))
+
+    def close(self) -> None:
+        self.bar.close()

@@ -25,9 +25,10 @@ def run(args):
     from ..exact.engine_choice import make_engine
     from ..learning.fisher_report import describe_combination, fisher_report
     from ..spins.model import build_model
-    from .cmd_signal import StderrProgress, announce_typical
+    from ..base.progress import FractionProgress
+    from .cmd_signal import announce_typical
     cluster = cluster_from_args(args)
-    progress = StderrProgress("typical engine")
+    progress = FractionProgress("typical engine")
     engine, method, note = make_engine(build_model(cluster, free=args.free), args.method,
                                        replicas=args.replicas, seed=args.seed, progress=progress)
     if method == "typical":

@@ -1,10 +1,10 @@
 """`qhl signal`: signals of a cluster's experiments (and gradients), exact or estimated."""
 
 import sys
-import time
 
 import numpy as np
 
+from ..base.progress import FractionProgress
 from .common import add_cluster_argument, check_output_path, cluster_from_args, integer_at_least, print_json
 
 
@@ -16,29 +16,6 @@ def add_method_arguments(p):
     p.add_argument("--replicas", type=integer_at_least(2), default=4, metavar="R",
                    help="random states per sector pair for --method typical (default 4)")
     p.add_argument("--seed", type=int, default=0, help="seed of the random states (default 0)")
-
-
-class StderrProgress:
-    """Progress on stderr, shown once a run has taken more than `after` seconds."""
-
-    def __init__(self, what, after=2.0, stream=None):
-        self.what, self.after = what, after
-        self.stream = stream or sys.stderr
-        self.t0 = time.monotonic()
-        self.last = 0.0
-        self.shown = False
-
-    def __call__(self, fraction):
-        now = time.monotonic()
-        if now - self.t0 > self.after and (now - self.last > 0.5 or fraction >= 1):
-            self.shown = True
-            self.last = now
-            self.stream.write(f"\r{self.what}: {100 * fraction:5.1f} %")
-            self.stream.flush()
-
-    def close(self):
-        if self.shown:
-            self.stream.write("\n")
 
 
 def register(sub):
@@ -72,7 +49,7 @@ def run(args):
     cluster = cluster_from_args(args)
     if args.plot:
         check_output_path(args.plot, "--plot")
-    progress = StderrProgress("typical engine")
+    progress = FractionProgress("typical engine")
     engine, method, note = make_engine(build_model(cluster, free=args.free), args.method,
                                        replicas=args.replicas, seed=args.seed, progress=progress)
     if method == "typical":
