@@ -71,7 +71,7 @@ def _report_path(text):
     try:
         check_output_path(text, "--report")
     except QhlInputError as e:
-        raise argparse.ArgumentTypeError(" ".join(str(e).split())) from None
+        raise argparse.ArgumentTypeError(" ".join(str(e).split()).removeprefix("--report: ")) from None
     return text
 
 
