@@ -257,3 +257,18 @@ def test_collect_assumptions_walks_nested_keys():
         "assumptions.a": "x", "classical.assumptions[0]": "y", "classical.assumptions[1]": "z",
         "bias_rule": "r", "rows[0].power_rule": "q"}
     assert set(COMMON_ASSUMPTIONS) <= set(got)
+
+
+def test_long_tables_are_cut_but_the_json_keeps_everything():
+    from qhl.report import render_report
+    from qhl.report.report import MAX_CELLS, MAX_ROWS
+
+    data = {"cluster": "c", "rows": [{"i": k} for k in range(MAX_ROWS + 7)],
+            "grid": {"t": [[0.5] * 100] * (MAX_CELLS // 100 + 1)}}
+    page = _Page()
+    page.feed(render_report("check", data))
+    visible = " ".join(page.text)
+    assert f"the first {MAX_ROWS} of {MAX_ROWS + 7} rows" in visible
+    assert f"{MAX_CELLS // 100 + 1} x 100 values" in visible
+    assert page.tags.count("tr") < MAX_ROWS + 50
+    assert json.loads("".join(page.json_text)) == data

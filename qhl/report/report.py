@@ -33,6 +33,11 @@ REPORT_COMMANDS = ("budget", "learn", "check", "scan")
 # distributions whose versions go into every report (qhl first)
 VERSIONED = ("qhl", "numpy", "scipy", "qiskit", "qiskit-aer", "matplotlib", "jinja2")
 
+# tables longer than this are cut in the page (the JSON data section holds everything): a budget
+# sweep of 1000 x 1000 points would otherwise be millions of cells
+MAX_ROWS = 500
+MAX_CELLS = 2500
+
 COMMON_ASSUMPTIONS = {
     "units": "parameters in Hz, times in seconds; H = 2 pi sum_n s_n h_n G_n in rad/s with spin operators "
              "I = sigma/2, qubit i = spin i (qhl's convention, DEVELOPERS.md)",
@@ -195,6 +200,7 @@ def _environment():
                       autoescape=select_autoescape(["html", "j2"], default_for_string=True, default=True),
                       trim_blocks=True, lstrip_blocks=True)
     env.filters["plain"] = _format
+    env.globals.update(max_rows=MAX_ROWS, max_cells=MAX_CELLS)
     env.tests["mapping"] = lambda v: isinstance(v, dict)
     env.tests["rowlist"] = lambda v: isinstance(v, list) and bool(v) and all(isinstance(x, dict) for x in v)
     env.tests["scalar"] = _scalar
