@@ -9,6 +9,7 @@ Stages, in the order data flows (each imports only the ones before it; tests/tes
     qhl.costing    near-term and fault-tolerant budgets
     qhl.learning   fits, Fisher reports, measured data
     qhl.survey     cluster cutting, diagnostics, Dask scans
+    qhl.report     one self-contained HTML report of a command run (--report)
     qhl.cli        the `qhl` command
 """
 

@@ -1,7 +1,7 @@
 """The package layout: stages import only the stages below them, and no module imports in a circle.
 
 The data flow (DEVELOPERS.md): spins -> exact | circuits -> emulation -> costing / learning ->
-survey -> cli. A stage may import its own modules and any stage of lower rank, never a higher
+survey -> report -> cli. A stage may import its own modules and any stage of lower rank, never a higher
 one. The check parses every module's imports with Python's own `ast` (nested, function-level
 imports included for the direction rule; module-level ones for circles). common practice.
 """
@@ -21,8 +21,9 @@ STAGE_RANK = {
     "costing": 5,     # budgets
     "learning": 6,    # fits, Fisher reports, measured data
     "survey": 7,      # structure cutting, diagnostics, scans
-    "cli": 8,         # the command line
-    "": 9,            # qhl/__init__.py, qhl/__main__.py
+    "report": 8,      # self-contained HTML reports of command runs
+    "cli": 9,         # the command line
+    "": 10,           # qhl/__init__.py, qhl/__main__.py
 }
 
 PACKAGE = Path(__file__).resolve().parents[1] / "qhl"

@@ -45,6 +45,7 @@ def main(argv=None) -> int:
     try:
         parser = build_parser()          # imports every command module (numpy, ...): Ctrl-C may land here
         args = parser.parse_args(argv)
+        args.argv = list(sys.argv[1:] if argv is None else argv)   # the command line, for --report
         with warnings.catch_warnings(record=True) as held:
             try:
                 rc = args.func(args)

@@ -11,7 +11,7 @@ from ..costing.synthesis import SYNTHESIS_METHODS
 from ..base.errors import QhlInputError
 from ..spins.parameter_names import DEFAULT_FREE
 from .common import (CYCLE_TIME, FAILURE, ITERATIONS, PRECISION, PROBABILITY, SWEEP, TIME_S, add_cluster_argument,
-                     check_output_path, cluster_from_args, print_json)
+                     add_report_argument, check_output_path, cluster_from_args, print_json, report_if_asked)
 def register(sub):
     p = sub.add_parser("budget", help="near-term and fault-tolerant budgets (model-based) for learning a cluster")
     add_cluster_argument(p)
@@ -42,6 +42,7 @@ def register(sub):
     p.add_argument("--clifford-t", metavar="FILE.qasm",
                    help="write one Trotter step, every rotation synthesised to Clifford+T, as OpenQASM 3")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    add_report_argument(p)
     p.set_defaults(func=run)
 
 
@@ -124,12 +125,13 @@ def run(args):
             from ..costing.budget_plots import plot_budget_sweep
             plot_budget_sweep(sweep, args.plot, int(np.argmin(abs(np.log(times / t)))),
                               int(np.argmin(abs(np.log(precs / args.precision)))))
+    out = budget.to_json()
+    if sweep is not None:
+        out["sweep"] = sweep.to_json()
+    if args.plot:
+        out["plot"] = args.plot
+    report_if_asked(args, "budget", out, cluster.name, sweep=sweep)
     if args.json:
-        out = budget.to_json()
-        if sweep is not None:
-            out["sweep"] = sweep.to_json()
-        if args.plot:
-            out["plot"] = args.plot
         print_json(out)
         return 0
     _print_budget(budget, bm)

@@ -2,7 +2,8 @@
 
 import sys
 
-from .common import add_cluster_argument, check_output_path, cluster_from_args, print_json
+from .common import add_cluster_argument, add_report_argument, check_output_path, cluster_from_args, print_json, \
+    report_if_asked
 
 
 from .common import PROBABILITY, SEED, SHOTS, STEPS, TIME_S  # range-checked option types
@@ -21,6 +22,7 @@ def register(sub):
     p.add_argument("--order", type=int, choices=(1, 2), default=1, help="product-formula order (default 1)")
     p.add_argument("--plot", metavar="FILE.png", help="draw emulated vs exact with error bars")
     p.add_argument("--json", action="store_true", help="print one JSON object (rows, status, verdict, totals)")
+    add_report_argument(p)
     p.set_defaults(func=run)
 
 
@@ -93,6 +95,9 @@ def run(args):
     if args.plot and report.rows:
         _plot(report, args.plot, f"qhl check {cluster.name}: t = {report.time_s:g} s, r = {report.steps}, "
                                  f"{args.shots} shots per part; {report.status.upper()}")
+    report_if_asked(args, "check", report.to_json(), cluster.name, figures=[(
+        "emulated derivatives (error bars: one standard error) against the exact and Trotterised values",
+        lambda: check_figure(report, f"qhl check {cluster.name}: {report.status.upper()}"))] if report.rows else [])
     for w in report.warnings():
         print(f"qhl: warning: {w}", file=sys.stderr)
     if args.json:

@@ -5,8 +5,8 @@ import sys
 import numpy as np
 
 from ..learning.methods import METHODS
-from .common import (ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET, add_cluster_argument, check_output_path,
-                     cluster_from_args, print_json)
+from .common import (ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET, add_cluster_argument, add_report_argument,
+                     check_output_path, cluster_from_args, print_json, report_if_asked)
 
 
 def register(sub):
@@ -32,6 +32,7 @@ def register(sub):
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
     p.add_argument("--plot", metavar="FILE.png", help="write data vs fit, residuals and convergence")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    add_report_argument(p)
     p.set_defaults(func=run)
 
 
@@ -78,6 +79,7 @@ def run(args):
         from ..learning.fit_plots import plot_fit
         plot_fit(report, args.plot)
     fit = report.fit
+    report_if_asked(args, "learn", report.to_json(), cluster.name, fit=report)
     if report.model.hidden:
         print(f"qhl: note: left out of the default free set (the signal cannot see them): "
               f"{', '.join(report.model.hidden)}", file=sys.stderr)

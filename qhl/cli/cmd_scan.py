@@ -1,7 +1,7 @@
 """`qhl scan`: learnability and ergodicity diagnostics over clusters x dipolar scales, on Dask."""
 
 from ..survey.scan_settings import ScanSettings
-from .common import NOISE, POINTS, SCALES, TIMEOUT, TIME_S, WORKERS, print_json
+from .common import NOISE, POINTS, SCALES, TIMEOUT, TIME_S, WORKERS, add_report_argument, print_json, report_if_asked
 
 
 def register(sub):
@@ -24,6 +24,7 @@ def register(sub):
     p.add_argument("--timeout", type=TIMEOUT, default=10.0, metavar="SECONDS",
                    help="how long to wait for --scheduler (default 10 s)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    add_report_argument(p)
     p.set_defaults(func=run)
 
 
@@ -59,6 +60,7 @@ def run(args):
     report = {"results": summary.path, "scan_id": summary.scan_id, "tasks": summary.total,
               "skipped": summary.skipped, "computed": summary.computed, "seconds": summary.seconds,
               "workers": summary.workers, "plots": plots}
+    report_if_asked(args, "scan", report, ", ".join(args.clusters), scan_results=args.out)
     if args.json:
         print_json(report)
         return 0

@@ -15,7 +15,8 @@ __all__ = ["add_cluster_argument", "cluster_from_args", "print_json", "check_out
            "positive_float", "positive_int", "integer_at_least", "number_in", "range_text", "SEED", "SHOTS",
            "STEPS", "ITERATIONS", "TIME_S", "PRECISION", "NOISE", "PROBABILITY", "FIELD_T", "POINTS", "SWEEP",
            "CYCLE_TIME", "FAILURE", "TROTTER_EPS", "CLUSTER_SIZE", "CENTRES", "RADIUS", "SHIFT_SPREAD",
-           "START_OFFSET", "SCALES", "WORKERS", "TIMEOUT", "MAX_STEPS", "check_steps"]
+           "START_OFFSET", "SCALES", "WORKERS", "TIMEOUT", "MAX_STEPS", "check_steps", "add_report_argument",
+           "report_if_asked"]
 
 
 def add_cluster_argument(parser):
@@ -62,6 +63,38 @@ def check_output_path(path, option):
     except OSError as e:
         raise QhlInputError(f"cannot write '{path}': {e.strerror}", key=option) from None
     return p
+
+
+def _report_path(text):
+    """An argparse type: an HTML file whose folder exists and can be written (checked before the run)."""
+    import argparse
+    try:
+        check_output_path(text, "--report")
+    except QhlInputError as e:
+        raise argparse.ArgumentTypeError(" ".join(str(e).split()).removeprefix("--report: ")) from None
+    return text
+
+
+def add_report_argument(parser):
+    """`--report FILE.html`: one self-contained HTML report of the run (qhl.report)."""
+    parser.add_argument("--report", type=_report_path, metavar="FILE.html",
+                        help="also write one self-contained HTML report: tables, plots, assumptions with "
+                             "sources, command line, versions and the --json data")
+
+
+def report_if_asked(args, command, data, subject=None, **plots):
+    """With --report: write the report of `data` (the dictionary --json prints) and name the file on stderr.
+
+    `plots`: result objects the command already holds, passed to qhl.report.write_report.
+    """
+    if not getattr(args, "report", None):
+        return None
+    from ..report import write_report
+    argv = getattr(args, "argv", None)
+    path = write_report(args.report, command, _plain(data), argv=sys.argv[1:] if argv is None else argv,
+                        subject=subject, **plots)
+    print(f"qhl: wrote the report {path}", file=sys.stderr)
+    return path
 
 
 def number_in(low=None, high=None, *, low_open=False, high_open=False, integer=False, name=None):
