@@ -13,8 +13,10 @@ def register(sub):
     p = sub.add_parser("learn", help="fit Hamiltonian parameters to signals, with Cramer-Rao error bars")
     add_cluster_argument(p)
     src = p.add_mutually_exclusive_group()
-    src.add_argument("--data", metavar="FILE.csv",
-                     help="measured signals: columns experiment,time_s,real,imag[,sigma]")
+    src.add_argument("--data", metavar="PATH",
+                     help="measured signals: a CSV (columns experiment,time_s,real,imag[,sigma]), a spectrometer "
+                          "FID directory (acqus + fid, or procpar + fid), a JCAMP-DX file, or a directory of "
+                          "them (matched to the experiments by name or order)")
     src.add_argument("--synthetic", action="store_true",
                      help="fit synthetic data from the cluster's own values (the default)")
     p.add_argument("--noise", type=NOISE, metavar="SIGMA",
@@ -30,6 +32,9 @@ def register(sub):
     p.add_argument("--max-iter", type=ITERATIONS, default=200, metavar="N", help="iteration limit")
     p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
+    p.add_argument("--nuisance", metavar="LIST", default=None,
+                   help="also fit, comma-separated: scale, phase (per experiment), decay (T2), gauss (Gaussian "
+                        "envelope), deadtime, or all (default none)")
     p.add_argument("--plot", metavar="FILE.png", help="write data vs fit, residuals and convergence")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     p.set_defaults(func=run)
@@ -73,7 +78,7 @@ def run(args):
     report = learn(cluster, free=args.free, data_path=args.data, sigma=args.noise, seed=args.seed,
                    start_offset=args.start_offset, method=args.method, gradients=args.gradients,
                    shots=args.shots, max_iter=args.max_iter, progress=None if args.json else bars.iteration,
-                   evaluation_progress=None if args.json else bars.evaluation)
+                   evaluation_progress=None if args.json else bars.evaluation, nuisance=args.nuisance)
     if args.plot and not report.fit.diverged:
         from ..learning.fit_plots import plot_fit
         plot_fit(report, args.plot)
@@ -110,12 +115,14 @@ def run(args):
     truth = report.true_hz
     head = f"{'parameter':<20}{'fitted (Hz)':>14}{'stderr (Hz)':>13}"
     print(head + (f"{'true (Hz)':>14}{'error/stderr':>13}" if truth is not None else ""))
-    for k, (n, v, e) in enumerate(zip(fit.names, fit.values_hz, fit.stderr_hz)):
+    P = report.n_hamiltonian
+    for k, (n, v, e) in enumerate(zip(fit.names[:P], fit.values_hz[:P], fit.stderr_hz[:P])):
         line = f"{n:<20}{v:>14.3f}{e:>13.4g}"
         if truth is not None:
             z = (v - truth[k]) / e if np.isfinite(e) and e > 0 else float("nan")
             line += f"{truth[k]:>14.3f}{z:>13.2f}"
         print(line)
+    _print_nuisance(report.nuisance)
     if truth is not None:
         print(f"relative error ||h_fit - h_true||/||h_true|| = {report.relative_error:.3e} "
               f"(Cramer-Rao-limited: {report.crb_relative_error:.3e})")
@@ -124,3 +131,14 @@ def run(args):
     if args.plot:
         print(f"wrote {args.plot}")
     return 0
+
+
+def _print_nuisance(rows):
+    """Nuisance parameters with their Cramer-Rao bounds (qhl.learning.nuisance.nuisance_table)."""
+    if not rows:
+        return
+    print(f"{'nuisance':<20}{'fitted':>14}{'stderr':>13}  unit    physical")
+    for r in rows:
+        ph = r.get("physical")
+        extra = f"  {ph['name']} = {ph['value']:.4g} +- {ph['stderr']:.2g} {ph['unit']}" if ph else ""
+        print(f"{r['name']:<20}{r['value']:>14.5g}{r['stderr']:>13.4g}  {r['unit']:<6}{extra}")
