@@ -64,6 +64,7 @@ MAX_TEXT_BYTES = 256 << 20       # JCAMP-DX text
 # A stored value outside this magnitude range (or NaN) means the bytes were read in the wrong
 # order or type: byte-swapped float64 values land at random exponents (common practice).
 PLAUSIBLE_RANGE = (1e-200, 1e200)
+PLAUSIBLE_RANGE_32 = (1e-30, 1e30)      # float32 data (Varian/Agilent-style)
 
 
 @dataclass(frozen=True)
@@ -155,10 +156,11 @@ def _quiet(fn, source, what):
 
 def _plausible(values, source, key, hint):
     v = np.asarray(values)
+    low, high = PLAUSIBLE_RANGE_32 if v.dtype == np.float32 else PLAUSIBLE_RANGE
+    v = v.astype(float)
     a = np.abs(v[v != 0])
-    if not np.all(np.isfinite(v)) or (a.size and (a.min() < PLAUSIBLE_RANGE[0] or a.max() > PLAUSIBLE_RANGE[1])):
-        raise QhlInputError(f"values NaN or outside [{PLAUSIBLE_RANGE[0]:g}, {PLAUSIBLE_RANGE[1]:g}] in magnitude: "
-                            f"{hint}", source=source, key=key)
+    if not np.all(np.isfinite(v)) or (a.size and (a.min() < low or a.max() > high)):
+        raise QhlInputError(f"values NaN or outside [{low:g}, {high:g}] in magnitude: {hint}", source=source, key=key)
 
 
 def _convert(fid, conjugate, source):
