@@ -48,14 +48,15 @@ def _delay(grpdly, decim, dspfvs):
     return np.floor(ng.bruker.bruker_dsp_table[dspfvs][decim]) if dspfvs < 14 else 0.0
 
 
-def write_bruker(path, signal, grpdly=12.0, decim=1, dspfvs=20, big=None, nuc="1H", extra=0, td=None):
+def write_bruker(path, signal, grpdly=12.0, decim=1, dspfvs=20, big=None, nuc="1H", extra=0, td=None, dtypa=2,
+                 gain=2.5e3 * np.exp(0.7j)):
     """Bruker-style directory via nmrglue.bruker.write; the FID is delayed by floor(group delay) points."""
     delay = int(_delay(grpdly, decim, dspfvs))
-    raw = np.roll(np.concatenate([stored(signal), np.zeros(delay + 2 + extra)]), delay)
+    raw = np.roll(np.concatenate([stored(signal, gain), np.zeros(delay + 2 + extra)]), delay)
     acqus = {"_coreheader": ["##TITLE= invented FID", "##JCAMPDX= 5.0"], "_comments": [],
              "TD": td if td is not None else 2 * raw.size, "SW_h": 1.0 / DWELL, "BF1": OBS_MHZ, "SFO1": OBS_MHZ,
              "O1": 0.0, "NUC1": nuc, "GRPDLY": float(grpdly), "DECIM": decim, "DSPFVS": dspfvs, "BYTORDA": 0,
-             "DTYPA": 2, "AQ_mod": 3}
+             "DTYPA": dtypa, "AQ_mod": 3}
     ng.bruker.write(str(path), {"acqus": acqus}, raw, write_prog=False, big=big, overwrite=True)
     return path
 
@@ -98,7 +99,7 @@ def write_jcampdx(path, signal, nucleus="^1H", factor=1e-9, var_dim=None, cut_li
 
 def cluster_file(tmp_path, experiments, observe="1H"):
     """An invented two-proton cluster with the given [[experiment]]s: (name, points)."""
-    text = [f'name = "invented-pair"', "field_tesla = 9.4", f'observe = "{observe}"',
+    text = ['name = "invented-pair"', "field_tesla = 9.4", f'observe = "{observe}"',
             '[[spin]]', 'label = "A"', 'isotope = "1H"', "offset_hz = 820.0",
             '[[spin]]', 'label = "B"', 'isotope = "1H"', "offset_hz = -1430.0",
             "[[pair]]", 'spins = ["A", "B"]', "j_hz = 7.5"]
@@ -119,6 +120,15 @@ def test_bruker_round_trip_removes_the_filter_delay(tmp_path, grpdly, decim, dsp
     assert a.filter_delay_points == _delay(grpdly, decim, dspfvs)
     np.testing.assert_allclose(a.signal, s, rtol=0, atol=1e-12)
     assert a.dwell_s == pytest.approx(DWELL, rel=1e-15) and a.spectral_width_hz == 1e4
+
+
+def test_bruker_round_trip_of_32_bit_integers(tmp_path):
+    """DTYPA = 0: int32 values; a gain of 1e6 leaves a rounding of 0.5 / 1e6 per value (tolerance 2e-6)."""
+    s = invented_signal(96)
+    a = read_acquisition(write_bruker(tmp_path / "fid1", s, dtypa=0, gain=1e6 * np.exp(-1.1j)))
+    assert (tmp_path / "fid1" / "fid").stat().st_size == 4 * 2 * (96 + 14)
+    np.testing.assert_allclose(a.signal, s, rtol=0, atol=2e-6)
+    assert np.max(np.abs(a.signal - s)) > 0           # the rounding is really there: int32 was written
 
 
 def test_varian_round_trip(tmp_path):
@@ -226,12 +236,19 @@ def test_learn_fits_a_spectrometer_directory(tmp_path, capsys):
     rc = main(["learn", str(path), "--data", str(tmp_path / "slow"), "--free", "offset:*", "--nuisance",
                "scale,phase", "--json"])
     assert rc == 0
-    js = json.loads(capsys.readouterr().out)
+    captured = capsys.readouterr()
+    js = json.loads(captured.out)
     assert js["data_files"][0]["format"] == "bruker" and js["data_files"][0]["points"] == 64
     truth = dict(zip(eng.model.free, eng.model.free_values_hz))
     for p in js["parameters"]:
         assert abs(p["fitted_hz"] - truth[p["name"]]) < 3 * p["stderr_hz"]
     assert {r["name"] for r in js["nuisance"]} == {"scale:slow", "phase:slow"}
+    # The files were taken at 400.13 MHz (9.398 T): no note against the cluster's 9.4 T; a note at 11.7 T.
+    assert "was taken at" not in captured.err
+    path.write_text(path.read_text().replace("field_tesla = 9.4", "field_tesla = 11.7"))
+    argv = ["learn", str(path), "--data", str(tmp_path / "slow"), "--free", "offset:*", "--max-iter", "3"]
+    assert main(argv) in (0, 1)
+    assert "was taken at 9.398 T (400.13 MHz 1H), the cluster file says field_tesla = 11.7" in capsys.readouterr().err
 
 
 def _cli_error(capsys, argv):
@@ -310,7 +327,30 @@ def test_csv_still_reads_through_the_same_option(tmp_path):
     c = load_cluster(cluster_file(tmp_path, [("slow", 64)]))
     t = c.experiment("slow").times_s[:3]
     p = write_signals_csv(tmp_path / "d.csv", Dataset({"slow": (t, np.ones(3, complex), np.full(3, 1e-3))}))
-    assert read_acquisitions is not None
     from qhl.learning.fitting import learn
     rep = learn(c, free="offset:*", data_path=p, max_iter=3)
     assert rep.dataset.signals["slow"][0].size == 3 and rep.acquisitions == []
+
+
+@pytest.mark.parametrize("files,pattern", [
+    ({"x.jdx": b""}, r"x.jdx: empty file"),
+    ({"x.jdx": b"\xff\xfe\x00garbage"}, r"expected ##DATA TYPE= NMR FID, got '\(none\)'"),
+    ({"x.jdx": b"##TITLE= x\n##DATA TYPE= NMR SPECTRUM\n##XYDATA= (X++(Y..Y))\n1 2 3\n##END=\n"},
+     r"got 'NMR SPECTRUM'"),
+    ({"d/acqus": b"junk\n", "d/fid": b"x"}, r"acqus: TD: missing parameter TD"),
+    ({"d/procpar": b"junk\n", "d/fid": b"x" * 100}, r"procpar: cannot read the parameter file"),
+    ({"d/fid": b"x"}, r"missing parameter file"),
+    ({"d/notes.txt": b"x"}, r"no dataset found"),
+])
+def test_hostile_files_are_one_line_errors(tmp_path, files, pattern):
+    """Common practice for this project's readers (tests/test_hostile_readers.py): one line, no warning."""
+    import warnings
+    for name, data in files.items():
+        (tmp_path / name).parent.mkdir(parents=True, exist_ok=True)
+        (tmp_path / name).write_bytes(data)
+    target = tmp_path / next(iter(files)).split("/")[0]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with pytest.raises(QhlInputError, match=pattern) as e:
+            read_acquisitions(target)
+    assert "\n" not in str(e.value)

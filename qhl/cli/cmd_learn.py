@@ -8,6 +8,10 @@ from ..learning.methods import METHODS
 from .common import (ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET, add_cluster_argument, check_output_path,
                      cluster_from_args, print_json)
 
+# A spectrometer field more than this fraction off the cluster file's gets a note (shifts in ppm
+# and dipolar couplings do not depend on it, but a different magnet usually means a wrong file).
+FIELD_NOTE_RTOL = 0.01
+
 
 def register(sub):
     p = sub.add_parser("learn", help="fit Hamiltonian parameters to signals, with Cramer-Rao error bars")
@@ -83,6 +87,10 @@ def run(args):
         from ..learning.fit_plots import plot_fit
         plot_fit(report, args.plot)
     fit = report.fit
+    for a in report.acquisitions:      # spectrometer files: the field they were taken at
+        if a.field_tesla is not None and abs(a.field_tesla / cluster.field_tesla - 1) > FIELD_NOTE_RTOL:
+            print(f"qhl: note: {a.source} was taken at {a.field_tesla:.4g} T ({a.observe_mhz:.6g} MHz {a.nucleus}), "
+                  f"the cluster file says field_tesla = {cluster.field_tesla:g}", file=sys.stderr)
     if report.model.hidden:
         print(f"qhl: note: left out of the default free set (the signal cannot see them): "
               f"{', '.join(report.model.hidden)}", file=sys.stderr)

@@ -308,6 +308,8 @@ def _read_jcampdx(path: Path, conjugate=True) -> Acquisition:
     size = path.stat().st_size
     if size > MAX_TEXT_BYTES:
         raise QhlInputError(f"file of {size:,} bytes; expected at most {MAX_TEXT_BYTES:,}", source=source)
+    if size == 0:
+        raise QhlInputError("empty file: expected a JCAMP-DX NMR FID", source=source)
     dic, data = _quiet(lambda: ng.jcampdx.read(str(path)), source, "the JCAMP-DX file")
     kind = " ".join(str(dic.get("DATATYPE", [""])[0]).upper().split())
     if "FID" not in kind:
@@ -426,8 +428,8 @@ def read_acquisitions(path, conjugate: bool = True) -> list:
         entries = sorted(os.listdir(p))
         inside = [p / e for e in entries if _kind(p / e) is not None]
         if not inside:
-            raise QhlInputError(f"no dataset found: expected a directory with acqus + fid or procpar + fid, a "
-                                f"JCAMP-DX file, or a directory holding such datasets", source=str(p))
+            raise QhlInputError("no dataset found: expected a directory with acqus + fid or procpar + fid, a "
+                                "JCAMP-DX file, or a directory holding such datasets", source=str(p))
         return [read_acquisition(q, conjugate) for q in inside]
     return [read_acquisition(p, conjugate)]
 
