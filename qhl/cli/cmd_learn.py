@@ -117,7 +117,8 @@ def run(args):
     if args.json:
         print_json(report.to_json())
         return 0
-    print(f"cluster {cluster.name}: {len(fit.names)} free parameters, method {fit.method}, "
+    extra = f" + {len(report.nuisance)} nuisance" if report.nuisance else ""
+    print(f"cluster {cluster.name}: {report.n_hamiltonian} free parameters{extra}, method {fit.method}, "
           f"{report.gradients} gradients, data {'from ' + args.data if args.data else 'synthetic'}")
     print(f"{fit.message} after {fit.iterations} iterations; cost {fit.cost:.6g} nats")
     truth = report.true_hz
