@@ -268,6 +268,20 @@ def _swap_bytes(p):
     fid.write_bytes(np.frombuffer(fid.read_bytes(), "<f8").astype(">f8").tobytes())
 
 
+def _swap_int32(p):
+    fid = p / "fid"
+    fid.write_bytes(np.frombuffer(fid.read_bytes(), "<i4").astype(">i4").tobytes())
+
+
+def test_int32_data_in_the_wrong_byte_order_are_one_line(tmp_path, capsys):
+    path = cluster_file(tmp_path, [("slow", 64)])
+    d = write_bruker(tmp_path / "slow", invented_signal(64), dtypa=0, gain=1e5)
+    assert read_acquisition(d).points == 64          # the right order reads
+    _swap_int32(d)
+    err = _cli_error(capsys, ["learn", str(path), "--data", str(d)])
+    assert "most values fill all 32 bits" in err and "BYTORDA = 0" in err
+
+
 @pytest.mark.parametrize("corrupt,pattern", [
     (_truncate, r"fid: truncated FID: 200 bytes, but TD = \d+ values of 8 bytes need"),
     (lambda p: (p / "acqus").unlink(), r"missing parameter file: a fid but neither acqus"),

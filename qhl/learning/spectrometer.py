@@ -163,6 +163,25 @@ def _plausible(values, source, key, hint):
         raise QhlInputError(f"values NaN or outside [{low:g}, {high:g}] in magnitude: {hint}", source=source, key=key)
 
 
+def _wide_fraction(ints) -> float:
+    """Fraction of int32 values that use their top byte (neither 0x00 nor 0xFF: not a sign extension)."""
+    top = (np.asarray(ints, np.int64) >> 24) & 0xFF
+    return float(np.mean((top != 0) & (top != 0xFF)))
+
+
+def _int32_byte_order(values, source, hint):
+    """int32 data read in the wrong byte order: most values fill all 32 bits although, read the other
+    way, almost none do (an ADC word seldom fills its top byte on most points; common practice).
+    Conservative: data that fill 32 bits either way pass."""
+    ints = np.rint(np.asarray(values, float)).astype(np.int64)
+    if ints.size < 16:
+        return
+    swapped = ints.astype(np.int32).byteswap()
+    if _wide_fraction(ints) > 0.5 and _wide_fraction(swapped) < 0.1:
+        raise QhlInputError(f"most values fill all 32 bits, but read in the other byte order almost none do: {hint}",
+                            source=source, key="BYTORDA")
+
+
 def _convert(fid, conjugate, source):
     fid = np.asarray(fid, complex)
     if fid.size < 2:
@@ -222,8 +241,10 @@ def _read_bruker(path: Path, conjugate=True) -> Acquisition:
     if not np.iscomplexobj(data):          # nmrglue leaves the values interleaved without AQ_mod
         data = data[:td][0::2] + 1j * data[:td][1::2]
     data = data[: td // 2]
-    _plausible(data.view(float) if np.iscomplexobj(data) else data, str(path / "fid"), "BYTORDA",
-               f"wrong byte order (BYTORDA = {key('BYTORDA', 0)}) or data type (DTYPA = {dtype})?")
+    hint = f"wrong byte order (BYTORDA = {key('BYTORDA', 0)}) or data type (DTYPA = {dtype})?"
+    _plausible(data.view(float) if np.iscomplexobj(data) else data, str(path / "fid"), "BYTORDA", hint)
+    if item == 4:
+        _int32_byte_order(np.concatenate([data.real, data.imag]), str(path / "fid"), hint)
     if not any(k in acq for k in ("GRPDLY", "DECIM", "DSPFVS")):
         corrected, delay = data, 0.0          # no digital-filter parameters: an FID without a filter delay
     else:
