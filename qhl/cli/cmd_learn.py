@@ -8,13 +8,19 @@ from ..learning.methods import METHODS
 from .common import (ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET, add_cluster_argument, add_report_argument,
                      check_output_path, cluster_from_args, print_json, report_if_asked)
 
+# A spectrometer field more than this fraction off the cluster file's gets a note (shifts in ppm
+# and dipolar couplings do not depend on it, but a different magnet usually means a wrong file).
+FIELD_NOTE_RTOL = 0.01
+
 
 def register(sub):
     p = sub.add_parser("learn", help="fit Hamiltonian parameters to signals, with Cramer-Rao error bars")
     add_cluster_argument(p)
     src = p.add_mutually_exclusive_group()
-    src.add_argument("--data", metavar="FILE.csv",
-                     help="measured signals: columns experiment,time_s,real,imag[,sigma]")
+    src.add_argument("--data", metavar="PATH",
+                     help="measured signals: a CSV (columns experiment,time_s,real,imag[,sigma]), a spectrometer "
+                          "FID directory (acqus + fid, or procpar + fid), a JCAMP-DX file, or a directory of "
+                          "them (matched to the experiments by name or order)")
     src.add_argument("--synthetic", action="store_true",
                      help="fit synthetic data from the cluster's own values (the default)")
     p.add_argument("--noise", type=NOISE, metavar="SIGMA",
@@ -30,6 +36,9 @@ def register(sub):
     p.add_argument("--max-iter", type=ITERATIONS, default=200, metavar="N", help="iteration limit")
     p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
+    p.add_argument("--nuisance", metavar="LIST", default=None,
+                   help="also fit, comma-separated: scale, phase (per experiment), decay (T2), gauss (Gaussian "
+                        "envelope), deadtime, or all (default none)")
     p.add_argument("--plot", metavar="FILE.png", help="write data vs fit, residuals and convergence")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     add_report_argument(p)
@@ -74,12 +83,16 @@ def run(args):
     report = learn(cluster, free=args.free, data_path=args.data, sigma=args.noise, seed=args.seed,
                    start_offset=args.start_offset, method=args.method, gradients=args.gradients,
                    shots=args.shots, max_iter=args.max_iter, progress=None if args.json else bars.iteration,
-                   evaluation_progress=None if args.json else bars.evaluation)
+                   evaluation_progress=None if args.json else bars.evaluation, nuisance=args.nuisance)
     if args.plot and not report.fit.diverged:
         from ..learning.fit_plots import plot_fit
         plot_fit(report, args.plot)
     fit = report.fit
     report_if_asked(args, "learn", report.to_json(), cluster.name, fit=report)
+    for a in report.acquisitions:      # spectrometer files: the field they were taken at
+        if a.field_tesla is not None and abs(a.field_tesla / cluster.field_tesla - 1) > FIELD_NOTE_RTOL:
+            print(f"qhl: note: {a.source} was taken at {a.field_tesla:.4g} T ({a.observe_mhz:.6g} MHz {a.nucleus}), "
+                  f"the cluster file says field_tesla = {cluster.field_tesla:g}", file=sys.stderr)
     if report.model.hidden:
         print(f"qhl: note: left out of the default free set (the signal cannot see them): "
               f"{', '.join(report.model.hidden)}", file=sys.stderr)
@@ -106,18 +119,21 @@ def run(args):
     if args.json:
         print_json(report.to_json())
         return 0
-    print(f"cluster {cluster.name}: {len(fit.names)} free parameters, method {fit.method}, "
+    extra = f" + {len(report.nuisance)} nuisance" if report.nuisance else ""
+    print(f"cluster {cluster.name}: {report.n_hamiltonian} free parameters{extra}, method {fit.method}, "
           f"{report.gradients} gradients, data {'from ' + args.data if args.data else 'synthetic'}")
     print(f"{fit.message} after {fit.iterations} iterations; cost {fit.cost:.6g} nats")
     truth = report.true_hz
     head = f"{'parameter':<20}{'fitted (Hz)':>14}{'stderr (Hz)':>13}"
     print(head + (f"{'true (Hz)':>14}{'error/stderr':>13}" if truth is not None else ""))
-    for k, (n, v, e) in enumerate(zip(fit.names, fit.values_hz, fit.stderr_hz)):
+    P = report.n_hamiltonian
+    for k, (n, v, e) in enumerate(zip(fit.names[:P], fit.values_hz[:P], fit.stderr_hz[:P])):
         line = f"{n:<20}{v:>14.3f}{e:>13.4g}"
         if truth is not None:
             z = (v - truth[k]) / e if np.isfinite(e) and e > 0 else float("nan")
             line += f"{truth[k]:>14.3f}{z:>13.2f}"
         print(line)
+    _print_nuisance(report.nuisance)
     if truth is not None:
         print(f"relative error ||h_fit - h_true||/||h_true|| = {report.relative_error:.3e} "
               f"(Cramer-Rao-limited: {report.crb_relative_error:.3e})")
@@ -126,3 +142,14 @@ def run(args):
     if args.plot:
         print(f"wrote {args.plot}")
     return 0
+
+
+def _print_nuisance(rows):
+    """Nuisance parameters with their Cramer-Rao bounds (qhl.learning.nuisance.nuisance_table)."""
+    if not rows:
+        return
+    print(f"{'nuisance':<20}{'fitted':>14}{'stderr':>13}  unit    physical")
+    for r in rows:
+        ph = r.get("physical")
+        extra = f"  {ph['name']} = {ph['value']:.4g} +- {ph['stderr']:.2g} {ph['unit']}" if ph else ""
+        print(f"{r['name']:<20}{r['value']:>14.5g}{r['stderr']:>13.4g}  {r['unit']:<6}{extra}")

@@ -352,6 +352,10 @@ class LearnReport:
         gradients: 'exact' or 'emulated'.
         fixed_unlearnable: explicitly freed parameters the signal cannot see
             (qhl.spins.identifiability), kept fixed at the cluster's values instead of fitted.
+        nuisance: rows of qhl.learning.nuisance.nuisance_table (empty without nuisance parameters);
+            `fit` then holds the Hamiltonian parameters first and the nuisance ones after them,
+            with one Fisher matrix over all of them.
+        acquisitions: the spectrometer datasets read (qhl.learning.spectrometer.Acquisition), if any.
     """
 
     fit: FitResult
@@ -362,17 +366,27 @@ class LearnReport:
     fitted_signals: dict
     gradients: str = "exact"
     fixed_unlearnable: tuple = ()
+    nuisance: list = field(default_factory=list)
+    acquisitions: list = field(default_factory=list)
+
+    @property
+    def n_hamiltonian(self) -> int:
+        """How many of fit.names are Hamiltonian parameters (the rest are nuisance parameters)."""
+        return len(self.fit.names) - len(self.nuisance)
 
     @property
     def relative_error(self):
-        """||h_fit - h_true|| / ||h_true|| or None without true values."""
-        return None if self.true_hz is None else relative_error(self.fit.values_hz, self.true_hz)
+        """||h_fit - h_true|| / ||h_true|| (Hamiltonian parameters) or None without true values."""
+        P = self.n_hamiltonian
+        return None if self.true_hz is None else relative_error(self.fit.values_hz[:P], self.true_hz)
 
     @property
     def crb_relative_error(self) -> float:
-        """The Cramer-Rao-limited relative error sqrt(tr F^-1) / ||h||, at the fit."""
-        ref = self.fit.values_hz if self.true_hz is None else self.true_hz
-        return crb_relative_error(self.fit.stderr_hz, ref)
+        """The Cramer-Rao-limited relative error sqrt(tr F^-1) / ||h||, at the fit (Hamiltonian parameters;
+        their bounds include the uncertainty of any nuisance parameters: one Fisher matrix over all)."""
+        P = self.n_hamiltonian
+        ref = self.fit.values_hz[:P] if self.true_hz is None else self.true_hz
+        return crb_relative_error(self.fit.stderr_hz[:P], ref)
 
     @property
     def goodness_of_fit(self) -> dict:
@@ -387,22 +401,24 @@ class LearnReport:
 
     def to_json(self) -> dict:
         f = self.fit
+        P = self.n_hamiltonian
         params = [{"name": n, "fitted_hz": v, "stderr_hz": e,
                    "true_hz": None if self.true_hz is None else float(self.true_hz[k]),
                    "start_hz": float(self.start_hz[k])}
-                  for k, (n, v, e) in enumerate(zip(f.names, f.values_hz, f.stderr_hz))]
+                  for k, (n, v, e) in enumerate(zip(f.names[:P], f.values_hz[:P], f.stderr_hz[:P]))]
         return {"parameters": params, "iterations": f.iterations, "converged": f.converged,
                 "message": f.message, "method": f.method, "gradients": self.gradients,
                 "history": f.history, "cost": f.cost, "relative_error": self.relative_error,
                 "crb_relative_error": self.crb_relative_error, "unlearnable": f.unlearnable,
                 "diverged": f.diverged, "fixed_unlearnable": list(self.fixed_unlearnable),
-                "hidden": list(self.model.hidden), "goodness_of_fit": self.goodness_of_fit}
+                "hidden": list(self.model.hidden), "goodness_of_fit": self.goodness_of_fit,
+                "nuisance": list(self.nuisance), "data_files": [a.describe() for a in self.acquisitions]}
 
 
 def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, seed: int = 0,
           start_offset=None, method: str = "gn", gradients: str = "exact", shots=None,
-          max_iter: int = 200, progress=None, evaluation_progress=None) -> LearnReport:
-    """Fit `cluster`'s free parameters to measured (CSV) or synthetic signals.
+          max_iter: int = 200, progress=None, evaluation_progress=None, nuisance=()) -> LearnReport:
+    """Fit `cluster`'s free parameters to measured (CSV or spectrometer files) or synthetic signals.
 
     Synthetic data: the cluster's own values plus Gaussian noise `sigma` (default each
     experiment's `noise`), drawn with `seed`; the start is the truth perturbed by
@@ -412,12 +428,16 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
     Args:
         cluster: the Cluster.
         free: glob patterns of the parameters to fit.
-        data_path: CSV of measured signals, or None for synthetic data.
+        data_path: CSV of measured signals (qhl.learning.data_csv), a spectrometer dataset or a
+            directory of them (qhl.learning.spectrometer), or None for synthetic data.
         sigma: noise per point (synthetic noise, or CSV noise without a sigma column).
         seed, start_offset, method, max_iter, progress: see `fit` and `perturbed_start`.
         gradients: 'exact' (ExactEngine) or 'emulated' (circuit emulator, `shots` per estimate).
         evaluation_progress: callable(done, total, label) within each evaluation of the emulated
             provider (one circuit family at a time); ignored for exact gradients.
+        nuisance: nuisance kinds fitted with the Hamiltonian (qhl.learning.nuisance: 'scale',
+            'phase', 'decay', 'gauss', 'deadtime', or a comma-separated string); none by default,
+            for synthetic and measured data alike.
 
     Returns:
         LearnReport.
@@ -450,15 +470,22 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
     if not model.free:
         raise QhlInputError("no free parameters to fit" + (f" (the signal cannot see {', '.join(fixed)})"
                                                            if fixed else ""), key="free")
+    from .nuisance import NuisanceProvider, nuisance_table, parse_nuisance
+    kinds = parse_nuisance(nuisance)
     engine = ExactEngine(model)
     truth = model.free_values_hz
+    acquisitions = []
     if data_path is None:
         dataset = synthetic_dataset(engine, cluster.experiments, seed=seed, sigma=sigma)
         start = perturbed_start(truth, 0.05 if start_offset is None else start_offset, seed)
         true_hz = truth
     else:
-        from .data_csv import load_signals_csv
-        dataset = load_signals_csv(data_path, cluster, sigma=sigma)
+        from .spectrometer import is_spectrometer_path, load_spectrometer_data
+        if is_spectrometer_path(data_path):
+            dataset, acquisitions = load_spectrometer_data(data_path, cluster, sigma=sigma)
+        else:
+            from .data_csv import load_signals_csv
+            dataset = load_signals_csv(data_path, cluster, sigma=sigma)
         start = perturbed_start(truth, 0.0 if start_offset is None else start_offset, seed)
         true_hz = None
     experiments = [ex for ex in cluster.experiments if ex.name in dataset.signals]
@@ -469,6 +496,17 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
         provider.progress = evaluation_progress
     else:
         provider = ExactGradientProvider(engine, experiments)
+    if kinds:
+        provider = NuisanceProvider(provider, experiments, kinds)
+        start = np.concatenate([start, provider.start_values()])
     result = fit(provider, dataset, start, method=method, max_iter=max_iter, progress=progress)
-    fitted = {ex.name: engine.signal(ex, dataset.signals[ex.name][0], result.values_hz) for ex in experiments}
-    return LearnReport(result, model, dataset, start, true_hz, fitted, gradients, fixed)
+    P = len(model.free)
+    if kinds:
+        times = {ex.name: dataset.signals[ex.name][0] for ex in experiments}
+        exact = NuisanceProvider(ExactGradientProvider(engine, experiments), experiments, kinds)
+        fitted = {n: v[0] for n, v in exact.signals_and_gradients(result.values_hz, times).items()}
+        rows = nuisance_table(provider, result.values_hz, result.stderr_hz)
+    else:
+        fitted = {ex.name: engine.signal(ex, dataset.signals[ex.name][0], result.values_hz) for ex in experiments}
+        rows = []
+    return LearnReport(result, model, dataset, start[:P], true_hz, fitted, gradients, fixed, rows, acquisitions)
