@@ -5,7 +5,9 @@ import sys
 from .common import add_cluster_argument, check_output_path, cluster_from_args, print_json
 
 
-from .common import PROBABILITY, SEED, SHOTS, STEPS, TIME_S  # range-checked option types
+from .common import PROBABILITY, SEED, SHOTS, STEPS, TIME_S, number_in  # range-checked option types
+CIRCUITS = number_in(1, 10**6, integer=True, name="circuits per job")
+
 def register(sub):
     p = sub.add_parser("check", help="check shot-based emulated gradients against exact ones")
     add_cluster_argument(p)
@@ -18,7 +20,7 @@ def register(sub):
     p.add_argument("--device", metavar="NAME",
                    help="emulate on an offline fake backend's noise model through SamplerV2 and compare with the "
                         "exact value times the attenuation predicted from its calibrated error rates")
-    p.add_argument("--max-circuits", type=int, metavar="N",
+    p.add_argument("--max-circuits", type=CIRCUITS, metavar="N",
                    help="with --device: at most N bound circuits per sampler job (default: one job per family)")
     p.add_argument("--hessian", action="store_true", help="also check every Hessian entry m <= n")
     p.add_argument("--param", nargs="+", metavar="NAME", help="parameters (default: free offsets and dipolar)")
@@ -91,9 +93,9 @@ def run(args):
     if device is not None:
         if noise is not None:
             raise QhlInputError("--device brings the device's noise model: leave out --noise", key="--device")
-        if args.max_circuits is not None and args.max_circuits < 1:
-            raise QhlInputError(f"expected --max-circuits >= 1, got {args.max_circuits}", key="--max-circuits")
-        sampler_options = {"max_circuits": args.max_circuits, "simulator_options": {"method": "density_matrix"}}
+        sampler_options = {"max_circuits": args.max_circuits}
+    elif getattr(args, "max_circuits", None) is not None:
+        raise QhlInputError("--max-circuits applies to --device runs only", key="--max-circuits")
     if args.plot:
         check_output_path(args.plot, "--plot")
     cluster = cluster_from_args(args)

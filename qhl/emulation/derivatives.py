@@ -111,7 +111,8 @@ def emulate_hessian(model, experiment, parameters, time, steps, shots, seed=0, o
 
 
 def emulate_gradients(model, experiment, parameters, times, steps, shots, seed=0, order=1, noise=None, *,
-                      method="auto", sampling="stratified", audit=0, progress=None, **compile_options):
+                      method="auto", sampling="stratified", audit=0, progress=None, sampler_options=None,
+                      **compile_options):
     """dS_trot/dh_n for every parameter and time in one call (one estimate per entry).
 
     Every (parameter, time) family gets its own random stream spawned from `seed` (row-major),
@@ -142,7 +143,7 @@ def emulate_gradients(model, experiment, parameters, times, steps, shots, seed=0
         for p, nm in enumerate(names):
             family = gradient_circuit(model, experiment, nm, float(t), int(r), order, **compile_options)
             out[p, k] = estimate_family(family, shots, streams[p * len(times) + k], noise, method=method,
-                                        sampling=sampling, audit=audit)
+                                        sampling=sampling, audit=audit, sampler_options=sampler_options)
             done += 1
             if progress is not None:
                 progress(done, out.size, f"{nm} at t = {t:g} s")

@@ -34,6 +34,11 @@ Samplers:
     (ISA circuits; without one the circuit goes to the basis rz, sx, x, cx at optimization level
     1). This is the code path the fake backend takes (transpile for a backend, then
     sampler.run); its seeds are the sampler's own. Hardware is not run in the tests.
+Simulation method of the samplers built here (noisy runs; `simulator_options` override it): Aer's
+density-matrix method when the transpiled circuit acts on at most DENSITY_MAX_QUBITS qubits (one
+noisy state per setting, then its shots are sampled: fast for many shots on few qubits), else its
+statevector method (one noisy trajectory per shot). The memory of either is checked up front
+(qhl.base.memory.require_memory); Aer drops idle device qubits, so it scales with the active ones.
 Seeds: samplers built here get a seed drawn from the caller's Generator per job, so the same seed
 gives the same numbers.
 """
@@ -41,10 +46,19 @@ gives the same numbers.
 import numpy as np
 
 from ..base.errors import QhlInputError
+from ..base.memory import require_memory
 from .noise import NOISY_BASIS, NoiseSpec
 from .runner import FamilyRunner, values_of_outcomes
 
-__all__ = ["SamplerRunner", "device_backend", "pub_plan"]
+__all__ = ["SamplerRunner", "device_backend", "pub_plan", "DENSITY_MAX_QUBITS", "active_qubits"]
+
+DENSITY_MAX_QUBITS = 10
+
+
+def active_qubits(circuit) -> int:
+    """Qubits touched by some instruction of `circuit` (Aer simulates only these)."""
+    used = {circuit.find_bit(q).index for inst in circuit.data for q in inst.qubits}
+    return len(used)
 
 
 def device_backend(name: str, qubits: int, key: str = "--device", needs: str | None = None):
@@ -186,13 +200,20 @@ class SamplerRunner(FamilyRunner):
         from qiskit_aer import AerSimulator
         from qiskit_aer.primitives import SamplerV2
         if self._aer_backend is None:
+            options = dict(self.simulator_options)
+            n = active_qubits(self.transpiled)
+            if not self.noise.is_noiseless or self.device is not None:
+                options.setdefault("method", "density_matrix" if n <= DENSITY_MAX_QUBITS else "statevector")
+            dense = options.get("method") == "density_matrix"
+            require_memory(f"Aer {'density matrices' if dense else 'statevectors'} of {n} qubits",
+                           16.0 * (4 ** n if dense else 2 ** n))
             if self.device is not None:
                 self._aer_backend = AerSimulator.from_backend(self.backend)
             elif self.noise.is_noiseless:
                 self._aer_backend = AerSimulator()
             else:
                 self._aer_backend = AerSimulator(noise_model=self.noise.noise_model())
-            self._aer_backend.set_options(max_parallel_threads=1, **self.simulator_options)
+            self._aer_backend.set_options(max_parallel_threads=1, **options)
         return SamplerV2.from_backend(self._aer_backend, seed=int(seed))
 
     # ---------------------------------------------------------------- shots of the distinct settings
