@@ -101,3 +101,23 @@ def test_exact_density_matrix_attenuation_of_gradients_within_model_accuracy(n, 
     print(f"\n  {name}: exact attenuation {noisy / clean:.4f}, predicted {a.total:.4f}")
     assert abs(noisy / clean - a.total) < MODEL * a.total
     assert noisy / clean < 0.9
+
+
+def test_attenuation_arithmetic_on_a_hand_counted_circuit():
+    """Two sx on qubit 0, one cx (0, 1), one rz (free), measuring qubit 1 into clbit 0 and qubit 0
+    into clbit 1; observable Z on both clbits: F = (1 - 0.01)^2 (1 - 0.02), R = (1 - 2 * 0.03)(1 - 2 * 0.05)
+    (hand-computed from the module's stated model)."""
+    from qiskit import QuantumCircuit
+    from qhl.emulation.device_fidelity import global_depolarising_attenuation
+    qc = QuantumCircuit(2, 2)
+    qc.sx(0)
+    qc.sx(0)
+    qc.rz(0.3, 1)
+    qc.cx(0, 1)
+    qc.measure([1, 0], [0, 1])
+    a = global_depolarising_attenuation(qc, [1, 0], [(1.0, 0b11)],
+                                        lambda name, qs: {"sx": 0.01, "cx": 0.02}.get(name, 0.5),
+                                        lambda q: {0: 0.05, 1: 0.03}[q])
+    assert (a.one_qubit_gates, a.two_qubit_gates) == (2, 1)
+    assert a.gates == pytest.approx(0.99 ** 2 * 0.98, rel=1e-12)
+    assert a.readout == pytest.approx(0.94 * 0.90, rel=1e-12)
