@@ -6,7 +6,9 @@ from .common import add_cluster_argument, add_report_argument, check_output_path
     report_if_asked
 
 
-from .common import PROBABILITY, SEED, SHOTS, STEPS, TIME_S  # range-checked option types
+from .common import PROBABILITY, SEED, SHOTS, STEPS, TIME_S, number_in  # range-checked option types
+CIRCUITS = number_in(1, 10**6, integer=True, name="circuits per job")
+
 def register(sub):
     p = sub.add_parser("check", help="check shot-based emulated gradients against exact ones")
     add_cluster_argument(p)
@@ -16,6 +18,11 @@ def register(sub):
     p.add_argument("--seed", type=SEED, default=0, metavar="S", help="random seed (default 0)")
     p.add_argument("--noise", type=PROBABILITY, default=0.0, metavar="P",
                    help="depolarising rate on sx, x, cx and readout flip probability, in [0, 1)")
+    p.add_argument("--device", metavar="NAME",
+                   help="emulate on an offline fake backend's noise model through SamplerV2 and compare with the "
+                        "exact value times the attenuation predicted from its calibrated error rates")
+    p.add_argument("--max-circuits", type=CIRCUITS, metavar="N",
+                   help="with --device: at most N bound circuits per sampler job (default: one job per family)")
     p.add_argument("--hessian", action="store_true", help="also check every Hessian entry m <= n")
     p.add_argument("--param", nargs="+", metavar="NAME", help="parameters (default: free offsets and dipolar)")
     p.add_argument("--experiment", metavar="NAME", help="experiment setting the dipolar scale (default: first)")
@@ -74,7 +81,7 @@ def _plot(report, path, title):
 
 
 def run(args):
-    from ..emulation.check import BIAS_RULE, POWER_RULE, check_derivatives
+    from ..emulation.check import ATTENUATION_MODEL, BIAS_RULE, POWER_RULE, check_derivatives
     from ..emulation.noise import NoiseSpec
     from ..base.errors import QhlInputError
     if args.shots < 1:
@@ -83,13 +90,21 @@ def run(args):
         raise QhlInputError(f"expected steps >= 1, got {args.steps}", key="--steps")
     noise = NoiseSpec(args.noise, args.noise)
     noise = None if noise.is_noiseless else noise
+    device = getattr(args, "device", None)
+    sampler_options = None
+    if device is not None:
+        if noise is not None:
+            raise QhlInputError("--device brings the device's noise model: leave out --noise", key="--device")
+        sampler_options = {"max_circuits": args.max_circuits}
+    elif getattr(args, "max_circuits", None) is not None:
+        raise QhlInputError("--max-circuits applies to --device runs only", key="--max-circuits")
     if args.plot:
         check_output_path(args.plot, "--plot")
     cluster = cluster_from_args(args)
     bars = _Bars()
     report = check_derivatives(cluster, args.time, args.steps, args.shots, args.seed, noise, args.hessian,
                                args.param, args.experiment, args.order, progress=bars.rows,
-                               reference_progress=bars.reference)
+                               reference_progress=bars.reference, device=device, sampler_options=sampler_options)
     if report.interrupted:
         print(f"\nqhl check: interrupted; {len(report.rows)} of {report.planned} rows finished", file=sys.stderr)
     if args.plot and report.rows:
@@ -104,7 +119,8 @@ def run(args):
         print_json(report.to_json())
         return 130 if report.interrupted else 0
     print(f"cluster {cluster.name}: t = {report.time_s:g} s, r = {report.steps} steps, {args.shots} shots per part, "
-          f"seed {args.seed}, noise {args.noise:g}")
+          f"seed {args.seed}, " + (f"device {report.device} (reference: trotter x predicted attenuation)"
+                                   if device else f"noise {args.noise:g}"))
     head = (f"{'parameter':<28}{'part':>5}{'exact':>13}{'trotter':>13}{'emulated':>13}{'stderr':>11}"
             f"{'z':>7}{'bias':>11}  flags")
     print(head)
@@ -113,6 +129,13 @@ def run(args):
             + (" SIGN-FLIP" if r["sign_flip"] else "")
         print(f"{r['parameter']:<28}{r['part']:>5}{r['exact']:>13.4e}{r['trotter_exact']:>13.4e}"
               f"{r['emulated']:>13.4e}{r['stderr']:>11.2e}{r['z']:>7.2f}{r['trotter_bias']:>11.2e} {flags}")
+    if device and report.rows:
+        print(f"{'parameter':<28}{'part':>5}{'predicted':>13}{'attenuation':>13}{'measured att.':>15}{'2q gates':>10}")
+        for r in report.rows:
+            print(f"{r['parameter']:<28}{r['part']:>5}{r['predicted']:>13.4e}{r['attenuation']:>13.4f}"
+                  f"{r['measured_attenuation']:>9.3f} +- {r['measured_attenuation_stderr']:<5.3f}"
+                  f"{r['two_qubit_gates']:>8d}")
+        print(f"attenuation model: {ATTENUATION_MODEL}")
     print(f"shots {report.shots}, circuits run {report.circuits_run}, {report.seconds:.1f} s")
     print(report.verdict())
     if report.biased or report.without_power:

@@ -8,6 +8,15 @@ For each parameter (and part Re / Im) at one time t with r Trotter steps:
     trotter_bias   trotter_exact - exact
 With `hessian`, rows for every entry (m, n), m <= n, of d2S/dh_m dh_n are added.
 
+Device mode (`device=NAME`, an offline fake backend; qhl.emulation.sampler_path): each family is
+transpiled for the device and run through SamplerV2 on its noise model. The reference is then
+    predicted      trotter_exact * attenuation, attenuation = F R of the transpiled circuit from
+                   the device's calibrated gate and readout errors (qhl.emulation.device_fidelity:
+                   global-depolarising approximation, its measured accuracy stated there)
+    z              (emulated - predicted) / stderr
+and each row also carries attenuation, measured_attenuation = emulated / trotter_exact and its
+stderr. A FAIL there means emulation under the device's noise and the attenuation model disagree.
+
 Power and bias (POWER_RULE, BIAS_RULE): a row can detect an error as large as the value it tests
 only when stderr <= max(|exact|, |trotter_exact|) / POWER_RATIO (an error of 100% of the value then
 gives |z| >= POWER_RATIO; common practice for a 3-sigma test). When no row can, the verdict is
@@ -28,13 +37,15 @@ from .derivatives import as_generator, check_shots, emulate_gradient, emulate_he
 from .noise import NoiseSpec
 from ..circuits.trotter_reference import trotter_gradient_exact, trotter_hessian_exact
 
-__all__ = ["CheckReport", "check_derivatives", "Z_LIMIT", "POWER_RATIO", "POWER_RULE", "BIAS_RULE",
+__all__ = ["CheckReport", "check_derivatives", "ATTENUATION_MODEL", "Z_LIMIT", "POWER_RATIO", "POWER_RULE", "BIAS_RULE",
            "annotate_row"]
 
 Z_LIMIT = 4.0
 POWER_RATIO = 3.0
 POWER_RULE = (f"power: stderr <= |value|/{POWER_RATIO:g} with |value| = max(|exact|, |trotter_exact|), so an "
               f"error as large as the value gives |z| >= {POWER_RATIO:g}")
+ATTENUATION_MODEL = ("global depolarising: F = prod_g (1 - r_g) over the transpiled gates (r_g the device's "
+                     "calibrated error), times prod (1 - 2 q_i) over measured qubits (q_i readout error)")
 BIAS_RULE = "BIAS>VALUE: |trotter_exact - exact| > |exact| (includes a sign flip)"
 
 
@@ -61,6 +72,7 @@ class CheckReport:
     steps: int = 1
     interrupted: bool = False
     planned: int = 0
+    device: str | None = None
 
     @property
     def failed(self) -> list:
@@ -107,7 +119,24 @@ class CheckReport:
                 "warnings": self.warnings(), "power_rule": POWER_RULE, "bias_rule": BIAS_RULE,
                 "shots": self.shots, "circuits_run": self.circuits_run, "seconds": self.seconds,
                 "time_s": self.time_s, "steps": self.steps, "interrupted": self.interrupted,
-                "planned": self.planned}
+                "planned": self.planned, "device": self.device,
+                "reference": "trotter_exact" if self.device is None else "trotter_exact * attenuation",
+                "attenuation_model": None if self.device is None else ATTENUATION_MODEL}
+
+
+def _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device, sampler_options):
+    """(ComplexEstimate through SamplerV2 on the device's noise model, predicted Attenuation)."""
+    from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit
+    from .derivatives import estimate_family
+    from .device_fidelity import target_attenuation
+    from .sampler_path import SamplerRunner
+    family = gradient_circuit(model, ex, pars[0], t, steps, order) if kind == "gradient" else \
+        hessian_circuit(model, ex, tuple(pars), t, steps, order)
+    runner = SamplerRunner(family, device=device, **(sampler_options or {}))
+    est = estimate_family(family, shots, rng, runner=runner)
+    atten = target_attenuation(runner.transpiled, runner.measured_physical_qubits(), runner.masks,
+                               runner.backend.target)
+    return est, atten
 
 
 def _experiment(cluster, name):
@@ -125,7 +154,8 @@ def check_time(time) -> float:
 
 def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | None = None, hessian=False,
                       parameters=None, experiment=None, order: int = 1, progress=None,
-                      reference_progress=None) -> CheckReport:
+                      reference_progress=None, device: str | None = None,
+                      sampler_options: dict | None = None) -> CheckReport:
     """Emulated dS/dh_n (and Hessian entries) at one time against the exact and Trotterised values.
 
     Args:
@@ -136,14 +166,25 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
         progress: callable(done, total, label) after each row pair.
         reference_progress: callable(done, total) during the dense Trotterised reference (slots of
             its forward and backward sweeps; minutes for 12 spins).
+        device: name of an offline fake backend (device mode, module docstring); excludes noise.
+        sampler_options: further SamplerRunner options in device mode (shots_per_pub,
+            max_circuits, simulator_options, seed_transpiler, optimization_level).
 
     Returns:
         CheckReport (partial, interrupted=True, after Ctrl-C).
 
     Raises:
-        QhlInputError: bad time, shots, steps, unknown parameter or experiment.
+        QhlInputError: bad time, shots, steps, unknown parameter or experiment; an unknown device
+            (listing the valid names) or a cluster wider than the device (both numbers).
     """
     t = check_time(time)
+    if device is not None:
+        from .sampler_path import device_backend
+        if noise is not None and not noise.is_noiseless:
+            raise QhlInputError("--device brings the device's noise model: leave out --noise", key="--device")
+        anc = 2 if hessian else 1
+        device = device_backend(device, len(cluster.spins) + anc,
+                       needs=f"{len(cluster.spins)} spins + {anc} ancilla{'s' if anc > 1 else ''}").name
     shots = check_shots(shots)
     if int(steps) != steps or steps < 1:
         raise QhlInputError(f"expected steps >= 1, got {steps!r}", key="--steps")
@@ -159,7 +200,7 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
     tasks = [("gradient", (nm,)) for nm in names]
     if hessian:
         tasks += [("hessian", (a, b)) for i, a in enumerate(names) for b in names[i:]]
-    report = CheckReport(time_s=t, steps=int(steps), planned=2 * len(tasks))
+    report = CheckReport(time_s=t, steps=int(steps), planned=2 * len(tasks), device=device)
     start = _time.perf_counter()
     try:
         _, grad_exact = engine.gradient(ex, [t])
@@ -171,23 +212,36 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
             if kind == "gradient":
                 i, fi = names.index(pars[0]), free.index(pars[0])
                 exact, trot = complex(grad_exact[fi, 0]), complex(grad_trot[i])
-                est = emulate_gradient(model, ex, pars[0], t, steps, shots, rng, order, noise)
+                if device is None:
+                    est = emulate_gradient(model, ex, pars[0], t, steps, shots, rng, order, noise)
                 label = pars[0]
             else:
                 i, j = names.index(pars[0]), names.index(pars[1])
                 fi, fj = free.index(pars[0]), free.index(pars[1])
                 exact, trot = complex(hess_exact[fi, fj, 0]), complex(hess_trot[i, j])
-                est = emulate_hessian(model, ex, pars, t, steps, shots, rng, order, noise)
+                if device is None:
+                    est = emulate_hessian(model, ex, pars, t, steps, shots, rng, order, noise)
                 label = f"{pars[0]} x {pars[1]}"
+            atten = None
+            if device is not None:
+                est, atten = _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device,
+                                              sampler_options)
             for part in ("re", "im"):
                 e = est.part(part)
                 pick = (lambda z: z.real) if part == "re" else (lambda z: z.imag)
-                z = (e.value - pick(trot)) / e.stderr if e.stderr > 0 else (0.0 if e.value == pick(trot) else np.inf)
-                report.rows.append(annotate_row(
-                    {"parameter": label, "part": part, "kind": kind, "exact": pick(exact),
-                     "trotter_exact": pick(trot), "emulated": e.value, "stderr": e.stderr,
-                     "z": float(z), "trotter_bias": pick(trot) - pick(exact),
-                     "shots": e.shots, "circuits_run": e.circuits_run, "seconds": e.seconds}))
+                ref = pick(trot) * (1.0 if atten is None else atten.total)
+                z = (e.value - ref) / e.stderr if e.stderr > 0 else (0.0 if e.value == ref else np.inf)
+                row = {"parameter": label, "part": part, "kind": kind, "exact": pick(exact),
+                       "trotter_exact": pick(trot), "emulated": e.value, "stderr": e.stderr,
+                       "z": float(z), "trotter_bias": pick(trot) - pick(exact),
+                       "shots": e.shots, "circuits_run": e.circuits_run, "seconds": e.seconds}
+                if atten is not None:
+                    size = pick(trot)
+                    row.update(predicted=ref, attenuation=atten.total, attenuation_gates=atten.gates,
+                               attenuation_readout=atten.readout, two_qubit_gates=atten.two_qubit_gates,
+                               measured_attenuation=e.value / size if size else float("nan"),
+                               measured_attenuation_stderr=e.stderr / abs(size) if size else float("nan"))
+                report.rows.append(annotate_row(row))
             report.shots += est.shots
             report.circuits_run += est.circuits_run
             if progress is not None:

@@ -9,7 +9,9 @@ The estimates are unbiased for the Trotterised quantities (qhl.circuits.trotter_
 not for the continuous-time ones: the difference is the Trotter bias.
 
 Emulator options (keywords of every function here; see qhl.emulation.runner.FamilyRunner):
-method 'auto' (numpy fast path when noiseless, else Aer), 'fast' or 'aer'; sampling
+method 'auto' (numpy fast path when noiseless, else Aer), 'fast', 'aer' or 'sampler' (through a
+SamplerV2, qhl.emulation.sampler_path; `sampler_options` go to its SamplerRunner: sampler,
+device, backend, shots_per_pub, max_circuits, simulator_options); sampling
 'stratified' (default) or 'iid' (the original scheme); audit: settings per run re-checked on Aer.
 `emulate_gradients` batches every parameter and time of a gradient: the families of one time
 share one cached evolution (qhl.emulation.fast_path.EvolutionTables).
@@ -45,14 +47,15 @@ def check_shots(shots) -> int:
 
 def estimate_family(family, shots: int, seed=0, noise: NoiseSpec | None = None, parts=PARTS,
                     runner: FamilyRunner | None = None, *, method: str = "auto", sampling: str = "stratified",
-                    audit: int = 0) -> ComplexEstimate:
+                    audit: int = 0, sampler_options: dict | None = None) -> ComplexEstimate:
     """Re and Im of a CircuitFamily's X with `shots` shots per part (see qhl.emulation.runner).
 
     Args:
         family: CircuitFamily; shots: per part (>= 1); seed: int or Generator.
         noise: NoiseSpec or None; parts: subset of ('re', 'im') (a part left out stays empty).
         runner: a FamilyRunner of this family to reuse (transpiled once); method, sampling,
-            audit: FamilyRunner options (ignored when `runner` is given).
+            audit: FamilyRunner options (ignored when `runner` is given); method 'sampler' builds
+            a qhl.emulation.sampler_path.SamplerRunner with `sampler_options`.
 
     Returns:
         ComplexEstimate.
@@ -62,6 +65,9 @@ def estimate_family(family, shots: int, seed=0, noise: NoiseSpec | None = None, 
     """
     shots = check_shots(shots)
     rng = as_generator(seed)
+    if runner is None and method == "sampler":
+        from .sampler_path import SamplerRunner
+        runner = SamplerRunner(family, noise, sampling=sampling, **(sampler_options or {}))
     runner = runner or FamilyRunner(family, noise, method=method, sampling=sampling, audit=audit)
     streams = dict(zip(PARTS, rng.spawn(2)))
     out = {}
@@ -73,14 +79,15 @@ def estimate_family(family, shots: int, seed=0, noise: NoiseSpec | None = None, 
 
 
 def emulate_signal(model, experiment, time, steps, shots, seed=0, order=1, noise=None, *, method="auto",
-                   sampling="stratified", audit=0, **compile_options):
+                   sampling="stratified", audit=0, sampler_options=None, **compile_options):
     """S_trot(t) with `shots` shots per part. compile_options go to signal_circuit."""
     family = signal_circuit(model, experiment, time, steps, order, **compile_options)
-    return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit)
+    return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit,
+                           sampler_options=sampler_options)
 
 
 def emulate_gradient(model, experiment, parameter, time, steps, shots, seed=0, order=1, noise=None, *,
-                     method="auto", sampling="stratified", audit=0, **compile_options):
+                     method="auto", sampling="stratified", audit=0, sampler_options=None, **compile_options):
     """dS_trot/dh_n (1/Hz) with `shots` shots per part (Hadamard-test family by default).
 
     Example:
@@ -91,18 +98,21 @@ def emulate_gradient(model, experiment, parameter, time, steps, shots, seed=0, o
         (400, True)
     """
     family = gradient_circuit(model, experiment, parameter, time, steps, order, **compile_options)
-    return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit)
+    return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit,
+                           sampler_options=sampler_options)
 
 
 def emulate_hessian(model, experiment, parameters, time, steps, shots, seed=0, order=1, noise=None, *,
-                    method="auto", sampling="stratified", audit=0, **compile_options):
+                    method="auto", sampling="stratified", audit=0, sampler_options=None, **compile_options):
     """d2S_trot/dh_m dh_n (1/Hz^2) with `shots` shots per part (two-ancilla family)."""
     family = hessian_circuit(model, experiment, tuple(parameters), time, steps, order, **compile_options)
-    return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit)
+    return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit,
+                           sampler_options=sampler_options)
 
 
 def emulate_gradients(model, experiment, parameters, times, steps, shots, seed=0, order=1, noise=None, *,
-                      method="auto", sampling="stratified", audit=0, progress=None, **compile_options):
+                      method="auto", sampling="stratified", audit=0, progress=None, sampler_options=None,
+                      **compile_options):
     """dS_trot/dh_n for every parameter and time in one call (one estimate per entry).
 
     Every (parameter, time) family gets its own random stream spawned from `seed` (row-major),
@@ -133,7 +143,7 @@ def emulate_gradients(model, experiment, parameters, times, steps, shots, seed=0
         for p, nm in enumerate(names):
             family = gradient_circuit(model, experiment, nm, float(t), int(r), order, **compile_options)
             out[p, k] = estimate_family(family, shots, streams[p * len(times) + k], noise, method=method,
-                                        sampling=sampling, audit=audit)
+                                        sampling=sampling, audit=audit, sampler_options=sampler_options)
             done += 1
             if progress is not None:
                 progress(done, out.size, f"{nm} at t = {t:g} s")
