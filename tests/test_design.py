@@ -98,6 +98,18 @@ def test_per_t_gate_shares_follow_budget_shares_over_cost(engine):
     assert rep.value <= rep.baseline_value + 1e-9
 
 
+def test_per_point_costs_count_the_sampled_times(engine):
+    # per point: a whole acquisition costs its points, a single time costs 1; the default budget is the
+    # file's total points (4 x 192 on the demo).
+    rep = design_experiments(demo_cluster(), per="point", engine=engine, time_points=8)
+    assert np.all(rep.cost_per_shot == 1.0)
+    assert rep.budget == 4 * 192
+    assert rep.shots.sum() <= rep.budget
+    rep2 = design_experiments(demo_cluster(), per="point", engine=engine)
+    assert np.all(rep2.cost_per_shot == 192.0)
+    assert np.allclose(rep2.shares, rep2.budget_shares)         # equal costs: shot and budget shares agree
+
+
 def test_bad_input_is_refused(engine):
     c = demo_cluster()
     with pytest.raises(QhlInputError, match="per"):

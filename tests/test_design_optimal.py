@@ -134,3 +134,37 @@ def test_efficient_rounding_sums_to_n_and_follows_shares():
     assert list(n) == [5, 3, 2, 0]
     n7 = efficient_rounding(w, 7)
     assert n7.sum() == 7 and np.all(np.abs(n7 - 7 * w) <= 1)
+
+
+@pytest.mark.parametrize("criterion, expected", [("D", (1 / 3, 1 / 3, 1 / 3)), ("A", (0.25, 0.5, 0.25))])
+def test_many_candidates_go_through_the_growing_support(criterion, expected):
+    # 201 candidates (more than ACTIVE_SET_MIN): the same closed forms as above (Kiefer and
+    # Wolfowitz 1960 for D; the hand derivation for A), reached by SLSQP on a growing support.
+    from qhl.learning import design_optimal
+    xs = np.linspace(-1, 1, 201)
+    assert len(xs) > design_optimal.ACTIVE_SET_MIN
+    sol = optimal_shares(_quadratic_regression(xs), criterion, tol=1e-8)
+    for x0, w in zip((-1.0, 0.0, 1.0), expected):
+        assert sol.shares[np.argmin(abs(xs - x0))] == pytest.approx(w, abs=3e-3)
+    assert sol.equivalence == pytest.approx(1.0, abs=2e-3)
+
+
+def test_worst_variance_design_satisfies_its_weighted_equivalence_theorem():
+    # Quadratic regression on [-1, 1], minimise the largest of the three variances. The optimum is
+    # A-optimal for the weights of its multipliers (saddle point; Pukelsheim 1993, ch. 7): the weighted
+    # equivalence ratio is 1, checked here on a fine grid of x with those weights, written out from
+    # f(x) = (1, x, x^2).
+    xs = np.linspace(-1, 1, 41)
+    F = _quadratic_regression(xs)
+    sol = optimal_shares(F, "worst", tol=1e-9)
+    assert sol.equivalence == pytest.approx(1.0, abs=5e-3)
+    mu = sol.multipliers
+    assert mu.sum() == pytest.approx(1.0) and np.all(mu >= 0)
+    Minv = np.linalg.inv(np.einsum("k,kij->ij", sol.shares, F))
+    fine = np.linspace(-1, 1, 2001)
+    g = Minv @ np.stack([np.ones_like(fine), fine, fine ** 2])          # M^-1 f(x), (3, X)
+    assert np.max(mu @ g ** 2) == pytest.approx(mu @ np.diag(Minv), rel=5e-3)
+    # symmetric problem: symmetric shares; and no worse than equal shares or the D optimum
+    assert np.allclose(sol.shares, sol.shares[::-1], atol=5e-3)
+    assert sol.value <= criterion_value(F, optimal_shares(F, "D").shares, "worst") + 1e-9
+    assert sol.value < criterion_value(F, np.full(len(xs), 1 / len(xs)), "worst")

@@ -22,10 +22,11 @@ def register(sub):
                         "Cramer-Rao variance of --parameters (default D)")
     p.add_argument("--parameters", nargs="+", metavar="PATTERN",
                    help="parameters the A and worst criteria look at (glob; default all free)")
-    p.add_argument("--per", choices=("shot", "t-count"), default="shot",
-                   help="share a budget of shots, or of fault-tolerant T gates (default shot)")
+    p.add_argument("--per", choices=("shot", "point", "t-count"), default="shot",
+                   help="share a budget of shots, of sampled points (fair when --time-points competes with "
+                        "whole acquisitions), or of fault-tolerant T gates (default shot)")
     p.add_argument("--budget", type=_BUDGET, metavar="N",
-                   help="total shots or T gates (default: what the file's experiments spend, one shot each)")
+                   help="total shots, points or T gates (default: what the file's experiments spend, one shot each)")
     p.add_argument("--scales", type=SCALES, metavar="A:B:N",
                    help="generated candidates at N dipolar scales from A to B (times every --windows)")
     p.add_argument("--windows", type=SCALES, metavar="A:B:N",
@@ -104,13 +105,13 @@ def run(args):
 
 def _print_design(rep, args):
     import numpy as np
-    unit = "shots" if rep.per == "shot" else "T gates"
+    unit = {"shot": "shots", "point": "points", "t_count": "T gates"}[rep.per]
     print(f"cluster {rep.cluster}: {len(rep.candidates)} candidates, {len(rep.parameters)} free parameters; "
-          f"{rep.criterion}-optimal per {'shot' if rep.per == 'shot' else 'T gate'}, budget {rep.budget:.4g} {unit}")
+          f"{rep.criterion}-optimal per {unit[:-1]}, budget {rep.budget:.4g} {unit}")
     if rep.criterion != "D" and len(rep.selection) < len(rep.parameters):
         print(f"criterion over: {', '.join(rep.selection)}")
     head = f"{'candidate':<24}{'kind':>11}{'scale':>7}{'t_max (s)':>11}{'points':>7}{'share':>9}{'shots':>10}"
-    if rep.cost_per_shot is not None:
+    if rep.per == "t_count":
         head += f"{'T/shot':>11}"
     print(head)
     order = np.argsort(-rep.shares)
@@ -120,7 +121,7 @@ def _print_design(rep, args):
         d = c.describe()
         line = (f"{c.name[:23]:<24}{c.kind:>11}{d['dipolar_scale']:>7.3g}{d['t_max_s']:>11.4g}{d['points']:>7}"
                 f"{rep.shares[k]:>9.4f}{rep.shots[k]:>10}")
-        if rep.cost_per_shot is not None:
+        if rep.per == "t_count":
             line += f"{rep.cost_per_shot[k]:>11.3g}"
         print(line)
     if len(order) > len(shown):
@@ -135,7 +136,7 @@ def _print_design(rep, args):
     print(f"{'parameter':<20}{'value (Hz)':>14}{'CRB (Hz)':>12}{'current (Hz)':>14}")
     for n, v, b, b0 in zip(rep.parameters, rep.values_hz, rep.crb_hz, rep.baseline_crb_hz):
         print(f"{n:<20}{v:>14.3f}{b:>12.4g}{b0:>14.4g}")
-    if rep.cost_per_shot is not None:
+    if rep.per == "t_count":
         print(f"T-count model: {rep.assumptions.get('trotter_steps')}; {rep.assumptions.get('synthesis')}")
     if args.plot:
         print(f"wrote {args.plot}")

@@ -5,10 +5,12 @@ qhl.learning.design_candidates (exact engine), the optimal shares from
 qhl.learning.design_optimal (convex relaxation on the simplex; the criteria and algorithms are
 stated there).
 
-Per shot or per T gate. With `per='shot'` the shares w_k are shares of the shots and
-M(w) = sum_k w_k F_k is the information per shot. With `per='t_count'` each shot of candidate k
-costs c_k T gates (qhl.learning.design_candidates.TCostModel) and the problem is solved on
-F_k / c_k: v_k is the share of the T-gate budget, the shot shares follow as w_k ~ v_k / c_k.
+Per shot, per point or per T gate. With `per='shot'` the shares w_k are shares of the shots and
+M(w) = sum_k w_k F_k is the information per shot. Otherwise each shot of candidate k costs c_k:
+its number of sampled times (`per='point'`: one measurement per time, the fair unit when single
+times compete with whole acquisitions) or its T gates (`per='t_count'`,
+qhl.learning.design_candidates.TCostModel); the problem is solved on F_k / c_k: v_k is the share
+of the budget, the shot shares follow as w_k ~ v_k / c_k.
 
 Budget B (shots, or T gates): the total information is B M (the Fisher information adds over
 independent shots), so the Cramer-Rao bounds at the budget are sqrt(diag((B M)^-1)) (Hz) and
@@ -35,7 +37,7 @@ from .design_optimal import criterion_value, efficient_rounding, optimal_shares
 
 __all__ = ["DesignReport", "design_experiments", "PER", "CHOSEN_MIN_SHARE", "gain_factor"]
 
-PER = ("shot", "t_count")
+PER = ("shot", "point", "t_count")
 CHOSEN_MIN_SHARE = 1e-3            # a candidate with a share below this is not part of the chosen set
 
 
@@ -56,7 +58,8 @@ class DesignReport:
     """Result of `design_experiments` (see `to_json` for the keys).
 
     Attributes:
-        candidates: list of Candidate; fishers: (K, P, P) per shot; cost_per_shot: (K,) T gates (or None).
+        candidates: list of Candidate; fishers: (K, P, P) per shot; cost_per_shot: (K,) in the unit of `per`
+            (points or T gates; None per shot).
         shares: (K,) shares of the shots; budget_shares: (K,) shares of the budget (= shares per shot).
         shots: (K,) integer shots at the budget; chosen: indices with share >= CHOSEN_MIN_SHARE.
         value, baseline_value: the criterion at the budget (module docstring of design_optimal).
@@ -96,7 +99,7 @@ class DesignReport:
             "parameters": list(self.parameters), "values_hz": self.values_hz,
             "selected_parameters": list(self.selection),
             "candidates": [{**c.describe(), "share": float(w), "budget_share": float(v), "shots": int(n),
-                            "t_count_per_shot": None if self.cost_per_shot is None else float(self.cost_per_shot[k]),
+                            "cost_per_shot": None if self.cost_per_shot is None else float(self.cost_per_shot[k]),
                             "chosen": bool(k in set(self.chosen.tolist())),
                             "baseline_share": float(self.baseline_shares[k])}
                            for k, (c, w, v, n) in enumerate(zip(self.candidates, self.shares,
@@ -120,8 +123,8 @@ def design_experiments(cluster, criterion: str = "D", per: str = "shot", budget=
     Args:
         cluster: the Cluster (its experiments are the current set and candidates).
         criterion: 'D', 'A' or 'worst' (qhl.learning.design_optimal).
-        per: 'shot' or 't_count' (shares of a shot budget or of a T-gate budget).
-        budget: total shots or T gates (default: one shot of each file experiment).
+        per: 'shot', 'point' or 't_count' (shares of a budget of shots, sampled points or T gates).
+        budget: total shots, points or T gates (default: one shot of each file experiment).
         free: glob patterns of the free parameters.
         parameters: glob patterns of the parameters the A and worst criteria look at (default all free).
         dipolar_scales, windows_s, points, noise, time_points, include_file: the candidates
@@ -164,7 +167,11 @@ def design_experiments(cluster, criterion: str = "D", per: str = "shot", budget=
     base_cands = build_candidates(cluster, noise=noise)           # the file's experiments: the current set
     base_f = candidate_fishers(engine, base_cands)
     costs, base_costs, assumptions = None, None, {}
-    if per == "t_count":
+    if per == "point":
+        costs = np.array([float(c.times.size) for c in cands])
+        base_costs = np.array([float(c.times.size) for c in base_cands])
+        assumptions = {"point": "one shot of a candidate costs its number of sampled times"}
+    elif per == "t_count":
         say(f"T gates per shot of {len(cands)} candidates (Trotter models per dipolar scale)")
         tc = TCostModel(model, trotter_eps, synthesis_eps)
         costs = np.array([tc.shot(c) for c in cands])

@@ -23,8 +23,12 @@ Algorithms:
             d(-log det M)/dw_k = -tr(M^-1 F_k),
             d tr(A^T M^-1 A)/dw_k = -tr(A^T M^-1 F_k M^-1 A),
         and, for 'worst', the epigraph form: minimise s subject to (M^-1)_ii <= s.
+    Many candidates (more than ACTIVE_SET_MIN): SLSQP's cost grows as K^3, so it runs on a support
+        that grows (column generation) until no candidate outside it violates the equivalence
+        theorem by more than ACTIVE_SET_EQ_TOL; A and worst start from a few multiplicative steps.
 Equivalence theorems at the optimum (Kiefer and Wolfowitz, Canad. J. Math. 12, 363 (1960);
-Pukelsheim 1993, ch. 7): D: max_k tr(M^-1 F_k) = P; A: max_k tr(A^T M^-1 F_k M^-1 A) = tr(A^T M^-1 A).
+Pukelsheim 1993, ch. 7): D: max_k tr(M^-1 F_k) = P; A: max_k tr(A^T M^-1 F_k M^-1 A) = tr(A^T M^-1 A);
+worst: the A form weighted by the optimal multipliers mu of the epigraph constraints (a saddle point).
 `DesignSolution.equivalence` reports max_k over the candidates divided by the right-hand side
 (1 at the optimum, >= 1 anywhere).
 
@@ -47,6 +51,11 @@ CRITERIA = ("D", "A", "worst")
 METHODS = ("auto", "multiplicative", "slsqp")
 RIDGE = 1e-12
 AUTO_MULTIPLICATIVE_STEPS = 500
+ACTIVE_SET_MIN = 60          # above this many candidates SLSQP runs on a growing support
+ACTIVE_SET_ADD = 20
+ACTIVE_SET_ROUNDS = 40
+ACTIVE_SET_EQ_TOL = 1e-3
+WARM_START_STEPS = 200
 
 
 @dataclass(frozen=True)
@@ -56,8 +65,10 @@ class DesignSolution:
     Attributes:
         shares: (K,) w_k, sum 1 (of the unit the matrices are given per: shots, or budget if F_k / c_k).
         criterion: 'D', 'A' or 'worst'; value: its value at `shares` (module docstring; no ridge).
-        equivalence: max over candidates of the directional derivative over its optimum value (1 at the optimum).
+        equivalence: max over candidates of the directional derivative over its optimum value (1 at the
+            optimum; for 'worst' with the weights of its KKT multipliers, nan when they are not known).
         method: the algorithm used; iterations; converged.
+        multipliers: 'worst' only: the weights mu over the parameters (sum 1) of its optimal multipliers.
     """
 
     shares: np.ndarray
@@ -67,6 +78,7 @@ class DesignSolution:
     method: str
     iterations: int
     converged: bool
+    multipliers: np.ndarray | None = None
 
 
 def _check(fishers, selection):
@@ -114,11 +126,14 @@ def criterion_value(fishers, shares, criterion="D", selection=None) -> float:
     raise QhlInputError(f"unknown criterion {criterion!r}: expected one of {', '.join(CRITERIA)}", key="criterion")
 
 
-def equivalence_ratio(fishers, shares, criterion="D", selection=None) -> float:
+def equivalence_ratio(fishers, shares, criterion="D", selection=None, weights=None) -> float:
     """max_k (directional derivative towards candidate k) / (its value at the optimum); 1 at the optimum.
 
-    D: max_k tr(M^-1 F_k) / P; A: max_k tr(A^T M^-1 F_k M^-1 A) / tr(A^T M^-1 A) (module docstring).
-    'worst' is not differentiable at a tie: nan.
+    D: max_k tr(M^-1 F_k) / P; A: max_k tr(A^T M^-1 F_k M^-1 A) / tr(A^T M^-1 A) (module docstring),
+    with `weights` a_i on the selected variances when given (sum_i a_i (M^-1 F_k M^-1)_ii over
+    sum_i a_i (M^-1)_ii). 'worst' (not differentiable at a tie) has the A form with the weights of its
+    optimal multipliers mu (the minimax design is A-optimal for the weights mu: a saddle point of
+    sum_i mu_i (M^-1)_ii; Pukelsheim 1993, ch. 7); here without weights: nan.
     """
     F = np.asarray(fishers, float)
     M = np.einsum("k,kij->ij", np.asarray(shares, float), F)
@@ -128,8 +143,9 @@ def equivalence_ratio(fishers, shares, criterion="D", selection=None) -> float:
     if criterion == "D":
         return float(np.max(np.einsum("ij,kji->k", Minv, F)) / P)
     if criterion == "A":
-        B = Minv[:, sel]
-        return float(np.max(np.einsum("ia,kij,ja->k", B, F, B)) / np.trace(Minv[np.ix_(sel, sel)]))
+        a = np.ones(len(sel)) if weights is None else np.asarray(weights, float)
+        B = Minv[:, sel] * np.sqrt(a)[None, :]
+        return float(np.max(np.einsum("ia,kij,ja->k", B, F, B)) / np.sum(a * np.diag(Minv)[sel]))
     return float("nan")
 
 
@@ -154,13 +170,27 @@ def _multiplicative(Fs, w, tol, max_iter, ridge):
     return w, it, False
 
 
-def _slsqp(Fs, S, sel, criterion, w0, tol, max_iter, ridge):
+def _weighted_derivatives(Fs, w, a, ridge):
+    """Weighted-A directional derivatives d_k = sum_i a_i (M^-1 F_k M^-1)_ii and sum_i a_i (M^-1)_ii."""
+    Mi = _inv(np.einsum("k,kij->ij", w, Fs) + ridge * np.eye(Fs.shape[1]))
+    B = Mi * np.sqrt(a)[None, :]
+    return np.einsum("ia,kij,ja->k", B, Fs, B), float(np.sum(a * np.diag(Mi)))
+
+
+def _d_derivatives(Fs, w, ridge):
+    """D directional derivatives d_k = tr(M^-1 F_k) and P."""
+    Mi = _inv(np.einsum("k,kij->ij", w, Fs) + ridge * np.eye(Fs.shape[1]))
+    return np.einsum("ij,kji->k", Mi, Fs), float(Fs.shape[1])
+
+
+def _slsqp(Fs, a, sel, criterion, w0, tol, max_iter, ridge):
+    """SLSQP over the candidates of Fs; a: the variance weights of the parameters (scaled coordinates).
+
+    Returns (w, iterations, success, mu) with mu the worst criterion's multipliers (weights over the
+    parameters; None for D and A)."""
     from scipy.optimize import minimize
     K, P, _ = Fs.shape
     eye = np.eye(P)
-    # Variances of original parameters: (M^-1)_ii = S_i^2 (Ms^-1)_ii.
-    weight = np.zeros(P)
-    weight[sel] = S[sel] ** 2
 
     def mat(w):
         return np.einsum("k,kij->ij", w, Fs) + ridge * eye
@@ -169,38 +199,32 @@ def _slsqp(Fs, S, sel, criterion, w0, tol, max_iter, ridge):
         return _inv(mat(w))
 
     if criterion in ("D", "A"):
-        w_eq = np.full(K, 1.0 / K)
-        Mi = minv(w_eq)
-        norm = 1.0 if criterion == "D" else float(np.sum(weight * np.diag(Mi)))
+        norm = 1.0 if criterion == "D" else float(np.sum(a * np.diag(minv(np.full(K, 1.0 / K)))))
 
         def fun(w):
             M = mat(w)
             Mi = _inv(M)
             if criterion == "D":
                 return -np.linalg.slogdet(M)[1], -np.einsum("ij,kji->k", Mi, Fs)
-            B = Mi * np.sqrt(weight)[None, :]
-            return (float(np.sum(weight * np.diag(Mi))) / norm,
-                    -np.einsum("ia,kij,ja->k", B, Fs, B) / norm)
+            B = Mi * np.sqrt(a)[None, :]
+            return float(np.sum(a * np.diag(Mi))) / norm, -np.einsum("ia,kij,ja->k", B, Fs, B) / norm
 
         res = minimize(fun, w0, jac=True, method="SLSQP", bounds=[(0.0, 1.0)] * K,
                        constraints=[{"type": "eq", "fun": lambda w: np.sum(w) - 1.0,
                                      "jac": lambda w: np.ones_like(w)}],
                        options={"maxiter": max_iter, "ftol": tol * 1e-3})
         w = np.clip(res.x, 0.0, None)
-        return w / w.sum(), int(res.nit), bool(res.success)
-    # worst: variables (w, s); minimise s subject to weight_i (M^-1)_ii <= s for chosen i.
-    Mi0 = minv(w0)
-    scale = float(np.max(weight[sel] * np.diag(Mi0)[sel]))
+        return w / w.sum(), int(res.nit), bool(res.success), None
+    # worst: variables (w, s); minimise s subject to a_i (M^-1)_ii / scale <= s for chosen i.
+    scale = float(np.max(a[sel] * np.diag(minv(w0))[sel]))
 
     def cons(x):
-        Mi = minv(x[:K])
-        return x[K] - weight[sel] * np.diag(Mi)[sel] / scale
+        return x[K] - a[sel] * np.diag(minv(x[:K]))[sel] / scale
 
     def cons_jac(x):
-        Mi = minv(x[:K])
-        rows = Mi[sel, :]                                     # (|sel|, P)
+        rows = minv(x[:K])[sel, :]                            # (|sel|, P)
         dvar = -np.einsum("ai,kij,aj->ak", rows, Fs, rows)    # d (M^-1)_aa / d w_k
-        return np.hstack([-(weight[sel][:, None] * dvar) / scale, np.ones((len(sel), 1))])
+        return np.hstack([-(a[sel][:, None] * dvar) / scale, np.ones((len(sel), 1))])
 
     x0 = np.concatenate([w0, [1.0]])
     res = minimize(lambda x: (x[K], np.concatenate([np.zeros(K), [1.0]])), x0, jac=True, method="SLSQP",
@@ -210,7 +234,52 @@ def _slsqp(Fs, S, sel, criterion, w0, tol, max_iter, ridge):
                                 {"type": "ineq", "fun": cons, "jac": cons_jac}],
                    options={"maxiter": max_iter, "ftol": tol * 1e-3})
     w = np.clip(res.x[:K], 0.0, None)
-    return w / w.sum(), int(res.nit), bool(res.success)
+    mu = np.zeros(P)
+    m = np.asarray(getattr(res, "multipliers", np.zeros(1 + len(sel))), float)[1:1 + len(sel)]
+    m = np.clip(m, 0.0, None)
+    mu[sel] = m / m.sum() if m.sum() > 0 else 1.0 / len(sel)
+    return w / w.sum(), int(res.nit), bool(res.success), mu
+
+
+def _warm_start(Fs, a, w, steps, ridge):
+    """A multiplicative step on the weighted-A derivatives, w_k <- w_k d_k^(1/2) (normalised): only a
+    starting point for SLSQP (its end point is checked by the equivalence theorem, not trusted)."""
+    for _ in range(steps):
+        d, _ = _weighted_derivatives(Fs, w, a, ridge)
+        w = w * np.sqrt(np.maximum(d, 0.0))
+        w = w / w.sum()
+    return w
+
+
+def _active_set(Fs, a, sel, criterion, w_start, tol, max_iter, ridge):
+    """SLSQP on a support that grows until the equivalence theorem holds over every candidate.
+
+    SLSQP's cost grows as K^3: with more than ACTIVE_SET_MIN candidates it runs on the candidates
+    with the largest starting shares; then candidates outside whose directional derivative exceeds
+    the criterion's reference by more than ACTIVE_SET_EQ_TOL join (the ACTIVE_SET_ADD largest each
+    round), until none does (a column-generation loop; common practice)."""
+    K = Fs.shape[0]
+    if K <= ACTIVE_SET_MIN:
+        return _slsqp(Fs, a, sel, criterion, w_start, tol, max_iter, ridge)
+    order = np.argsort(-w_start)
+    support = set(order[:ACTIVE_SET_MIN].tolist())
+    total_it, w, ok, mu = 0, w_start, False, None
+    for _ in range(ACTIVE_SET_ROUNDS):
+        idx = np.array(sorted(support))
+        ws0 = np.maximum(w[idx], 1e-6)
+        ws, it, ok, mu = _slsqp(Fs[idx], a, sel, criterion, ws0 / ws0.sum(), tol, max_iter, ridge)
+        total_it += it
+        w = np.zeros(K)
+        w[idx] = ws
+        if criterion == "D":
+            d, ref = _d_derivatives(Fs, w, ridge)
+        else:
+            d, ref = _weighted_derivatives(Fs, w, a if mu is None else a * mu, ridge)
+        out = np.array([k for k in np.argsort(-d) if k not in support and d[k] > ref * (1 + ACTIVE_SET_EQ_TOL)])
+        if out.size == 0:
+            return w, total_it, ok, mu
+        support.update(out[:ACTIVE_SET_ADD].tolist())
+    return w, total_it, False, mu
 
 
 def optimal_shares(fishers, criterion: str = "D", selection=None, method: str = "auto", tol: float = 1e-6,
@@ -224,7 +293,8 @@ def optimal_shares(fishers, criterion: str = "D", selection=None, method: str = 
         method: 'multiplicative' (D only), 'slsqp', or 'auto' (D: AUTO_MULTIPLICATIVE_STEPS multiplicative
             steps, then SLSQP from there when the equivalence theorem does not yet hold to `tol`; A and
             worst: SLSQP). The multiplicative algorithm slows down when candidates carry nearly equal
-            information (neighbouring time points): SLSQP finishes those.
+            information (neighbouring time points): SLSQP finishes those. With more than ACTIVE_SET_MIN
+            candidates SLSQP runs on a growing support (`_active_set`).
         tol: D multiplicative: stop when max_k d_k <= P (1 + tol); SLSQP: ftol = tol / 1000 (relative criterion).
         start: initial shares (default equal).
 
@@ -250,23 +320,34 @@ def optimal_shares(fishers, criterion: str = "D", selection=None, method: str = 
     F, sel = _check(fishers, selection)
     K, P, _ = F.shape
     Fs, S = _scaled(F, sel)
+    a = np.zeros(P)
+    a[sel] = S[sel] ** 2              # (M^-1)_ii = S_i^2 (Ms^-1)_ii: variances of the original parameters
     ridge = RIDGE * float(np.max(np.linalg.eigvalsh(Fs.sum(axis=0))))
     w0 = np.full(K, 1.0 / K) if start is None else np.asarray(start, float) / np.sum(start)
+    mu = None
+    slsqp_iter = min(max_iter, 1000)
     if method == "auto" and criterion == "D":
         w, it, ok = _multiplicative(Fs, w0, tol, min(max_iter, AUTO_MULTIPLICATIVE_STEPS), ridge)
         method = "multiplicative"
         if not ok:
-            w2, it2, ok = _slsqp(Fs, S, sel, criterion, w, tol, min(max_iter, 1000), ridge)
+            w2, it2, ok, _ = _active_set(Fs, a, sel, criterion, w, tol, slsqp_iter, ridge)
             if criterion_value(F, w2, criterion, sel) <= criterion_value(F, w, criterion, sel):
                 w = w2
             it, method = it + it2, "multiplicative+slsqp"
     elif method == "multiplicative":
         w, it, ok = _multiplicative(Fs, w0, tol, max_iter, ridge)
     else:
+        if method == "auto" and K > ACTIVE_SET_MIN:
+            w0 = _warm_start(Fs, a, w0, WARM_START_STEPS, ridge)
+        w, it, ok, mu = _active_set(Fs, a, sel, criterion, w0, tol, slsqp_iter, ridge)
         method = "slsqp"
-        w, it, ok = _slsqp(Fs, S, sel, criterion, w0, tol, min(max_iter, 1000), ridge)
-    return DesignSolution(w, criterion, criterion_value(F, w, criterion, sel),
-                          equivalence_ratio(F, w, criterion, sel), method, it, ok)
+    if criterion == "worst":
+        weights = np.zeros(P) if mu is None else mu
+        equivalence = equivalence_ratio(F, w, "A", np.flatnonzero(weights > 0), weights[weights > 0])
+    else:
+        equivalence = equivalence_ratio(F, w, criterion, sel)
+    return DesignSolution(w, criterion, criterion_value(F, w, criterion, sel), equivalence, method, it, ok,
+                          mu if criterion == "worst" else None)
 
 
 def efficient_rounding(shares, n: int) -> np.ndarray:
