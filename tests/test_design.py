@@ -118,6 +118,10 @@ def test_bad_input_is_refused(engine):
         design_experiments(c, budget=-1, engine=engine)
     with pytest.raises(QhlInputError, match="no free parameter matches"):
         design_experiments(c, criterion="A", parameters=["j:*"], engine=engine)
+    with pytest.raises(QhlInputError, match="at most 1e"):
+        design_experiments(c, budget=1e20, engine=engine)
+    with pytest.raises(QhlInputError, match="candidates: expected at most"):
+        build_candidates(c, time_points=10_000)
     # dipolar scale 0 alone cannot see the dipolar couplings
     with pytest.raises(QhlInputError, match="singular"):
         design_experiments(c, engine=engine, include_file=False, dipolar_scales=[0.0], windows_s=[1e-3])

@@ -103,6 +103,10 @@ def run(args):
     return 0
 
 
+def _count(n):
+    return f"{int(n)}" if n < 1e9 else f"{float(n):.3g}"
+
+
 def _print_design(rep, args):
     import numpy as np
     unit = {"shot": "shots", "point": "points", "t_count": "T gates"}[rep.per]
@@ -120,7 +124,7 @@ def _print_design(rep, args):
         c = rep.candidates[k]
         d = c.describe()
         line = (f"{c.name[:23]:<24}{c.kind:>11}{d['dipolar_scale']:>7.3g}{d['t_max_s']:>11.4g}{d['points']:>7}"
-                f"{rep.shares[k]:>9.4f}{rep.shots[k]:>10}")
+                f"{rep.shares[k]:>9.4f}{_count(rep.shots[k]):>10}")
         if rep.per == "t_count":
             line += f"{rep.cost_per_shot[k]:>11.3g}"
         print(line)

@@ -38,6 +38,7 @@ from .design_optimal import criterion_value, efficient_rounding, optimal_shares
 __all__ = ["DesignReport", "design_experiments", "PER", "CHOSEN_MIN_SHARE", "gain_factor"]
 
 PER = ("shot", "point", "t_count")
+MAX_COUNT_BUDGET = 1e15            # shots or points: integer counts stay exact in float64
 CHOSEN_MIN_SHARE = 1e-3            # a candidate with a share below this is not part of the chosen set
 
 
@@ -155,6 +156,8 @@ def design_experiments(cluster, criterion: str = "D", per: str = "shot", budget=
                             source=cluster.source, key="experiment")
     if budget is not None and not (np.isfinite(budget) and budget > 0):
         raise QhlInputError(f"budget must be a positive number, got {budget!r}", key="budget")
+    if budget is not None and per != "t_count" and budget > MAX_COUNT_BUDGET:
+        raise QhlInputError(f"budget {budget:g} {per}s: expected at most {MAX_COUNT_BUDGET:g}", key="budget")
     if engine is None:
         engine = ExactEngine(build_model(cluster, free=free))
     model = engine.model
@@ -195,7 +198,9 @@ def design_experiments(cluster, criterion: str = "D", per: str = "shot", budget=
     else:
         w = (v / costs) / np.sum(v / costs)
         B = float(np.sum(base_costs) if budget is None else budget)
-        shots = np.floor(B * v / costs + 1e-9).astype(int)
+        shots = np.floor(B * v / costs * (1 + 1e-12))       # float: T budgets may exceed int64
+        if per == "point":
+            shots = shots.astype(np.int64)
         M_opt = B * np.einsum("k,kij->ij", v, unit_f)
         M_base = B * base_f.sum(axis=0) / np.sum(base_costs)      # equal shots: F and cost both averaged
     value = criterion_value(M_opt[None], [1.0], criterion, sel)

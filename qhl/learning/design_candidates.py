@@ -34,15 +34,17 @@ import fnmatch
 import numpy as np
 
 from ..base.errors import QhlInputError
+from ..base.memory import require_memory
 from ..costing.synthesis import t_count_per_rotation
 from ..costing.trotter_cost import ORDERS, trotter_model
 from ..exact.likelihood import fisher_information
 from ..spins.cluster import Experiment, check_experiment
 
-__all__ = ["Candidate", "KINDS", "build_candidates", "candidate_fishers", "TCostModel", "COST_ASSUMPTIONS",
+__all__ = ["Candidate", "KINDS", "MAX_CANDIDATES", "build_candidates", "candidate_fishers", "TCostModel", "COST_ASSUMPTIONS",
            "select_parameters"]
 
 KINDS = ("file", "generated", "time_point")
+MAX_CANDIDATES = 20_000     # the optimiser's support grows in rounds; beyond this the job would take hours
 
 COST_ASSUMPTIONS = {
     "circuits": "one circuit per sampled time t > 0 (the signal at t); t = 0 needs no evolution",
@@ -142,12 +144,18 @@ def build_candidates(cluster, dipolar_scales=(), windows_s=(), points=None, nois
         n = int(time_points)
         if n < 1:
             raise QhlInputError(f"time points must be >= 1, got {time_points}", key="time_points")
+        if n * len(out) > MAX_CANDIDATES:
+            raise QhlInputError(f"{n} time points x {len(out)} candidates = {n * len(out):,} candidates: expected "
+                                f"at most {MAX_CANDIDATES:,}", key="time_points")
         split = []
         for c in out:
             t_max = float(c.times.max())
             for t in np.linspace(t_max / n, t_max, n):
                 split.append(Candidate(f"{c.name}@{t:.4g}s", "time_point", c.experiment, np.array([t])))
         out = split
+    if len(out) > MAX_CANDIDATES:
+        raise QhlInputError(f"{len(out):,} candidates: expected at most {MAX_CANDIDATES:,} (fewer --scales or "
+                            f"--windows)", key="experiment")
     if not out:
         raise QhlInputError("no candidate experiments: the cluster file has none and no grid was given",
                             source=source, key="experiment")
@@ -166,6 +174,10 @@ def build_candidates(cluster, dipolar_scales=(), windows_s=(), points=None, nois
 def candidate_fishers(engine, candidates, progress=None) -> np.ndarray:
     """(K, P, P) Fisher information per shot of each candidate (1/Hz^2; module docstring)."""
     P = len(engine.model.free)
+    n_times = max((c.times.size for c in candidates if c.times_s is not None), default=0)
+    require_memory(f"the Fisher matrices of {len(candidates):,} candidates ({P} parameters)",
+                   8.0 * P * P * (len(candidates) + 2 * sum(c.times.size for c in candidates if c.times_s is not None))
+                   + 16.0 * P * n_times)
     out = np.zeros((len(candidates), P, P))
     groups = {}
     for k, c in enumerate(candidates):
