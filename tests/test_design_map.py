@@ -76,3 +76,23 @@ def test_cli_map_json(capsys, tmp_path):
     for key in ("fisher_min_eigenvalue", "median_crb_hz", "mean_r", "mean_d2", "mean_d2_random",
                 "classical_seconds", "t_count", "learnable", "classically_hard", "affordable", "window"):
         assert key in out["points"][0]
+
+
+def test_ctrl_c_keeps_the_values_done(cluster, monkeypatch):
+    # Long work keeps what is done on Ctrl-C (RULES; common practice): the second value is interrupted.
+    import qhl.survey.learnability_map as lm
+    real = lm.classical_cost
+    calls = []
+
+    def interrupted_on_second(c):
+        calls.append(1)
+        if len(calls) == 2:
+            raise KeyboardInterrupt
+        return real(c)
+
+    monkeypatch.setattr(lm, "classical_cost", interrupted_on_second)
+    out = lm.learnability_map(cluster, values=(0.5, 1.0), points=16)
+    assert out.interrupted and [p.value for p in out.points] == [0.5]
+    monkeypatch.setattr(lm, "classical_cost", lambda c: (_ for _ in ()).throw(KeyboardInterrupt))
+    with pytest.raises(KeyboardInterrupt):
+        lm.learnability_map(cluster, values=(0.5,), points=16)

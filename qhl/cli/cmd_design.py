@@ -154,11 +154,12 @@ def _run_map(args, cluster):
     lmap = learnability_map(cluster, args.map, _grid(args.values), t_max_s=args.t_max, points=args.map_points,
                             noise=args.map_noise, free=args.free, precision=args.precision, thresholds=thresholds,
                             progress=_say)
+    rc = 130 if lmap.interrupted else 0
     if args.plot:
         plot_learnability_map(lmap, args.plot)
     if args.json:
         print_json({**lmap.to_json(), "plot": args.plot})
-        return 0
+        return rc
     print(f"cluster {lmap.cluster}: learnability map over {lmap.axis} ({len(lmap.points)} values, "
           f"{lmap.seconds:.1f} s)")
     print(f"{lmap.axis:>13}{'lam_min':>10}{'medCRB Hz':>10}{'<r>':>7}{'D2':>6}{'D2rand':>7}{'classical s':>12}"
@@ -174,6 +175,8 @@ def _run_map(args, cluster):
           f"{th['hard_memory_bytes']:.3g} B; A affordable: T-count <= {th['max_t_count']:.3g}")
     print(f"window (learnable, classically hard, affordable): "
           f"{', '.join(f'{v:g}' for v in lmap.window) if lmap.window else 'none'}")
+    if lmap.interrupted:
+        print(f"interrupted: {len(lmap.points)} values done")
     if args.plot:
         print(f"wrote {args.plot}")
-    return 0
+    return rc

@@ -99,6 +99,7 @@ class LearnabilityMap:
     experiment: dict
     seconds: float
     assumptions: dict = field(default_factory=dict)
+    interrupted: bool = False
 
     @property
     def values(self) -> np.ndarray:
@@ -112,7 +113,7 @@ class LearnabilityMap:
         return {"cluster": self.cluster, "axis": self.axis, "experiment": self.experiment,
                 "thresholds": self.thresholds, "points": [p.to_json() for p in self.points],
                 "window": self.window, "poisson_mean_r": POISSON_MEAN_R, "goe_mean_r": GOE_MEAN_R,
-                "seconds": self.seconds, "assumptions": self.assumptions}
+                "seconds": self.seconds, "assumptions": self.assumptions, "interrupted": self.interrupted}
 
 
 def learnability_map(cluster, axis: str = "dipolar_scale", values=(0.0, 0.2, 0.4, 0.6, 0.8, 1.0), *,
@@ -152,6 +153,28 @@ def learnability_map(cluster, axis: str = "dipolar_scale", values=(0.0, 0.2, 0.4
     settings = BudgetSettings(empirical_trotter=False, hessian_exact=False, circuit_variance_max_spins=0,
                               classical_meter=False)
     out = []
+    interrupted = False
+    try:
+        _map_points(cluster, axis, vals, exps, t_max_s, points, noise, free, precision, settings, th, out, say, start)
+    except KeyboardInterrupt:                 # Ctrl-C keeps the values already done
+        if not out:
+            raise
+        interrupted = True
+        say(f"interrupted: {len(out)} of {len(vals)} values done")
+    assumptions = {
+        "learnability": f"one FID of {points} points over {t_max_s:g} s, noise {noise:g} per Re/Im part "
+                        "(qhl.survey.diagnostics.diagnose)",
+        "classical": "qhl.costing.classical_cost: best route's time and memory (estimates from measured rates)",
+        "quantum": f"qhl.costing.budget: fault-tolerant T-count of the worst gradient component at eps "
+                   f"{precision:g} per kHz, t = {t_max_s:g} s; near-term shots of a learning run (model-based)",
+    }
+    return LearnabilityMap(cluster.name, axis, out, th, {"t_max_s": t_max_s, "points": points, "noise": noise,
+                                                         "free": list(free), "precision": precision},
+                           _time.perf_counter() - start, assumptions, interrupted)
+
+
+def _map_points(cluster, axis, vals, exps, t_max_s, points, noise, free, precision, settings, th, out, say, start):
+    """Append one MapPoint per value to `out` (so an interrupted map keeps the finished ones)."""
     for i, (v, ex) in enumerate(zip(vals, exps)):
         say(f"{axis} = {v:g} ({i + 1}/{len(vals)}, {_time.perf_counter() - start:.0f} s): Fisher and levels")
         d = diagnose(cluster, ex.dipolar_scale, t_max_s=t_max_s, points=points, noise=noise, free=free)
@@ -170,16 +193,6 @@ def learnability_map(cluster, axis: str = "dipolar_scale", values=(0.0, 0.2, 0.4
         out.append(MapPoint(v, lam, s["median_crb_hz"], softest, s["mean_r"], s["mean_d2"], s["mean_d2_random"],
                             cc.method, float(cc.seconds), float(cc.memory_bytes), t_count, shots, learnable,
                             hard, bool(t_count <= th["max_t_count"])))
-    assumptions = {
-        "learnability": f"one FID of {points} points over {t_max_s:g} s, noise {noise:g} per Re/Im part "
-                        "(qhl.survey.diagnostics.diagnose)",
-        "classical": "qhl.costing.classical_cost: best route's time and memory (estimates from measured rates)",
-        "quantum": f"qhl.costing.budget: fault-tolerant T-count of the worst gradient component at eps "
-                   f"{precision:g} per kHz, t = {t_max_s:g} s; near-term shots of a learning run (model-based)",
-    }
-    return LearnabilityMap(cluster.name, axis, out, th, {"t_max_s": t_max_s, "points": points, "noise": noise,
-                                                         "free": list(free), "precision": precision},
-                           _time.perf_counter() - start, assumptions)
 
 
 def plot_learnability_map(lmap: LearnabilityMap, path):
