@@ -221,25 +221,25 @@ class TCostModel:
         self._counts = {}
 
     def _trotter(self, experiment):
+        """(TrotterModel, {order: rotations per step}) of the experiment's Hamiltonian, cached per dipolar
+        scale; gates per step are shared by scales with the same Pauli terms (only the angles differ)."""
         key = float(experiment.dipolar_scale)
         if key not in self._models:
             tm = trotter_model(self.model, experiment)
             labels = tuple(sorted(tm.hamiltonian.simplify(atol=0).paulis.to_labels()))
-            counts = self._counts.setdefault(labels, tm._counts)   # same terms: same gates per step
-            tm._counts = counts
-            self._models[key] = tm
+            if labels not in self._counts:
+                self._counts[labels] = {p: float(tm.rotations_per_step(p)) for p in ORDERS}
+            self._models[key] = (tm, self._counts[labels])
         return self._models[key]
 
     def per_time(self, experiment, times) -> np.ndarray:
         """T gates of the circuit at each time (0 at t = 0)."""
         t = np.asarray(times, float)
-        tm = self._trotter(experiment)
+        tm, rotations = self._trotter(experiment)
         best = np.full(t.shape, np.inf)
         for p in ORDERS:
-            r = tm.steps(p, np.maximum(t, 1e-300), self.trotter_eps)
-            rot = float(tm.rotations_per_step(p))
-            n_rot = r * rot
-            best = np.minimum(best, n_rot * t_count_per_rotation(np.minimum(self.synthesis_eps / n_rot, 0.5)))
+            n_rot = tm.steps(p, np.maximum(t, 1e-300), self.trotter_eps) * rotations[p]
+            best = np.minimum(best, n_rot * t_count_per_rotation(self.synthesis_eps / n_rot))
         return np.where(t > 0, best, 0.0)
 
     def shot(self, candidate) -> float:

@@ -149,8 +149,8 @@ def equivalence_ratio(fishers, shares, criterion="D", selection=None, weights=No
     return float("nan")
 
 
-def _scaled(F, sel):
-    """F rescaled by S = diag(M_equal)^-1/2 and the selection weights in the new coordinates."""
+def _scaled(F):
+    """F rescaled by S = diag(M_equal)^-1/2; returns (F_scaled, S)."""
     m_eq = F.mean(axis=0)
     d = np.sqrt(np.maximum(np.diag(m_eq), 1e-300))
     S = 1.0 / d
@@ -319,7 +319,7 @@ def optimal_shares(fishers, criterion: str = "D", selection=None, method: str = 
         raise QhlInputError("the multiplicative algorithm is for the D criterion: use method 'slsqp'", key="method")
     F, sel = _check(fishers, selection)
     K, P, _ = F.shape
-    Fs, S = _scaled(F, sel)
+    Fs, S = _scaled(F)
     a = np.zeros(P)
     a[sel] = S[sel] ** 2              # (M^-1)_ii = S_i^2 (Ms^-1)_ii: variances of the original parameters
     ridge = RIDGE * float(np.max(np.linalg.eigvalsh(Fs.sum(axis=0))))
