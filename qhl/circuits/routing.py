@@ -44,7 +44,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from ..base.errors import QhlInputError
-from .circuit_counts import BASIS_GATES, OPTIMIZATION_LEVEL, circuit_counts, is_clifford_angle
+from .circuit_counts import BASIS_GATES, OPTIMIZATION_LEVEL, count_gates, is_clifford_angle, transpile_for_counts
 
 __all__ = ["ROUTE_MAX_QUBITS", "DEFAULT_SEEDS", "RoutedCounts", "coupling_weights", "circuit_weights",
            "greedy_layout", "route_circuit", "routed_family_counts", "routed_step_counts"]
@@ -227,9 +227,10 @@ def route_circuit(circuit, target, seeds=DEFAULT_SEEDS, weights: np.ndarray | No
     """
     n = circuit.num_qubits
     if target.all_to_all:
-        c = circuit_counts(circuit)
+        out = transpile_for_counts(circuit)
+        c = count_gates(out)
         return RoutedCounts(target.name, n, None, "cx", c.cx, c.depth, 0, c.rotations, list(range(n)), "identity",
-                            None, [])
+                            None, [], out)
     if n > target.num_qubits:
         raise QhlInputError(f"the circuit needs {n} qubits but {target.name} has {target.num_qubits}", key="target")
     if not seeds:
