@@ -386,7 +386,8 @@ class BudgetModel:
         require_memory(f"the bound-tier budget of {self.model.n_spins} spins", bound_tier_memory_bytes(
             self.model, self.experiments))
         from ..circuits.targets import resolve_target
-        self.target = resolve_target(self.settings.target, self.model.n_spins + NOISY_ANCILLAS, key="--target")
+        self.target = resolve_target(self.settings.target, self.model.n_spins + NOISY_ANCILLAS, key="--target",
+                                     what=f"{self.model.n_spins} spins + {NOISY_ANCILLAS} ancilla")
         self._routes = {}
         self.exact_plan = exact_engine_plan(self.model, self.experiments, self.settings)
         self.engine = None
