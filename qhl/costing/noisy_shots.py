@@ -201,8 +201,9 @@ def extrapolate_fidelity(one: dict, two: dict, steps) -> dict:
            "log_gamma": one["log_gamma"] + (r - 1) * max(two["log_gamma"] - one["log_gamma"], 0.0)}
     out["log_readout_fidelity"] = one["log_readout_fidelity"] + 0 * r
     out["log_fidelity"] = out["log_gate_fidelity"] + out["log_readout_fidelity"]
-    for k in ("fidelity", "gate_fidelity", "readout_fidelity", "gamma"):
-        out[k] = np.exp(out["log_" + k])
+    with np.errstate(over="ignore", under="ignore"):
+        for k in ("fidelity", "gate_fidelity", "readout_fidelity", "gamma"):
+            out[k] = np.exp(out["log_" + k])
     return out
 
 
@@ -217,7 +218,13 @@ def richardson_weights(factors=ZNE_FACTORS) -> np.ndarray:
 
 
 def mitigation_overhead(method: str, fid: dict, factors=ZNE_FACTORS):
-    """Shot multiplier over the noiseless bound count (module docstring); arrays broadcast."""
+    """Shot multiplier over the noiseless bound count (module docstring); arrays broadcast (inf past the
+    floating-point range)."""
+    with np.errstate(over="ignore", under="ignore"):
+        return _overhead(method, fid, factors)
+
+
+def _overhead(method, fid, factors):
     if method not in MITIGATIONS:
         raise QhlInputError(f"unknown mitigation {method!r}: expected one of {', '.join(MITIGATIONS)}",
                             key="--mitigation")
@@ -241,8 +248,9 @@ def zne_attenuation(fid: dict, factors=ZNE_FACTORS):
 def noisy_shots(bound_shots, fid: dict, method: str = "none", factors=ZNE_FACTORS):
     """ceil(N_bound x overhead) (arrays: float, inf where F = 0)."""
     over = mitigation_overhead(method, fid, factors)
-    n = np.asarray(bound_shots, float) * over
-    return np.ceil(n * (1 - 1e-12))
+    with np.errstate(over="ignore", invalid="ignore"):
+        n = np.asarray(bound_shots, float) * over
+        return np.ceil(n * (1 - 1e-12))
 
 
 def largest_time_below(times, counts, cap):
