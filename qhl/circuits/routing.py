@@ -18,8 +18,8 @@ rotations (rz angles that are not multiples of pi/2, as in circuit_counts), and 
 
 Greedy layout heuristic (stated once). Weight of a circuit-qubit pair w_ij:
     spin pairs      sum of |coefficients| (Hz) of the two-spin Pauli terms (XX, YY, ZZ) of the pair in
-                    the experiment's Hamiltonian: a positive combination of |d_ij| and |J_ij|
-                    (qhl.circuits.trotter terms);
+                    the experiment's Hamiltonian (qhl.circuits.trotter terms): it grows with |d_ij| and
+                    |J_ij| (3 |J_ij| / 4 for a scalar coupling alone, I = sigma/2);
     ancilla pairs   the number of two-qubit gates between the two qubits in the circuit, times the
                     largest spin-pair weight over the largest such count (ancillas sit beside the spins
                     they control).
