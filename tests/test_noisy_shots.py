@@ -252,3 +252,17 @@ def test_budget_default_has_no_noise_model():
     nt = BudgetModel(demo_cluster(), settings=s).budget(2e-5, 0.05).near_term
     for key in ("shots_per_component_noisy", "circuit_fidelity", "mitigation", "max_useful_time_s", "routing"):
         assert key in nt and nt[key] is None
+
+
+def test_budget_above_the_routing_limit_says_not_computed():
+    # 34 spins + an ancilla exceed ROUTE_MAX_QUBITS: no invented number, a note instead
+    from made_up_clusters import random_cluster
+    from qhl.costing import BudgetModel, BudgetSettings
+    c = random_cluster(np.random.default_rng(2), 34, with_j=False)
+    s = BudgetSettings(use_exact=False, classical_meter=False, empirical_trotter=False, target="heavy-hex",
+                       gate_error=1e-3)
+    b = BudgetModel(c, settings=s).budget(1e-4, 0.05)
+    nt = b.near_term
+    assert nt["routing"]["computed"] is False and "not computed" in nt["routing"]["reason"]
+    assert nt["shots_per_component_noisy"] is None and nt["circuit_fidelity"] is None
+    assert any("not computed" in note for note in b.notes)

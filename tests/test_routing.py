@@ -138,6 +138,16 @@ def test_step_extrapolation_matches_a_routed_three_step_circuit(demo_family):
     assert est["two_qubit"] == pytest.approx(direct.two_qubit, rel=0.25)
 
 
+def test_wide_circuits_are_not_routed():
+    # above ROUTE_MAX_QUBITS the count is refused with a reason, not invented
+    from qhl.circuits.routing import ROUTE_MAX_QUBITS
+    chain = _chain_cluster(ROUTE_MAX_QUBITS + 1)
+    m = build_model(chain)
+    out = routed_step_counts(lambda k: signal_circuit(m, None, k * 1e-4, k, 1), 10,
+                             resolve_target("line", ROUTE_MAX_QUBITS + 1))
+    assert out["computed"] is False and "not computed" in out["reason"] and "two_qubit" not in out
+
+
 def test_routing_refusals():
     with pytest.raises(QhlInputError) as e:
         route_circuit(signal_circuit(build_model(_chain_cluster(5)), None, 1e-3, 1, 1).step_circuit,

@@ -49,7 +49,7 @@ from .circuit_counts import BASIS_GATES, OPTIMIZATION_LEVEL, count_gates, is_cli
 __all__ = ["ROUTE_MAX_QUBITS", "DEFAULT_SEEDS", "RoutedCounts", "coupling_weights", "circuit_weights",
            "greedy_layout", "route_circuit", "routed_family_counts", "routed_step_counts"]
 
-ROUTE_MAX_QUBITS = 64
+ROUTE_MAX_QUBITS = 33       # 32 spins + an ancilla: about a minute per routed pair of circuits on a 127-qubit map
 DEFAULT_SEEDS = (11, 23, 37, 53)
 
 
@@ -212,7 +212,8 @@ def _count(transpiled, swaps):
     return "+".join(sorted(two)) or "-", sum(two.values()), int(transpiled.depth()), int(swaps), rotations
 
 
-def route_circuit(circuit, target, seeds=DEFAULT_SEEDS, weights: np.ndarray | None = None) -> RoutedCounts:
+def route_circuit(circuit, target, seeds=DEFAULT_SEEDS, weights: np.ndarray | None = None,
+                  progress=None) -> RoutedCounts:
     """Route `circuit` for `target` (qhl.circuits.targets.Target), keeping the best try (module docstring).
 
     Args:
@@ -221,6 +222,7 @@ def route_circuit(circuit, target, seeds=DEFAULT_SEEDS, weights: np.ndarray | No
         seeds: transpiler seeds; each is tried with qiskit's layout and with the greedy layout.
         weights: (n, n) pair weights over circuit qubits for the greedy layout (default: the
             circuit's two-qubit gate counts).
+        progress: optional callable(str), told after each try.
 
     Raises:
         QhlInputError: the circuit is wider than the target.
@@ -250,6 +252,9 @@ def route_circuit(circuit, target, seeds=DEFAULT_SEEDS, weights: np.ndarray | No
             out = pm.run(circuit, callback=watch)
             gate, two, depth, sw, rot = _count(out, swaps[0])
             tries.append((method, int(seed), two))
+            if progress is not None:
+                progress(f"routing on {target.name}: try {len(tries)}/{3 * len(seeds)} ({method}, seed {seed}): "
+                         f"{two} two-qubit gates")
             if best is None or (two, depth) < (best[1][1], best[1][2]):
                 best = (out, (gate, two, depth, sw, rot), method, int(seed))
     out, (gate, two, depth, sw, rot), method, seed = best
@@ -281,7 +286,7 @@ def routed_family_counts(family, target, seeds=DEFAULT_SEEDS) -> dict:
     return {"whole": whole, "per_step": per}
 
 
-def routed_step_counts(build, steps: int, target, seeds=DEFAULT_SEEDS) -> dict:
+def routed_step_counts(build, steps: int, target, seeds=DEFAULT_SEEDS, progress=None) -> dict:
     """Counts of an r-step family from routing its one- and two-step members (module docstring).
 
     Args:
@@ -301,7 +306,7 @@ def routed_step_counts(build, steps: int, target, seeds=DEFAULT_SEEDS) -> dict:
                                              f"{ROUTE_MAX_QUBITS} routed here"}
     fam2 = build(2)
     circs = [f.with_measurements(f.representative()) for f in (fam1, fam2)]
-    one, two = (route_circuit(c, target, seeds, _family_weights(f, c)) for c, f in zip(circs, (fam1, fam2)))
+    one, two = (route_circuit(c, target, seeds, _family_weights(f, c), progress) for c, f in zip(circs, (fam1, fam2)))
     r = int(steps)
     out = {"computed": True, "one": one, "two": two, "steps": r,
            "method": "one and two Trotter steps routed; r steps extrapolated linearly (one + (r - 1)(two - one))"}

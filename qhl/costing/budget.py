@@ -676,11 +676,18 @@ class BudgetModel:
         per-step counts do not depend on t)."""
         if (x, n) not in self._routes:
             from ..circuits.gradient_circuits import gradient_circuit
-            from ..circuits.routing import routed_step_counts
+            from ..circuits.routing import ROUTE_MAX_QUBITS, routed_step_counts
+            width = self.model.n_spins + NOISY_ANCILLAS
+            if width > ROUTE_MAX_QUBITS:
+                self._routes[(x, n)] = {"computed": False, "reason": f"routing not computed: {width} circuit qubits "
+                                                                     f"exceed the {ROUTE_MAX_QUBITS} routed here"}
+                return self._routes[(x, n)]
             ex, name, tau = self.experiments[x], self.near.names[n], float(t) / float(steps)
-            getattr(self, "_say", lambda m: None)(f"routing the near-term circuit on {self.target.name}")
+            say = getattr(self, "_say", lambda m: None)
+            say(f"routing the near-term circuit on {self.target.name}")
             self._routes[(x, n)] = routed_step_counts(
-                lambda k: gradient_circuit(self.model, ex, name, k * tau, k, NOISY_ORDER), steps, self.target)
+                lambda k: gradient_circuit(self.model, ex, name, k * tau, k, NOISY_ORDER), steps, self.target,
+                progress=say if self.model.n_spins > 8 else None)
         return self._routes[(x, n)]
 
     def _add_noisy_shots(self, near, methods_near, t, eps, x, n, ft_bound):
