@@ -227,6 +227,11 @@ def test_budget_noisy_count_is_bound_over_f_squared(noisy_model):
     assert nt["shots_per_component_noisy"] == math.ceil(nt["shots_per_component_bound"] / f**2 * (1 - 1e-12))
     assert nt["mitigation"]["method"] == "none" and nt["routing"]["target"] == "grid"
     assert nt["routing"]["two_qubit"] >= nt["routing"]["one_step"]["two_qubit"]
+    for t in (2e-5, 8e-5):                          # the cached routing serves every t with its own r
+        r = noisy_model.budget(t, 0.05).near_term["routing"]
+        one, two = r["one_step"]["two_qubit"], r["two_steps"]["two_qubit"]
+        assert r["two_qubit"] == one + (r["trotter_steps"] - 1) * (two - one)
+    assert noisy_model.budget(8e-5, 0.05).near_term["routing"]["trotter_steps"] > nt["routing"]["trotter_steps"]
 
 
 def test_max_useful_time_monotone_in_the_cap(noisy_model):

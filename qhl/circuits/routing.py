@@ -47,7 +47,7 @@ from ..base.errors import QhlInputError
 from .circuit_counts import BASIS_GATES, OPTIMIZATION_LEVEL, count_gates, is_clifford_angle, transpile_for_counts
 
 __all__ = ["ROUTE_MAX_QUBITS", "DEFAULT_SEEDS", "RoutedCounts", "coupling_weights", "circuit_weights",
-           "greedy_layout", "route_circuit", "routed_family_counts", "routed_step_counts"]
+           "greedy_layout", "route_circuit", "routed_family_counts", "routed_step_counts", "extrapolate_counts"]
 
 ROUTE_MAX_QUBITS = 33       # 32 spins + an ancilla: about a minute per routed pair of circuits on a 127-qubit map
 DEFAULT_SEEDS = (11, 23, 37, 53)
@@ -307,9 +307,16 @@ def routed_step_counts(build, steps: int, target, seeds=DEFAULT_SEEDS, progress=
     fam2 = build(2)
     circs = [f.with_measurements(f.representative()) for f in (fam1, fam2)]
     one, two = (route_circuit(c, target, seeds, _family_weights(f, c), progress) for c, f in zip(circs, (fam1, fam2)))
-    r = int(steps)
-    out = {"computed": True, "one": one, "two": two, "steps": r,
+    out = {"computed": True, "one": one, "two": two,
            "method": "one and two Trotter steps routed; r steps extrapolated linearly (one + (r - 1)(two - one))"}
+    out.update(extrapolate_counts(one, two, steps))
+    return out
+
+
+def extrapolate_counts(one: RoutedCounts, two: RoutedCounts, steps: int) -> dict:
+    """{'steps', 'two_qubit', 'depth', 'swaps', 'rotations'} of r steps: one + (r - 1) max(two - one, 0)."""
+    r = int(steps)
+    out = {"steps": r}
     for k in ("two_qubit", "depth", "swaps", "rotations"):
         a, b = getattr(one, k), getattr(two, k)
         out[k] = float(a + (r - 1) * max(b - a, 0))

@@ -709,10 +709,12 @@ class BudgetModel:
             routing["reason"] = route["reason"]
             self._note(f"noise-aware shots not computed: {route['reason']}")
             return
+        from ..circuits.routing import extrapolate_counts
         one, two = route["one"], route["two"]
+        at_r = extrapolate_counts(one, two, steps)
         routing.update({"method": route["method"], "two_qubit_gate": one.two_qubit_gate,
-                        "two_qubit": route["two_qubit"], "depth": route["depth"], "swaps": route["swaps"],
-                        "rotations": route["rotations"],
+                        "two_qubit": at_r["two_qubit"], "depth": at_r["depth"], "swaps": at_r["swaps"],
+                        "rotations": at_r["rotations"],
                         "per_step": {k: getattr(two, k) - getattr(one, k) for k in ("two_qubit", "depth", "swaps")},
                         "one_step": one.to_dict(), "two_steps": two.to_dict(), "layout": one.layout,
                         "layout_method": one.layout_method})
