@@ -7,7 +7,8 @@ p_g = e_g d / (d - 1) (average gate fidelity of a depolarising channel, F_avg = 
 Nielsen, "A simple formula for the average gate fidelity of a quantum dynamical map", Phys. Lett. A
 303, 249 (2002)). Uniform rates (`--gate-error P --readout-error Q`): P per two-qubit gate, P/10 per
 single-qubit gate unless given (common practice: single-qubit errors about ten times smaller), rz
-error-free (a frame change, common practice), Q per measured bit. A readout error q is a symmetric
+error-free (a frame change, common practice; also with a backend), Q per measured bit; with a backend, each
+given uniform rate replaces the calibrated ones of its kind. A readout error q is a symmetric
 bit flip; a fake backend's `target['measure'][(i,)].error` is taken as that q.
 
 Fidelity model (independent errors, global depolarising approximation). Each gate's channel
@@ -111,7 +112,8 @@ class ErrorRates:
     @property
     def given(self) -> bool:
         """True when any rate is known (a backend or a uniform value)."""
-        return self.backend is not None or self.gate_error is not None or self.readout_error is not None
+        return self.backend is not None or any(v is not None for v in (self.gate_error, self.single_error,
+                                                                          self.readout_error))
 
     @property
     def source(self) -> str:
@@ -119,7 +121,9 @@ class ErrorRates:
         if self.backend is not None:
             parts.append(f"calibration of {self.backend.name}")
         if self.gate_error is not None:
-            parts.append(f"two-qubit {self.gate_error:g}, single-qubit {self.single:g}")
+            parts.append(f"two-qubit {self.gate_error:g}")
+        if self.gate_error is not None or self.single_error is not None:
+            parts.append(f"single-qubit {self.single:g}")
         if self.readout_error is not None:
             parts.append(f"readout {self.readout_error:g}")
         return "; ".join(parts) or "none"
@@ -141,12 +145,13 @@ class ErrorRates:
     def gate(self, name: str, qargs) -> float:
         """Average gate infidelity e_g of gate `name` on physical qubits `qargs`."""
         if name in _FRAME_GATES:
-            return 0.0 if self.backend is None or self.gate_error is not None else self._backend_error(name, qargs)
-        if self.gate_error is not None or self.single_error is not None:
-            return (self.gate_error or 0.0) if len(qargs) >= 2 else self.single
-        if self.backend is not None:
-            return self._backend_error(name, qargs)
-        return 0.0
+            return 0.0
+        if len(qargs) >= 2:
+            if self.gate_error is not None:
+                return self.gate_error
+        elif self.single_error is not None or self.gate_error is not None:
+            return self.single
+        return self._backend_error(name, qargs) if self.backend is not None else 0.0
 
     def readout(self, qubit: int) -> float:
         """Flip probability q of measured qubit `qubit`."""
