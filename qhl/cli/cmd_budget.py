@@ -7,6 +7,7 @@ import numpy as np
 
 from ..costing.shots import check_precision, check_time
 from ..costing.surface_code import check_physical_error
+from ..costing.noisy_shots import MITIGATIONS
 from ..costing.synthesis import SYNTHESIS_METHODS
 from ..base.errors import QhlInputError
 from ..spins.parameter_names import DEFAULT_FREE
@@ -17,7 +18,6 @@ from .common import (CYCLE_TIME, FAILURE, ITERATIONS, PRECISION, PROBABILITY, SW
 GATE_ERROR = number_in(0, 0.75, high_open=True, name="gate error")
 READOUT_ERROR = number_in(0, 0.5, high_open=True, name="readout error")
 MAX_SHOTS = number_in(1, 1e300, name="shot cap")
-MITIGATIONS = ("none", "pec", "zne")
 def register(sub):
     p = sub.add_parser("budget", help="near-term and fault-tolerant budgets (model-based) for learning a cluster")
     add_cluster_argument(p)
