@@ -81,8 +81,10 @@ def _heavy_hex_distance(qubits: int) -> int:
     return d
 
 
-def resolve_target(name: str, qubits: int, *, source: str | None = None, key: str = "target") -> Target:
-    """The target `name` for a circuit of `qubits` qubits (spins plus ancillas).
+def resolve_target(name: str, qubits: int, *, source: str | None = None, key: str = "target",
+                   what: str | None = None) -> Target:
+    """The target `name` for a circuit of `qubits` qubits (spins plus ancillas; `what` says so in the
+    size refusal, e.g. '6 spins + 1 ancilla').
 
     Raises QhlInputError (one line) for an unknown name (listing the valid ones) or a backend with
     fewer qubits than the circuit needs (both numbers).
@@ -113,6 +115,7 @@ def resolve_target(name: str, qubits: int, *, source: str | None = None, key: st
         raise QhlInputError(f"unknown target {name!r}: expected one of {shown}{hint}", source=source, key=key)
     backend = backends[full]
     if qubits > backend.num_qubits:
-        raise QhlInputError(f"the circuit needs {qubits} qubits but {full} has {backend.num_qubits}",
+        detail = f" ({what})" if what else ""
+        raise QhlInputError(f"the circuit needs {qubits} qubits{detail} but {full} has {backend.num_qubits}",
                             source=source, key=key)
     return Target(full, "backend", backend.coupling_map, backend.num_qubits, backend)

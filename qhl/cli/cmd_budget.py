@@ -7,11 +7,18 @@ import numpy as np
 
 from ..costing.shots import check_precision, check_time
 from ..costing.surface_code import check_physical_error
+from ..costing.noisy_shots import MITIGATIONS
 from ..costing.synthesis import SYNTHESIS_METHODS
 from ..base.errors import QhlInputError
 from ..spins.parameter_names import DEFAULT_FREE
 from .common import (CYCLE_TIME, FAILURE, ITERATIONS, PRECISION, PROBABILITY, SWEEP, TIME_S, add_cluster_argument,
-                     add_report_argument, check_output_path, cluster_from_args, print_json, report_if_asked)
+                     add_report_argument, check_output_path, cluster_from_args, number_in, print_json,
+                     report_if_asked)
+
+# noise-aware near-term counts (qhl.costing.noisy_shots): depolarising parameters stay below 1
+GATE_ERROR = number_in(0, 0.75, high_open=True, name="gate error")
+READOUT_ERROR = number_in(0, 0.5, high_open=True, name="readout error")
+MAX_SHOTS = number_in(1, 1e300, name="shot cap")
 def register(sub):
     p = sub.add_parser("budget", help="near-term and fault-tolerant budgets (model-based) for learning a cluster")
     add_cluster_argument(p)
@@ -41,6 +48,20 @@ def register(sub):
                    help="leave out the classical-cost meter (it measures this machine's rates, a few seconds)")
     p.add_argument("--clifford-t", metavar="FILE.qasm",
                    help="write one Trotter step, every rotation synthesised to Clifford+T, as OpenQASM 3")
+    noisy = p.add_argument_group("noise-aware near-term shots (routed circuit, circuit fidelity F, shots / F^2)")
+    noisy.add_argument("--target", default="all-to-all", metavar="NAME",
+                       help="all-to-all (default), line, ring, grid, heavy-hex or an offline fake backend "
+                            "(fake_brisbane, ...: its coupling map, native gates and calibrated errors)")
+    noisy.add_argument("--gate-error", type=GATE_ERROR, default=None, metavar="P",
+                       help="error per two-qubit gate (average infidelity); single-qubit P/10 unless --single-error")
+    noisy.add_argument("--single-error", type=GATE_ERROR, default=None, metavar="P1",
+                       help="error per single-qubit gate (default P/10)")
+    noisy.add_argument("--readout-error", type=READOUT_ERROR, default=None, metavar="Q",
+                       help="bit-flip probability of each measured qubit")
+    noisy.add_argument("--mitigation", choices=MITIGATIONS, default="none",
+                       help="error-mitigation sampling overhead: none (rescale by 1/F), pec or zne (default none)")
+    noisy.add_argument("--max-shots", type=MAX_SHOTS, default=1e9, metavar="N",
+                       help="shot cap for the largest useful evolution time (default 1e9)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
     add_report_argument(p)
     p.set_defaults(func=run)
@@ -93,7 +114,8 @@ def run(args):
     cluster = cluster_from_args(args)
     settings = BudgetSettings(iterations=args.iterations, synthesis=args.synthesis,
                               physical_error=args.physical_error, cycle_time_s=args.cycle_time,
-                              failure_budget=args.failure_budget, classical_meter=not args.no_classical)
+                              failure_budget=args.failure_budget, classical_meter=not args.no_classical,
+                              **_noise_settings(args))
     _progress(f"preparing {cluster.name}: {cluster.n_spins} spins")
     bm = BudgetModel(cluster, free=args.free, settings=settings, progress=_progress,
                      estimator="typical" if args.typical else None)
@@ -142,6 +164,41 @@ def run(args):
     return 0
 
 
+def _noise_settings(args):
+    """BudgetSettings fields of the noise-aware options (absent in namespaces built without them)."""
+    return {k: getattr(args, k) for k in ("target", "gate_error", "single_error", "readout_error", "mitigation",
+                                          "max_shots") if getattr(args, k, None) is not None}
+
+
+def _print_noisy(nt):
+    r = nt.get("routing")
+    if not r:
+        print("noise-aware shots: not computed (give --target NAME or --gate-error P --readout-error Q)")
+        return
+    print(f"noise-aware ({r['target']}; error rates: {r['error_rates']}): {r['circuit']}, order "
+          f"{r['trotter_order']}, r = {_fmt(r['trotter_steps'])} steps (commutator bound)")
+    if not r["computed"]:
+        print(f"  {r['reason']}")
+        return
+    lay = ", ".join(f"{i}->{p}" for i, p in enumerate(r["layout"]))
+    print(f"  routed: {_fmt(r['two_qubit'])} {r['two_qubit_gate']}, depth {_fmt(r['depth'])}, "
+          f"{_fmt(r['swaps'])} SWAPs, {_fmt(r['rotations'])} rotations; per step {r['per_step']['two_qubit']} "
+          f"{r['two_qubit_gate']}, {r['per_step']['swaps']} SWAPs; layout qubit->physical {lay} ({r['layout_method']})")
+    print(f"  ({r['method']})")
+    if nt.get("circuit_fidelity") is None:
+        return
+    m = nt["mitigation"]
+    print(f"  circuit fidelity F = {nt['circuit_fidelity']:.3e} (log10 F = {r['log10_circuit_fidelity']:.4g}; gates "
+          f"{r['gate_fidelity']:.3e}, readout {r['readout_fidelity']:.3e}): the signal shrinks by F")
+    print(f"  shots per component, noisy (mitigation {m['method']}, x {_fmt(m['overhead'])} over the bound): "
+          f"{_fmt(nt['shots_per_component_noisy'])}")
+    tm = nt["max_useful_time_s"]
+    print(f"  largest useful t under {_fmt(r['max_shots'])} shots: "
+          + ("none on the grid" if tm is None else f"{tm:.3g} s (r = {_fmt(r['max_useful_trotter_steps'])} steps)"))
+    print("  model: independent errors, global depolarising approximation (F = prod (1 - p_g) x readout); "
+          "estimates, see --json 'assumptions'")
+
+
 def _print_budget(b, bm):
     nt, ft = b.near_term, b.fault_tolerant
     print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
@@ -173,6 +230,7 @@ def _print_budget(b, bm):
     print("  best: R^2 - mu^2 with mu from the engine where it ran (method exact/estimated), else the bound R^2.")
     print("  A full gradient is a weighted mean of all components (weights summing to 1), so its shots can be")
     print("  fewer than one worst component's: earlier times and smaller couplings have smaller ranges.")
+    _print_noisy(nt)
     print()
     print(f"{'fault-tolerant (per component)':<36}{'chosen':>16}" + "".join(f"{'order ' + p:>14}" for p in ft["orders"])
           + f"  {'method'}")

@@ -29,6 +29,9 @@ def register(sub):
                    help="how terms are grouped into product-formula terms (default pairs)")
     p.add_argument("--ordering", choices=("offsets-first", "offsets-last"), default="offsets-first",
                    help="term order (default offsets-first)")
+    p.add_argument("--target", default="all-to-all", metavar="NAME",
+                   help="also route for a target: line, ring, grid, heavy-hex or an offline fake backend "
+                        "(fake_brisbane, ...); default all-to-all (no routing)")
     p.add_argument("--qasm", metavar="FILE", help="write the counted (transpiled) circuit as OpenQASM 3")
     p.add_argument("--draw", action="store_true", help="print a text drawing of a one-step instance")
     p.add_argument("--json", action="store_true", help="print one JSON object")
@@ -75,6 +78,19 @@ def build_family(model, experiment, kind, params, time, steps, order, method, gr
     return hessian_circuit(model, experiment, params, time, steps, order, **common)
 
 
+def _print_routed(target, routed):
+    w = routed["whole"]
+    print()
+    print(f"routed for {target.name} ({target.num_qubits} qubits, native two-qubit gate {w.two_qubit_gate}; "
+          f"preset pass manager, level 2, best of {len(w.tries)} tries)")
+    print(f"{'':<18}{'2q gates':>9}{'depth':>8}{'swaps':>7}{'rotations':>11}  layout")
+    for label, c in (("whole circuit", w), ("one Trotter step", routed["per_step"])):
+        lay = " ".join(f"{i}->{p}" for i, p in enumerate(c.layout))
+        print(f"{label:<18}{c.two_qubit:>9}{c.depth:>8}{c.swaps:>7}{c.rotations:>11}  {lay} ({c.layout_method}, "
+              f"seed {c.seed})")
+    print("layout: circuit qubit -> physical qubit (spins first, then ancillas); swaps: inserted by the router")
+
+
 def run(args):
     from ..spins.model import build_model
     from qiskit import qasm3
@@ -83,8 +99,12 @@ def run(args):
     from ..circuits.trotter import trotter_terms
     from ..circuits.trotter_bounds import trotter_error_bound, trotter_steps_for
 
+    from ..circuits.targets import resolve_target
+
     if args.qasm:
         check_output_path(args.qasm, "--qasm")
+    target_name = getattr(args, "target", "all-to-all")
+    resolve_target(target_name, 1, key="--target")           # an unknown name fails before any work
     cluster = cluster_from_args(args)
     experiment = _experiment(cluster, args.experiment)
     model = build_model(cluster)
@@ -107,6 +127,13 @@ def run(args):
     measured = family.with_measurements(family.representative())
     transpiled = transpile_for_counts(measured)
     counts = family_counts(family, transpiled)
+    routed = None
+    width, spins = family.circuit.num_qubits, model.n_spins
+    target = resolve_target(target_name, width, key="--target", what=f"{spins} spins + {width - spins} ancillas")
+    if not target.all_to_all:
+        from ..circuits.routing import routed_family_counts
+        print(f"qhl circuits: routing for {target.name} ({target.num_qubits} qubits)", file=sys.stderr)
+        routed = routed_family_counts(family, target)
     bound = trotter_error_bound(terms, args.time, steps, args.order)
     notes = bound_notes(bound)
     for note in notes:
@@ -129,6 +156,9 @@ def run(args):
             report["qasm"] = args.qasm
         if drawing is not None:
             report["drawing"] = drawing
+        if routed is not None:
+            report["routing"] = {"target": target.name, "whole": routed["whole"].to_dict(),
+                                 "per_step": routed["per_step"].to_dict()}
         print_json(report)
         return 0
     what = family.kind if not params else f"{family.kind} for {' x '.join(dict.fromkeys(params))}"
@@ -142,6 +172,8 @@ def run(args):
         print(f"{label:<18}{c['qubits']:>7}{c['cx']:>8}{c['depth']:>8}{c['rotations']:>11}")
     print("counts after transpile to [cx, rz, sx, x] at optimisation level 2; "
           "rotations = rz angles that are not multiples of pi/2")
+    if routed is not None:
+        _print_routed(target, routed)
     if drawing is not None:
         print()
         print(drawing)

@@ -39,7 +39,7 @@ from ..base.memory import available_memory_bytes, require_memory
 from ..circuits.pauli_commutators import pauli_arrays, quadrature_norms
 from ..spins.model import DEFAULT_FREE, build_model
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
-from . import coherent_input, family_variance, learning_run, trotter_order4
+from . import coherent_input, family_variance, learning_run, noisy_shots, trotter_order4
 from ..circuits import signal_trotter
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
 from .near_term import near_term_model
@@ -52,6 +52,9 @@ TIERS = ("exact", "estimated", "bound")
 # Up to this many spins one Trotter step is built and every rotation synthesised (qiskit gridsynth);
 # above, the median measured T per rotation times the count rule's rotation depth.
 SYNTHESIS_MAX_SPINS = 8
+# The near-term circuit of the noise-aware counts: the Hadamard test (one ancilla), second order.
+NOISY_ANCILLAS = 1
+NOISY_ORDER = 2
 EXACT_MEMORY_FRACTION = 0.5
 HESSIAN_FLOPS_PER_ELEMENT = 5000.0
 
@@ -67,7 +70,7 @@ def all_assumptions(settings=None) -> dict:
     """Every constant and model choice used, with its source."""
     out = {}
     for mod in (shots, family_variance, amplitude_estimation, synthesis, trotter_order4, trotter_cost, fault_tolerant,
-                surface_code, learning_run, coherent_input, signal_trotter):
+                surface_code, learning_run, coherent_input, signal_trotter, noisy_shots):
         out.update(mod.ASSUMPTIONS)
     out["precision_unit"] = "eps is a standard error on dS/dh with h in units of unit_hz (default 1 kHz)"
     out["time_grids"] = "each experiment's time grid is rescaled to end at t (points kept)"
@@ -108,6 +111,10 @@ class BudgetSettings:
         exact_time_limit_s: skip the exact engine when its time estimate exceeds this (s).
         use_exact: False skips the exact engine at any size (bound tier only).
         classical_meter: put the classical-cost meter (qhl.costing.classical_cost) beside the budget.
+        target: hardware target of the near-term circuit (qhl.circuits.targets; 'all-to-all' default).
+        gate_error, single_error, readout_error: uniform error rates (qhl.costing.noisy_shots); None: the
+            target's calibration (fake backends) or no noise model.
+        mitigation: 'none', 'pec' or 'zne' (qhl.costing.noisy_shots); max_shots: the cap of max_useful_time_s.
     """
 
     unit_hz: float = 1e3
@@ -127,6 +134,12 @@ class BudgetSettings:
     exact_time_limit_s: float = 60.0
     use_exact: bool = True
     classical_meter: bool = True
+    target: str = "all-to-all"
+    gate_error: float | None = None
+    single_error: float | None = None
+    readout_error: float | None = None
+    mitigation: str = "none"
+    max_shots: float = 1e9
 
     def split_dict(self):
         return dict(self.split)
@@ -148,7 +161,17 @@ class BudgetSettings:
             raise QhlInputError(f"delta must be in (0, 1), got {self.delta}", key="delta")
         if self.physical_error is not None:
             surface_code.check_physical_error(self.physical_error)
+        self.error_rates()
+        if self.mitigation not in noisy_shots.MITIGATIONS:
+            raise QhlInputError(f"unknown mitigation {self.mitigation!r}: expected one of "
+                                f"{', '.join(noisy_shots.MITIGATIONS)}", key="mitigation")
+        if not (isinstance(self.max_shots, (int, float)) and math.isfinite(self.max_shots) and self.max_shots >= 1):
+            raise QhlInputError(f"expected a shot cap >= 1, got {self.max_shots!r}", key="max_shots")
         return self
+
+    def error_rates(self, backend=None):
+        """qhl.costing.noisy_shots.ErrorRates of these settings (uniform rates over a backend's table)."""
+        return noisy_shots.ErrorRates(self.gate_error, self.single_error, self.readout_error, backend)
 
 
 def _iterations(value):
@@ -362,6 +385,10 @@ class BudgetModel:
         self.notes = []
         require_memory(f"the bound-tier budget of {self.model.n_spins} spins", bound_tier_memory_bytes(
             self.model, self.experiments))
+        from ..circuits.targets import resolve_target
+        self.target = resolve_target(self.settings.target, self.model.n_spins + NOISY_ANCILLAS, key="--target",
+                                     what=f"{self.model.n_spins} spins + {NOISY_ANCILLAS} ancilla")
+        self._routes = {}
         self.exact_plan = exact_engine_plan(self.model, self.experiments, self.settings)
         self.engine = None
         if self.exact_plan["use_engine"]:
@@ -604,6 +631,7 @@ class BudgetModel:
             "gradient": {k: float(np.ravel(v)[0]) for k, v in ftg.items()} if ftg else None,
         }
         exact_variance_note = self._add_circuit_variance(near, t, eps)
+        self._add_noisy_shots(near, methods_near, t, eps, x, n, ft_bound)
         layers_shot = float(ch["layers_per_shot"])
         nt_layers = near["shots_per_component"] * layers_shot
         nt_best = min(nt_layers, (near["shots_per_component_circuit"] or math.inf) * layers_shot)
@@ -641,6 +669,98 @@ class BudgetModel:
                    "surface_code": "bound" if sc else None}
         return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name, methods,
                       list(self.notes), dict(self.tiers), self._precision_hz(t, eps, hb), self.classical)
+
+    # ------------------------------------------------------------------ noise-aware near-term counts
+    def _route(self, x, n, t, steps):
+        """Routed one- and two-step Hadamard-test circuits of component (x, n) on the target (cached; the
+        per-step counts do not depend on t)."""
+        if (x, n) not in self._routes:
+            from ..circuits.gradient_circuits import gradient_circuit
+            from ..circuits.routing import ROUTE_MAX_QUBITS, routed_step_counts
+            width = self.model.n_spins + NOISY_ANCILLAS
+            if width > ROUTE_MAX_QUBITS:
+                self._routes[(x, n)] = {"computed": False, "reason": f"routing not computed: {width} circuit qubits "
+                                                                     f"exceed the {ROUTE_MAX_QUBITS} routed here"}
+                return self._routes[(x, n)]
+            ex, name, tau = self.experiments[x], self.near.names[n], float(t) / float(steps)
+            say = getattr(self, "_say", lambda m: None)
+            say(f"routing the near-term circuit on {self.target.name}")
+            self._routes[(x, n)] = routed_step_counts(
+                lambda k: gradient_circuit(self.model, ex, name, k * tau, k, NOISY_ORDER), steps, self.target,
+                progress=say if self.model.n_spins > 8 else None)
+        return self._routes[(x, n)]
+
+    def _add_noisy_shots(self, near, methods_near, t, eps, x, n, ft_bound):
+        """Put shots_per_component_noisy, circuit_fidelity, mitigation, max_useful_time_s and routing into
+        `near` (qhl.costing.noisy_shots, qhl.circuits.routing; None where no noise model is given)."""
+        s = self.settings
+        rates = s.error_rates(self.target.backend)
+        near.update({"shots_per_component_noisy": None, "circuit_fidelity": None, "mitigation": None,
+                     "max_useful_time_s": None, "routing": None})
+        if self.target.all_to_all and not rates.given:
+            return
+        steps = int(ft_bound[NOISY_ORDER]["steps"])
+        route = self._route(x, n, t, steps)
+        routing = {"target": self.target.name, "computed": route["computed"], "trotter_order": NOISY_ORDER,
+                   "trotter_steps": steps, "circuit": f"Hadamard test of {self.near.names[n]} in "
+                                                     f"{self.experiments[x].name}", "error_rates": rates.source}
+        near["routing"] = routing
+        if not route["computed"]:
+            routing["reason"] = route["reason"]
+            self._note(f"noise-aware shots not computed: {route['reason']}")
+            return
+        from ..circuits.routing import extrapolate_counts
+        one, two = route["one"], route["two"]
+        at_r = extrapolate_counts(one, two, steps)
+        routing.update({"method": route["method"], "two_qubit_gate": one.two_qubit_gate,
+                        "two_qubit": at_r["two_qubit"], "depth": at_r["depth"], "swaps": at_r["swaps"],
+                        "rotations": at_r["rotations"],
+                        "per_step": {k: getattr(two, k) - getattr(one, k) for k in ("two_qubit", "depth", "swaps")},
+                        "one_step": one.to_dict(), "two_steps": two.to_dict(), "layout": one.layout,
+                        "layout_method": one.layout_method})
+        if not rates.given:
+            self._note(f"noise-aware shots need error rates: {self.target.name} has no calibration "
+                       "(give --gate-error and --readout-error)")
+            return
+        f1 = noisy_shots.circuit_fidelity(one.transpiled, rates)
+        f2 = noisy_shots.circuit_fidelity(two.transpiled, rates)
+        fr = noisy_shots.extrapolate_fidelity(f1, f2, steps)
+        noisy = float(noisy_shots.noisy_shots(near["shots_per_component_bound"], fr, s.mitigation))
+        over = float(noisy_shots.mitigation_overhead(s.mitigation, fr))
+        mitigation = {"method": s.mitigation, "overhead": over, "source": noisy_shots.ASSUMPTIONS["noisy_shots"]}
+        if s.mitigation == "pec":
+            mitigation["gamma"] = float(fr["gamma"])
+        if s.mitigation == "zne":
+            mitigation["noise_factors"] = list(noisy_shots.ZNE_FACTORS)
+            mitigation["richardson_weights"] = noisy_shots.richardson_weights().tolist()
+            mitigation["residual_attenuation"] = float(noisy_shots.zne_attenuation(fr))
+        # the largest t whose noisy count stays under the cap (steps from the same commutator bound)
+        grid = t * np.geomspace(1e-3, 1e3, 241)
+        rng = shots.gradient_shot_range(grid, self.near.l1[n], self.near.scales[x, n], self.near.kappa, s.unit_hz)
+        r_grid = np.asarray(self._ft(rng, grid, eps, x, self._n_terms[n])[NOISY_ORDER]["steps"], float)
+        counts = noisy_shots.noisy_shots(np.ceil(rng**2 / eps**2 * (1 - 1e-12)),
+                                         noisy_shots.extrapolate_fidelity(f1, f2, r_grid), s.mitigation)
+        t_max, k = noisy_shots.largest_time_below(grid, counts, s.max_shots)
+        if k is not None and k == grid.size - 1:
+            self._note(f"max_useful_time_s: the noisy count stays below {s.max_shots:g} up to the grid's end "
+                       f"({grid[-1]:.3g} s, 1000 t): a lower bound")
+        if k is None:
+            self._note(f"max_useful_time_s: even t = {grid[0]:.3g} s needs more than {s.max_shots:g} shots")
+        if not math.isfinite(noisy):
+            self._note("shots_per_component_noisy: beyond floating-point range (the circuit fidelity underflows)")
+        near.update({"shots_per_component_noisy": int(noisy) if math.isfinite(noisy) else None,
+                     "circuit_fidelity": float(fr["fidelity"]), "mitigation": mitigation, "max_useful_time_s": t_max})
+        routing.update({"log10_circuit_fidelity": float(fr["log_fidelity"]) / math.log(10),
+                        "gate_fidelity": float(fr["gate_fidelity"]), "readout_fidelity": float(fr["readout_fidelity"]),
+                        "max_shots": float(s.max_shots),
+                        "max_useful_trotter_steps": None if k is None else int(r_grid[k]),
+                        "fidelity_model": noisy_shots.ASSUMPTIONS["circuit_fidelity"]})
+        methods_near["shots_per_component_noisy"] = "estimated"
+        methods_near["circuit_fidelity"] = "estimated"
+
+    def _note(self, note):
+        if note not in self.notes:
+            self.notes.append(note)
 
     def _precision_hz(self, t, eps, hessian_bound_sq):
         """eps (per unit_hz) on a derivative -> the parameter change in Hz it resolves (see all_assumptions)."""
