@@ -69,3 +69,13 @@ def dense_cycle_propagator(model, experiment, free_values=None):
     """W of the experiment's steps (for average-Hamiltonian checks)."""
     h = hamiltonian_matrix(model, experiment, all_values(model, free_values))
     return preparation(model, experiment, h)
+
+
+def net_rotation(model, experiment):
+    """The product of the steps' pulse matrices alone (the toggling-frame transformation at the end)."""
+    n = len(model.labels)
+    w = np.eye(2**n, dtype=complex)
+    for st in unrolled(experiment.steps):
+        if not hasattr(st, "seconds"):
+            w = pulse_matrix(model, st.angle_deg, st.phase_deg, st.isotope) @ w
+    return w
