@@ -234,3 +234,37 @@ def test_replace_keeps_steps_and_experiments_stay_hashable():
     ex = Experiment("s", 1e-3, 4, steps=(Delay(1e-3), Block((Pulse(90),), 3)))
     assert dataclasses.replace(ex, dipolar_scale=0.5).steps == ex.steps
     assert hash(ex) == hash(Experiment("s", 1e-3, 4, steps=(Delay(1e-3), Block((Pulse(90),), 3))))
+
+
+def test_circuits_and_typical_engine_refuse_rather_than_ignore_the_steps():
+    from qhl.circuits.trotter import trotter_terms
+    from qhl.exact.typicality import TypicalEngine
+
+    c = small_cluster(False, 3)
+    model = build_model(c, free=FREE)
+    ex = Experiment("s", 0.3, 5, steps=(Delay(0.1), Pulse(180)))
+    with pytest.raises(QhlInputError, match="experiment.step: .*not covered yet by the Trotter circuits"):
+        trotter_terms(model, ex)
+    with pytest.raises(QhlInputError, match="typical engine"):
+        TypicalEngine(model).estimate(ex)
+
+
+def test_emulated_provider_refuses_up_front():
+    from qhl.emulation.provider import EmulatedGradientProvider
+
+    c = small_cluster(False, 3)
+    ex = Experiment("s", 0.3, 5, steps=(Delay(0.1), Pulse(180)))
+    with pytest.raises(QhlInputError, match="circuit emulator"):
+        EmulatedGradientProvider(build_model(c, free=FREE), [c.experiments[0], ex], shots=10)
+
+
+def test_example_cluster_file_gives_the_hahn_maxwell_echo_top():
+    # Hahn and Maxwell (1952): echo top -cos(pi J 2 tau) for the weakly coupled pair (J / delta = 2.9e-3,
+    # corrections of that order); the 1H-13C coupling is refocused by the 1H-only 180 (Levitt 2008)
+    from pathlib import Path
+    from qhl import load_cluster
+
+    c = load_cluster(Path(__file__).resolve().parent.parent / "examples" / "hahn_echo.toml")
+    hahn = c.experiment("hahn")
+    s0 = ExactEngine(build_model(c)).signal(hahn)[0]
+    assert s0.real == pytest.approx(-np.cos(np.pi * 6.5 * 2 * 0.02), abs=3e-3)

@@ -62,6 +62,7 @@ from ..base.blas import blas_limited, blas_threads
 from ..base.errors import QhlInputError
 from .divided_differences import first_divided_difference, second_divided_difference
 from ..base.memory import require_memory
+from ..spins.cluster import refuse_steps
 from ..spins.model import HamiltonianModel
 from .sectors import conserves_magnetisation, full_space, magnetisation_sectors
 
@@ -355,7 +356,7 @@ class ExactEngine:
 
         Lines closer than the degeneracy tolerance are merged. Amplitudes sum to S(0) = 1.
         """
-        _refuse_steps(experiment, "the line list")
+        refuse_steps(experiment, "the line list")
         spec = self.spectrum(experiment, free_values_hz)
         freqs, amps = [], []
         for b, rt, ot in zip(self._blocks, spec.rho_t, spec.obs_t):
@@ -614,7 +615,7 @@ class ExactEngine:
             (signal, gradient (P, T), hessian (P, P, T)).
         """
         model = self.model
-        _refuse_steps(experiment, "the exact Hessian")
+        refuse_steps(experiment, "the exact Hessian")
         t = self._times(experiment, times)
         self._require_times(t, 1 + len(model.free if parameters is None else parameters))
         spec = self.spectrum(experiment, free_values_hz)
@@ -661,13 +662,6 @@ class ExactEngine:
 
 def _has_steps(experiment) -> bool:
     return experiment is not None and bool(getattr(experiment, "steps", ()))
-
-
-def _refuse_steps(experiment, what):
-    """Pulse-sequence experiments are not covered by `what` yet: refuse rather than ignore the steps."""
-    if _has_steps(experiment):
-        raise QhlInputError(f"experiment '{experiment.name}' has pulse-sequence steps; {what} covers free "
-                            f"evolution only (signals and gradients cover sequences)", key="experiment.step")
 
 
 def _inverse_gaps(e, tol):

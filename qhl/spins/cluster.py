@@ -14,7 +14,8 @@ import numpy as np
 from ..base.errors import QhlInputError
 from .nuclei import larmor_frequency_hz, nucleus
 
-__all__ = ["Spin", "Pair", "Delay", "Pulse", "Block", "Experiment", "Cluster", "flat_steps", "MAX_STEPS", "MIN_DISTANCE_ANGSTROM", "MAX_SPINS", "MAX_POINTS",
+__all__ = ["Spin", "Pair", "Delay", "Pulse", "Block", "Experiment", "Cluster", "flat_steps", "refuse_steps",
+           "MAX_STEPS", "MIN_DISTANCE_ANGSTROM", "MAX_SPINS", "MAX_POINTS",
            "MAX_FREQUENCY_HZ", "MAX_FIELD_TESLA", "MAX_T_MAX_S", "NOISE_RANGE", "checked_number",
            "check_spin_count", "check_experiment"]
 
@@ -160,6 +161,14 @@ def flat_steps(steps) -> list:
         else:
             out.append(st)
     return out
+
+
+def refuse_steps(experiment, what: str) -> None:
+    """Refuse a pulse-sequence experiment where `what` covers free evolution only (not ignore its steps)."""
+    if experiment is not None and getattr(experiment, "steps", ()):
+        raise QhlInputError(f"experiment '{experiment.name}' has pulse-sequence steps, not covered yet by {what} "
+                            f"(free evolution only; the exact engine's signals and gradients cover sequences)",
+                            key="experiment.step")
 
 
 @dataclass(frozen=True)
