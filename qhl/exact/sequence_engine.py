@@ -22,7 +22,8 @@ forward through the steps in the same eigenbasis, dX = V^dag (d rho) V:
             of exp(-i E tau) (Daleckii-Krein; R. Bhatia, "Matrix Analysis", 1997, ch. V;
             qhl.exact.divided_differences),
     pulse:  dX -> R dX R^dag (ideal pulses do not depend on h).
-Parameters go in chunks that fit CHUNK_BYTES; X is propagated once per chunk.
+Parameters go in chunks that fit CHUNK_BYTES; X is propagated once per chunk. Work above
+PROGRESS_ABOVE_FLOPS (estimate: 8 D sum_k d_k^2 per matrix and run of steps) shows a progress line.
 
 Size limit: dense density matrices, 16 * 4^n bytes each (n = 12: 256 MiB). At most
 MAX_SEQUENCE_SPINS = 12 spins; every call first checks its memory estimate
@@ -35,6 +36,7 @@ import numpy as np
 from ..base.blas import blas_limited
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
+from ..base.progress import Progress
 from ..spins.cluster import Delay, Pulse, flat_steps
 from .divided_differences import first_divided_difference
 
@@ -43,6 +45,7 @@ __all__ = ["sequence_signal", "sequence_gradient", "sequence_memory_bytes", "pul
 
 MAX_SEQUENCE_SPINS = 12
 CHUNK_BYTES = 256 << 20      # derivative matrices held at once (one chunk of parameters)
+PROGRESS_ABOVE_FLOPS = 5e9   # show progress on stderr above this estimated work (about 2 s here)
 
 
 def sequence_memory_bytes(n_spins: int, n_params: int = 0, n_times: int = 64) -> float:
@@ -90,9 +93,15 @@ def _apply_pulse(a, rot, qubits, n):
     rc = rot.conj()
     for q in qubits:
         hi, lo = 2 ** (n - 1 - q), 2**q
-        a = np.einsum("ij,xhjlc->xhilc", rot, a.reshape(-1, hi, 2, lo, d)).reshape(-1, d, d)
-        a = np.einsum("ij,xrhjl->xrhil", rc, a.reshape(-1, d, hi, 2, lo)).reshape(-1, d, d)
+        a = _two_by_two(rot, a.reshape(-1, hi, 2, lo * d)).reshape(-1, d, d)      # ket index: R
+        a = _two_by_two(rc, a.reshape(-1, d * hi, 2, lo)).reshape(-1, d, d)       # bra index: R^dag
     return a.reshape(lead + (d, d))
+
+
+def _two_by_two(m, a):
+    """m (2 x 2) applied to axis -2 (length 2) of a, as two elementwise combinations."""
+    a0, a1 = a[..., 0, :], a[..., 1, :]
+    return np.stack([m[0, 0] * a0 + m[0, 1] * a1, m[1, 0] * a0 + m[1, 1] * a1], axis=-2)
 
 
 class _Basis:
@@ -163,26 +172,39 @@ class _Sequence:
                 if np.any(block != 0):
                     self.pairs.append((_Pair(s, p), block.T.copy()))
 
-    def propagate(self, x, dx=None, gens=None):
-        """X (and dX for the eigen-generator chunk `gens`) through every run of the preparation."""
+    def progress(self, matrices, passes, label):
+        """A Progress over passes * runs when the estimated work is large, else None."""
+        d = 2**self.n
+        work = 8.0 * d * sum((sl.stop - sl.start) ** 2 for sl in self.basis.slices) * matrices * len(self.runs)
+        if work * passes < PROGRESS_ABOVE_FLOPS:
+            return None
+        return Progress(label, passes * len(self.runs))
+
+    def propagate(self, x, dx=None, gens=None, progress=None, offset=0):
+        """X (and dX for the stacked eigen-generators `gens`, one (c, d_k, d_k) per sector) through every
+        run of the preparation."""
         e = self.basis.energies
         sl = self.basis.slices
-        for kind, val in self.runs:
+        for i, (kind, val) in enumerate(self.runs):
+            if progress is not None:
+                progress.update(offset + i)
             if kind == "delay":
                 lam = np.exp(-1j * e * val)
                 if dx is not None:
                     dx *= lam[None, :, None] * lam.conj()[None, None, :]
-                    for r, g in enumerate(gens):
-                        mx = np.zeros_like(x)          # (G~ o F) X
-                        xm = np.zeros_like(x)          # X (G~ o F)^dag
-                        for k, gk in enumerate(g):
-                            if gk is None:
-                                continue
-                            ek = self.spec.energies[k]
-                            m = gk * first_divided_difference(ek[:, None], ek[None, :], val)
-                            mx[sl[k], :] = m @ x[sl[k], :]
-                            xm[:, sl[k]] = x[:, sl[k]] @ m.conj().T
-                        dx[r] += mx * lam.conj()[None, :] + lam[:, None] * xm
+                    mx = np.zeros_like(dx)             # (G~ o F) X, per parameter
+                    xm = np.zeros_like(dx)             # X (G~ o F)^dag
+                    for k, gk in enumerate(gens):
+                        if gk is None:
+                            continue
+                        ek = self.spec.energies[k]
+                        m = gk * first_divided_difference(ek[:, None], ek[None, :], val)[None]
+                        mx[:, sl[k], :] = m @ x[sl[k], :]
+                        xm[:, :, sl[k]] = x[:, sl[k]] @ m.conj().transpose(0, 2, 1)
+                    mx *= lam.conj()[None, None, :]
+                    xm *= lam[None, :, None]
+                    dx += mx
+                    dx += xm
                 x = x * (lam[:, None] * lam.conj()[None, :])
             else:
                 stack = x[None] if dx is None else np.concatenate([x[None], dx])
@@ -207,6 +229,26 @@ class _Sequence:
         return out
 
 
+def _stacked_generators(engine, spec, rows):
+    """Per sector: V^dag (2 pi s_n G_n) V stacked over `rows` (c, d_k, d_k), or None where all vanish."""
+    out = []
+    per_row = [engine._eigen_generators(spec, n, scale) if scale != 0 else [None] * len(spec.vectors)
+               for n, scale in rows]
+    for k, v in enumerate(spec.vectors):
+        blocks = [g[k] for g in per_row]
+        if all(b is None for b in blocks):
+            out.append(None)
+            continue
+        d = v.shape[0]
+        dtype = complex if any(b is not None and np.iscomplexobj(b) for b in blocks) else float
+        stack = np.zeros((len(rows), d, d), dtype)
+        for r, b in enumerate(blocks):
+            if b is not None:
+                stack[r] = b
+        out.append(stack)
+    return out
+
+
 class _Pair:
     def __init__(self, s, p):
         self.s, self.p = s, p
@@ -217,7 +259,10 @@ def sequence_signal(engine, experiment, t, free_values_hz=None) -> np.ndarray:
     """S(t) of a pulse-sequence experiment (module docstring), complex (T,)."""
     _require(engine, 0, t.size)
     seq = _Sequence(engine, experiment, free_values_hz)
-    x, _ = seq.propagate(seq.x0)
+    bar = seq.progress(1, 1, f"pulse sequence '{experiment.name}', runs of steps")
+    x, _ = seq.propagate(seq.x0, progress=bar)
+    if bar is not None:
+        bar.update(bar.total)
     return seq.read(x, t) / engine.norm
 
 
@@ -231,13 +276,18 @@ def sequence_gradient(engine, experiment, t, free_values_hz, rows):
     grad = np.zeros((len(rows), t.size), complex)
     sl = seq.basis.slices
     x = None
+    passes = -(-len(rows) // chunk)
+    bar = seq.progress(1 + min(chunk, len(rows)), passes,
+                       f"pulse-sequence gradient '{experiment.name}', runs of steps x parameter chunks")
     for c0 in range(0, len(rows), chunk):
         sub = rows[c0:c0 + chunk]
-        gens = [engine._eigen_generators(seq.spec, n, scale) if scale != 0 else [None] * len(sl)
-                for n, scale in sub]
-        x, dx = seq.propagate(seq.x0, np.zeros((len(sub),) + seq.x0.shape, complex), gens)
+        gens = _stacked_generators(engine, seq.spec, sub)
+        x, dx = seq.propagate(seq.x0, np.zeros((len(sub),) + seq.x0.shape, complex), gens, bar,
+                              (c0 // chunk) * len(seq.runs))
         for r in range(len(sub)):
             grad[c0 + r] = seq.read(dx[r], t)
+    if bar is not None:
+        bar.update(bar.total)
     if x is None:
         x, _ = seq.propagate(seq.x0)
     rho_t = [x[sl[pair.s], sl[pair.p]] for pair, _ in seq.pairs]
