@@ -268,3 +268,45 @@ def test_example_cluster_file_gives_the_hahn_maxwell_echo_top():
     hahn = c.experiment("hahn")
     s0 = ExactEngine(build_model(c)).signal(hahn)[0]
     assert s0.real == pytest.approx(-np.cos(np.pi * 6.5 * 2 * 0.02), abs=3e-3)
+
+
+@pytest.mark.parametrize("tail,key,expect", [
+    ("step = 5", "experiment[0].step", "[[experiment.step]]"),
+    ("step = [[1, 2]]", "experiment[0].step[0]", "expected a table"),
+    ("step = [{repeat = 2, steps = 'abc'}]", "experiment[0].step[0].steps", "non-empty list"),
+    ("step = [" + "{steps = [" * 10 + "{delay_s = 1}" + "]}" * 10 + "]", "experiment[0].step[0]", "nested deeper"),
+])
+def test_malformed_step_lists_are_one_line_errors(tail, key, expect):
+    text = ISSUE_LAYOUT.split("[[experiment.step]]")[0] + tail + "\n"
+    with pytest.raises(QhlInputError) as err:
+        parse_cluster_toml(text, "bad.toml")
+    msg = str(err.value)
+    assert "\n" not in msg and key in msg and expect in msg
+
+
+def _toml_inline(v):
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{k} = {_toml_inline(x)}" for k, x in v.items()) + "}"
+    if isinstance(v, list):
+        return "[" + ", ".join(_toml_inline(x) for x in v) + "]"
+    return f'"{v}"' if isinstance(v, str) else repr(v)
+
+
+def test_signal_json_lists_the_steps_as_file_tables():
+    # round trip: the tables of `qhl signal --json` parse back into the same steps (common practice)
+    import json
+    from qhl.exact.signals import compute_signals
+    from qhl.spins.cluster_file import step_tables
+
+    c = parse_cluster_toml(ISSUE_LAYOUT, "x.toml")
+    rows = compute_signals(c).to_json()["experiments"]
+    tables = rows[0]["steps"]
+    assert tables[0] == {"delay_s": 0.01}
+    assert tables[3]["sequence_name"] == "solid-echo" and tables[3]["repeat"] == 3
+    json.dumps(tables)
+    plain = [t for t in step_tables(c.experiments[0].steps) if "sequence_name" not in t]
+    head = ISSUE_LAYOUT.split("[[experiment.step]]")[0]
+    text = head + "step = " + _toml_inline(plain) + "\n"
+    again = parse_cluster_toml(text, "y.toml").experiments[0].steps
+    want = tuple(st for st in c.experiments[0].steps if getattr(st, "name", None) is None)
+    assert again == want

@@ -46,7 +46,7 @@ from ..base.errors import QhlInputError
 from ..base.files import read_text_file
 from .nuclei import larmor_frequency_hz, nucleus
 
-__all__ = ["load_cluster", "parse_cluster_toml", "load_xyz", "read_xyz_atoms", "demo_cluster", "DEMO_PATH"]
+__all__ = ["load_cluster", "parse_cluster_toml", "step_tables", "load_xyz", "read_xyz_atoms", "demo_cluster", "DEMO_PATH"]
 
 _TOP = {"name", "field_tesla", "field_direction", "observe", "reference_ppm", "spin", "pair", "experiment"}
 _SPIN = {"label", "isotope", "position_angstrom", "offset_hz", "shift_ppm"}
@@ -309,6 +309,26 @@ def _parse_steps(raw, where, source, depth) -> tuple:
                                 key=key + ".steps")
         out.append(Block(_parse_steps(inner, key + ".steps", source, depth + 1), repeat))
     return tuple(out)
+
+
+def step_tables(steps) -> list:
+    """Steps as the tables of the cluster file (named sequences written out as their blocks, with
+    `sequence_name` beside them for information): plain dicts, ready for JSON."""
+    out = []
+    for st in steps:
+        if isinstance(st, Delay):
+            out.append({"delay_s": st.seconds})
+        elif isinstance(st, Pulse):
+            row = {"pulse_deg": st.angle_deg, "phase_deg": st.phase_deg}
+            if st.isotope is not None:
+                row["isotope"] = st.isotope
+            out.append(row)
+        else:
+            row = {"repeat": st.repeat, "steps": step_tables(st.steps)}
+            if st.name is not None:
+                row["sequence_name"] = st.name
+            out.append(row)
+    return out
 
 
 def _read_text(path: Path) -> str:
