@@ -310,3 +310,22 @@ def test_signal_json_lists_the_steps_as_file_tables():
     again = parse_cluster_toml(text, "y.toml").experiments[0].steps
     want = tuple(st for st in c.experiments[0].steps if getattr(st, "name", None) is None)
     assert again == want
+
+
+@pytest.mark.parametrize("n", [6, 7])
+def test_memory_estimate_bounds_the_measured_peak(n):
+    # tracemalloc peak of the gradient (common practice); the model should be an upper bound within 2x
+    import tracemalloc
+
+    c = random_cluster(np.random.default_rng(0), n, with_j=False)
+    eng = ExactEngine(build_model(c))
+    ex = Experiment("s", 1e-4, 64, steps=(Delay(1e-5), Pulse(90, 0), Delay(1e-5), Pulse(180, 90), Delay(1e-5)))
+    eng.signal(ex)                      # spectrum cached, as the estimate assumes
+    tracemalloc.start()
+    try:
+        eng.gradient(ex)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    est = sequence_engine.sequence_memory_bytes(n, len(eng.model.free), 64)
+    assert peak <= est <= 2 * peak

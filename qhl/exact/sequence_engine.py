@@ -44,19 +44,22 @@ __all__ = ["sequence_signal", "sequence_gradient", "sequence_memory_bytes", "pul
            "MAX_SEQUENCE_SPINS"]
 
 MAX_SEQUENCE_SPINS = 12
-CHUNK_BYTES = 256 << 20      # derivative matrices held at once (one chunk of parameters)
+CHUNK_BYTES = 512 << 20      # peak of one chunk of parameters: 9 dense matrices per parameter (measured)
 PROGRESS_ABOVE_FLOPS = 5e9   # show progress on stderr above this estimated work (about 2 s here)
 
 
+def _chunk(n_spins, n_params):
+    return min(n_params, max(1, int(CHUNK_BYTES // (9 * 16 * 4.0**n_spins))))
+
+
 def sequence_memory_bytes(n_spins: int, n_params: int = 0, n_times: int = 64) -> float:
-    """Peak-memory model (bytes): X, O~, rho0 and three work copies (16 D^2 each, D = 2^n), the
-    eigenvectors (8 D^2 at most), one chunk of derivative matrices with two work copies, and the
-    time tables (48 D T)."""
+    """Peak-memory model (bytes), D = 2^n: X, O~, rho0 and three work copies (16 D^2 each), the
+    eigenvectors (8 D^2 at most), one chunk of c parameters at 9 dense complex matrices each (dX,
+    the two delay products, and the copies of a pulse's basis changes), and time tables (48 D T).
+    Checked against the tracemalloc peak in tests/test_sequences.py (6 and 7 spins)."""
     d2 = 4.0 ** n_spins
-    chunk = 0
-    if n_params:
-        chunk = min(n_params, max(1, int(CHUNK_BYTES // (16 * d2))))
-    return 16.0 * d2 * (6 + 3 * chunk) + 8.0 * d2 + 48.0 * 2.0**n_spins * n_times
+    chunk = _chunk(n_spins, n_params) if n_params else 0
+    return 16.0 * d2 * (6 + 9 * chunk) + 8.0 * d2 + 48.0 * 2.0**n_spins * n_times
 
 
 def _require(engine, n_params, n_times):
@@ -271,8 +274,7 @@ def sequence_gradient(engine, experiment, t, free_values_hz, rows):
     """(S (T,), dS/dh (len(rows), T)) of a pulse-sequence experiment; rows as ExactEngine._rows."""
     _require(engine, len(rows), t.size)
     seq = _Sequence(engine, experiment, free_values_hz)
-    d2 = 4.0**seq.n
-    chunk = max(1, int(CHUNK_BYTES // (16 * d2)))
+    chunk = _chunk(seq.n, len(rows))
     grad = np.zeros((len(rows), t.size), complex)
     sl = seq.basis.slices
     x = None
