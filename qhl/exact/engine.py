@@ -341,14 +341,17 @@ class ExactEngine:
         coeffs, _ = self._coefficients(experiment, free_values_hz)
         out = np.zeros(t.shape, complex)
         for _, b, es, _, ep, _, rt, ot in self._sweep(coeffs):
-            w = 2 * rt * rt if ot is None else ot * rt
-            if self.real:
-                x = w.T @ _table(es, t, -1.0)                 # sum_a w_ab exp(-i E_a t), (d_p, 2T)
-                xa = x[:, :t.size] + 1j * x[:, t.size:]
-            else:
-                xa = w.T @ np.exp(-1j * np.outer(es, t))
-            out += np.einsum("bt,bt->t", np.exp(1j * np.outer(ep, t)), xa)
+            out += self._block_signal(es, ep, 2 * rt * rt if ot is None else ot * rt, t)
         return out / self.norm
+
+    def _block_signal(self, es, ep, w, t):
+        """sum_ab w_ab exp(-i (E_a - E_b) t) of one sector pair (not normalised); w may be complex."""
+        if self.real:
+            x = w.T @ _table(es, t, -1.0)                     # sum_a w_ab exp(-i E_a t), (d_p, 2T)
+            xa = x[:, :t.size] + 1j * x[:, t.size:]
+        else:
+            xa = w.T @ np.exp(-1j * np.outer(es, t))
+        return np.einsum("bt,bt->t", np.exp(1j * np.outer(ep, t)), xa)
 
     @blas_limited
     def transitions(self, experiment=None, free_values_hz=None, min_amplitude: float = 1e-14):

@@ -221,14 +221,12 @@ class _Sequence:
         return x, dx
 
     def read(self, x, t):
-        """sum_(s,p) sum_ab (O~)_ab X_ab exp(-i (E_a - E_b) t) (not normalised)."""
+        """sum_(s,p) sum_ab (O~)_ab X_ab exp(-i (E_a - E_b) t) (not normalised; the engine's block formula)."""
         sl = self.basis.slices
         out = np.zeros(t.size, complex)
         for pair, ot in self.pairs:
-            es, ep = self.spec.energies[pair.s], self.spec.energies[pair.p]
-            w = ot * x[sl[pair.s], sl[pair.p]]
-            xa = w.T @ np.exp(-1j * np.outer(es, t))
-            out += np.einsum("bt,bt->t", np.exp(1j * np.outer(ep, t)), xa)
+            out += self.engine._block_signal(self.spec.energies[pair.s], self.spec.energies[pair.p],
+                                             ot * x[sl[pair.s], sl[pair.p]], t)
         return out
 
 

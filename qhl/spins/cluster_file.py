@@ -46,7 +46,8 @@ from ..base.errors import QhlInputError
 from ..base.files import read_text_file
 from .nuclei import larmor_frequency_hz, nucleus
 
-__all__ = ["load_cluster", "parse_cluster_toml", "step_tables", "load_xyz", "read_xyz_atoms", "demo_cluster", "DEMO_PATH"]
+__all__ = ["load_cluster", "parse_cluster_toml", "step_tables", "load_xyz", "read_xyz_atoms", "demo_cluster",
+           "DEMO_PATH"]
 
 _TOP = {"name", "field_tesla", "field_direction", "observe", "reference_ppm", "spin", "pair", "experiment"}
 _SPIN = {"label", "isotope", "position_angstrom", "offset_hz", "shift_ppm"}
