@@ -32,6 +32,7 @@ from qiskit.quantum_info import SparsePauliOp
 
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
+from ..spins.cluster import refuse_steps
 
 __all__ = ["TermBlock", "TermGroup", "TrotterTerms", "Slot", "trotter_terms", "product_formula_slots",
            "append_block_rotations", "trotter_circuit", "trotter_unitary", "GROUPINGS", "ORDERINGS"]
@@ -128,6 +129,7 @@ def trotter_terms(model, experiment=None, values_hz=None, grouping: str = "pairs
     Raises:
         QhlInputError: unknown grouping or ordering, or an ordering that is not a permutation.
     """
+    refuse_steps(experiment, "the Trotter circuits")
     if grouping not in GROUPINGS:
         raise QhlInputError(f"unknown grouping '{grouping}': expected one of {', '.join(GROUPINGS)}",
                             key="grouping")

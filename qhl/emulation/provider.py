@@ -14,6 +14,7 @@ from ..circuits.gradient_circuits import gradient_circuit, signal_circuit
 from ..exact.provider import GradientProvider
 from ..circuits.trotter import trotter_terms
 from ..circuits.trotter_bounds import trotter_steps_for
+from ..spins.cluster import refuse_steps
 from .derivatives import as_generator, check_shots, estimate_family
 
 __all__ = ["EmulatedGradientProvider"]
@@ -40,6 +41,8 @@ class EmulatedGradientProvider(GradientProvider):
 
     def __init__(self, model, experiments, shots: int, seed=0, steps=None, eps: float = 1e-3, order: int = 2,
                  noise=None):
+        for ex in experiments:
+            refuse_steps(ex, "the circuit emulator")
         self.model = model
         self.experiments = {ex.name: ex for ex in experiments}
         self.parameter_names = tuple(model.free)

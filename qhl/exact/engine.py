@@ -62,6 +62,7 @@ from ..base.blas import blas_limited, blas_threads
 from ..base.errors import QhlInputError
 from .divided_differences import first_divided_difference, second_divided_difference
 from ..base.memory import require_memory
+from ..spins.cluster import refuse_steps
 from ..spins.model import HamiltonianModel
 from .sectors import conserves_magnetisation, full_space, magnetisation_sectors
 
@@ -328,20 +329,29 @@ class ExactEngine:
     # ------------------------------------------------------------------ signal
     @blas_limited
     def signal(self, experiment=None, times=None, free_values_hz=None) -> np.ndarray:
-        """S(t) for the experiment's times (or `times`), complex array of shape (T,)."""
+        """S(t) for the experiment's times (or `times`), complex array of shape (T,).
+
+        An experiment with pulse-sequence steps goes to qhl.exact.sequence_engine (the times
+        then count from the end of its last step)."""
         t = self._times(experiment, times)
         self._require_times(t)
+        if _has_steps(experiment):
+            from .sequence_engine import sequence_signal
+            return sequence_signal(self, experiment, t, free_values_hz)
         coeffs, _ = self._coefficients(experiment, free_values_hz)
         out = np.zeros(t.shape, complex)
         for _, b, es, _, ep, _, rt, ot in self._sweep(coeffs):
-            w = 2 * rt * rt if ot is None else ot * rt
-            if self.real:
-                x = w.T @ _table(es, t, -1.0)                 # sum_a w_ab exp(-i E_a t), (d_p, 2T)
-                xa = x[:, :t.size] + 1j * x[:, t.size:]
-            else:
-                xa = w.T @ np.exp(-1j * np.outer(es, t))
-            out += np.einsum("bt,bt->t", np.exp(1j * np.outer(ep, t)), xa)
+            out += self._block_signal(es, ep, 2 * rt * rt if ot is None else ot * rt, t)
         return out / self.norm
+
+    def _block_signal(self, es, ep, w, t):
+        """sum_ab w_ab exp(-i (E_a - E_b) t) of one sector pair (not normalised); w may be complex."""
+        if self.real:
+            x = w.T @ _table(es, t, -1.0)                     # sum_a w_ab exp(-i E_a t), (d_p, 2T)
+            xa = x[:, :t.size] + 1j * x[:, t.size:]
+        else:
+            xa = w.T @ np.exp(-1j * np.outer(es, t))
+        return np.einsum("bt,bt->t", np.exp(1j * np.outer(ep, t)), xa)
 
     @blas_limited
     def transitions(self, experiment=None, free_values_hz=None, min_amplitude: float = 1e-14):
@@ -349,6 +359,7 @@ class ExactEngine:
 
         Lines closer than the degeneracy tolerance are merged. Amplitudes sum to S(0) = 1.
         """
+        refuse_steps(experiment, "the line list")
         spec = self.spectrum(experiment, free_values_hz)
         freqs, amps = [], []
         for b, rt, ot in zip(self._blocks, spec.rho_t, spec.obs_t):
@@ -415,6 +426,9 @@ class ExactEngine:
         self._require_times(t, 1 + len(rows))
         if method not in ("auto", "full", "adjoint", "general"):
             raise QhlInputError(f"method {method!r}: expected auto, full or adjoint", key="method")
+        if _has_steps(experiment):
+            from .sequence_engine import sequence_gradient
+            return sequence_gradient(self, experiment, t, free_values_hz, rows)
         if method == "auto":
             method = self._choose(len(rows), t.size)
         if method == "adjoint":
@@ -449,15 +463,21 @@ class ExactEngine:
     def _gradient_general(self, coeffs, t, rows):
         """The general contraction (complex H, or sectors that do not split rho0 and O)."""
         spec = self._spectrum(coeffs)
+        return self._general_contraction(spec, self._blocks, spec.rho_t, spec.obs_t, t, rows)
+
+    def _general_contraction(self, spec, blocks, rho_t, obs_t, t, rows):
+        """d/dh of sum_blocks Tr[O_ps U_s rho_sp U_p^dag] with the operator rho held fixed, from the
+        transformed blocks rho_t (V_s^dag rho_sp V_p) and obs_t ((V_p^dag O_ps V_s)^T) of `blocks`
+        (objects with sector indices .s, .p); rho need not be rho0 (qhl.exact.sequence_engine)."""
         grad = np.zeros((len(rows), t.size), complex)
         tables = [(np.exp(-1j * np.outer(spec.energies[b.s], t)), np.exp(1j * np.outer(spec.energies[b.p], t)))
-                  for b in self._blocks]
+                  for b in blocks]
         for row, (n, scale) in enumerate(rows):
             if scale == 0:
                 continue
             gts = self._eigen_generators(spec, n, scale)
             parts = [None if g is None else self._split(spec, k, g) for k, g in enumerate(gts)]
-            for b, rt, ot, (ea, eb) in zip(self._blocks, spec.rho_t, spec.obs_t, tables):
+            for b, rt, ot, (ea, eb) in zip(blocks, rho_t, obs_t, tables):
                 ks, ds = parts[b.s] if parts[b.s] is not None else (0.0, 0.0)
                 kp, dp = parts[b.p] if parts[b.p] is not None else (0.0, 0.0)
                 if parts[b.s] is None and parts[b.p] is None:
@@ -598,6 +618,7 @@ class ExactEngine:
             (signal, gradient (P, T), hessian (P, P, T)).
         """
         model = self.model
+        refuse_steps(experiment, "the exact Hessian")
         t = self._times(experiment, times)
         self._require_times(t, 1 + len(model.free if parameters is None else parameters))
         spec = self.spectrum(experiment, free_values_hz)
@@ -640,6 +661,10 @@ class ExactEngine:
             hess[:, :, ti] = acc
         sig, grad = self.gradient(experiment, t, free_values_hz, names)
         return sig, grad, hess / self.norm
+
+
+def _has_steps(experiment) -> bool:
+    return experiment is not None and bool(getattr(experiment, "steps", ()))
 
 
 def _inverse_gaps(e, tol):

@@ -44,6 +44,9 @@ class SignalReport:
             s = self.signals[ex.name]
             row = {"name": ex.name, "dipolar_scale": ex.dipolar_scale, "times_s": ex.times_s,
                    "signal_real": s.real, "signal_imag": s.imag}
+            if ex.steps:
+                from ..spins.cluster_file import step_tables
+                row["steps"] = step_tables(ex.steps)     # the preparation; times count from its end
             if ex.name in self.stderr:
                 row["signal_stderr_real"], row["signal_stderr_imag"] = self.stderr[ex.name]
             if ex.name in self.gradients:

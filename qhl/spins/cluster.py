@@ -14,7 +14,8 @@ import numpy as np
 from ..base.errors import QhlInputError
 from .nuclei import larmor_frequency_hz, nucleus
 
-__all__ = ["Spin", "Pair", "Experiment", "Cluster", "MIN_DISTANCE_ANGSTROM", "MAX_SPINS", "MAX_POINTS",
+__all__ = ["Spin", "Pair", "Delay", "Pulse", "Block", "Experiment", "Cluster", "flat_steps", "refuse_steps",
+           "MAX_STEPS", "MIN_DISTANCE_ANGSTROM", "MAX_SPINS", "MAX_POINTS",
            "MAX_FREQUENCY_HZ", "MAX_FIELD_TESLA", "MAX_T_MAX_S", "NOISE_RANGE", "checked_number",
            "check_spin_count", "check_experiment"]
 
@@ -31,6 +32,11 @@ MAX_DIPOLAR_SCALE = 10.0        # |dipolar_scale| <= 10 (scaling sequences give 
 NOISE_RANGE = (1e-15, 1e3)      # noise per point relative to S(0) = 1: above round-off, below nonsense
 MAX_PPM = 1e6                   # |shift_ppm|, |reference_ppm| <= 1e6 ppm
 MAX_SPINS = 1000                # clusters above this are refused before any O(n^2) work
+MAX_STEPS = 100_000             # pulses and delays of one experiment once repeats are unrolled: the
+#                                 exact engine costs a few sector-matrix products per step
+MAX_REPEAT = 100_000            # repeat = N on a block: 1 <= N <= 100,000
+MAX_ANGLE_DEG = 36_000.0        # |pulse_deg|, |phase_deg| <= 36,000 degrees (100 turns)
+MAX_NESTING_STEPS = 8           # blocks inside blocks: at most 8 levels
 
 
 def checked_number(value, key, source, *, low=None, high=None, low_open=False, high_open=False,
@@ -117,11 +123,64 @@ class Pair:
 
 
 @dataclass(frozen=True)
+class Delay:
+    """Free evolution under the experiment's Hamiltonian for `seconds`."""
+
+    seconds: float
+
+
+@dataclass(frozen=True)
+class Pulse:
+    """An ideal (instantaneous) pulse: R = exp(-i theta sum_k (cos phi Ix_k + sin phi Iy_k)).
+
+    theta = `angle_deg`, phi = `phase_deg` (0: about +x, 90: about +y), the sum over every spin
+    of `isotope` (None: the observed isotope); rho -> R rho R^dag.
+    """
+
+    angle_deg: float
+    phase_deg: float = 0.0
+    isotope: str | None = None
+
+
+@dataclass(frozen=True)
+class Block:
+    """`steps` run `repeat` times in a row; `name` is the named sequence it came from, if any."""
+
+    steps: tuple
+    repeat: int = 1
+    name: str | None = None
+
+
+def flat_steps(steps) -> list:
+    """Delays and pulses in the order they act, blocks unrolled `repeat` times."""
+    out = []
+    for st in steps:
+        if isinstance(st, Block):
+            inner = flat_steps(st.steps)
+            out.extend(inner * st.repeat)
+        else:
+            out.append(st)
+    return out
+
+
+def refuse_steps(experiment, what: str) -> None:
+    """Refuse a pulse-sequence experiment where `what` covers free evolution only (not ignore its steps)."""
+    if experiment is not None and getattr(experiment, "steps", ()):
+        raise QhlInputError(f"experiment '{experiment.name}' has pulse-sequence steps, not covered yet by {what} "
+                            f"(free evolution only; the exact engine's signals and gradients cover sequences)",
+                            key="experiment.step")
+
+
+@dataclass(frozen=True)
 class Experiment:
     """A free-induction-decay experiment sampled at `points` times from 0 to `t_max_s`.
 
     `dipolar_scale` multiplies every dipolar term (decoupling, spinning); `noise` is the
     standard deviation per point of each of Re and Im, relative to S(0) = 1.
+
+    `steps` (Delay, Pulse, Block) is an optional preparation between the implicit 90-degree
+    excitation (rho0 = sum Ix of the observed spins) and the acquisition: the sampling times
+    count from the end of the last step. Without steps the experiment is the plain FID.
     """
 
     name: str
@@ -129,6 +188,7 @@ class Experiment:
     points: int
     dipolar_scale: float = 1.0
     noise: float | None = None
+    steps: tuple = ()
 
     @property
     def times_s(self) -> np.ndarray:
@@ -158,6 +218,53 @@ def check_experiment(ex, key="experiment", source=None) -> None:
     checked_number(ex.dipolar_scale, key + ".dipolar_scale", source, max_abs=MAX_DIPOLAR_SCALE)
     if ex.noise is not None:
         checked_number(ex.noise, key + ".noise", source, low=NOISE_RANGE[0], high=NOISE_RANGE[1])
+    steps = getattr(ex, "steps", ())
+    if not isinstance(steps, tuple):
+        raise QhlInputError(f"expected a tuple of steps, got {_short(steps)}", source=source, key=key + ".step")
+    count, seconds = _check_steps(steps, key + ".step", source, 0)
+    if count > MAX_STEPS:
+        raise QhlInputError(f"{count:,} pulses and delays once repeats are unrolled; expected at most "
+                            f"{MAX_STEPS:,}", source=source, key=key + ".step")
+    if seconds > MAX_T_MAX_S:
+        raise QhlInputError(f"the steps last {seconds:g} s; expected at most {MAX_T_MAX_S:g} s", source=source,
+                            key=key + ".step")
+
+
+def _check_steps(steps, key, source, depth):
+    """(pulses and delays once unrolled, total delay in s) of a step tuple; refuses bad values."""
+    if depth > MAX_NESTING_STEPS:
+        raise QhlInputError(f"blocks nested deeper than {MAX_NESTING_STEPS} levels", source=source, key=key)
+    count, seconds = 0, 0.0
+    for j, st in enumerate(steps):
+        where = f"{key}[{j}]"
+        if isinstance(st, Delay):
+            seconds += checked_number(st.seconds, where + ".delay_s", source, low=0, high=MAX_T_MAX_S,
+                                      low_open=True)
+            count += 1
+        elif isinstance(st, Pulse):
+            checked_number(st.angle_deg, where + ".pulse_deg", source, max_abs=MAX_ANGLE_DEG)
+            checked_number(st.phase_deg, where + ".phase_deg", source, max_abs=MAX_ANGLE_DEG)
+            if st.isotope is not None:
+                if not isinstance(st.isotope, str):
+                    raise QhlInputError(f"expected an isotope symbol such as \"1H\", got {_short(st.isotope)}",
+                                        source=source, key=where + ".isotope")
+                try:
+                    nucleus(st.isotope)
+                except QhlInputError as e:
+                    raise QhlInputError(str(e), source=source, key=where + ".isotope") from None
+            count += 1
+        elif isinstance(st, Block):
+            rep = checked_number(st.repeat, where + ".repeat", source, low=1, high=MAX_REPEAT, integer=True)
+            if not isinstance(st.steps, tuple) or not st.steps:
+                raise QhlInputError("expected a block with at least one step", source=source, key=where + ".steps")
+            c, sec = _check_steps(st.steps, where + ".steps", source, depth + 1)
+            count += rep * c
+            seconds += rep * sec
+            if count > MAX_STEPS:     # stop before unrolling anything huge
+                return count, seconds
+        else:
+            raise QhlInputError(f"expected a delay, a pulse or a block, got {_short(st)}", source=source, key=where)
+    return count, seconds
 
 
 @dataclass(frozen=True)
@@ -266,6 +373,11 @@ class Cluster:
                 raise QhlInputError(f"duplicate experiment name '{ex.name}'", source=src, key=key + ".name")
             names.add(ex.name)
             check_experiment(ex, key, src)
+            present = {nucleus(sp.isotope).symbol for sp in self.spins}
+            for j, st in enumerate(flat_steps(ex.steps) if ex.steps else ()):
+                if isinstance(st, Pulse) and st.isotope is not None and nucleus(st.isotope).symbol not in present:
+                    raise QhlInputError(f"a pulse on {st.isotope}, but no spin has that isotope (spins: "
+                                        f"{', '.join(sorted(present))})", source=src, key=key + ".step.isotope")
 
     @property
     def labels(self) -> list:

@@ -13,6 +13,18 @@ TOML layout (all keys checked; unknown keys are errors):
     spins = ["H1", "H2"]; j_hz = 7.0; dipolar_hz = -1500.0   # both optional
     [[experiment]]
     name = "fid"; t_max_s = 2e-4; points = 128; dipolar_scale = 1.0; noise = 1e-3
+    [[experiment.step]]              # optional preparation after the implicit 90-degree pulse, in order;
+    delay_s = 1e-3                   # each step is exactly one of: a delay,
+    [[experiment.step]]
+    pulse_deg = 180; phase_deg = 90  # an ideal pulse (phase 0 = about +x, default 0; isotope = "13C"
+                                     # optional, default the observed isotope),
+    [[experiment.step]]
+    sequence = "wahuha"; tau_s = 5e-6; repeat = 8   # a named sequence (qhl.spins.sequences), or
+    [[experiment.step]]
+    repeat = 4                       # a repeated block of its own steps, in order:
+    steps = [{delay_s = 1e-5}, {pulse_deg = 180}, {delay_s = 1e-5}]
+                                     # (or [[experiment.step.steps]] tables; blocks may nest)
+    The sampling times count from the end of the last step.
 
 Every number is checked for type (no bool, no string, no integer beyond a float) and range
 (the constants of qhl.spins.cluster: |offset|, |J|, |dipolar| <= 1e9 Hz, 0 < t_max_s <= 1e3 s,
@@ -26,18 +38,24 @@ import tomllib
 
 import numpy as np
 
-from .cluster import (MAX_COORDINATE_ANGSTROM, MAX_FIELD_TESLA, MAX_FREQUENCY_HZ, MAX_PPM, Cluster, Experiment,
-                      Pair, Spin, _short, check_experiment, check_spin_count, checked_number)
+from .cluster import (MAX_ANGLE_DEG, MAX_COORDINATE_ANGSTROM, MAX_FIELD_TESLA, MAX_FREQUENCY_HZ,
+                      MAX_NESTING_STEPS, MAX_PPM, MAX_REPEAT, MAX_T_MAX_S, Block, Cluster, Delay, Experiment,
+                      Pair, Pulse, Spin, _short, check_experiment, check_spin_count, checked_number)
+from .sequences import NAMED_SEQUENCES, named_block
 from ..base.errors import QhlInputError
 from ..base.files import read_text_file
 from .nuclei import larmor_frequency_hz, nucleus
 
-__all__ = ["load_cluster", "parse_cluster_toml", "load_xyz", "read_xyz_atoms", "demo_cluster", "DEMO_PATH"]
+__all__ = ["load_cluster", "parse_cluster_toml", "step_tables", "load_xyz", "read_xyz_atoms", "demo_cluster",
+           "DEMO_PATH"]
 
 _TOP = {"name", "field_tesla", "field_direction", "observe", "reference_ppm", "spin", "pair", "experiment"}
 _SPIN = {"label", "isotope", "position_angstrom", "offset_hz", "shift_ppm"}
 _PAIR = {"spins", "j_hz", "dipolar_hz"}
-_EXPERIMENT = {"name", "t_max_s", "points", "dipolar_scale", "noise"}
+_EXPERIMENT = {"name", "t_max_s", "points", "dipolar_scale", "noise", "step"}
+_STEP_KINDS = ("delay_s", "pulse_deg", "sequence", "steps")
+_STEP_KEYS = {"delay_s": {"delay_s"}, "pulse_deg": {"pulse_deg", "phase_deg", "isotope"},
+              "sequence": {"sequence", "tau_s", "repeat", "isotope"}, "steps": {"steps", "repeat"}}
 
 DEMO_PATH = "demo_cluster.toml"
 
@@ -221,12 +239,16 @@ def parse_cluster_toml(text: str, source: str = "<string>") -> Cluster:
             raise QhlInputError(f"expected a name, got {_short(name)}", source=source, key=where + ".name")
         t_max = _require(t, "t_max_s", where, source)
         points = _require(t, "points", where, source)
+        raw_steps = t.get("step", [])
+        if not isinstance(raw_steps, list):
+            raise QhlInputError("expected [[experiment.step]] entries", source=source, key=where + ".step")
+        steps = _parse_steps(raw_steps, where + ".step", source, 0)
         ex = Experiment(name=name, t_max_s=t_max, points=points, dipolar_scale=t.get("dipolar_scale", 1.0),
-                        noise=t.get("noise"))
+                        noise=t.get("noise"), steps=steps)
         check_experiment(ex, where, source)
         experiments.append(Experiment(name=name, t_max_s=float(t_max), points=int(points),
                                       dipolar_scale=float(ex.dipolar_scale),
-                                      noise=None if ex.noise is None else float(ex.noise)))
+                                      noise=None if ex.noise is None else float(ex.noise), steps=steps))
     direction = doc.get("field_direction", [0.0, 0.0, 1.0])
     if not isinstance(direction, list) or len(direction) != 3:
         raise QhlInputError(f"expected [x, y, z], got {_short(direction)}", source=source, key="field_direction")
@@ -236,6 +258,78 @@ def parse_cluster_toml(text: str, source: str = "<string>") -> Cluster:
     return Cluster(field_tesla=field, observe=observe, spins=tuple(spins), pairs=tuple(pairs),
                    experiments=tuple(experiments), field_direction=tuple(direction), source=source,
                    name=name)
+
+
+def _parse_steps(raw, where, source, depth) -> tuple:
+    """The step tables of an experiment (module docstring) as Delay, Pulse and Block values."""
+    if depth > MAX_NESTING_STEPS:
+        raise QhlInputError(f"blocks nested deeper than {MAX_NESTING_STEPS} levels", source=source, key=where)
+    out = []
+    for j, t in enumerate(raw):
+        key = f"{where}[{j}]"
+        if not isinstance(t, dict):
+            raise QhlInputError(f"expected a table such as {{delay_s = 1e-3}}, got {_short(t)}", source=source,
+                                key=key)
+        kinds = [k for k in _STEP_KINDS if k in t]
+        if len(kinds) != 1:
+            raise QhlInputError(f"expected exactly one of {', '.join(_STEP_KINDS)} in a step, got "
+                                f"{', '.join(kinds) if kinds else 'none'}", source=source, key=key)
+        kind = kinds[0]
+        _check_keys(t, _STEP_KEYS[kind], key, source)
+        iso = t.get("isotope")
+        if iso is not None:
+            if not isinstance(iso, str):
+                raise QhlInputError(f"expected an isotope symbol such as \"1H\", got {_short(iso)}",
+                                    source=source, key=key + ".isotope")
+            try:
+                iso = nucleus(iso).symbol
+            except QhlInputError as e:
+                raise QhlInputError(str(e), source=source, key=key + ".isotope") from None
+        if kind == "delay_s":
+            out.append(Delay(checked_number(t["delay_s"], key + ".delay_s", source, low=0, high=MAX_T_MAX_S,
+                                            low_open=True)))
+            continue
+        if kind == "pulse_deg":
+            out.append(Pulse(checked_number(t["pulse_deg"], key + ".pulse_deg", source, max_abs=MAX_ANGLE_DEG),
+                             checked_number(t.get("phase_deg", 0.0), key + ".phase_deg", source,
+                                            max_abs=MAX_ANGLE_DEG), iso))
+            continue
+        repeat = checked_number(t.get("repeat", 1), key + ".repeat", source, low=1, high=MAX_REPEAT, integer=True)
+        if kind == "sequence":
+            name = t["sequence"]
+            if not isinstance(name, str) or name not in NAMED_SEQUENCES:
+                raise QhlInputError(f"expected one of {', '.join(sorted(NAMED_SEQUENCES))}, got {_short(name)}",
+                                    source=source, key=key + ".sequence")
+            tau = checked_number(_require(t, "tau_s", key, source), key + ".tau_s", source, low=0,
+                                 high=MAX_T_MAX_S, low_open=True)
+            out.append(named_block(name, tau, repeat, iso))
+            continue
+        inner = t["steps"]
+        if not isinstance(inner, list) or not inner:
+            raise QhlInputError(f"expected a non-empty list of step tables, got {_short(inner)}", source=source,
+                                key=key + ".steps")
+        out.append(Block(_parse_steps(inner, key + ".steps", source, depth + 1), repeat))
+    return tuple(out)
+
+
+def step_tables(steps) -> list:
+    """Steps as the tables of the cluster file (named sequences written out as their blocks, with
+    `sequence_name` beside them for information): plain dicts, ready for JSON."""
+    out = []
+    for st in steps:
+        if isinstance(st, Delay):
+            out.append({"delay_s": st.seconds})
+        elif isinstance(st, Pulse):
+            row = {"pulse_deg": st.angle_deg, "phase_deg": st.phase_deg}
+            if st.isotope is not None:
+                row["isotope"] = st.isotope
+            out.append(row)
+        else:
+            row = {"repeat": st.repeat, "steps": step_tables(st.steps)}
+            if st.name is not None:
+                row["sequence_name"] = st.name
+            out.append(row)
+    return out
 
 
 def _read_text(path: Path) -> str:
