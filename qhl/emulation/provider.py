@@ -123,24 +123,28 @@ class EmulatedGradientProvider(GradientProvider):
                 progress(k + 1, len(points), f"{name} t={t:.3g} s r={plan[(name, t)]}")
         return plan
 
-    def family_seconds(self, experiment, time: float, steps: int, calibration_seed: int = 12345) -> tuple:
-        """Measured seconds of one signal family and of one gradient family (the first free parameter)
-        at (t, r), each built and estimated with `shots` shots per part on an independent random stream
+    def family_seconds(self, experiment, time: float, steps: int, parameters=None,
+                       calibration_seed: int = 12345) -> tuple:
+        """Measured seconds of one signal family and of one gradient family per named parameter at
+        (t, r), each built and estimated with `shots` shots per part on an independent random stream
         (the provider's own stream is untouched). A calibration run for qhl.learning.emulated_run.
 
         Returns:
-            (signal seconds, gradient seconds); gradient seconds 0.0 without free parameters.
+            (signal seconds, {parameter: gradient seconds}); parameters default to the first free one.
         """
         rng = np.random.default_rng(calibration_seed)
+        names = self.parameter_names[:1] if parameters is None else tuple(parameters)
         t0 = _time.perf_counter()
         estimate_family(signal_circuit(self.model, experiment, float(time), int(steps), self.order), self.shots, rng,
                         self.noise)
-        t1 = _time.perf_counter()
-        if not self.parameter_names:
-            return t1 - t0, 0.0
-        estimate_family(gradient_circuit(self.model, experiment, self.parameter_names[0], float(time), int(steps),
-                                         self.order), self.shots, rng, self.noise)
-        return t1 - t0, _time.perf_counter() - t1
+        signal_s = _time.perf_counter() - t0
+        gradient_s = {}
+        for name in names:
+            t0 = _time.perf_counter()
+            estimate_family(gradient_circuit(self.model, experiment, name, float(time), int(steps), self.order),
+                            self.shots, rng, self.noise)
+            gradient_s[name] = _time.perf_counter() - t0
+        return signal_s, gradient_s
 
     def _estimate(self, family):
         e = estimate_family(family, self.shots, self.rng, self.noise)

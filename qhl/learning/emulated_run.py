@@ -11,13 +11,14 @@ qhl.circuits.signal_trotter.signal_trotter_steps finds the fewest steps meeting 
 where that search declines). `steps` overrides it with one count for every time.
 
 Time. predicted seconds = step search + evaluations x seconds per evaluation, with
-    seconds per family = a + b r, for the signal family and for a gradient family separately,
-        measured by a calibration run of the same estimator on one signal and one gradient family
-        (the first free parameter) at r = 1 and at the largest count (the search at each
+    seconds per family = a + b r, for the signal family and for the gradient family of one free
+        parameter of each kind (offset, dipolar, j) separately, measured by a calibration run of the
+        same estimator at r = 1 and at the largest count (the search at each
         experiment's last time), after one unmeasured warm-up run at r = 1
         (qhl.emulation.provider.EmulatedGradientProvider.family_seconds; linear in r as the
         product-formula circuit is: a model);
-    seconds per evaluation = sum over times of one signal and (free parameters) gradient families;
+    seconds per evaluation = sum over times of the signal family and every free parameter's gradient
+        family (costed as its kind's);
     evaluations = max_iter + 1 (method 'gn': one evaluation per iteration plus the start; 'cg' and
         'lbfgs' can need more for their line searches, so for them it is a lower figure);
     step search = the search time measured at each experiment's last time x its number of times
@@ -106,18 +107,21 @@ class EmulatedRunPlan:
                 "model": "evaluations x calibrated seconds per evaluation (qhl.learning.emulated_run)"}
 
 
-def _evaluation_seconds(steps, cal, n_params):
-    """sum over times of the signal family's and n_params gradient families' seconds, each a + b r
-    through the calibrated points {r: (signal s, gradient s)} (constant with one point)."""
+def _evaluation_seconds(steps, cal, weights):
+    """sum over times of the signal family and the gradient families, each a + b r through the
+    calibrated points {r: (signal s, {kind representative: gradient s})}; weights: {representative:
+    how many free parameters it stands for}."""
     rs = sorted(cal)
     lo, hi = rs[0], rs[-1]
 
-    def at(r, k):
-        if hi == lo:
-            return cal[lo][k]
-        return cal[lo][k] + (cal[hi][k] - cal[lo][k]) * (r - lo) / (hi - lo)
+    def line(r, lo_value, hi_value):
+        return lo_value if hi == lo else max(lo_value + (hi_value - lo_value) * (r - lo) / (hi - lo), 0.0)
 
-    return float(sum(max(at(r, 0), 0.0) + n_params * max(at(r, 1), 0.0) for r in steps.values()))
+    total = 0.0
+    for r in steps.values():
+        total += line(r, cal[lo][0], cal[hi][0])
+        total += sum(w * line(r, cal[lo][1][name], cal[hi][1][name]) for name, w in weights.items())
+    return float(total)
 
 
 def plan_emulated_run(provider, dataset, max_iter: int, max_minutes: float | None = DEFAULT_MAX_MINUTES,
@@ -154,22 +158,28 @@ def plan_emulated_run(provider, dataset, max_iter: int, max_minutes: float | Non
         last[name] = provider.steps_for(provider.experiments[name], t[-1], values)
         search_s += provider.step_search_seconds.get((name, float(t[-1])), 0.0) * (t.size - 1)
     name_hi = max(last, key=last.get) if last else None
+    kinds = {p.name: p.kind for p in provider.model.parameters}
+    weights = {}                                         # one representative free parameter per kind
+    for name in provider.parameter_names:
+        rep = next((r for r in weights if kinds[r] == kinds[name]), name)
+        weights[rep] = weights.get(rep, 0) + 1
+    reps = tuple(weights)
     cal = {}
     if name_hi is not None:
         ex, t_hi, r_hi = provider.experiments[name_hi], times[name_hi][-1], last[name_hi]
-        provider.family_seconds(ex, t_hi, 1)           # warm-up (first-call costs), not counted
-        cal = {1: provider.family_seconds(ex, t_hi, 1)}
+        provider.family_seconds(ex, t_hi, 1, reps)     # warm-up (first-call costs), not counted
+        cal = {1: provider.family_seconds(ex, t_hi, 1, reps)}
         if r_hi != 1:
-            cal[r_hi] = provider.family_seconds(ex, t_hi, r_hi)
-    cal = cal or {1: (0.0, 0.0)}
+            cal[r_hi] = provider.family_seconds(ex, t_hi, r_hi, reps)
+    cal = cal or {1: (0.0, {name: 0.0 for name in reps})}
     modelled = {(n, float(x)): int(provider.steps) if provider.steps is not None else
                 max(1, math.ceil(last[n] * x / t[-1])) for n, t in times.items() for x in t}
 
     def make(steps, sources, search):
         return EmulatedRunPlan(steps, sources, target if provider.steps is None else None, provider.unit_hz,
-                               _evaluation_seconds(steps, cal, n_params), evaluations,
+                               _evaluation_seconds(steps, cal, weights), evaluations,
                                len(steps) * (1 + n_params), 2 * provider.shots * len(steps) * (1 + n_params),
-                               {"seconds_per_family": {int(r): {"signal": float(v[0]), "gradient": float(v[1])}
+                               {"seconds_per_family": {int(r): {"signal": float(v[0]), "gradient": v[1]}
                                                        for r, v in cal.items()},
                                 "step_search_seconds": search}, max_minutes, search)
 
