@@ -5,9 +5,10 @@ import sys
 import numpy as np
 
 from ..learning.methods import METHODS
-from .common import (ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET, add_cluster_argument, add_report_argument,
-                     check_output_path, cluster_from_args, print_json, report_if_asked)
+from .common import (ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET, STEPS, add_cluster_argument, add_report_argument,
+                     check_output_path, cluster_from_args, number_in, print_json, report_if_asked)
 
+MAX_MINUTES = number_in(0, 10**6, low_open=True, name="minutes")
 # A spectrometer field more than this fraction off the cluster file's gets a note (shifts in ppm
 # and dipolar couplings do not depend on it, but a different magnet usually means a wrong file).
 FIELD_NOTE_RTOL = 0.01
@@ -33,6 +34,11 @@ def register(sub):
     p.add_argument("--gradients", choices=("exact", "emulated"), default="exact",
                    help="exact engine or circuit emulator with --shots per estimate")
     p.add_argument("--shots", type=SHOTS, metavar="N", help="shots per estimate (emulated gradients)")
+    p.add_argument("--steps", type=STEPS, metavar="N",
+                   help="emulated: N Trotter steps at every time (default: the fewest keeping the Trotter error of "
+                        "S and dS/dh within a quarter of the data noise)")
+    p.add_argument("--max-minutes", type=MAX_MINUTES, default=60.0, metavar="M",
+                   help="emulated: refuse a run predicted to take longer than M minutes (default 60)")
     p.add_argument("--max-iter", type=ITERATIONS, default=200, metavar="N", help="iteration limit")
     p.add_argument("--free", nargs="+", default=["offset:*", "dipolar:*"], metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
@@ -66,6 +72,17 @@ class _Progress:
               f"{format_seconds(per * (self.max_iter - k))} left (--max-iter {self.max_iter})", file=sys.stderr)
         self.inner = None
 
+    def planning(self, done, total, label):
+        from ..base.progress import Progress
+        if done == 1:
+            self.inner = Progress("  Trotter steps per time (signal and gradient error)", total)
+        self.inner.update(done, label[:40])
+        if done == total:
+            self.inner = None
+
+    def planned(self, plan):
+        print(f"qhl: emulated run {plan.summary()}", file=sys.stderr)
+
     def evaluation(self, done, total, label):
         from ..base.progress import Progress
         if self.inner is None or done == 1:
@@ -83,7 +100,10 @@ def run(args):
     report = learn(cluster, free=args.free, data_path=args.data, sigma=args.noise, seed=args.seed,
                    start_offset=args.start_offset, method=args.method, gradients=args.gradients,
                    shots=args.shots, max_iter=args.max_iter, progress=None if args.json else bars.iteration,
-                   evaluation_progress=None if args.json else bars.evaluation, nuisance=args.nuisance)
+                   evaluation_progress=None if args.json else bars.evaluation, nuisance=args.nuisance,
+                   steps=args.steps, max_minutes=args.max_minutes,
+                   planning_progress=None if args.json else bars.planning,
+                   plan_ready=None if args.json else bars.planned)
     if args.plot and not report.fit.diverged:
         from ..learning.fit_plots import plot_fit
         plot_fit(report, args.plot)

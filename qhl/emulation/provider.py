@@ -1,11 +1,26 @@
 """A qhl.learning.GradientProvider whose S(t) and dS/dh come from the emulator with shots.
 
 Each call compiles, at the requested parameter values, one signal family and one gradient
-family per free parameter and time point, with r(t) Trotter steps (the fewest whose commutator
-bound, qhl.circuits.trotter_bounds, is <= eps; or a fixed count), and estimates each with `shots` shots
-per part from one Generator seeded once (fresh estimates every call, reproducible per seed).
+family per free parameter and time point, with r(t) Trotter steps, and estimates each with `shots`
+shots per part from one Generator seeded once (fresh estimates every call, reproducible per seed).
 At t = 0 the values are exact: S(0) = 1 and dS/dh = 0 by the normalisation S = Tr[O rho]/Tr[O rho0].
+
+Trotter steps r(t), in this order of precedence:
+    'fixed'   a given count (`steps`);
+    'signal'  with `signal_target`: the fewest steps whose Trotterised S(t) and dS/dh (per unit_hz)
+              are within signal_target of the exact engine's (qhl.circuits.signal_trotter, clusters
+              up to its SIGNAL_MAX_SPINS spins, orders 1 and 2), found once per (experiment, t) at the
+              model's own values and kept for the whole fit (every evaluation sees the same formula);
+    'bound'   the fewest whose commutator bound (qhl.circuits.trotter_bounds) on the propagator is
+              <= eps (also where the signal search declines or hits its time limit: the bound is
+              valid for every observable, so it is never too few).
+
+Calibration (`family_seconds`): the measured time of one signal and one gradient family at a
+given (t, r) with the same estimator (fast path when noiseless), on its own random stream; the
+run-time prediction built from it is qhl.learning.emulated_run's.
 """
+
+import time as _time
 
 import numpy as np
 
@@ -15,6 +30,7 @@ from ..exact.provider import GradientProvider
 from ..circuits.trotter import trotter_terms
 from ..circuits.trotter_bounds import trotter_steps_for
 from ..spins.cluster import refuse_steps
+from ..circuits.signal_trotter import signal_trotter_steps
 from .derivatives import as_generator, check_shots, estimate_family
 
 __all__ = ["EmulatedGradientProvider"]
@@ -28,19 +44,25 @@ class EmulatedGradientProvider(GradientProvider):
         experiments: Experiment objects the data refer to.
         shots: shots per part of every estimate.
         seed: int seed of the single random stream.
-        steps: fixed Trotter steps, or None for the bound-based r(t) with `eps`.
-        eps: target Trotter error (spectral norm) per time point; order: 1 or 2.
+        steps: fixed Trotter steps, or None for r(t) from `signal_target` or the bound (module docstring).
+        eps: target Trotter error (spectral norm) of the bound-based r(t); order: 1 or 2.
         noise: qhl.emulation.noise.NoiseSpec or None.
+        signal_target: allowed error of the Trotterised S(t) and dS/dh (per unit_hz) for the
+            signal-based r(t), or None for the bound; needs `engine`.
+        engine: qhl.exact.engine.ExactEngine of `model` (signal-based r(t)).
+        unit_hz: frequency unit of the derivative error in the signal-based r(t).
+        step_time_limit_s: time limit of one signal-based search (then the bound is used).
 
     Attributes:
         shots_used, circuits_run, seconds: totals over all calls.
         progress: optional callable(done, total, label) after each circuit family of a call.
+        step_sources: {(experiment name, t): 'fixed' | 'signal' | 'bound'} of the counts used so far.
     """
 
     noisy = True
 
     def __init__(self, model, experiments, shots: int, seed=0, steps=None, eps: float = 1e-3, order: int = 2,
-                 noise=None):
+                 noise=None, signal_target=None, engine=None, unit_hz: float = 1.0, step_time_limit_s: float = 10.0):
         for ex in experiments:
             refuse_steps(ex, "the circuit emulator")
         self.model = model
@@ -54,12 +76,78 @@ class EmulatedGradientProvider(GradientProvider):
         self.shots_used = self.circuits_run = 0
         self.seconds = 0.0
         self.progress = None
+        if signal_target is not None and (not np.isfinite(signal_target) or signal_target <= 0 or engine is None):
+            raise QhlInputError(f"expected a positive signal_target and an engine, got {signal_target!r}",
+                                key="signal_target")
+        self.signal_target, self.engine = signal_target, engine
+        self.unit_hz, self.step_time_limit_s = float(unit_hz), float(step_time_limit_s)
+        self._steps_cache = {}
+        self.step_sources = {}
+        self.step_search_seconds = {}
 
     def steps_for(self, experiment, time, values_all) -> int:
+        """r at time t (module docstring: fixed, signal or bound); signal counts are cached per (experiment, t)."""
+        key = (experiment.name, float(time))
         if self.steps is not None:
+            self.step_sources[key] = "fixed"
             return int(self.steps)
+        if self.signal_target is not None:
+            if key not in self._steps_cache:
+                t0 = _time.perf_counter()
+                bound = max(1, trotter_steps_for(trotter_terms(self.model, experiment, self.model.values_hz),
+                                                 time, self.eps, self.order))
+                r, _ = signal_trotter_steps(self.model, experiment, self.engine, float(time), self.order,
+                                            self.signal_target, self.unit_hz, r_max=bound,
+                                            time_limit_s=self.step_time_limit_s)
+                self._steps_cache[key] = (int(r), "signal") if r else (bound, "bound")
+                self.step_search_seconds[key] = _time.perf_counter() - t0
+            r, source = self._steps_cache[key]
+            self.step_sources[key] = source
+            return r
         terms = trotter_terms(self.model, experiment, values_all)
+        self.step_sources[key] = "bound"
         return max(1, trotter_steps_for(terms, time, self.eps, self.order))
+
+    def step_plan(self, times_by_experiment, progress=None) -> dict:
+        """{(experiment name, t): r} for every non-zero time, at the model's values (no shots spent).
+
+        progress: optional callable(done, total, label) after each time point.
+        """
+        values_all = self.model.values_hz.copy()
+        points = [(name, float(t)) for name, times in times_by_experiment.items()
+                  for t in np.atleast_1d(np.asarray(times, float)) if t != 0]
+        plan = {}
+        for k, (name, t) in enumerate(points):
+            if name not in self.experiments:
+                raise QhlInputError(f"no experiment named '{name}': expected one of {', '.join(self.experiments)}",
+                                    key="experiment")
+            plan[(name, t)] = self.steps_for(self.experiments[name], t, values_all)
+            if progress is not None:
+                progress(k + 1, len(points), f"{name} t={t:.3g} s r={plan[(name, t)]}")
+        return plan
+
+    def family_seconds(self, experiment, time: float, steps: int, parameters=None,
+                       calibration_seed: int = 12345) -> tuple:
+        """Measured seconds of one signal family and of one gradient family per named parameter at
+        (t, r), each built and estimated with `shots` shots per part on an independent random stream
+        (the provider's own stream is untouched). A calibration run for qhl.learning.emulated_run.
+
+        Returns:
+            (signal seconds, {parameter: gradient seconds}); parameters default to the first free one.
+        """
+        rng = np.random.default_rng(calibration_seed)
+        names = self.parameter_names[:1] if parameters is None else tuple(parameters)
+        t0 = _time.perf_counter()
+        estimate_family(signal_circuit(self.model, experiment, float(time), int(steps), self.order), self.shots, rng,
+                        self.noise)
+        signal_s = _time.perf_counter() - t0
+        gradient_s = {}
+        for name in names:
+            t0 = _time.perf_counter()
+            estimate_family(gradient_circuit(self.model, experiment, name, float(time), int(steps), self.order),
+                            self.shots, rng, self.noise)
+            gradient_s[name] = _time.perf_counter() - t0
+        return signal_s, gradient_s
 
     def _estimate(self, family):
         e = estimate_family(family, self.shots, self.rng, self.noise)

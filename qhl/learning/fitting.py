@@ -37,6 +37,7 @@ from ..base.errors import QhlInputError
 from .fisher_report import crb_relative_error, report_from_fisher
 from ..exact.likelihood import Dataset
 from ..exact.provider import ExactGradientProvider, GradientProvider
+from .emulated_run import DEFAULT_MAX_MINUTES, plan_emulated_run, trotter_signal_target
 from .methods import METHODS
 
 __all__ = ["GradientProvider", "ExactGradientProvider", "CostPoint", "FitResult", "evaluate_cost",
@@ -356,6 +357,7 @@ class LearnReport:
             `fit` then holds the Hamiltonian parameters first and the nuisance ones after them,
             with one Fisher matrix over all of them.
         acquisitions: the spectrometer datasets read (qhl.learning.spectrometer.Acquisition), if any.
+        emulation: qhl.learning.emulated_run.EmulatedRunPlan of an emulated fit (None for exact).
     """
 
     fit: FitResult
@@ -368,6 +370,7 @@ class LearnReport:
     fixed_unlearnable: tuple = ()
     nuisance: list = field(default_factory=list)
     acquisitions: list = field(default_factory=list)
+    emulation: object = None
 
     @property
     def n_hamiltonian(self) -> int:
@@ -412,12 +415,14 @@ class LearnReport:
                 "crb_relative_error": self.crb_relative_error, "unlearnable": f.unlearnable,
                 "diverged": f.diverged, "fixed_unlearnable": list(self.fixed_unlearnable),
                 "hidden": list(self.model.hidden), "goodness_of_fit": self.goodness_of_fit,
-                "nuisance": list(self.nuisance), "data_files": [a.describe() for a in self.acquisitions]}
+                "nuisance": list(self.nuisance), "data_files": [a.describe() for a in self.acquisitions],
+                "emulation": None if self.emulation is None else self.emulation.to_json()}
 
 
 def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, seed: int = 0,
           start_offset=None, method: str = "gn", gradients: str = "exact", shots=None,
-          max_iter: int = 200, progress=None, evaluation_progress=None, nuisance=()) -> LearnReport:
+          max_iter: int = 200, progress=None, evaluation_progress=None, nuisance=(), steps=None,
+          max_minutes=DEFAULT_MAX_MINUTES, planning_progress=None, plan_ready=None) -> LearnReport:
     """Fit `cluster`'s free parameters to measured (CSV or spectrometer files) or synthetic signals.
 
     Synthetic data: the cluster's own values plus Gaussian noise `sigma` (default each
@@ -438,6 +443,13 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
         nuisance: nuisance kinds fitted with the Hamiltonian (qhl.learning.nuisance: 'scale',
             'phase', 'decay', 'gauss', 'deadtime', or a comma-separated string); none by default,
             for synthetic and measured data alike.
+        steps: emulated only: one Trotter-step count for every time, overriding the default (the
+            fewest steps keeping the Trotter error of S and dS/dh within the share of the data's
+            noise, qhl.learning.emulated_run).
+        max_minutes: emulated only: refuse, before any shot, a run predicted to take longer
+            (qhl.learning.emulated_run.plan_emulated_run; None: no limit).
+        planning_progress: callable(done, total, label) during the emulated run's step search.
+        plan_ready: callable(EmulatedRunPlan) once an emulated run is planned and accepted.
 
     Returns:
         LearnReport.
@@ -447,7 +459,8 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
     values (`fixed_unlearnable`).
 
     Raises:
-        QhlInputError: bad data file, sigma <= 0, no experiments, emulator unavailable.
+        QhlInputError: bad data file, sigma <= 0, no experiments, emulator unavailable, --steps with
+            exact gradients, an emulated run predicted above max_minutes (the message gives the prediction).
     """
     from ..exact.engine import ExactEngine
     from ..exact.likelihood import synthetic_dataset
@@ -457,6 +470,8 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
         raise QhlInputError(f"unknown gradients '{gradients}': expected exact or emulated", key="--gradients")
     if gradients == "exact" and shots is not None:
         raise QhlInputError("--shots applies only to --gradients emulated", key="--shots")
+    if gradients == "exact" and steps is not None:
+        raise QhlInputError("--steps applies only to --gradients emulated", key="--steps")
     if sigma is not None and (not np.isfinite(sigma) or sigma <= 0):
         raise QhlInputError(f"sigma must be positive, got {sigma}", key="--noise")
     if not cluster.experiments:
@@ -492,10 +507,15 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
     if gradients == "emulated":
         if shots is None:
             raise QhlInputError("--gradients emulated needs --shots N", key="--shots")
-        provider = emulated_gradient_provider(model, experiments, shots, seed)
+        target = trotter_signal_target(dataset)
+        provider = emulated_gradient_provider(model, experiments, shots, seed, steps=steps, signal_target=target,
+                                              engine=engine)
+        plan = plan_emulated_run(provider, dataset, max_iter, max_minutes, target, planning_progress)
+        if plan_ready is not None:
+            plan_ready(plan)
         provider.progress = evaluation_progress
     else:
-        provider = ExactGradientProvider(engine, experiments)
+        provider, plan = ExactGradientProvider(engine, experiments), None
     if kinds:
         provider = NuisanceProvider(provider, experiments, kinds)
         start = np.concatenate([start, provider.start_values()])
@@ -509,4 +529,4 @@ def learn(cluster, free=("offset:*", "dipolar:*"), data_path=None, sigma=None, s
     else:
         fitted = {ex.name: engine.signal(ex, dataset.signals[ex.name][0], result.values_hz) for ex in experiments}
         rows = []
-    return LearnReport(result, model, dataset, start[:P], true_hz, fitted, gradients, fixed, rows, acquisitions)
+    return LearnReport(result, model, dataset, start[:P], true_hz, fitted, gradients, fixed, rows, acquisitions, plan)
