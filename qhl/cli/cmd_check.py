@@ -81,7 +81,7 @@ def _plot(report, path, title):
 
 
 def run(args):
-    from ..emulation.check import ATTENUATION_MODEL, BIAS_RULE, POWER_RULE, check_derivatives
+    from ..emulation.check import ATTENUATION_MODEL, BIAS_RULE, DEVICE_RULE, POWER_RULE, check_derivatives
     from ..emulation.noise import NoiseSpec
     from ..base.errors import QhlInputError
     if args.shots < 1:
@@ -136,6 +136,7 @@ def run(args):
                   f"{r['measured_attenuation']:>9.3f} +- {r['measured_attenuation_stderr']:<5.3f}"
                   f"{r['two_qubit_gates']:>8d}")
         print(f"attenuation model: {ATTENUATION_MODEL}")
+        print(f"test: {DEVICE_RULE}")
     print(f"shots {report.shots}, circuits run {report.circuits_run}, {report.seconds:.1f} s")
     print(report.verdict())
     if report.biased or report.without_power:
