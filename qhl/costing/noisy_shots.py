@@ -52,10 +52,14 @@ ASSUMPTIONS = {
                    "Gambetta, PRL 119, 180509 (2017)); zne: N_bound (sum |c_k|)^2 / F_ro^2, Richardson weights "
                    "c_k at noise factors 1, 3, 5 with optimal shot split (Giurgica-Tiron et al., IEEE QCE 2020), rescaled by "
                    "the attenuation A = sum c_k F_g^lambda_k the extrapolation leaves (A^2 in the denominator)",
-    "noisy_circuit": "the worst component's Hadamard-test circuit, second-order product formula with the "
-                     "commutator-bound step count; its one- and two-step members routed on the target and r "
-                     "steps extrapolated linearly (gate counts) and log-linearly (fidelity)",
-    "max_useful_time": "largest t on a log grid (t/1e3 .. t*1e3) whose noisy count stays <= --max-shots",
+    "noisy_circuit": "the worst component's Hadamard-test circuit at the budget's chosen Trotter order (order 1 "
+                     "or 2, the ones built as circuits; else the one with fewer steps) and its smallest valid step "
+                     "count (signal and gradient error, exact propagator or commutator bound: routing "
+                     "'trotter_steps_source'); its one- and two-step members routed on the target and r steps "
+                     "extrapolated linearly (gate counts) and log-linearly (fidelity)",
+    "max_useful_time": "largest t on a log grid (t/1e3 .. t*1e3) whose noisy count stays <= --max-shots; the step "
+                       "count there is the commutator bound of the same order times the ratio valid / bound found "
+                       "at the budget's t (the bound's t and error-split scaling; exact at t itself)",
 }
 
 
