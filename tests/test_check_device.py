@@ -115,6 +115,9 @@ def test_cli_device_json(cluster, capsys):
     (["--device", "fake_lima", "--noise", "0.01"], ["leave out --noise"]),
     (["--device", "fake_lima", "--max-circuits", "0"], ["--max-circuits"]),
     (["--max-circuits", "10"], ["--max-circuits applies to --device"]),
+    (["--device", "fake_lima", "--shots-per-pub", "0"], ["--shots-per-pub"]),
+    (["--shots-per-pub", "10"], ["--shots-per-pub applies to --device"]),
+    (["--target", "moon"], ["unknown target 'moon'", "line", "heavy-hex", "fake_lima"]),
 ])
 def test_bad_device_input_exit_2_one_line(cluster, capsys, extra, words):
     try:
@@ -132,3 +135,49 @@ def test_cluster_larger_than_device_names_both_numbers(capsys):
     assert rc == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "6 spins + 1 ancilla = 7 qubits" in err and "fake_lima has 5" in err
+
+
+def test_target_larger_than_cluster_names_both_numbers(capsys):
+    """--target fake_lima (5 qubits) for the demo cluster (6 spins + 1 ancilla): one line with both numbers."""
+    rc = main(["check", "--time", "1e-4", "--steps", "1", "--shots", "100", "--target", "fake_lima"])
+    assert rc == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "7 qubits" in err and "6 spins + 1 ancilla" in err and "fake_lima has 5" in err
+
+
+def test_cli_target_reports_routed_counts(cluster, capsys):
+    """`qhl check --target line`: per checked family, routed counts beside the all-to-all count. Checks (common
+    practice): routing never removes two-qubit gates (routed >= all-to-all), and a line of 4 qubits needs SWAPs for
+    3 mutually coupled spins plus the Hadamard-test ancilla; the layout maps the 4 circuit qubits to 4 distinct
+    physical qubits. Without --target the keys are None (today's behaviour)."""
+    base = ["check", cluster, "--time", "2e-4", "--steps", "2", "--shots", "200", "--param", "offset:A", "dipolar:A-B"]
+    assert main(base + ["--target", "line", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["target"] == "line" and [r["parameter"] for r in out["routing"]] == ["offset:A", "dipolar:A-B"]
+    for r in out["routing"]:
+        w = r["whole"]
+        assert w["two_qubit"] >= r["all_to_all_two_qubit"] > 0 and w["swaps"] >= 1
+        assert sorted(set(w["layout"])) == sorted(w["layout"]) and len(w["layout"]) == 4
+        assert w["two_qubit_gate"] == "cx" and r["per_step"]["two_qubit"] > 0
+    assert len(out["rows"]) == 4 and out["status"] in ("pass", "inconclusive")
+    assert main(base + ["--target", "line"]) == 0
+    text = capsys.readouterr().out
+    assert "routed for line" in text and "2q all-to-all" in text
+    assert main(base + ["--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["target"] is None and out["routing"] is None
+
+
+def test_cli_shots_per_pub_sets_the_pub_plan(cluster, capsys):
+    """`--shots-per-pub 1` on the device path: every shot is its own parameter row (qhl.emulation.sampler_path's
+    documented plan: setting g appears ceil(n_g / S) times), so 300 shots per part in jobs of at most 16 rows make
+    ceil(300 / 16) = 19 jobs (19 PUBs) per part, 38 for Re and Im; the default plan (one PUB per distinct shot
+    count) needs fewer. Same total shots either way."""
+    base = ["check", cluster, "--time", "2e-4", "--steps", "1", "--shots", "300", "--seed", "1", "--param", "offset:A",
+            "--device", "fake_lima", "--max-circuits", "16", "--json"]
+    assert main(base + ["--shots-per-pub", "1"]) == 0
+    one = json.loads(capsys.readouterr().out)
+    assert one["sampler_jobs"] == 38 and one["sampler_pubs"] == 38 and one["shots"] == 600
+    assert main(base) == 0
+    default = json.loads(capsys.readouterr().out)
+    assert default["sampler_jobs"] < 38 and default["shots"] == 600

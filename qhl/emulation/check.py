@@ -23,6 +23,12 @@ noise; on fake_lima it measured 1.23 F R), so device rows are tested against tha
 reported beside z. A FAIL there means the emulation under the device's noise lies outside what the
 attenuation bound allows: more damping than the bound, or a gain.
 
+Target (`target=NAME`, qhl.circuits.targets: line, ring, grid, heavy-hex or an offline fake backend):
+each checked family (the circuit of each row pair) is also routed for that target with the preset
+pass manager and the coupling-strength layout search (qhl.circuits.routing.routed_family_counts);
+the report's `routing` lists, per family, the routed counts of the whole circuit and of one Trotter
+step beside the all-to-all two-qubit count. Counts only: the emulation itself is unchanged.
+
 Power and bias (POWER_RULE, BIAS_RULE): a row can detect an error as large as the value it tests
 only when stderr <= max(|exact|, |trotter_exact|) / POWER_RATIO (an error of 100% of the value then
 gives |z| >= POWER_RATIO; common practice for a 3-sigma test). When no row can, the verdict is
@@ -89,6 +95,10 @@ class CheckReport:
     interrupted: bool = False
     planned: int = 0
     device: str | None = None
+    target: str | None = None
+    routing: list | None = None
+    sampler_jobs: int | None = None
+    sampler_pubs: int | None = None
 
     @property
     def failed(self) -> list:
@@ -145,11 +155,13 @@ class CheckReport:
                 "planned": self.planned, "device": self.device,
                 "reference": "trotter_exact" if self.device is None else "trotter_exact * attenuation",
                 "attenuation_model": None if self.device is None else ATTENUATION_MODEL,
-                "device_rule": None if self.device is None else DEVICE_RULE}
+                "device_rule": None if self.device is None else DEVICE_RULE,
+                "target": self.target, "routing": self.routing, "sampler_jobs": self.sampler_jobs,
+                "sampler_pubs": self.sampler_pubs}
 
 
 def _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device, sampler_options):
-    """(ComplexEstimate through SamplerV2 on the device's noise model, predicted Attenuation)."""
+    """(ComplexEstimate through SamplerV2 on the device's noise model, predicted Attenuation, the runner)."""
     from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit
     from .derivatives import estimate_family
     from .device_fidelity import target_attenuation
@@ -160,7 +172,20 @@ def _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device,
     est = estimate_family(family, shots, rng, runner=runner)
     atten = target_attenuation(runner.transpiled, runner.measured_physical_qubits(), runner.masks,
                                runner.backend.target)
-    return est, atten
+    return est, atten, runner
+
+
+def _routed(model, ex, kind, pars, t, steps, order, target, label) -> dict:
+    """Routed counts of one checked family on `target` (module docstring)."""
+    from ..circuits.circuit_counts import family_counts, transpile_for_counts
+    from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit
+    from ..circuits.routing import routed_family_counts
+    family = gradient_circuit(model, ex, pars[0], t, steps, order) if kind == "gradient" else \
+        hessian_circuit(model, ex, tuple(pars), t, steps, order)
+    plain = family_counts(family, transpile_for_counts(family.with_measurements(family.representative())))
+    routed = routed_family_counts(family, target)
+    return {"parameter": label, "kind": kind, "all_to_all_two_qubit": int(plain["cx"]),
+            "whole": routed["whole"].to_dict(), "per_step": routed["per_step"].to_dict()}
 
 
 def _experiment(cluster, name):
@@ -179,7 +204,7 @@ def check_time(time) -> float:
 def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | None = None, hessian=False,
                       parameters=None, experiment=None, order: int = 1, progress=None,
                       reference_progress=None, device: str | None = None,
-                      sampler_options: dict | None = None) -> CheckReport:
+                      sampler_options: dict | None = None, target: str | None = None) -> CheckReport:
     """Emulated dS/dh_n (and Hessian entries) at one time against the exact and Trotterised values.
 
     Args:
@@ -193,15 +218,23 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
         device: name of an offline fake backend (device mode, module docstring); excludes noise.
         sampler_options: further SamplerRunner options in device mode (shots_per_pub,
             max_circuits, simulator_options, seed_transpiler, optimization_level).
+        target: also route every checked family for this target (module docstring; None or
+            'all-to-all': no routing).
 
     Returns:
         CheckReport (partial, interrupted=True, after Ctrl-C).
 
     Raises:
-        QhlInputError: bad time, shots, steps, unknown parameter or experiment; an unknown device
-            (listing the valid names) or a cluster wider than the device (both numbers).
+        QhlInputError: bad time, shots, steps, unknown parameter or experiment; an unknown device or
+            target (listing the valid names) or a cluster wider than the device or target (both numbers).
     """
     t = check_time(time)
+    routing_target = None
+    if target is not None and target != "all-to-all":
+        from ..circuits.targets import resolve_target
+        anc = 2 if hessian else 1
+        routing_target = resolve_target(target, len(cluster.spins) + anc, key="--target",
+                                        what=f"{len(cluster.spins)} spins + {anc} ancilla{'s' if anc > 1 else ''}")
     if device is not None:
         from .sampler_path import device_backend
         if noise is not None and not noise.is_noiseless:
@@ -224,7 +257,9 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
     tasks = [("gradient", (nm,)) for nm in names]
     if hessian:
         tasks += [("hessian", (a, b)) for i, a in enumerate(names) for b in names[i:]]
-    report = CheckReport(time_s=t, steps=int(steps), planned=2 * len(tasks), device=device)
+    report = CheckReport(time_s=t, steps=int(steps), planned=2 * len(tasks), device=device,
+                         target=None if routing_target is None else routing_target.name,
+                         routing=None if routing_target is None else [])
     start = _time.perf_counter()
     try:
         _, grad_exact = engine.gradient(ex, [t])
@@ -248,8 +283,10 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
                 label = f"{pars[0]} x {pars[1]}"
             atten = None
             if device is not None:
-                est, atten = _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device,
-                                              sampler_options)
+                est, atten, runner = _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device,
+                                                      sampler_options)
+                report.sampler_jobs = (report.sampler_jobs or 0) + runner.jobs_run
+                report.sampler_pubs = (report.sampler_pubs or 0) + runner.pubs_run
             for part in ("re", "im"):
                 e = est.part(part)
                 pick = (lambda z: z.real) if part == "re" else (lambda z: z.imag)
@@ -268,6 +305,8 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
                                measured_attenuation=e.value / size if size else float("nan"),
                                measured_attenuation_stderr=e.stderr / abs(size) if size else float("nan"))
                 report.rows.append(annotate_row(row))
+            if routing_target is not None:
+                report.routing.append(_routed(model, ex, kind, pars, t, steps, order, routing_target, label))
             report.shots += est.shots
             report.circuits_run += est.circuits_run
             if progress is not None:
