@@ -145,6 +145,8 @@ def test_fidelity_against_the_fake_backend_error_table():
     fid = ns.circuit_fidelity(routed, ns.ErrorRates(backend=target.backend))
     assert fid["fidelity"] == pytest.approx(math.exp(log_f), rel=1e-12)
     assert 0 < fid["fidelity"] < 1 and fid["measured"] == width
+    # the bare qiskit Target gives the same numbers as its backend (the check --device path passes the Target)
+    assert ns.circuit_fidelity(routed, ns.ErrorRates(backend=table))["fidelity"] == fid["fidelity"]
     # a uniform two-qubit rate replaces the calibrated gate errors (single-qubit P/10), readout stays calibrated
     mixed = ns.ErrorRates(gate_error=0.02, backend=target.backend)
     assert mixed.gate("cx", (0, 1)) == 0.02 and mixed.gate("sx", (0,)) == pytest.approx(0.002)
