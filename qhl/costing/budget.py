@@ -633,7 +633,7 @@ class BudgetModel:
         }
         exact_variance_note = self._add_circuit_variance(near, t, eps)
         self._add_noisy_shots(near, methods_near, t, eps, x, n, ft_bound,
-                              self._noisy_steps(order, ft_all, ft_bound, signal_steps))
+                              lambda: self._noisy_steps(order, ft_all, ft_bound, signal_steps))
         layers_shot = float(ch["layers_per_shot"])
         nt_layers = near["shots_per_component"] * layers_shot
         nt_best = min(nt_layers, (near["shots_per_component_circuit"] or math.inf) * layers_shot)
@@ -710,8 +710,8 @@ class BudgetModel:
         """Put shots_per_component_noisy, circuit_fidelity, mitigation, max_useful_time_s and routing into
         `near` (qhl.costing.noisy_shots, qhl.circuits.routing; None where no noise model is given).
 
-        `chosen`: (order, r, source, r_bound) from _noisy_steps, the budget's own valid step count (default: the
-        commutator bound at NOISY_ORDER)."""
+        `chosen`: callable() -> (order, r, source, r_bound) from _noisy_steps, the budget's own valid step count
+        (default: the commutator bound at NOISY_ORDER); called only when a noise model is given."""
         s = self.settings
         rates = s.error_rates(self.target.backend)
         near.update({"shots_per_component_noisy": None, "circuit_fidelity": None, "mitigation": None,
@@ -720,8 +720,9 @@ class BudgetModel:
             return
         if chosen is None:
             b = max(int(ft_bound[NOISY_ORDER]["steps_trotter"]), 1)
-            chosen = (NOISY_ORDER, b, "commutator bound", b)
-        order, steps, source, bound = chosen
+            order, steps, source, bound = NOISY_ORDER, b, "commutator bound", b
+        else:
+            order, steps, source, bound = chosen()
         route = self._route(x, n, t, steps, order)
         routing = {"target": self.target.name, "computed": route["computed"], "trotter_order": order,
                    "trotter_steps": steps, "trotter_steps_source": source, "trotter_steps_bound": bound,
