@@ -145,6 +145,8 @@ def test_fidelity_against_the_fake_backend_error_table():
     fid = ns.circuit_fidelity(routed, ns.ErrorRates(backend=target.backend))
     assert fid["fidelity"] == pytest.approx(math.exp(log_f), rel=1e-12)
     assert 0 < fid["fidelity"] < 1 and fid["measured"] == width
+    # the bare qiskit Target gives the same numbers as its backend (the check --device path passes the Target)
+    assert ns.circuit_fidelity(routed, ns.ErrorRates(backend=table))["fidelity"] == fid["fidelity"]
     # a uniform two-qubit rate replaces the calibrated gate errors (single-qubit P/10), readout stays calibrated
     mixed = ns.ErrorRates(gate_error=0.02, backend=target.backend)
     assert mixed.gate("cx", (0, 1)) == 0.02 and mixed.gate("sx", (0,)) == pytest.approx(0.002)
@@ -275,3 +277,23 @@ def test_budget_above_the_routing_limit_says_not_computed():
     assert nt["routing"]["computed"] is False and "not computed" in nt["routing"]["reason"]
     assert nt["shots_per_component_noisy"] is None and nt["circuit_fidelity"] is None
     assert any("not computed" in note for note in b.notes)
+
+
+def test_noisy_circuit_uses_the_budgets_chosen_steps():
+    # The routed noisy circuit runs at the budget's own smallest valid Trotter count (here the signal-error count
+    # of the chosen order, far below the commutator bound), not at the bound; its gate count is extrapolated to that
+    # r. Reference: the budget's fault-tolerant 'orders' table (steps_trotter, steps_trotter_signal) of the same run.
+    from qhl import demo_cluster
+    from qhl.costing import BudgetModel, BudgetSettings
+    s = BudgetSettings(classical_meter=False, circuit_variance_max_spins=0, hessian_exact=False, target="grid",
+                       gate_error=1e-4, readout_error=1e-3)
+    b = BudgetModel(demo_cluster(), settings=s).budget(2e-5, 0.05)
+    r, ft = b.near_term["routing"], b.fault_tolerant
+    assert ft["trotter_order"] in (1, 2) and r["trotter_order"] == ft["trotter_order"]
+    chosen = ft["orders"][str(r["trotter_order"])]
+    assert r["trotter_steps"] == int(chosen["steps_trotter"]) == int(chosen["steps_trotter_signal"])
+    assert r["trotter_steps_source"] == "signal and gradient error"
+    assert r["trotter_steps"] < r["trotter_steps_bound"] == int(chosen["steps_trotter_bound"])
+    one, two = r["one_step"]["two_qubit"], r["two_steps"]["two_qubit"]
+    assert r["two_qubit"] == one + (r["trotter_steps"] - 1) * (two - one)
+    assert "valid / bound" in b.assumptions["max_useful_time"] and "chosen" in b.assumptions["noisy_circuit"]

@@ -176,7 +176,7 @@ def _print_noisy(nt):
         print("noise-aware shots: not computed (give --target NAME or --gate-error P --readout-error Q)")
         return
     print(f"noise-aware ({r['target']}; error rates: {r['error_rates']}): {r['circuit']}, order "
-          f"{r['trotter_order']}, r = {_fmt(r['trotter_steps'])} steps (commutator bound)")
+          f"{r['trotter_order']}, r = {_fmt(r['trotter_steps'])} steps ({r.get('trotter_steps_source', 'commutator bound')})")
     if not r["computed"]:
         print(f"  {r['reason']}")
         return

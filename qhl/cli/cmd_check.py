@@ -8,6 +8,7 @@ from .common import add_cluster_argument, add_report_argument, check_output_path
 
 from .common import PROBABILITY, SEED, SHOTS, STEPS, TIME_S, number_in  # range-checked option types
 CIRCUITS = number_in(1, 10**6, integer=True, name="circuits per job")
+PUB_SHOTS = number_in(1, 10**9, integer=True, name="shots per PUB")
 
 def register(sub):
     p = sub.add_parser("check", help="check shot-based emulated gradients against exact ones")
@@ -23,6 +24,11 @@ def register(sub):
                         "exact value times the attenuation predicted from its calibrated error rates")
     p.add_argument("--max-circuits", type=CIRCUITS, metavar="N",
                    help="with --device: at most N bound circuits per sampler job (default: one job per family)")
+    p.add_argument("--shots-per-pub", type=PUB_SHOTS, metavar="N",
+                   help="with --device: a fixed shot count N per PUB (default: one PUB per distinct shot count)")
+    p.add_argument("--target", default="all-to-all", metavar="NAME",
+                   help="also report routed counts of the checked circuits for a target: line, ring, grid, "
+                        "heavy-hex or an offline fake backend (default all-to-all: none)")
     p.add_argument("--hessian", action="store_true", help="also check every Hessian entry m <= n")
     p.add_argument("--param", nargs="+", metavar="NAME", help="parameters (default: free offsets and dipolar)")
     p.add_argument("--experiment", metavar="NAME", help="experiment setting the dipolar scale (default: first)")
@@ -81,7 +87,7 @@ def _plot(report, path, title):
 
 
 def run(args):
-    from ..emulation.check import ATTENUATION_MODEL, BIAS_RULE, POWER_RULE, check_derivatives
+    from ..emulation.check import ATTENUATION_MODEL, BIAS_RULE, DEVICE_RULE, POWER_RULE, check_derivatives
     from ..emulation.noise import NoiseSpec
     from ..base.errors import QhlInputError
     if args.shots < 1:
@@ -95,16 +101,23 @@ def run(args):
     if device is not None:
         if noise is not None:
             raise QhlInputError("--device brings the device's noise model: leave out --noise", key="--device")
-        sampler_options = {"max_circuits": args.max_circuits}
+        sampler_options = {"max_circuits": args.max_circuits, "shots_per_pub": getattr(args, "shots_per_pub", None)}
     elif getattr(args, "max_circuits", None) is not None:
         raise QhlInputError("--max-circuits applies to --device runs only", key="--max-circuits")
+    elif getattr(args, "shots_per_pub", None) is not None:
+        raise QhlInputError("--shots-per-pub applies to --device runs only", key="--shots-per-pub")
+    target = getattr(args, "target", "all-to-all")
+    if target != "all-to-all":
+        from ..circuits.targets import resolve_target
+        resolve_target(target, 1, key="--target")           # an unknown name fails before any work
     if args.plot:
         check_output_path(args.plot, "--plot")
     cluster = cluster_from_args(args)
     bars = _Bars()
     report = check_derivatives(cluster, args.time, args.steps, args.shots, args.seed, noise, args.hessian,
                                args.param, args.experiment, args.order, progress=bars.rows,
-                               reference_progress=bars.reference, device=device, sampler_options=sampler_options)
+                               reference_progress=bars.reference, device=device, sampler_options=sampler_options,
+                               target=target)
     if report.interrupted:
         print(f"\nqhl check: interrupted; {len(report.rows)} of {report.planned} rows finished", file=sys.stderr)
     if args.plot and report.rows:
@@ -136,6 +149,15 @@ def run(args):
                   f"{r['measured_attenuation']:>9.3f} +- {r['measured_attenuation_stderr']:<5.3f}"
                   f"{r['two_qubit_gates']:>8d}")
         print(f"attenuation model: {ATTENUATION_MODEL}")
+        print(f"test: {DEVICE_RULE}")
+    if report.routing:
+        print(f"routed for {report.target} (preset pass manager; layout circuit qubit -> physical, spins first)")
+        print(f"{'parameter':<28}{'2q all-to-all':>14}{'2q routed':>11}{'depth':>8}{'swaps':>7}{'2q/step':>9}  layout")
+        for r in report.routing:
+            w, st = r["whole"], r["per_step"]
+            lay = " ".join(f"{i}->{q}" for i, q in enumerate(w["layout"]))
+            print(f"{r['parameter']:<28}{r['all_to_all_two_qubit']:>14}{w['two_qubit']:>11}{w['depth']:>8}"
+                  f"{w['swaps']:>7}{st['two_qubit']:>9}  {lay} ({w['two_qubit_gate']}, {w['layout_method']})")
     print(f"shots {report.shots}, circuits run {report.circuits_run}, {report.seconds:.1f} s")
     print(report.verdict())
     if report.biased or report.without_power:

@@ -55,6 +55,7 @@ SYNTHESIS_MAX_SPINS = 8
 # The near-term circuit of the noise-aware counts: the Hadamard test (one ancilla), second order.
 NOISY_ANCILLAS = 1
 NOISY_ORDER = 2
+NOISY_ORDERS = (1, 2)          # product-formula orders the circuits build (qhl.circuits.trotter)
 EXACT_MEMORY_FRACTION = 0.5
 HESSIAN_FLOPS_PER_ELEMENT = 5000.0
 
@@ -631,7 +632,8 @@ class BudgetModel:
             "gradient": {k: float(np.ravel(v)[0]) for k, v in ftg.items()} if ftg else None,
         }
         exact_variance_note = self._add_circuit_variance(near, t, eps)
-        self._add_noisy_shots(near, methods_near, t, eps, x, n, ft_bound)
+        self._add_noisy_shots(near, methods_near, t, eps, x, n, ft_bound,
+                              lambda: self._noisy_steps(order, ft_all, ft_bound, signal_steps))
         layers_shot = float(ch["layers_per_shot"])
         nt_layers = near["shots_per_component"] * layers_shot
         nt_best = min(nt_layers, (near["shots_per_component_circuit"] or math.inf) * layers_shot)
@@ -671,39 +673,61 @@ class BudgetModel:
                       list(self.notes), dict(self.tiers), self._precision_hz(t, eps, hb), self.classical)
 
     # ------------------------------------------------------------------ noise-aware near-term counts
-    def _route(self, x, n, t, steps):
-        """Routed one- and two-step Hadamard-test circuits of component (x, n) on the target (cached; the
-        per-step counts do not depend on t)."""
-        if (x, n) not in self._routes:
+    @staticmethod
+    def _noisy_steps(order, ft_all, ft_bound, signal_steps):
+        """(order, r, source, r_bound) of the noisy circuit: the budget's chosen order when the circuits build it
+        (qhl.circuits: orders 1 and 2), else the circuit order with the fewest valid steps; r = that order's
+        smallest valid Trotter count (min of the commutator bound, exact-propagator and signal-error counts,
+        without the fault-tolerant time quadrature), r_bound its commutator-bound count."""
+        if order not in NOISY_ORDERS:
+            order = min(NOISY_ORDERS, key=lambda p: (float(ft_all[p]["steps_trotter"]), -p))
+        steps = max(int(ft_all[order]["steps_trotter"]), 1)
+        bound = max(int(ft_bound[order]["steps_trotter"]), 1)
+        source = ("signal and gradient error" if signal_steps.get(order) and steps == signal_steps[order][0] else
+                  "exact propagator" if steps < bound else "commutator bound")
+        return order, steps, source, bound
+
+    def _route(self, x, n, t, steps, order=NOISY_ORDER):
+        """Routed one- and two-step Hadamard-test circuits of component (x, n) at Trotter order `order` on the
+        target (cached; the per-step counts do not depend on t)."""
+        if (x, n, order) not in self._routes:
             from ..circuits.gradient_circuits import gradient_circuit
             from ..circuits.routing import ROUTE_MAX_QUBITS, routed_step_counts
             width = self.model.n_spins + NOISY_ANCILLAS
             if width > ROUTE_MAX_QUBITS:
-                self._routes[(x, n)] = {"computed": False, "reason": f"routing not computed: {width} circuit qubits "
-                                                                     f"exceed the {ROUTE_MAX_QUBITS} routed here"}
-                return self._routes[(x, n)]
+                self._routes[(x, n, order)] = {"computed": False, "reason": f"routing not computed: {width} circuit "
+                                                                            f"qubits exceed the {ROUTE_MAX_QUBITS} routed here"}
+                return self._routes[(x, n, order)]
             ex, name, tau = self.experiments[x], self.near.names[n], float(t) / float(steps)
             say = getattr(self, "_say", lambda m: None)
             say(f"routing the near-term circuit on {self.target.name}")
-            self._routes[(x, n)] = routed_step_counts(
-                lambda k: gradient_circuit(self.model, ex, name, k * tau, k, NOISY_ORDER), steps, self.target,
+            self._routes[(x, n, order)] = routed_step_counts(
+                lambda k: gradient_circuit(self.model, ex, name, k * tau, k, order), steps, self.target,
                 progress=say if self.model.n_spins > 8 else None)
-        return self._routes[(x, n)]
+        return self._routes[(x, n, order)]
 
-    def _add_noisy_shots(self, near, methods_near, t, eps, x, n, ft_bound):
+    def _add_noisy_shots(self, near, methods_near, t, eps, x, n, ft_bound, chosen=None):
         """Put shots_per_component_noisy, circuit_fidelity, mitigation, max_useful_time_s and routing into
-        `near` (qhl.costing.noisy_shots, qhl.circuits.routing; None where no noise model is given)."""
+        `near` (qhl.costing.noisy_shots, qhl.circuits.routing; None where no noise model is given).
+
+        `chosen`: callable() -> (order, r, source, r_bound) from _noisy_steps, the budget's own valid step count
+        (default: the commutator bound at NOISY_ORDER); called only when a noise model is given."""
         s = self.settings
         rates = s.error_rates(self.target.backend)
         near.update({"shots_per_component_noisy": None, "circuit_fidelity": None, "mitigation": None,
                      "max_useful_time_s": None, "routing": None})
         if self.target.all_to_all and not rates.given:
             return
-        steps = int(ft_bound[NOISY_ORDER]["steps"])
-        route = self._route(x, n, t, steps)
-        routing = {"target": self.target.name, "computed": route["computed"], "trotter_order": NOISY_ORDER,
-                   "trotter_steps": steps, "circuit": f"Hadamard test of {self.near.names[n]} in "
-                                                     f"{self.experiments[x].name}", "error_rates": rates.source}
+        if chosen is None:
+            b = max(int(ft_bound[NOISY_ORDER]["steps_trotter"]), 1)
+            order, steps, source, bound = NOISY_ORDER, b, "commutator bound", b
+        else:
+            order, steps, source, bound = chosen()
+        route = self._route(x, n, t, steps, order)
+        routing = {"target": self.target.name, "computed": route["computed"], "trotter_order": order,
+                   "trotter_steps": steps, "trotter_steps_source": source, "trotter_steps_bound": bound,
+                   "circuit": f"Hadamard test of {self.near.names[n]} in {self.experiments[x].name}",
+                   "error_rates": rates.source}
         near["routing"] = routing
         if not route["computed"]:
             routing["reason"] = route["reason"]
@@ -734,10 +758,12 @@ class BudgetModel:
             mitigation["noise_factors"] = list(noisy_shots.ZNE_FACTORS)
             mitigation["richardson_weights"] = noisy_shots.richardson_weights().tolist()
             mitigation["residual_attenuation"] = float(noisy_shots.zne_attenuation(fr))
-        # the largest t whose noisy count stays under the cap (steps from the same commutator bound)
+        # the largest t whose noisy count stays under the cap: on the grid, the commutator-bound count of the
+        # same order scaled by the ratio valid / bound found at t (ASSUMPTIONS['max_useful_time'])
         grid = t * np.geomspace(1e-3, 1e3, 241)
         rng = shots.gradient_shot_range(grid, self.near.l1[n], self.near.scales[x, n], self.near.kappa, s.unit_hz)
-        r_grid = np.asarray(self._ft(rng, grid, eps, x, self._n_terms[n])[NOISY_ORDER]["steps"], float)
+        r_bound_grid = np.asarray(self._ft(rng, grid, eps, x, self._n_terms[n])[order]["steps_trotter"], float)
+        r_grid = np.maximum(np.ceil(r_bound_grid * (steps / bound) * (1 - 1e-12)), 1.0)
         counts = noisy_shots.noisy_shots(np.ceil(rng**2 / eps**2 * (1 - 1e-12)),
                                          noisy_shots.extrapolate_fidelity(f1, f2, r_grid), s.mitigation)
         t_max, k = noisy_shots.largest_time_below(grid, counts, s.max_shots)

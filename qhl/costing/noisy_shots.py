@@ -1,23 +1,11 @@
 """Noise-aware shot counts: circuit fidelity from error rates, 1/F^2 shots, mitigation overheads.
 
-Error rates. A gate's error e_g is its average gate infidelity (what randomized benchmarking and
-the calibration data of a device report; a fake backend's `backend.target[name][qargs].error`). As
-a depolarising channel E(rho) = (1 - p) rho + p I/d on the gate's k qubits (d = 2^k) it has
-p_g = e_g d / (d - 1) (average gate fidelity of a depolarising channel, F_avg = 1 - p (d - 1)/d:
-Nielsen, "A simple formula for the average gate fidelity of a quantum dynamical map", Phys. Lett. A
-303, 249 (2002)). Uniform rates (`--gate-error P --readout-error Q`): P per two-qubit gate, P/10 per
-single-qubit gate unless given (common practice: single-qubit errors about ten times smaller), rz
-error-free (a frame change, common practice; also with a backend), Q per measured bit; with a backend, each
-given uniform rate replaces the calibrated ones of its kind. A readout error q is a symmetric
-bit flip; a fake backend's `target['measure'][(i,)].error` is taken as that q.
-
-Fidelity model (independent errors, global depolarising approximation). Each gate's channel
-shrinks the Pauli components it touches by (1 - p_g); the global approximation lets every gate
-shrink the whole signal, so the Hadamard-test expectation X attenuates to F X with
-    F = prod_g (1 - p_g) * prod_{measured i} (1 - 2 q_i)
-(the readout factor is exact for a product of measured Z's with symmetric flips; the gate factor
-is the pessimistic global estimate: Pauli paths that avoid a gate are not damped by it, so the
-true shrink is usually weaker: tests/test_noisy_shots.py measures both on density matrices).
+Error rates and circuit fidelity: qhl.circuits.circuit_fidelity (the one model, shared with `qhl check
+--device`): ErrorRates (uniform `--gate-error P` per two-qubit gate, P/10 single-qubit, rz error-free,
+`--readout-error Q`, or a backend's calibration), the depolarising parameter p_g = e_g d/(d - 1) and
+    F = prod_g (1 - p_g) * prod_{measured i} (1 - 2 q_i),
+a pessimistic bound on the Hadamard-test attenuation for unital noise (reason and measurements there).
+ErrorRates, depolarising_parameter and circuit_fidelity are re-exported here.
 
 Shots. The noisy single-shot value is still +-R, so with the estimate rescaled by 1/F (F known)
     N_noisy = R^2 / (F^2 eps^2) = N_bound / F^2          ('none': the attenuation alone);
@@ -43,6 +31,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..base.errors import QhlInputError
+from ..circuits.circuit_fidelity import MODEL as _FIDELITY_MODEL
+from ..circuits.circuit_fidelity import ErrorRates, depolarising_parameter
+from ..circuits.circuit_fidelity import circuit_fidelity as _circuit_fidelity
 
 __all__ = ["MITIGATIONS", "ZNE_FACTORS", "ASSUMPTIONS", "ErrorRates", "depolarising_parameter",
            "circuit_fidelity", "extrapolate_fidelity", "richardson_weights", "mitigation_overhead", "zne_attenuation",
@@ -50,148 +41,37 @@ __all__ = ["MITIGATIONS", "ZNE_FACTORS", "ASSUMPTIONS", "ErrorRates", "depolaris
 
 MITIGATIONS = ("none", "pec", "zne")
 ZNE_FACTORS = (1.0, 3.0, 5.0)
-SINGLE_QUBIT_RATIO = 0.1
-_FRAME_GATES = ("rz", "delay", "barrier", "id", "reset")
 
 ASSUMPTIONS = {
     "noise_rates": "gate error = average gate infidelity e_g (calibration data or --gate-error P for two-qubit "
                    "gates, P/10 single-qubit, rz error-free); as depolarising parameter p = e d/(d-1) (Nielsen, "
                    "Phys. Lett. A 303, 249 (2002)); readout error q = symmetric bit flip",
-    "circuit_fidelity": "independent errors, global depolarising approximation: the Hadamard-test expectation "
-                        "attenuates by F = prod_g (1 - p_g) prod_measured (1 - 2 q_i)",
+    "circuit_fidelity": _FIDELITY_MODEL + " (qhl.circuits.circuit_fidelity)",
     "noisy_shots": "N_noisy = N_bound / F^2 (single-shot values still +-R, estimate rescaled by 1/F); "
                    "pec: N_bound gamma^2 / F_ro^2 with gamma = prod (1 + 2 p_g) to first order (Temme, Bravyi, "
                    "Gambetta, PRL 119, 180509 (2017)); zne: N_bound (sum |c_k|)^2 / F_ro^2, Richardson weights "
                    "c_k at noise factors 1, 3, 5 with optimal shot split (Giurgica-Tiron et al., IEEE QCE 2020), rescaled by "
                    "the attenuation A = sum c_k F_g^lambda_k the extrapolation leaves (A^2 in the denominator)",
-    "noisy_circuit": "the worst component's Hadamard-test circuit, second-order product formula with the "
-                     "commutator-bound step count; its one- and two-step members routed on the target and r "
-                     "steps extrapolated linearly (gate counts) and log-linearly (fidelity)",
-    "max_useful_time": "largest t on a log grid (t/1e3 .. t*1e3) whose noisy count stays <= --max-shots",
+    "noisy_circuit": "the worst component's Hadamard-test circuit at the budget's chosen Trotter order (order 1 "
+                     "or 2, the ones built as circuits; else the one with fewer steps) and its smallest valid step "
+                     "count (signal and gradient error, exact propagator or commutator bound: routing "
+                     "'trotter_steps_source'); its one- and two-step members routed on the target and r steps "
+                     "extrapolated linearly (gate counts) and log-linearly (fidelity)",
+    "max_useful_time": "largest t on a log grid (t/1e3 .. t*1e3) whose noisy count stays <= --max-shots; the step "
+                       "count there is the commutator bound of the same order times the ratio valid / bound found "
+                       "at the budget's t (the bound's t and error-split scaling; exact at t itself)",
 }
 
 
-def _rate(value, key, upper=1.0):
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise QhlInputError(f"expected an error rate in [0, {upper:g}), got {value!r}", key=key) from None
-    if not math.isfinite(v) or not 0.0 <= v < upper:
-        raise QhlInputError(f"expected an error rate in [0, {upper:g}), got {value!r}", key=key)
-    return v
-
-
-def depolarising_parameter(error: float, qubits: int) -> float:
-    """p = e d / (d - 1), d = 2^qubits: the depolarising parameter of average gate infidelity e (module docstring)."""
-    d = 2 ** int(qubits)
-    return float(error) * d / (d - 1)
-
-
-@dataclass(frozen=True)
-class ErrorRates:
-    """Per-gate error rates: uniform (`gate_error`, `single_error`, `readout_error`) or a backend's
-    calibrated table (`backend`); uniform values given beside a backend replace its numbers.
-
-    Raises:
-        QhlInputError: a rate outside [0, 3/4) (gates) or [0, 1/2) (readout).
-    """
-
-    gate_error: float | None = None
-    single_error: float | None = None
-    readout_error: float | None = None
-    backend: object | None = None
-
-    def __post_init__(self):
-        if self.gate_error is not None:
-            object.__setattr__(self, "gate_error", _rate(self.gate_error, "--gate-error", 0.75))
-        if self.single_error is not None:
-            object.__setattr__(self, "single_error", _rate(self.single_error, "--single-error", 0.5))
-        if self.readout_error is not None:
-            object.__setattr__(self, "readout_error", _rate(self.readout_error, "--readout-error", 0.5))
-
-    @property
-    def given(self) -> bool:
-        """True when any rate is known (a backend or a uniform value)."""
-        return self.backend is not None or any(v is not None for v in (self.gate_error, self.single_error,
-                                                                          self.readout_error))
-
-    @property
-    def source(self) -> str:
-        parts = []
-        if self.backend is not None:
-            parts.append(f"calibration of {self.backend.name}")
-        if self.gate_error is not None:
-            parts.append(f"two-qubit {self.gate_error:g}")
-        if self.gate_error is not None or self.single_error is not None:
-            parts.append(f"single-qubit {self.single:g}")
-        if self.readout_error is not None:
-            parts.append(f"readout {self.readout_error:g}")
-        return "; ".join(parts) or "none"
-
-    @property
-    def single(self) -> float:
-        if self.single_error is not None:
-            return self.single_error
-        return SINGLE_QUBIT_RATIO * (self.gate_error or 0.0)
-
-    def _backend_error(self, name, qargs):
-        target = self.backend.target
-        if name not in target.operation_names:
-            return 0.0
-        props = target[name]
-        p = props.get(tuple(qargs)) if props is not None else None
-        return float(p.error) if p is not None and p.error is not None else 0.0
-
-    def gate(self, name: str, qargs) -> float:
-        """Average gate infidelity e_g of gate `name` on physical qubits `qargs`."""
-        if name in _FRAME_GATES:
-            return 0.0
-        if len(qargs) >= 2:
-            if self.gate_error is not None:
-                return self.gate_error
-        elif self.single_error is not None or self.gate_error is not None:
-            return self.single
-        return self._backend_error(name, qargs) if self.backend is not None else 0.0
-
-    def readout(self, qubit: int) -> float:
-        """Flip probability q of measured qubit `qubit`."""
-        if self.readout_error is not None:
-            return self.readout_error
-        if self.backend is not None:
-            return min(self._backend_error("measure", (qubit,)), 0.5)
-        return 0.0
-
-
 def circuit_fidelity(transpiled, rates: ErrorRates) -> dict:
-    """F of a transpiled (routed) circuit under `rates` (module docstring).
+    """F of a transpiled (routed) circuit under `rates`: qhl.circuits.circuit_fidelity.circuit_fidelity with
+    the observable the Z-string over every measured bit (the Hadamard-test readout).
 
     Returns:
         {'fidelity', 'gate_fidelity' prod (1 - p_g), 'readout_fidelity' prod (1 - 2 q_i), 'gamma' prod (1 + 2 p_g),
-         'log_fidelity', 'log_gamma', 'gates' (noisy gates counted), 'measured'}.
+         'log_fidelity', 'log_gamma', ..., 'gates' (noisy gates counted), 'measured'}.
     """
-    log_g = log_gamma = log_ro = 0.0
-    gates = measured = 0
-    for inst in transpiled.data:
-        op = inst.operation
-        qargs = [transpiled.find_bit(q).index for q in inst.qubits]
-        if op.name == "measure":
-            q = rates.readout(qargs[0])
-            log_ro += math.log1p(-2 * q) if q < 0.5 else -math.inf
-            measured += 1
-            continue
-        if op.name == "barrier":
-            continue
-        e = rates.gate(op.name, qargs)
-        if e <= 0:
-            continue
-        p = min(depolarising_parameter(e, len(qargs)), 1.0)
-        log_g += math.log1p(-p) if p < 1 else -math.inf
-        log_gamma += math.log1p(2 * p)
-        gates += 1
-    log_f = log_g + log_ro
-    return {"fidelity": math.exp(log_f), "gate_fidelity": math.exp(log_g), "readout_fidelity": math.exp(log_ro),
-            "gamma": math.exp(log_gamma), "log_fidelity": log_f, "log_gate_fidelity": log_g,
-            "log_readout_fidelity": log_ro, "log_gamma": log_gamma, "gates": gates, "measured": measured}
+    return _circuit_fidelity(transpiled, rates)
 
 
 def extrapolate_fidelity(one: dict, two: dict, steps) -> dict:
