@@ -15,6 +15,9 @@ Columns (one random proton cluster, offsets + all dipolar couplings free, 256 po
     steps and scaled to the grid; gradient by central differences (2P + 1 signals).
 --scale adds n = 12 gradients (double, single) and n = 14 signals (qhl, peer) in fresh processes,
 with peak memory. --crossover prints BLAS one- against two-thread times of square products.
+--signal-at N [--against DIR]: the N-spin signal alone (256 points), one BLAS thread, fresh
+processes, interleaved with the eigh floor, the qhl tree in DIR (for example `git archive <commit>
+qhl | tar -x -C DIR`) and the peer: medians of --repeats rounds, CPU and wall seconds.
 BLAS: qhl picks its threads per block (qhl.base.blas); the peer runs with one BLAS/OpenMP thread.
 """
 
@@ -119,6 +122,19 @@ def peer_signal(python, model, ex, repeats):
 def scale_case(n, kind):
     """Run in a fresh process: time and peak RSS of one n-spin signal or full gradient."""
     c = bench_cluster(n)
+    if kind == "eigh":
+        from threadpoolctl import threadpool_limits
+        eng = ExactEngine(build_model(c))
+        coeffs, _ = eng._coefficients(c.experiments[0], None)
+        hs = [eng._sector_hamiltonian(k, coeffs) for k in range(len(eng.sectors))]
+        t0, c0 = time.perf_counter(), time.process_time()
+        with threadpool_limits(1, user_api="blas"):
+            for h in hs:
+                sla.eigh(h, driver="evd")
+        print(json.dumps({"n": n, "kind": kind, "seconds": time.perf_counter() - t0,
+                          "cpu": time.process_time() - c0}))
+        return
+    c0 = time.process_time()
     t0 = time.perf_counter()
     eng = ExactEngine(build_model(c), precision="single" if kind == "gradient-single" else "double")
     ex = c.experiments[0]
@@ -127,8 +143,48 @@ def scale_case(n, kind):
     else:
         eng.signal(ex)
     dt = time.perf_counter() - t0
+    cpu = time.process_time() - c0
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(json.dumps({"n": n, "kind": kind, "seconds": dt, "peak_mib": peak, "parameters": len(eng.model.free)}))
+    print(json.dumps({"n": n, "kind": kind, "seconds": dt, "cpu": cpu, "peak_mib": peak,
+                      "parameters": len(eng.model.free)}))
+
+
+def fresh(tree, n, kind):
+    """scale_case in a fresh process on the qhl tree `tree`, one BLAS thread."""
+    env = dict(os.environ, PYTHONPATH=tree, OMP_NUM_THREADS="1", OPENBLAS_NUM_THREADS="1", MKL_NUM_THREADS="1")
+    r = subprocess.run([sys.executable, os.path.abspath(__file__), "--scale-case", str(n), kind],
+                       capture_output=True, text=True, env=env)
+    if r.returncode:
+        raise RuntimeError(r.stderr.strip()[-400:])
+    return json.loads(r.stdout.strip().splitlines()[-1])
+
+
+def signal_at(n, against, quspin, repeats):
+    """The n-spin signal side by side: eigh floor, this tree, `against`, the peer (medians)."""
+    here = os.environ.get("PYTHONPATH", "").split(os.pathsep)[0] or os.path.dirname(HERE)
+    c = bench_cluster(n)
+    model = build_model(c)
+    res = {"eigh floor (all sectors, H assembled beforehand)": [], "qhl signal (this tree)": []}
+    if against:
+        res[f"qhl signal ({against})"] = []
+    if quspin:
+        res["peer (QuSpin) signal"] = []
+    for _ in range(repeats):
+        res["eigh floor (all sectors, H assembled beforehand)"].append(fresh(here, n, "eigh"))
+        res["qhl signal (this tree)"].append(fresh(here, n, "signal"))
+        if against:
+            res[f"qhl signal ({against})"].append(fresh(against, n, "signal"))
+        if quspin:
+            t, _ = peer_signal(quspin, model, c.experiments[0], 1)
+            res["peer (QuSpin) signal"].append({"seconds": t, "cpu": float("nan")})
+    print(f"{n} spins, 256 points, one BLAS thread, load average {os.getloadavg()[0]:.1f} on "
+          f"{os.cpu_count()} cores; medians of {repeats} (qhl: engine construction included)")
+    med = {k: (statistics.median(r["seconds"] for r in v), statistics.median(r["cpu"] for r in v))
+           for k, v in res.items()}
+    ref = med["qhl signal (this tree)"]
+    print(f"  {'what':<52} {'wall (s)':>10} {'CPU (s)':>10} {'wall / this':>12} {'CPU / this':>11}")
+    for k, (w, cpu) in med.items():
+        print(f"  {k:<52} {w:10.2f} {cpu:10.2f} {w / ref[0]:12.2f} {cpu / ref[1]:11.2f}")
 
 
 def crossover():
@@ -158,7 +214,13 @@ def main():
     ap.add_argument("--scale", action="store_true")
     ap.add_argument("--crossover", action="store_true")
     ap.add_argument("--scale-case", nargs=2, metavar=("N", "KIND"), help=argparse.SUPPRESS)
+    ap.add_argument("--signal-at", type=int, default=None, metavar="N")
+    ap.add_argument("--against", default=None, metavar="DIR")
+    ap.add_argument("--repeats", type=int, default=3)
     args = ap.parse_args()
+    if args.signal_at:
+        signal_at(args.signal_at, args.against, args.quspin_python, args.repeats)
+        return
     if args.scale_case:
         scale_case(int(args.scale_case[0]), args.scale_case[1])
         return

@@ -171,7 +171,7 @@ class ExactEngine:
         self.lean = _lean(dims) if lean is None else bool(lean)
         require_memory(f"the exact engine for {n} spins", estimate_memory_bytes(n, dims, 256))
         gmats = [g.to_matrix(sparse=True) for g in gens]
-        self.real = all(abs(m.imag).max() == 0 if m.nnz else True for m in gmats)
+        self.real = not any(np.any(m.data.imag != 0) for m in gmats)
         dtype = float if self.real else complex
         nsec = len(self.sectors)
         self._sec_of = np.zeros(2**n, dtype=np.int64)
@@ -180,18 +180,17 @@ class ExactEngine:
             self._sec_of[ix] = k
             self._loc[ix] = np.arange(len(ix))
         parts = [([], [], [], []) for _ in range(nsec)]
-        self._gen_blocks = []
+        self._gen_cache = None      # per-parameter sector blocks, built on first use (gradients)
         for j, m in enumerate(gmats):
             split = self._split_blocks(m, dtype)
-            row = []
-            for k in range(nsec):
-                r, c, v = split.get((k, k), (np.zeros(0, np.int64),) * 2 + (np.zeros(0, dtype),))
-                d = dims[k]
-                row.append(sp.csr_matrix((v, (r, c)), shape=(d, d)))
-                for lst, x in zip(parts[k], (r, c, np.full(len(v), j), v)):
+            for k, (r, c, v) in split.items():
+                if k[0] != k[1]:
+                    continue
+                for lst, x in zip(parts[k[0]], (r, c, np.full(len(v), j), v)):
                     lst.append(x)
-            self._gen_blocks.append(row)
-        self._h_parts = [tuple(np.concatenate(x) for x in parts[k]) + (dims[k],) for k in range(nsec)]
+        empty = (np.zeros(0, np.int64),) * 3 + (np.zeros(0, dtype),)
+        self._h_parts = [tuple(np.concatenate(x) if x else e for x, e in zip(parts[k], empty)) + (dims[k],)
+                         for k in range(nsec)]
         rho = model.initial_operator().to_matrix(sparse=True)
         obs = model.detection_operator().to_matrix(sparse=True)
         self.norm = float(np.real((obs @ rho).diagonal().sum()))
@@ -207,6 +206,22 @@ class ExactEngine:
         self.mirrored = self.real and all(
             (b.rho - 0.5 * b.obs.T).count_nonzero() == 0 for b in self._blocks)
         self._cache = {}
+
+    @property
+    def _gen_blocks(self):
+        """[parameter][sector] -> the generator's sector block (CSR), from the entries of H's parts
+        (the signal does not need them: built on the first gradient or Hessian)."""
+        if self._gen_cache is None:
+            n_par = len(self.model.parameters)
+            blocks = [[None] * len(self.sectors) for _ in range(n_par)]
+            for k, (rows, cols, pidx, vals, d) in enumerate(self._h_parts):
+                order = np.argsort(pidx, kind="stable")
+                bounds = np.searchsorted(pidx[order], np.arange(n_par + 1))
+                for j in range(n_par):
+                    sel = order[bounds[j]:bounds[j + 1]]
+                    blocks[j][k] = sp.csr_matrix((vals[sel], (rows[sel], cols[sel])), shape=(d, d))
+            self._gen_cache = blocks
+        return self._gen_cache
 
     def _split_blocks(self, m, dtype):
         """{(k, l): (rows, cols, values)} of a full-space sparse matrix by the sectors of its rows

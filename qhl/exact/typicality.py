@@ -10,7 +10,16 @@ Phys. Rev. Lett. 102, 110403 (2009)). H conserves each isotope's total Iz, O rai
 up-count by one and rho0 couples sectors s and p = s + 1 up, so
     Tr[O U rho0 U^dag] = sum_(s,p) Tr_p[U_p^dag O_ps U_s rho0_sp]
                        = sum_(s,p) E_r[ <U_p r| O_ps |U_s rho0_sp r> ],
-with r a random-phase vector of sector p (entries exp(i phi), phi uniform: E[r r^dag] = 1).
+with r a random vector of sector p with E[r r^dag] = 1. Default (start="real"): real entries
++-1 with equal probability (Rademacher; Hutchinson 1989). H, rho0_sp and the generators are
+real in the computational basis (sector_matrix refuses a complex H), so the Chebyshev terms
+T_k(H) r stay real and only the series coefficients are complex: until the first restart the
+propagation carries M real columns instead of 2M (qhl.exact.chebyshev, real=True), and every
+time point of a 64-point signal sits in the first window where memory allows. start="phase":
+entries exp(i phi), phi uniform (the earlier default, complex from the start). Both are
+unbiased; their variances differ: for Tr[A] the real +-1 vector has variance
+(1/2) sum_(i != j) |A_ij + A_ji|^2, the phase vector sum_(i != j) |A_ij|^2 (direct expansion of
+E|r^dag A r - Tr A|^2; 4th moments E r_i^4 = 1, E|r_i|^4 = 1, and E r_i^2 = 1 against E r_i^2 = 0).
 Each sector pair evolves two vectors forward (Chebyshev series, qhl.exact.chebyshev) in its own
 sector: memory is set by the two largest neighbouring sectors, not by 2^n.
 
@@ -37,7 +46,7 @@ from ..base.blas import single_thread_blas
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
 from ..spins.cluster import refuse_steps
-from .chebyshev import chebyshev_window, lanczos_bounds
+from .chebyshev import chebyshev_window, lanczos_bounds, sparse_times
 from .sector_operators import SectorSpace, csr_bytes, ladder_block, pauli_groups, sector_matrix
 from .sectors import conserves_magnetisation
 
@@ -45,6 +54,9 @@ __all__ = ["TypicalEngine", "TypicalEstimate", "typical_memory_bytes", "pair_mem
            "MAX_TYPICAL_SPINS"]
 
 MAX_TYPICAL_SPINS = 30
+WINDOW_BYTES = 2.0**30      # stored time points of one Chebyshev window (complex outputs)
+MAX_WINDOW_POINTS = 64      # a 64-point signal in one window: real start vectors stay real
+TERM_BLOCK = 64             # Chebyshev terms added to the outputs per product (fewer passes over them)
 
 
 @dataclass
@@ -113,32 +125,34 @@ def typical_memory_bytes(model, n_times: int = 64, replicas: int = 4, n_gradient
     """
     eng = TypicalEngine.__new__(TypicalEngine)
     eng._setup(model)
-    eng.replicas, eng.window_bytes = replicas, 2.0**29
+    eng.replicas, eng.window_bytes, eng.start = replicas, WINDOW_BYTES, "real"
     return eng.memory_bytes(n_times, replicas, n_gradient, window)
 
 
-def window_points(d_pair: float, m: int, n_times: int, window_bytes: float = 2.0**29) -> int:
+def window_points(d_pair: float, m: int, n_times: int, window_bytes: float = WINDOW_BYTES) -> int:
     """Time points per Chebyshev window: as many as `window_bytes` holds (complex outputs of two
-    sectors, m columns), at most 32 and at most n_times."""
-    return int(max(1, min(n_times, 32, window_bytes // max(16.0 * d_pair * m, 1.0))))
+    sectors, m columns), at most MAX_WINDOW_POINTS and at most n_times."""
+    return int(max(1, min(n_times, MAX_WINDOW_POINTS, window_bytes // max(16.0 * d_pair * m, 1.0))))
 
 
 def pair_memory_bytes(ds, dp, nnz_s, nnz_p, n_obs, replicas, n_times, n_gradient=0,
-                      window_bytes=2.0**29, window=None) -> float:
+                      window_bytes=WINDOW_BYTES, window=None, real_start=True) -> float:
     """Peak memory (bytes) while one sector pair (dimensions ds, dp) is propagated.
 
     Two sector Hamiltonians (CSR), two ladder blocks (at most n_obs entries per row), and per
     sector the Chebyshev work arrays (6 real arrays of 2M columns, M = replicas (1 + n_gradient)),
     the window's complex outputs twice (the outputs and the product added to them) and the
-    blocked accumulation buffer, plus the generators of
+    blocked accumulation buffer of TERM_BLOCK terms (real, 8 bytes an entry, when real start
+    vectors cover every point in one window; else complex), plus the generators of
     the differentiated parameters (at most two entries per row each).
     """
     m = replicas * (1 + n_gradient)
     w = window if window is not None else window_points(ds + dp, m, n_times, window_bytes)
-    blk = window_points(max(ds, dp), m, 16, window_bytes)
+    blk = window_points(max(ds, dp), m, TERM_BLOCK, window_bytes)
     mats = csr_bytes(nnz_s, ds) + csr_bytes(nnz_p, dp)
     ladders = 2 * csr_bytes(dp * n_obs, ds)
-    work = (ds + dp) * (8.0 * 2 * m * 6 + 16.0 * m * (2 * w + 1) + 16.0) + 16.0 * max(ds, dp) * m * blk
+    item = 8.0 if real_start and w >= n_times else 16.0
+    work = (ds + dp) * (8.0 * 2 * m * 6 + 16.0 * m * (2 * w + 1) + 16.0) + item * max(ds, dp) * m * blk
     gens = n_gradient * 2 * csr_bytes(2 * (ds + dp), ds + dp)
     return mats + ladders + work + gens
 
@@ -154,6 +168,8 @@ class TypicalEngine:
         tol: Chebyshev cut per point.
         progress: optional callback(fraction_done) called during long runs.
         window_bytes: memory allowed for the stored time points of one Chebyshev window.
+        start: "real" (random +-1 vectors, real propagation until the first restart; default) or
+            "phase" (random-phase complex vectors); see the module docstring.
 
     Example:
         >>> from qhl import demo_cluster, build_model
@@ -163,11 +179,14 @@ class TypicalEngine:
     """
 
     def __init__(self, model, replicas: int = 4, seed: int = 0, tol: float = 1e-10, progress=None,
-                 window_bytes: float = 2.0**29):
+                 window_bytes: float = WINDOW_BYTES, start: str = "real"):
         if int(replicas) < 2:
             raise QhlInputError(f"expected at least 2 replicas (for the error estimate), got {replicas}",
                                 key="replicas")
+        if start not in ("real", "phase"):
+            raise QhlInputError(f"start {start!r}: expected 'real' or 'phase'", key="start")
         self._setup(model)
+        self.start = start
         self.replicas = int(replicas)
         self.seed = int(seed)
         self.tol = float(tol)
@@ -224,7 +243,7 @@ class TypicalEngine:
         r = self.replicas if replicas is None else replicas
         dims = self.space.dims
         peak = max(pair_memory_bytes(dims[s], dims[p], self._nnz(s), self._nnz(p), len(self.observed), r,
-                                     n_times, n_gradient, self.window_bytes, window)
+                                     n_times, n_gradient, self.window_bytes, window, self.start == "real")
                    for s, p in self.blocks)
         return max(peak + self.space.index_bytes(), 32.0 * 2**self.model.n_spins)
 
@@ -246,7 +265,10 @@ class TypicalEngine:
         return self.model.all_values_hz(free_values_hz)
 
     def _random_vectors(self, block_index, d):
+        """(real part, imaginary part or None) of the start vectors of one sector pair."""
         rng = np.random.default_rng([self.seed, block_index, 7919])
+        if self.start == "real":
+            return 2.0 * rng.integers(0, 2, size=(d, self.replicas)) - 1.0, None
         phi = rng.uniform(0.0, 2 * np.pi, size=(d, self.replicas))
         return np.cos(phi), np.sin(phi)
 
@@ -301,14 +323,17 @@ class TypicalEngine:
                 cache[k] = [st, mat, max(glo, llo), min(ghi, lhi), gens, (glo, ghi)]
             return cache[k]
 
-        def propagate(k, apply, x, taus):
+        def propagate(k, apply, x, taus, real):
             entry = cache[k]
-            out = chebyshev_window(apply, x, taus, entry[2], entry[3], self.tol, block=blk)
-            n0 = np.linalg.norm(x[:, :R], axis=0) ** 2 + np.linalg.norm(x[:, m:m + R], axis=0) ** 2
+            kw = dict(block=blk, real=real, derivative=P > 0)
+            out = chebyshev_window(apply[real], x, taus, entry[2], entry[3], self.tol, **kw)
+            n0 = np.linalg.norm(x[:, :R], axis=0) ** 2
+            if not real:
+                n0 += np.linalg.norm(x[:, m:m + R], axis=0) ** 2
             n1 = np.sum(np.abs(out[:, :, :R]) ** 2, axis=1)
             if np.any(np.abs(n1 - n0[None, :]) > 1e-8 * np.maximum(n0, 1e-300)[None, :]):
                 entry[2], entry[3] = entry[5]          # the Lanczos estimate was too tight
-                out = chebyshev_window(apply, x, taus, entry[2], entry[3], self.tol, block=blk)
+                out = chebyshev_window(apply[real], x, taus, entry[2], entry[3], self.tol, **kw)
             return out
 
         for bi, (s, p) in enumerate(self.blocks):
@@ -323,21 +348,24 @@ class TypicalEngine:
             raise_op = ladder_block(sp, p, s, self.observed, raising=True, row_states=st_p, col_states=st_s)
             re, im = self._random_vectors(bi, dp)
             m = R * (1 + P)
-            xa = np.zeros((dp, 2 * m))
-            xa[:, :R], xa[:, m:m + R] = re, im
-            xb = np.zeros((ds, 2 * m))
-            xb[:, :R], xb[:, m:m + R] = 0.5 * (lower @ re), 0.5 * (lower @ im)
+            real = im is None                      # real start: M columns until the first restart
+            xa = np.zeros((dp, m if real else 2 * m))
+            xb = np.zeros((ds, m if real else 2 * m))
+            xa[:, :R], xb[:, :R] = re, 0.5 * (lower @ re)
+            if not real:
+                xa[:, m:m + R], xb[:, m:m + R] = im, 0.5 * (lower @ im)
             del re, im
             w = self._window(ds + dp, m, t.size)
-            blk = self._window(max(ds, dp), m, 16)
-            apply_a = _augmented(h_p, g_p, R, m)
-            apply_b = _augmented(h_s, g_s, R, m)
+            blk = self._window(max(ds, dp), m, TERM_BLOCK)
+            apply_a = {flag: _augmented(h_p, g_p, R, m, flag) for flag in (True, False)}
+            apply_b = {flag: _augmented(h_s, g_s, R, m, flag) for flag in (True, False)}
             tc = 0.0
             for start in range(0, t.size, w):
                 sl = slice(start, min(start + w, t.size))
                 taus = ts[sl] - tc
-                out_a = propagate(p, apply_a, xa, taus)
-                out_b = propagate(s, apply_b, xb, taus)
+                out_a = propagate(p, apply_a, xa, taus, real)
+                out_b = propagate(s, apply_b, xb, taus, real)
+                real = False                       # restarts carry complex states
                 for j, ti in enumerate(range(sl.start, sl.stop)):
                     ob = (raise_op @ out_b[j].view(float)).view(complex)     # (dp, m)
                     a = out_a[j].reshape(dp, 1 + P, R)
@@ -374,15 +402,17 @@ class TypicalEngine:
         return est.signal, est.gradient
 
 
-def _augmented(h, gens, r, m):
-    """Y -> [[H, 0], [G_1, H], [G_2, 0, H], ...] Y on stacked real columns [Re (m) | Im (m)]."""
+def _augmented(h, gens, r, m, real=False):
+    """Y -> [[H, 0], [G_1, H], [G_2, 0, H], ...] Y on stacked real columns [Re (m) | Im (m)]
+    (real=True: m real columns, no imaginary half)."""
     if not gens:
-        return lambda y: h @ y
+        return lambda y: sparse_times(h, y)
+    halves = (0,) if real else (0, m)
 
     def apply(y):
-        z = h @ y
+        z = sparse_times(h, y)
         for q, g in enumerate(gens):
-            for half in (0, m):
-                z[:, half + r * (1 + q): half + r * (2 + q)] += g @ y[:, half: half + r]
+            for half in halves:
+                z[:, half + r * (1 + q): half + r * (2 + q)] += sparse_times(g, y[:, half: half + r])
         return z
     return apply
