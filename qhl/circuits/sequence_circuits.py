@@ -38,7 +38,10 @@ from .state_prep import input_ensemble
 from .trotter import check_evolution_arguments, trotter_circuit, trotter_terms
 
 __all__ = ["PlannedDelay", "PlannedPulse", "sequence_plan", "acquisition_terms", "append_pulse",
-           "preparation_circuit", "sequence_signal_circuit", "ASSUMPTIONS"]
+           "preparation_circuit", "sequence_signal_circuit", "sequence_counts", "pulse_counts", "PULSE_LAYERS",
+           "ASSUMPTIONS"]
+
+PULSE_LAYERS = 5     # RGate in [cx, rz, sx, x]: rz sx rz sx rz at most (common practice; tested on transpiles)
 
 ASSUMPTIONS = ("ideal (instantaneous) pulses compiled exactly as single-qubit rotations RGate(theta, phi) on the "
                "pulsed isotope's qubits; each delay Trotterised with the acquisition's product formula and order")
@@ -129,6 +132,59 @@ def preparation_circuit(terms, plan, order: int) -> QuantumCircuit:
         else:
             append_pulse(qc, item)
     return qc
+
+
+def pulse_counts(pulse: PlannedPulse) -> dict:
+    """{rotations, depth} of one ideal pulse by rule: RGate(theta, phi) = rz(phi) rx(theta) rz(-phi), so
+    per pulsed qubit [theta not a multiple of pi/2] + 2 [phi not a multiple of pi/2] arbitrary rotations
+    (an upper bound: the transpiler may merge them with neighbours), PULSE_LAYERS layers (all qubits at once)."""
+    from .circuit_counts import is_clifford_angle
+
+    if is_clifford_angle(pulse.theta) and round(pulse.theta / (np.pi / 2)) % 4 == 0:
+        return {"rotations": 0, "depth": 0}                # theta = 0 mod 2 pi: the identity
+    per_qubit = int(not is_clifford_angle(pulse.theta)) + 2 * int(not is_clifford_angle(pulse.phi))
+    return {"rotations": per_qubit * len(pulse.qubits), "depth": PULSE_LAYERS}
+
+
+def sequence_counts(model, experiment, time: float, steps: int, order: int, *, delay_steps=None, step_s=None,
+                    values_hz=None, terms=None) -> dict:
+    """Gate counts of one sequence experiment's signal circuit (preparation + acquisition) by the count
+    rule of qhl.circuits.step_counts (no circuit built; all-to-all connectivity; order 1, 2 or 4).
+
+    Returns:
+        {"acquisition": {steps, cx, rotations, depth}, "preparation": {steps, delays, pulses, pulse_rotations,
+        delay_s, cx, rotations, depth}, "total": {steps, cx, rotations, depth}, "preparation_share":
+        {cx, rotations, depth}}: preparation cx exact by the rule, rotations an upper bound (pulses counted
+        by pulse_counts), depth the sum of the parts (delays, pulses and acquisition run one after the other).
+    """
+    from .step_counts import evolution_counts_rule
+
+    check_evolution_arguments(time, steps, 2 if order == 4 else order)
+    terms = terms if terms is not None else acquisition_terms(model, experiment, values_hz)
+    plan = sequence_plan(model, experiment, time, steps, delay_steps, step_s)
+    acq = dict(evolution_counts_rule(terms, order, steps), steps=int(steps))
+    prep = {"steps": 0, "delays": 0, "pulses": 0, "pulse_rotations": 0, "delay_s": 0.0, "cx": 0, "rotations": 0,
+            "depth": 0}
+    by_steps = {}
+    for item in plan:
+        if isinstance(item, PlannedDelay):
+            if item.steps not in by_steps:
+                by_steps[item.steps] = evolution_counts_rule(terms, order, item.steps)
+            c = by_steps[item.steps]
+            prep["steps"] += item.steps
+            prep["delays"] += 1
+            prep["delay_s"] += item.seconds
+            for k in ("cx", "rotations", "depth"):
+                prep[k] += c[k]
+        else:
+            c = pulse_counts(item)
+            prep["pulses"] += 1
+            prep["pulse_rotations"] += c["rotations"]
+            prep["rotations"] += c["rotations"]
+            prep["depth"] += c["depth"]
+    total = {k: prep[k] + acq[k] for k in ("steps", "cx", "rotations", "depth")}
+    share = {k: (prep[k] / total[k] if total[k] else 0.0) for k in ("cx", "rotations", "depth")}
+    return {"acquisition": acq, "preparation": prep, "total": total, "preparation_share": share}
 
 
 def sequence_signal_circuit(model, experiment, time: float = 0.0, steps: int = 1, order: int = 1, *,
