@@ -202,7 +202,8 @@ def sequence_signal_circuit(model, experiment, time: float = 0.0, steps: int = 1
         CircuitFamily (kind 'signal', one insertion row of weight 1). Its `evolution` is None: the
         free-evolution reference (qhl.circuits.trotter_reference) does not cover the preparation,
         so exact_expectation needs method='statevector' or 'density'. `steps` is the acquisition's
-        r; `preparation` (attribute set here) the plan.
+        r; `preparation` (attribute set here) the plan; `sequence` {terms, plan} what the emulator's
+        fast path (qhl.emulation.fast_path) rebuilds the gates from.
 
     Raises:
         QhlInputError: bad time, steps, order, grouping, ordering, scheme or delay steps.
@@ -224,4 +225,5 @@ def sequence_signal_circuit(model, experiment, time: float = 0.0, steps: int = 1
                            order=int(order), step_circuit=trotter_circuit(terms, time / steps, 1, order),
                            evolution=None)
     family.preparation = tuple(plan)
+    family.sequence = {"terms": terms, "plan": tuple(plan)}   # for the emulator's fast path (qhl.emulation)
     return family
