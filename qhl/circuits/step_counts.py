@@ -20,7 +20,7 @@ import numpy as np
 
 from .trotter import product_formula_slots
 
-__all__ = ["BLOCK_LAYERS", "block_counts", "step_counts_rule", "rotation_profile_rule"]
+__all__ = ["BLOCK_LAYERS", "block_counts", "step_counts_rule", "evolution_counts_rule", "rotation_profile_rule"]
 
 BLOCK_LAYERS = {1: 3, 2: 11, 3: 10}     # pair blocks by k (k = 1: ZZ; XX alone 9, YY alone 7)
 _PAIR_CX = {1: 2, 2: 2, 3: 3}
@@ -69,6 +69,20 @@ def step_counts_rule(terms, order: int) -> dict:
     if order == 4:
         per = {k: 5 * v for k, v in per.items()}
     return per
+
+
+def evolution_counts_rule(terms, order: int, steps: int) -> dict:
+    """{cx, depth, rotations} of a whole evolution S(t/r)^r by the rule: the first step in full (its
+    slots, merged as qhl.circuits.trotter.product_formula_slots merges them) plus r - 1 marginal
+    steps (step_counts_rule). Order 4: five order-2 steps per step (as step_counts_rule)."""
+    base = 2 if order == 4 else order
+    mult = 5 if order == 4 else 1
+    blocks = [[block_counts(b) for b in g.blocks] for g in terms.groups]
+    cx, rot, depth = _count(terms, product_formula_slots(len(terms.groups), 1.0, 1, base), blocks)
+    per = step_counts_rule(terms, base)
+    more = mult * int(steps) - 1
+    return {"cx": cx + more * per["cx"], "rotations": rot + more * per["rotations"],
+            "depth": depth + more * per["depth"]}
 
 
 def rotation_profile_rule(terms, order: int) -> dict:

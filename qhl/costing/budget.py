@@ -57,6 +57,14 @@ NOISY_ANCILLAS = 1
 NOISY_ORDER = 2
 NOISY_ORDERS = (1, 2)          # product-formula orders the circuits build (qhl.circuits.trotter)
 EXACT_MEMORY_FRACTION = 0.5
+SEQUENCE_ASSUMPTION = (
+    "pulse-sequence signal circuits (qhl.circuits.sequence_circuits): ideal pulses as single-qubit rotations "
+    "RGate(theta, phi) on the pulsed isotope's qubits (exact); delays Trotterised with the fault-tolerant order at one "
+    "step length dt = t / r' for delays and acquisition, r' = ceil(r ((t + T_delays) / t)^(1/p)) so that the "
+    "Trotter error, which adds over the delays and the acquisition (errors of unitary factors add; error per unit "
+    "time ~ C dt^p), stays within the free-evolution share; counts by the step-count rule (CX exact for order 1, "
+    "rotations and CX estimates, depth the sum of the parts); gradients of sequence experiments not costed "
+    "(a Hadamard test through the preparation would cost (preparation + acquisition) per insertion point)")
 HESSIAN_FLOPS_PER_ELEMENT = 5000.0
 
 EXPECTED_EXPONENTS = {
@@ -204,9 +212,11 @@ class Budget:
     tiers: dict = field(default_factory=dict)
     precision_hz: dict | None = None
     classical: dict | None = None
+    sequences: dict | None = None
 
     def to_json(self):
         return {"cluster": self.cluster, "time_s": self.time_s, "precision": self.precision,
+                "sequences": self.sequences,
                 "near_term": self.near_term, "fault_tolerant": self.fault_tolerant,
                 "error_budget": self.error_budget, "comparison": self.comparison,
                 "surface_code": self.surface_code, "assumptions": self.assumptions,
@@ -380,10 +390,25 @@ class BudgetModel:
         self.model = build_model(cluster, free=free)
         if not self.model.free:
             raise QhlInputError("no free parameters to learn", key="free")
-        self.experiments = list(cluster.experiments)
-        if not self.experiments:
+        if not cluster.experiments:
             raise QhlInputError("the cluster has no experiments", key="experiment")
+        # pulse-sequence experiments: their signal circuits are counted (sequence_counts); their gradient
+        # circuits (Hadamard tests through the preparation) are not built yet, so the gradient budget below
+        # covers the free-evolution experiments only
+        self.sequence_experiments = [ex for ex in cluster.experiments if getattr(ex, "steps", ())]
+        self.experiments = [ex for ex in cluster.experiments if not getattr(ex, "steps", ())]
+        if not self.experiments:
+            raise QhlInputError(f"every experiment of '{cluster.name}' has pulse-sequence steps: gradient budgets "
+                                "of sequence experiments are not covered yet (add a free-evolution experiment; "
+                                "their signal circuits are counted by qhl.circuits.sequence_circuits.sequence_counts)",
+                                key="experiment.step")
         self.notes = []
+        if self.sequence_experiments:
+            self.notes.append(
+                f"pulse-sequence experiments ({', '.join(ex.name for ex in self.sequence_experiments)}): signal "
+                "circuits counted under 'sequences' (preparation + acquisition); their gradients are not in the "
+                "shot and fault-tolerant counts, which cover the free-evolution experiments "
+                f"({', '.join(ex.name for ex in self.experiments)}) only")
         require_memory(f"the bound-tier budget of {self.model.n_spins} spins", bound_tier_memory_bytes(
             self.model, self.experiments))
         from ..circuits.targets import resolve_target
@@ -669,8 +694,33 @@ class BudgetModel:
         methods_ft["gate_counts_per_step"] = tm.counts_method
         methods = {"near_term": methods_near, "fault_tolerant": methods_ft,
                    "surface_code": "bound" if sc else None}
+        sequences = self._sequence_counts(t, order, int(ch["steps"]))
+        if sequences:
+            assumptions["sequence_circuits"] = SEQUENCE_ASSUMPTION
+        notes = list(self.notes) + [
+            f"sequence '{name}': {c['total']['steps']:,} Trotter steps (order {c['order']}; preparation "
+            f"{c['preparation']['steps']:,} steps over {c['preparation']['delay_s']:g} s of delays and "
+            f"{c['preparation']['pulses']} pulses), {c['total']['cx']:,} CX, {c['total']['rotations']:,} rotations; "
+            f"the preparation's share {c['preparation_share']['cx']:.0%} of CX, "
+            f"{c['preparation_share']['rotations']:.0%} of rotations" for name, c in (sequences or {}).items()]
         return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name, methods,
-                      list(self.notes), dict(self.tiers), self._precision_hz(t, eps, hb), self.classical)
+                      notes, dict(self.tiers), self._precision_hz(t, eps, hb), self.classical, sequences)
+
+    def _sequence_counts(self, t, order, steps):
+        """Signal-circuit counts of each pulse-sequence experiment at acquisition time t (SEQUENCE_ASSUMPTION)."""
+        if not self.sequence_experiments:
+            return None
+        from ..circuits.sequence_circuits import acquisition_terms, sequence_counts
+        from ..spins.cluster import flat_steps
+        out = {}
+        for ex in self.sequence_experiments:
+            delays = sum(st.seconds for st in flat_steps(ex.steps) if hasattr(st, "seconds"))
+            r = max(int(steps), math.ceil(steps * ((t + delays) / t) ** (1.0 / order) * (1 - 1e-12)))
+            c = sequence_counts(self.model, ex, t, r, order, terms=acquisition_terms(self.model, ex))
+            c.update({"order": int(order), "step_s": t / r, "acquisition_steps_free_evolution": int(steps),
+                      "method": "count rule (qhl.circuits.step_counts; all-to-all), estimate"})
+            out[ex.name] = c
+        return out
 
     # ------------------------------------------------------------------ noise-aware near-term counts
     @staticmethod

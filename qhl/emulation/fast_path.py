@@ -15,6 +15,8 @@ Hadamard-test families (qhl.circuits.gradient_circuits) are untouched by the evo
       x_{c1 c2} = phases * U_{>l} P_l^{c_l} U_{(e, l]} P_e^{c_e} U_{<=e} psi_k
       amplitude of (o1, o2):  sum_c (-1)^{o.c} x_c / 4
   Signal: U psi_k.
+  Pulse-sequence signal (qhl.circuits.sequence_circuits): U = U_acq W_trot, the delays' blocks and
+      the pulses' RGate matrices in circuit order (`sequence_tables`), psi_k evolved gate by gate.
 followed by the read-out rz(mu), h on every observed spin. U_{<=p} psi_k (the states after
 block p, shared by every setting of input k) come from one forward sweep and the dense suffixes
 U_{>p} from one backward sweep; both are cached per evolution (`EvolutionTables`), so the families of
@@ -51,9 +53,11 @@ _CACHE_BYTES = 1.5 * 2 ** 30   # tables above this are not kept for the whole ev
 
 
 def supports_fast_path(family) -> bool:
-    """True for signal, Hadamard-gradient and Hessian families with a recorded evolution."""
-    return (family.kind in FAST_KINDS and family.evolution is not None
-            and family.inputs.n_qubits <= MAX_FAST_QUBITS)
+    """True for signal, Hadamard-gradient and Hessian families with a recorded evolution, and for the
+    signal families of pulse-sequence experiments (qhl.circuits.sequence_circuits)."""
+    recorded = family.evolution is not None or (family.kind == "signal"
+                                                and getattr(family, "sequence", None) is not None)
+    return family.kind in FAST_KINDS and recorded and family.inputs.n_qubits <= MAX_FAST_QUBITS
 
 
 def clear_cache() -> None:
@@ -210,8 +214,41 @@ class EvolutionTables:
         return states
 
 
+def sequence_tables(family) -> EvolutionTables:
+    """EvolutionTables of a pulse-sequence signal family (not cached): the gates in circuit order,
+    each delay's product formula block by block (the same _block_gate matrices), each ideal pulse as
+    one RGate(theta, phi) matrix per pulsed qubit, then the acquisition's product formula."""
+    from qiskit.circuit.library import RGate
+
+    spec = family.sequence
+    terms, n = spec["terms"], spec["terms"].n_qubits
+    tables = EvolutionTables(terms, [])
+    cache, gates = {}, []
+
+    def evolve(seconds, steps):
+        for s in product_formula_slots(len(terms.groups), seconds, steps, family.order):
+            for bi, block in enumerate(terms.groups[s.group].blocks):
+                key = (s.group, bi, float(s.duration))
+                if key not in cache:
+                    cache[key] = _block_gate(block, s.duration, n)
+                gates.append(cache[key])
+
+    for item in spec["plan"]:
+        if hasattr(item, "steps"):
+            evolve(item.seconds, item.steps)
+        else:
+            mat = RGate(item.theta, item.phi).to_matrix()
+            gates.extend(((q,), mat) for q in item.qubits)
+    evolve(family.time, family.steps)
+    tables.gates = gates
+    tables.observed = tuple(bool(o) for o in family.inputs.observed)
+    return tables
+
+
 def evolution_tables(family) -> EvolutionTables:
     """The (cached) EvolutionTables of a family's evolution."""
+    if family.evolution is None and getattr(family, "sequence", None) is not None:
+        return sequence_tables(family)
     ev = family.evolution
     terms = trotter_terms(ev["model"], ev["experiment"], ev["values_hz"], ev["grouping"], ev["ordering"])
     slots = product_formula_slots(len(terms.groups), family.time, family.steps, family.order)
