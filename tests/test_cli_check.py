@@ -10,30 +10,9 @@ import pytest
 
 from qhl.cli import main
 
-TOML = """
-field_tesla = 9.4
-observe = "1H"
-name = "trio"
-[[spin]]
-label = "A"
-isotope = "1H"
-position_angstrom = [0.0, 0.0, 0.0]
-offset_hz = -300.0
-[[spin]]
-label = "B"
-isotope = "1H"
-position_angstrom = [2.0, 0.0, 0.0]
-offset_hz = 250.0
-[[spin]]
-label = "C"
-isotope = "1H"
-position_angstrom = [0.5, 2.3, 0.6]
-offset_hz = 700.0
-[[experiment]]
-name = "static"
-t_max_s = 4e-4
-points = 8
-"""
+from made_up_clusters import TRIO_TOML
+
+TOML = TRIO_TOML
 
 
 @pytest.fixture
