@@ -4,7 +4,8 @@ the learnability map of one cluster over a control axis (qhl.learning.design, qh
 import sys
 
 from .common import (NOISE, POINTS, PRECISION, SCALES, TIME_S, TROTTER_EPS, add_cluster_argument,
-                     check_output_path, cluster_from_args, number_in, print_json)
+                     add_report_argument, check_output_path, cluster_from_args, number_in, print_json,
+                     report_if_asked)
 
 _CRITERIA = ("D", "A", "worst")
 _BUDGET = number_in(0, 1e30, low_open=True, name="budget")
@@ -68,6 +69,7 @@ def register(sub):
     m.add_argument("--max-t-count", type=_NONNEG, default=1e12, metavar="T",
                    help="affordable: fault-tolerant T-count at most this (default 1e12)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
+    add_report_argument(p)
     p.add_argument("--plot", metavar="FILE.png", help="write a PNG of the design (or of the map)")
     p.set_defaults(func=run)
 
@@ -93,9 +95,12 @@ def run(args):
                              windows_s=_grid(args.windows), points=args.points, noise=args.noise,
                              time_points=args.time_points, include_file=not args.no_file,
                              trotter_eps=args.trotter_eps, synthesis_eps=args.synthesis_eps, progress=_say)
+    from ..learning.design_plots import plot_design
     if args.plot:
-        from ..learning.design_plots import plot_design
         plot_design(rep, args.plot)
+    report_if_asked(args, "design", {**rep.to_json(), "plot": args.plot}, cluster.name, drawings=[(
+        "shares of the budget per candidate and Cramer-Rao bounds against the current set",
+        lambda f: plot_design(rep, f))])
     if args.json:
         print_json({**rep.to_json(), "plot": args.plot})
         return 0
@@ -157,6 +162,9 @@ def _run_map(args, cluster):
     rc = 130 if lmap.interrupted else 0
     if args.plot:
         plot_learnability_map(lmap, args.plot)
+    report_if_asked(args, "design", {**lmap.to_json(), "plot": args.plot}, cluster.name, drawings=[(
+        f"learnability, ergodicity, classical and quantum cost over {lmap.axis}",
+        lambda f: plot_learnability_map(lmap, f))])
     if args.json:
         print_json({**lmap.to_json(), "plot": args.plot})
         return rc

@@ -28,7 +28,7 @@ from pathlib import Path
 __all__ = ["REPORT_COMMANDS", "COMMON_ASSUMPTIONS", "command_assumptions", "collect_assumptions", "versions",
            "png_base64", "render_report", "write_report"]
 
-REPORT_COMMANDS = ("budget", "learn", "check", "scan")
+REPORT_COMMANDS = ("budget", "learn", "check", "scan", "design")
 
 # distributions whose versions go into every report (qhl first)
 VERSIONED = ("qhl", "numpy", "scipy", "qiskit", "qiskit-aer", "matplotlib", "jinja2")
@@ -142,7 +142,7 @@ def _nearest(grid, value):
     return int(np.argmin(abs(np.log(np.asarray(grid, float) / float(value)))))
 
 
-def _plots(command, data, sweep, fit, scan_results, figures) -> tuple[list, list]:
+def _plots(command, data, sweep, fit, scan_results, figures, drawings=()) -> tuple[list, list]:
     """([(caption, base64 PNG)], [notes on plots left out]) from objects the command already holds."""
     import matplotlib
     matplotlib.use("Agg")
@@ -174,6 +174,8 @@ def _plots(command, data, sweep, fit, scan_results, figures) -> tuple[list, list
             notes.append("the results file holds no finished task: no plot")
     for caption, make in figures:
         plots.append((caption, png_base64(make() if callable(make) and not hasattr(make, "savefig") else make)))
+    for caption, draw in drawings:
+        plots.append((caption, png_base64(draw)))
     return plots, notes
 
 
@@ -219,7 +221,7 @@ def _columns(rows):
 
 
 def render_report(command: str, data: dict, *, argv=None, subject: str | None = None, sweep=None, fit=None,
-                  scan_results=None, figures=(), created=None) -> str:
+                  scan_results=None, figures=(), drawings=(), created=None) -> str:
     """The HTML text of the report of one `command` run.
 
     Args:
@@ -232,12 +234,14 @@ def render_report(command: str, data: dict, *, argv=None, subject: str | None = 
         fit: a qhl.learning.fitting.LearnReport (data vs fit plot).
         scan_results: a scan's results CSV (learnability and ergodicity plots).
         figures: [(caption, Figure or callable returning a Figure)] drawn by the command's own code.
+        drawings: [(caption, callable(file))]: the command's own plot functions that write a PNG to a
+            file (a path or a binary buffer).
         created: a datetime for the report's date (default now, UTC).
     """
     if command not in REPORT_COMMANDS:
         raise ValueError(f"unknown command {command!r}; expected one of {', '.join(REPORT_COMMANDS)}")
     json_text = json.dumps(data, indent=1, allow_nan=False)
-    plots, plot_notes = _plots(command, data, sweep, fit, scan_results, list(figures))
+    plots, plot_notes = _plots(command, data, sweep, fit, scan_results, list(figures), list(drawings))
     assumptions = collect_assumptions(command, data)
     in_assumptions = {k for k in data if k == "assumptions" or str(k).endswith("_rule")}
     scalars = [(k, v) for k, v in data.items() if not isinstance(v, (dict, list)) and k not in in_assumptions]
