@@ -199,7 +199,8 @@ def part5(n_params=4, shots=500, steps=4, profile_lines=12):
 
 def part6(shots=1000, sizes=(12, 14)):
     print(f"Gradient component dS/d dipolar:C0-C1 (Re), r = 1, {shots} shots, noiseless:")
-    print(f"  {'spins':>5}{'fast path (s)':>15}{'Aer statevector (s)':>21}{'ratio':>7}{'settings':>10}  values (fast, Aer)")
+    print(f"  {'spins':>5}{'fast path (s)':>15}{'Aer statevector (s)':>21}{'ratio':>7}{'settings':>10}"
+          "  values (fast, Aer)")
     for n in sizes:
         c = chain_cluster(n)
         m = build_model(c)

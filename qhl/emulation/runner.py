@@ -150,6 +150,23 @@ def clear_templates() -> None:
     _TEMPLATES.clear()
 
 
+_PASS_MANAGERS: dict = {}
+
+
+def _pass_manager(noiseless: bool, simulator):
+    """The preset pass manager of the templates, built once per kind (building one reads the
+    simulator's target, about 0.2 s; qiskit.transpiler.generate_preset_pass_manager)."""
+    from qiskit.transpiler import generate_preset_pass_manager
+
+    key = ("aer", simulator.options.method) if noiseless else ("noisy",)
+    if key not in _PASS_MANAGERS:
+        if noiseless:
+            _PASS_MANAGERS[key] = generate_preset_pass_manager(optimization_level=0, backend=simulator)
+        else:
+            _PASS_MANAGERS[key] = generate_preset_pass_manager(optimization_level=1, basis_gates=list(NOISY_BASIS))
+    return _PASS_MANAGERS[key]
+
+
 def _circuit_key(qc):
     """A hashable description of a circuit: gates, qubits, clbits and parameters (names or values)."""
     ops = tuple((inst.operation.name, tuple(qc.find_bit(q).index for q in inst.qubits),
@@ -234,7 +251,6 @@ class FamilyRunner:
 
     # ---------------------------------------------------------------- Aer, built on first use
     def _build_aer(self):
-        from qiskit import transpile
         from qiskit_aer import AerSimulator
 
         runtime = self.binding == "runtime" and self.method != "mps"
@@ -257,10 +273,7 @@ class FamilyRunner:
             _TEMPLATES.move_to_end(key)
             tqc = _TEMPLATES[key]
         else:
-            if self.noise.is_noiseless:
-                tqc = transpile(measured, self._simulator, optimization_level=0)
-            else:
-                tqc = transpile(measured, basis_gates=list(NOISY_BASIS), optimization_level=1)
+            tqc = _pass_manager(self.noise.is_noiseless, self._simulator).run(measured)
             _TEMPLATES[key] = tqc
             while len(_TEMPLATES) > TEMPLATE_CACHE_SIZE:
                 _TEMPLATES.popitem(last=False)
