@@ -74,35 +74,44 @@ def test_batched_runtime_path_agrees_with_per_setting_path(small, noise):
 
 
 def test_batch_is_one_aer_call_per_shot_count(small, monkeypatch):
-    """Noiseless: every family of the batch in one Aer run call; noisy: one call per distinct
-    shot count of the settings (each setting gets exactly its shots), and same seeds give the
-    same numbers."""
+    """Noiseless: every family of the batch in one Aer run call; noisy: one trajectory call per
+    distinct shot count below the density-matrix threshold (each setting gets exactly its shots)
+    and one density-matrix call for the settings above it; same seeds give the same numbers."""
     model, ex, names = small
     fams = [gradient_circuit(model, ex, nm, T, R) for nm in names[:3]]
     for noise in (NoiseSpec(), NoiseSpec(0.01)):
         runners = [FamilyRunner(f, noise, method="aer") for f in fams]
         calls = []
-        sim = runners[0].simulator
-        real = sim.run
 
-        def counting(circuits, *a, **kw):
-            calls.append((len(circuits), kw["shots"], sum(len(next(iter(b.values()))) for b in kw["parameter_binds"])))
-            return real(circuits, *a, **kw)
+        def counting(sim, kind):
+            real = sim.run
 
-        monkeypatch.setattr(sim, "run", counting)
-        jobs = [(r, 500, np.random.default_rng(k), "re") for k, r in enumerate(runners)]
-        out = run_batch(jobs, np.random.default_rng(7))
-        again = run_batch([(r, 500, np.random.default_rng(k), "re") for k, r in enumerate(runners)],
+            def run(circuits, *a, **kw):
+                calls.append((kind, len(circuits), kw["shots"],
+                              sum(len(next(iter(b.values()))) for b in kw["parameter_binds"])))
+                return real(circuits, *a, **kw)
+            monkeypatch.setattr(sim, "run", run)
+
+        counting(runners[0].simulator, "shots")
+        if not noise.is_noiseless:
+            counting(runners[0].density_simulator, "density")
+        shots = (600, 60, 60)      # 4 qubits: density matrices from 8 shots per setting (72 settings)
+        out = run_batch([(r, n, np.random.default_rng(k), "re") for k, (r, n) in enumerate(zip(runners, shots))],
+                        np.random.default_rng(7))
+        first = list(calls)
+        again = run_batch([(r, n, np.random.default_rng(k), "re") for k, (r, n) in enumerate(zip(runners, shots))],
                           np.random.default_rng(7))
         assert [e.value for e in out] == [e.value for e in again]
         settings = sum(e.circuits_run for e in out)
-        first = calls[:len(calls) // 2]
-        assert sum(c[2] for c in first) == settings
+        assert sum(c[3] for c in first) == settings
         if noise.is_noiseless:
-            assert len(first) == 1 and first[0][0] == 3
+            assert len(first) == 1 and first[0][1] == 3
         else:
-            shot_counts = [c[1] for c in first]
-            assert len(set(shot_counts)) == len(shot_counts) and len(first) < settings
+            counts = [c[2] for c in first if c[0] == "shots"]
+            dense = [c for c in first if c[0] == "density"]
+            assert runners[0].density_from == 8
+            assert len(set(counts)) == len(counts) and len(dense) == 1 and len(first) < settings
+            assert max(counts) < runners[0].density_from <= dense[0][2]
         monkeypatch.undo()
 
 

@@ -26,7 +26,12 @@ value sets of a run call and lets it bind them at run time (AerSimulator option
 runtime_parameter_bind_enable, qiskit-aer documentation), and, with gate noise, runs setting g
 with exactly n_g shots: the settings are grouped by their shot count, one run call per distinct
 count (no extra shots). 'per-setting' is the previous scheme (Aer builds one bound circuit per
-value set; noisy settings in power-of-two buckets). Both draw every shot from the same circuit
+value set; noisy settings in power-of-two buckets). Under 'runtime', a noisy setting with many
+shots (n_g >= DENSITY_BREAK_EVEN * 2^q, q <= DENSITY_MAX_QUBITS qubits) runs once on Aer's
+density-matrix method and its n_g shots are sampled from that noisy state (readout error
+included), which costs about as much as 0.5 * 2^q trajectories (measured on the benchmark's
+6-qubit circuits); all such settings go in one call with the largest count, each keeping a
+random n_g of its shots (as without noise). Both draw every shot from the same circuit
 and noise model, so they agree in distribution (checked in tests/test_emulator_batch.py). The
 template drops the transpiled circuit's global phase under runtime binding (a global phase
 changes no outcome probability; qiskit-aer 0.18 cannot bind a parameterised one at run time).
@@ -63,6 +68,8 @@ __all__ = ["FamilyRunner", "outcome_values", "observable_masks", "values_of_outc
 
 METHODS = ("auto", "fast", "aer", "mps")
 BINDINGS = ("runtime", "per-setting")
+DENSITY_MAX_QUBITS = 10      # noisy settings may run as density matrices up to this many qubits
+DENSITY_BREAK_EVEN = 0.5     # ... when they have >= 0.5 * 2^q shots (benchmarks/bench_emulator.py --noisy)
 MAX_BINDS_PER_CALL = 20_000   # value sets per Aer run call (bounds the result objects held at once)
 TEMPLATE_CACHE_SIZE = 64
 _TEMPLATES: "OrderedDict" = OrderedDict()
@@ -243,7 +250,7 @@ class FamilyRunner:
                 print(f"qhl: the numpy fast path does not fit ({err.needed_bytes / 2 ** 30:.2f} GiB estimated, "
                       f"{err.available_bytes / 2 ** 30:.2f} GiB available): using Aer's statevector method",
                       file=sys.stderr)
-        self._transpiled = self._simulator = self._audit_circuit = self._template = None
+        self._transpiled = self._simulator = self._audit_circuit = self._template = self._density = None
         self.masks = observable_masks(family)
         m = len(family.measured_qubits)
         self.values = outcome_values(family) if m <= MAX_TABLE_BITS else None
@@ -474,15 +481,44 @@ class FamilyRunner:
         return per_row, per_row_sq
 
     def _aer_blocks(self, counts):
-        """[(shots of a run call, indices of the settings it runs)] (module docstring)."""
+        """[(simulation kind, shots of a run call, indices of the settings it runs)] (module docstring);
+        kind 'density' for noisy settings with at least `density_from` shots, else 'shots'."""
         if self.noise.has_gate_noise:
             if self.binding == "runtime":
-                buckets = counts
+                buckets = counts.copy()
+                dense = counts >= self.density_from
+                if np.any(dense):
+                    buckets[dense] = -counts[dense].max()          # one density-matrix block
             else:
                 buckets = 2 ** np.ceil(np.log2(counts)).astype(int)
         else:
             buckets = np.full(len(counts), counts.max())
-        return [(int(b), np.flatnonzero(buckets == b)) for b in np.unique(buckets)]
+        return [("density" if b < 0 else "shots", abs(int(b)), np.flatnonzero(buckets == b))
+                for b in np.unique(buckets)]
+
+    @property
+    def density_from(self) -> float:
+        """Shots per noisy setting from which Aer's density-matrix method runs it (one noisy state,
+        then its shots are sampled) instead of one trajectory per shot: DENSITY_BREAK_EVEN * 2^q
+        for q <= DENSITY_MAX_QUBITS qubits (inf beyond, and for 'mps')."""
+        q = self.family.circuit.num_qubits
+        if self.method == "mps" or q > DENSITY_MAX_QUBITS:
+            return float("inf")
+        return DENSITY_BREAK_EVEN * 2 ** q
+
+    @property
+    def density_simulator(self):
+        """Aer's density-matrix method with the run's noise model (runtime binding)."""
+        if self._density is None:
+            from qiskit_aer import AerSimulator
+
+            q = self.family.circuit.num_qubits
+            require_memory(f"Aer density matrices of {q} qubits ({self.threads} in parallel)",
+                           16.0 * 4 ** q * self.threads)
+            self._density = AerSimulator(method="density_matrix", noise_model=self.noise.noise_model(),
+                                         max_parallel_threads=self.threads, max_parallel_experiments=self.threads,
+                                         runtime_parameter_bind_enable=True)
+        return self._density
 
     def _aer_config(self):
         """Runners with equal keys can share one Aer run call."""
@@ -493,7 +529,7 @@ class FamilyRunner:
         """(sum of a, sum of a^2) per distinct setting from Aer counts (module docstring)."""
         if self.binding == "per-setting":
             per_row, per_row_sq = np.zeros(len(params)), np.zeros(len(params))
-            for b, sel in self._aer_blocks(counts):
+            for _, b, sel in self._aer_blocks(counts):
                 drawn = self._simulate(params[sel], b, rng.integers(0, 2 ** 31 - 1))
                 for i, (keys, d) in zip(sel, drawn):
                     kept = d if counts[i] == b else rng.multivariate_hypergeometric(d, int(counts[i]))
@@ -508,17 +544,20 @@ def _draw_aer_together(items, rng):
     one Aer configuration (`_aer_config`): one run call per shot count for all of them (split at
     MAX_BINDS_PER_CALL value sets). Without gate noise every setting runs with the largest count
     and keeps a random n_g of its shots (module docstring); item rngs draw those subsets."""
-    sim = items[0][0].simulator
     noiseless = not items[0][0].noise.has_gate_noise
     plan = {}
     for i, (runner, params, counts, _) in enumerate(items):
-        for b, sel in runner._aer_blocks(counts):
-            plan.setdefault(b, []).append((i, sel))
-    if noiseless and plan:
-        top = max(plan)
-        plan = {top: [entry for b in sorted(plan) for entry in plan[b]]}
+        for kind, b, sel in runner._aer_blocks(counts):
+            plan.setdefault((kind, b), []).append((i, sel))
+    if plan:      # shots sampled from one state (noiseless, density matrix): one block at the largest count
+        for kind in ("shots", "density") if noiseless else ("density",):
+            keys = sorted(k for k in plan if k[0] == kind)
+            if keys:
+                merged = [entry for k in keys for entry in plan.pop(k)]
+                plan[(kind, keys[-1][1])] = merged
     out = [(np.zeros(len(params)), np.zeros(len(params))) for _, params, _, _ in items]
-    for b, entries in plan.items():
+    for (kind, b), entries in plan.items():
+        sim = items[0][0].density_simulator if kind == "density" else items[0][0].simulator
         pieces = []
         for i, sel in entries:
             for start in range(0, len(sel), MAX_BINDS_PER_CALL):
