@@ -17,12 +17,15 @@ Part 5 (--noisy): a noisy gradient of the invented 5-spin cluster (depolarising 
 cx; P parameters, Re and Im, r = 4) on the Aer path, side by side in one run: the previous
 per-setting path (one FamilyRunner per family, Aer binds one circuit per setting, power-of-two
 shot buckets) against emulate_gradients (runtime parameter binding, every family in one Aer run
-call per shot count, templates transpiled once). Both transpile from an empty template cache.
-The cProfile top entries of the batched run follow.
-Run:
+call per shot count, templates transpiled once), noisy and noiseless (method 'aer'). Both
+transpile from an empty template cache (and share the cached pass managers). The cProfile top
+entries of the batched noisy run follow. Then one noisy component with 40,000 shots (many shots
+per setting: density matrices where they pay) against per-setting trajectories, whose cost is
+measured on a tenth of the shots and scaled (it is linear in shots).
 Part 6 (--beyond): one gradient component (Re) of invented 12- and 14-spin chains, r = 1, the
 same shots on the fast path's streaming mode (beyond its 10-spin dense tables) and on Aer's
 statevector method (runtime binding), side by side.
+Run:
     python benchmarks/bench_emulator.py [--quick] [--large] [--noisy [P [SHOTS]]] [--beyond [SHOTS]]
 """
 
