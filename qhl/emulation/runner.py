@@ -73,6 +73,7 @@ DENSITY_BREAK_EVEN = 0.5     # ... when they have >= 0.5 * 2^q shots (benchmarks
 MAX_BINDS_PER_CALL = 20_000   # value sets per Aer run call (bounds the result objects held at once)
 TEMPLATE_CACHE_SIZE = 64
 _TEMPLATES: "OrderedDict" = OrderedDict()
+_NOTES: set = set()
 AUDIT_TOLERANCE = 1e-9
 MAX_TABLE_BITS = 20      # outcome-value tables up to 2^20 entries; beyond, values per measured key
 
@@ -247,9 +248,11 @@ class FamilyRunner:
                 if method == "fast":
                     raise
                 self.uses_fast_path = False
-                print(f"qhl: the numpy fast path does not fit ({err.needed_bytes / 2 ** 30:.2f} GiB estimated, "
-                      f"{err.available_bytes / 2 ** 30:.2f} GiB available): using Aer's statevector method",
-                      file=sys.stderr)
+                note = (f"qhl: the numpy fast path does not fit ({err.needed_bytes / 2 ** 30:.2f} GiB estimated, "
+                        f"{err.available_bytes / 2 ** 30:.2f} GiB available): using Aer's statevector method")
+                if note not in _NOTES:           # once per process, not once per family
+                    _NOTES.add(note)
+                    print(note, file=sys.stderr)
         self._transpiled = self._simulator = self._audit_circuit = self._template = self._density = None
         self.masks = observable_masks(family)
         m = len(family.measured_qubits)
