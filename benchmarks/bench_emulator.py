@@ -11,12 +11,27 @@ Goal: under 10 s and >= 10x.
 Part 3: an invented 8-spin cluster, full gradient (36 parameters, Re and Im, 10^4 shots, r = 4)
 through qhl.emulation.derivatives.emulate_gradients (one batched call). Goal: under 30 s.
 Part 4 (--large): one gradient component of an invented 16-spin chain on Aer's statevector
-method (beyond the fast path's 10 spins) and of a 30-spin chain on the matrix_product_state
-method, r = 2, 200 shots per part: they complete and are timed.
+method and of a 30-spin chain on the matrix_product_state method, r = 2, 200 shots per part:
+they complete and are timed.
+Part 5 (--noisy): a noisy gradient of the invented 5-spin cluster (depolarising p = 1e-3 on sx, x,
+cx; P parameters, Re and Im, r = 4) on the Aer path, side by side in one run: the previous
+per-setting path (one FamilyRunner per family, Aer binds one circuit per setting, power-of-two
+shot buckets) against emulate_gradients (runtime parameter binding, every family in one Aer run
+call per shot count, templates transpiled once), noisy and noiseless (method 'aer'). Both
+transpile from an empty template cache (and share the cached pass managers). The cProfile top
+entries of the batched noisy run follow. Then one noisy component with 40,000 shots (many shots
+per setting: density matrices where they pay) against per-setting trajectories, whose cost is
+measured on a tenth of the shots and scaled (it is linear in shots).
+Part 6 (--beyond): one gradient component (Re) of invented 12- and 14-spin chains, r = 1, the
+same shots on the fast path's streaming mode (beyond its 10-spin dense tables) and on Aer's
+statevector method (runtime binding), side by side.
 Run:
-    python benchmarks/bench_emulator.py [--quick] [--large]
+    python benchmarks/bench_emulator.py [--quick] [--large] [--noisy [P [SHOTS]]] [--beyond [SHOTS]]
 """
 
+import cProfile
+import io
+import pstats
 import sys
 import time
 
@@ -26,6 +41,8 @@ from qhl import build_model, demo_cluster
 from qhl.spins.cluster import Cluster, Experiment, Pair, Spin
 from qhl.emulation import FamilyRunner, estimate_family
 from qhl.emulation.check import check_derivatives
+from qhl.emulation.noise import NoiseSpec
+from qhl.emulation.runner import clear_templates
 from qhl.emulation.derivatives import emulate_gradients
 from qhl.circuits.gradient_circuits import gradient_circuit
 
@@ -129,7 +146,7 @@ def chain_cluster(n):
 
 
 def part4(shots=200):
-    for n, method in ((16, "auto"), (30, "mps")):
+    for n, method in ((16, "aer"), (30, "mps")):
         c = chain_cluster(n)
         m = build_model(c)
         fam = gradient_circuit(m, c.experiments[0], "dipolar:C0-C1", 5e-4, 2)
@@ -139,6 +156,86 @@ def part4(shots=200):
         print(f"{n}-spin chain, one gradient component, r = 2, {shots} shots per part, method "
               f"{runner.simulator.options.method}: {time.perf_counter() - start:.1f} s, "
               f"{e.circuits_run} distinct settings, value {e.value:.3g} +- {abs(e.stderr):.2g}")
+
+
+def part5(n_params=4, shots=500, steps=4, profile_lines=12):
+    c = five_spin_cluster()
+    m = build_model(c)
+    names = list(m.free)[:n_params]
+    ex, t = c.experiments[0], 1e-3
+    print(f"5-spin gradient on the Aer path, {len(names)} parameters x Re/Im x {shots} shots, r = {steps}:")
+    print(f"  {'noise':<16}{'path':<44}{'seconds':>9}{'settings':>10}{'shots/s':>9}")
+    for label, noise in (("depolarising", NoiseSpec(1e-3)), ("none (aer)", NoiseSpec())):
+        clear_templates()
+        start = time.perf_counter()
+        old = []
+        for k, nm in enumerate(names):
+            fam = gradient_circuit(m, ex, nm, t, steps)
+            runner = FamilyRunner(fam, noise, method="aer", binding="per-setting")
+            old.append(estimate_family(fam, shots, k, runner=runner))
+        old_s = time.perf_counter() - start
+        clear_templates()
+        prof = cProfile.Profile()
+        start = time.perf_counter()
+        prof.enable()
+        new = emulate_gradients(m, ex, names, [t], steps, shots, seed=0, noise=noise, method="aer")[:, 0]
+        prof.disable()
+        new_s = time.perf_counter() - start
+        zr = [abs((a.re.value - b.re.value) / np.hypot(a.re.stderr, b.re.stderr)) for a, b in zip(new, old)]
+        zi = [abs((a.im.value - b.im.value) / np.hypot(a.im.stderr, b.im.stderr)) for a, b in zip(new, old)]
+        total = 2 * shots * len(names)
+        for path, sec, est in (("per-setting (previous: bound per setting)", old_s, old),
+                               ("batched, runtime-bound (emulate_gradients)", new_s, new)):
+            print(f"  {label:<16}{path:<44}{sec:>9.2f}{sum(e.circuits_run for e in est):>10}{total / sec:>9.0f}")
+        print(f"  {label:<16}speed-up {old_s / new_s:.2f}x; max |z| between the paths: Re {max(zr):.2f}, "
+              f"Im {max(zi):.2f}")
+        if label == "depolarising":
+            buf = io.StringIO()
+            pstats.Stats(prof, stream=buf).sort_stats("tottime").print_stats(profile_lines)
+            lines = [ln for ln in buf.getvalue().splitlines() if ln.strip()]
+            first = next(i for i, ln in enumerate(lines) if ln.lstrip().startswith("ncalls"))
+            print("  cProfile of the batched noisy run (top entries by own time; the thread lock is the wait")
+            print("  for Aer's C++ simulation):")
+            for ln in lines[first:first + profile_lines + 1]:
+                print("   ", ln[:150])
+
+
+def part5_many_shots(shots=40_000, scale=10):
+    """Many shots per setting: noisy settings run as density matrices (one Aer state each)."""
+    c = five_spin_cluster()
+    m = build_model(c)
+    nm, ex, t, noise = list(m.free)[5], c.experiments[0], 1e-3, NoiseSpec(1e-3)
+    fam = gradient_circuit(m, ex, nm, t, 4)
+    old_runner = FamilyRunner(fam, noise, method="aer", binding="per-setting")
+    new_runner = FamilyRunner(fam, noise, method="aer")
+    old_runner.template, new_runner.template
+    old = old_runner.run(shots // scale, np.random.default_rng(1), "re")
+    new = new_runner.run(shots, np.random.default_rng(2), "re")
+    z = (new.value - old.value) / np.hypot(new.stderr, old.stderr)
+    print(f"Noisy 5-spin component (Re of d/d {nm}), {shots} shots, r = 4, {new.circuits_run} distinct settings "
+          f"(density matrices from {new_runner.density_from:.0f} shots per setting):")
+    print(f"  per-setting trajectories: {old.seconds:.2f} s for {shots // scale} shots -> {old.seconds * scale:.1f} s "
+          f"scaled to {shots} (its cost is linear in shots)")
+    print(f"  runtime-bound, density matrices where they pay: {new.seconds:.2f} s; "
+          f"ratio {old.seconds * scale / new.seconds:.1f}x; z between them {z:.2f}")
+
+
+def part6(shots=1000, sizes=(12, 14)):
+    print(f"Gradient component dS/d dipolar:C0-C1 (Re), r = 1, {shots} shots, noiseless:")
+    print(f"  {'spins':>5}{'fast path (s)':>15}{'Aer statevector (s)':>21}{'ratio':>7}{'settings':>10}"
+          "  values (fast, Aer)")
+    for n in sizes:
+        c = chain_cluster(n)
+        m = build_model(c)
+        fam = gradient_circuit(m, c.experiments[0], "dipolar:C0-C1", 5e-4, 1)
+        fast = FamilyRunner(fam)
+        assert fast.uses_fast_path and fast.fast.streaming
+        aer = FamilyRunner(fam, method="aer")
+        aer.transpiled
+        ef = fast.run(shots, np.random.default_rng(1), "re")
+        ea = aer.run(shots, np.random.default_rng(1), "re")
+        print(f"  {n:>5}{ef.seconds:>15.2f}{ea.seconds:>21.2f}{ea.seconds / ef.seconds:>7.1f}{ef.circuits_run:>10}  "
+              f"{ef.value:.4g} +- {ef.stderr:.2g}, {ea.value:.4g} +- {ea.stderr:.2g}")
 
 
 def main(quick=False, large=False):
@@ -152,4 +249,12 @@ def main(quick=False, large=False):
 
 
 if __name__ == "__main__":
-    main("--quick" in sys.argv, "--large" in sys.argv)
+    if "--beyond" in sys.argv:
+        rest = [int(a) for a in sys.argv[sys.argv.index("--beyond") + 1:] if a.isdigit()]
+        part6(*rest[:1])
+    elif "--noisy" in sys.argv:
+        rest = [int(a) for a in sys.argv[sys.argv.index("--noisy") + 1:] if a.isdigit()]
+        part5(*rest[:2])
+        part5_many_shots()
+    else:
+        main("--quick" in sys.argv, "--large" in sys.argv)

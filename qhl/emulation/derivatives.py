@@ -24,7 +24,7 @@ from ..base.errors import QhlInputError
 from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
 from .estimate import ComplexEstimate
 from .noise import NoiseSpec
-from .runner import FamilyRunner
+from .runner import FamilyRunner, run_batch
 
 __all__ = ["as_generator", "estimate_family", "emulate_signal", "emulate_gradient", "emulate_hessian",
            "emulate_gradients"]
@@ -117,7 +117,9 @@ def emulate_gradients(model, experiment, parameters, times, steps, shots, seed=0
 
     Every (parameter, time) family gets its own random stream spawned from `seed` (row-major),
     and the families of one time share the cached evolution of the fast path, so the forward
-    states and suffix unitaries are built once per time.
+    states and suffix unitaries are built once per time. Families on the Aer path (noise,
+    method 'aer' or 'mps') are run together at the end (qhl.emulation.runner.run_batch: one
+    Aer run call per shot count for all of them, runtime parameter binding).
 
     Args:
         parameters: names; times: seconds (> 0); steps: r (int) or one r per time.
@@ -134,16 +136,34 @@ def emulate_gradients(model, experiment, parameters, times, steps, shots, seed=0
     names = list(parameters)
     times = np.atleast_1d(np.asarray(times, float))
     steps_of = np.broadcast_to(np.asarray(steps), times.shape)
-    streams = as_generator(seed).spawn(len(names) * len(times))
+    streams = as_generator(seed).spawn(len(names) * len(times) + 1)     # the last one seeds Aer
     out = np.empty((len(names), len(times)), object)
     done = 0
+    batch, where = [], []
     for k, (t, r) in enumerate(zip(times, steps_of)):
         if int(r) != r or r < 1:
             raise QhlInputError(f"expected steps >= 1, got {r!r}", key="--steps")
         for p, nm in enumerate(names):
             family = gradient_circuit(model, experiment, nm, float(t), int(r), order, **compile_options)
-            out[p, k] = estimate_family(family, shots, streams[p * len(times) + k], noise, method=method,
+            stream = streams[p * len(times) + k]
+            if method != "sampler":
+                runner = FamilyRunner(family, noise, method=method, sampling=sampling, audit=audit)
+                if not runner.uses_fast_path:
+                    re, im = stream.spawn(2)
+                    batch += [(runner, shots, re, "re"), (runner, shots, im, "im")]
+                    where.append((p, k, nm, t))
+                    continue
+            else:
+                runner = None
+            out[p, k] = estimate_family(family, shots, stream, noise, runner=runner, method=method,
                                         sampling=sampling, audit=audit, sampler_options=sampler_options)
+            done += 1
+            if progress is not None:
+                progress(done, out.size, f"{nm} at t = {t:g} s")
+    if batch:
+        got = run_batch(batch, streams[-1])
+        for j, (p, k, nm, t) in enumerate(where):
+            out[p, k] = ComplexEstimate(got[2 * j], got[2 * j + 1])
             done += 1
             if progress is not None:
                 progress(done, out.size, f"{nm} at t = {t:g} s")

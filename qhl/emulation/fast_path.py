@@ -23,6 +23,16 @@ U_{>p} from one backward sweep; both are cached per evolution (`EvolutionTables`
 every parameter at one time share them. The probabilities are checked against Aer's own
 statevector probabilities (`FamilyRunner.audit`, tests/test_emulator_fast.py) to 1e-10.
 
+Streaming mode (signal and gradient families of more than MAX_FAST_QUBITS spins, where dense
+2^n x 2^n suffixes do not fit): the settings are taken in chunks of at most `chunk` settings;
+one forward sweep applies every block to the chunk's inputs (rows x_0 = psi_k) and to the
+branches x_1 (a branch starts at its insertion position p as P applied to its input's state
+after block p, and from then on takes the remaining blocks), then the read-out rotations act
+qubit by qubit. Nothing of size 4^n is built; the memory is a fixed number of state vectors per
+chunk column (`stream_memory_bytes`, checked against tracemalloc in tests/test_fast_path_memory.py)
+and is checked up front (qhl.base.memory.require_memory); qhl.emulation.runner falls back to Aer's
+statevector method with a one-line note when the estimate does not fit.
+
 The stochastic-parameter-shift family ('gradient-shift') and noisy runs stay on Aer.
 """
 
@@ -41,10 +51,13 @@ from ..circuits.gradient_circuits import insertion_points
 from ..circuits.trotter import append_block_rotations, product_formula_slots, trotter_terms
 
 __all__ = ["FAST_KINDS", "MAX_FAST_QUBITS", "supports_fast_path", "FastFamily", "EvolutionTables",
-           "clear_cache"]
+           "clear_cache", "stream_memory_bytes", "stream_chunk", "STREAM_KINDS"]
 
 FAST_KINDS = ("signal", "gradient", "hessian")
-MAX_FAST_QUBITS = 10          # dense 2^n x 2^n suffixes (16 MiB each at n = 10); larger clusters stay on Aer
+STREAM_KINDS = ("signal", "gradient")   # kinds that also run in the streaming mode (beyond MAX_FAST_QUBITS)
+MAX_FAST_QUBITS = 10          # dense 2^n x 2^n suffixes (16 MiB each at n = 10); beyond: streaming mode
+STREAM_CHUNK_BYTES = 256 * 2 ** 20   # target working set of one streaming chunk
+STREAM_VECTORS = 7                   # state vectors of 2^n amplitudes held per chunk column at the peak
 _PAULI = {"X": np.array([[0, 1], [1, 0]], complex), "Y": np.array([[0, -1j], [1j, 0]], complex),
           "Z": np.array([[1, 0], [0, -1]], complex)}
 _CACHE: "OrderedDict" = OrderedDict()
@@ -53,11 +66,33 @@ _CACHE_BYTES = 1.5 * 2 ** 30   # tables above this are not kept for the whole ev
 
 
 def supports_fast_path(family) -> bool:
-    """True for signal, Hadamard-gradient and Hessian families with a recorded evolution, and for the
-    signal families of pulse-sequence experiments (qhl.circuits.sequence_circuits)."""
-    recorded = family.evolution is not None or (family.kind == "signal"
-                                                and getattr(family, "sequence", None) is not None)
-    return family.kind in FAST_KINDS and recorded and family.inputs.n_qubits <= MAX_FAST_QUBITS
+    """True for signal, Hadamard-gradient and Hessian families with a recorded evolution (Hessians up
+    to MAX_FAST_QUBITS spins; signal and gradient beyond it in the streaming mode, memory permitting),
+    and for the signal families of pulse-sequence experiments (qhl.circuits.sequence_circuits) up to
+    MAX_FAST_QUBITS spins."""
+    if family.kind not in FAST_KINDS:
+        return False
+    if family.evolution is None:
+        return (family.kind == "signal" and getattr(family, "sequence", None) is not None
+                and family.inputs.n_qubits <= MAX_FAST_QUBITS)
+    return family.inputs.n_qubits <= MAX_FAST_QUBITS or family.kind in STREAM_KINDS
+
+
+def stream_chunk(n: int) -> int:
+    """Settings per streaming chunk: as many as keep the chunk near STREAM_CHUNK_BYTES (at least 1)."""
+    return max(1, int(STREAM_CHUNK_BYTES // (STREAM_VECTORS * 16.0 * 2 ** n)))
+
+
+def stream_memory_bytes(n: int, settings: int, chunk: int | None = None, outcomes: int = 2) -> float:
+    """Peak bytes of the streaming mode for `settings` distinct settings of an n-spin family.
+
+    Model: a chunk of c = min(settings, chunk) settings holds STREAM_VECTORS complex state vectors
+    (16 bytes per amplitude) per column at its peak: the inputs' and branches' states, the gate
+    application's two temporaries, and the combined amplitudes of both ancilla outcomes; plus the
+    (settings, outcomes) float result. Estimated, checked against tracemalloc within 1.5x.
+    """
+    c = min(int(settings), int(chunk or stream_chunk(n)))
+    return STREAM_VECTORS * 16.0 * 2 ** n * max(c, 1) + 8.0 * settings * outcomes
 
 
 def clear_cache() -> None:
@@ -72,6 +107,49 @@ def apply_gate(gate, qubits, states, n):
     axes = [n - 1 - q for q in reversed(qubits)]
     t = np.tensordot(gate.reshape((2,) * (2 * k)), t, axes=(list(range(k, 2 * k)), axes))
     return np.moveaxis(t, list(range(k)), axes).reshape(states.shape)
+
+
+def apply_gate_rows(gate, qubits, states, n):
+    """`gate` on every row of states (K x 2^n, one state per row; qiskit order as in apply_gate).
+
+    One- and two-qubit gates are applied slice by slice (out_r = sum_c gate[r, c] x_c over the
+    2^k sub-arrays with fixed gate-qubit bits), skipping zero entries (rz, zz are diagonal);
+    larger gates through np.tensordot.
+    """
+    k = len(qubits)
+    if k > 2:
+        t = states.reshape((-1,) + (2,) * n)
+        axes = [1 + n - 1 - q for q in reversed(qubits)]
+        t = np.tensordot(t, gate.reshape((2,) * (2 * k)), axes=(axes, list(range(k, 2 * k))))
+        return np.ascontiguousarray(np.moveaxis(t, list(range(n + 1 - k, n + 1)), axes)).reshape(states.shape)
+    if k == 1:
+        v = states.reshape(-1, 2, 2 ** qubits[0])
+        part = lambda arr, c: arr[:, c]                          # noqa: E731
+    else:
+        qa, qb = qubits
+        hi, lo = max(qa, qb), min(qa, qb)
+        v = states.reshape(-1, 2, 2 ** (hi - lo - 1), 2, 2 ** lo)
+
+        def part(arr, c):                                        # bit 0 of c: qubits[0], bit 1: qubits[1]
+            a, b = c & 1, c >> 1
+            return arr[:, b, :, a, :] if qb == hi else arr[:, a, :, b, :]
+    out = np.empty_like(v)
+    dim = 2 ** k
+    for r in range(dim):
+        o = part(out, r)
+        first = True
+        for c in range(dim):
+            g = gate[r, c]
+            if g == 0:
+                continue
+            if first:
+                np.multiply(part(v, c), g, out=o)
+                first = False
+            else:
+                o += g * part(v, c)
+        if first:
+            o[...] = 0
+    return out.reshape(states.shape)
 
 
 def product_states(angles) -> np.ndarray:
@@ -290,6 +368,11 @@ class FastFamily:
         self.family = family
         self.tables = evolution_tables(family)
         self.n = family.inputs.n_qubits
+        self.streaming = self.n > MAX_FAST_QUBITS
+        self.chunk = stream_chunk(self.n)
+        if self.streaming:
+            require_memory(f"fast-path streaming states of {self.n} spins ({self.chunk} settings per chunk)",
+                           stream_memory_bytes(self.n, self.chunk, self.chunk))
         self.n_anc = family.circuit.num_qubits - self.n
         terms, slots = self.tables.terms, self.tables.slots
         table = family.insertions
@@ -347,6 +430,8 @@ class FastFamily:
             (G, 2^m) probabilities over outcomes (bit k = classical bit k of the family's read-out).
         """
         rows, inputs = np.asarray(rows, int), np.asarray(inputs, int)
+        if self.streaming:
+            return self._stream_probabilities(np.atleast_2d(np.asarray(angles, float)), rows, inputs, part)
         out = np.zeros((len(rows), self.n_outcomes))
         needed = sorted({ins.position for r in set(rows.tolist()) for ins in self.rows[r]})
         fwd, final = self.tables.states(angles, needed)
@@ -358,6 +443,68 @@ class FastFamily:
             branches = self._branches(self.rows[j], fwd, final, suf, cols)
             out[sel] = self._marginal(self._combine(branches, self.lam[j]))
         return out
+
+    # ---------------------------------------------------------------- streaming mode
+    def _stream_probabilities(self, angles, rows, inputs, part):
+        """probabilities() without dense tables: chunks of settings swept forward (module docstring)."""
+        n, G = self.n, len(rows)
+        out = np.zeros((G, self.n_outcomes))
+        if G == 0:
+            return out
+        pos = np.array([self.rows[j][0].position if self.rows[j] else -1 for j in range(len(self.rows))])[rows]
+        order = np.lexsort((inputs, pos))              # chunks of settings with nearby insertion points
+        one = HGate().to_matrix() @ RZGate(_BASIS_ANGLE[part]).to_matrix()
+        observed = [q for q in range(n) if self.tables.observed[q]]
+        gates = self.tables.gates
+        for start in range(0, G, self.chunk):
+            sel = order[start:start + self.chunk]
+            used, col = np.unique(inputs[sel], return_inverse=True)
+            col = col.ravel()
+            x0 = np.ascontiguousarray(product_states(angles[used]).T)        # (K_c, 2^n)
+            s_pos = pos[sel]
+            by_pos = np.argsort(s_pos, kind="stable")
+            s_pos_sorted = s_pos[by_pos]
+            x1 = np.zeros((len(sel), 2 ** n), complex) if self.n_anc else None
+            live = 0                                                       # branches started so far
+            for p, (qubits, g) in enumerate(gates):
+                x0 = apply_gate_rows(g, qubits, x0, n)
+                if x1 is None:
+                    continue
+                if live:
+                    x1[:live] = apply_gate_rows(g, qubits, x1[:live], n)
+                stop = int(np.searchsorted(s_pos_sorted, p, side="right"))
+                for b in range(live, stop):                               # branches starting after block p
+                    ins = self.rows[rows[sel[by_pos[b]]]][0]
+                    x1[b] = apply_gate_rows(ins.pauli, ins.qubits, x0[col[by_pos[b]]][None, :], n)[0]
+                live = stop
+            for q in observed:
+                x0 = apply_gate_rows(one, (q,), x0, n)
+                if x1 is not None:
+                    x1[:live] = apply_gate_rows(one, (q,), x1[:live], n)
+            if x1 is None:
+                out[sel] = self._marginal_rows(x0[col])
+                continue
+            lam = np.exp(1j * self.lam[rows[sel[by_pos]], 0])[:, None]
+            amp = np.empty((len(sel), 2, 2 ** n), complex)
+            base = x0[col[by_pos]]
+            amp[:, 0] = base + lam * x1
+            amp[:, 1] = base - lam * x1
+            amp *= 0.5
+            del base
+            out[sel[by_pos]] = self._marginal_rows(amp.reshape(len(sel), -1))
+        return out
+
+    def _marginal_rows(self, amp) -> np.ndarray:
+        """(G, 2^m) outcome probabilities from amplitudes (G, 2^q) (rows; as _marginal)."""
+        q = self.n + self.n_anc
+        G = amp.shape[0]
+        p = (amp.real ** 2 + amp.imag ** 2).reshape((G,) + (2,) * q)
+        drop = tuple(1 + q - 1 - j for j in range(q) if j not in self.measured)
+        if drop:
+            p = p.sum(axis=drop)
+        kept = [j for j in range(q - 1, -1, -1) if j in self.measured]
+        order = [0] + [1 + kept.index(j) for j in reversed(self.measured)]
+        return np.transpose(p, order).reshape(G, self.n_outcomes)
 
     def _branches(self, row, fwd, final, suf, cols):
         """{ancilla bits c (tuple): R x_c (2^n, G_j)} before the ancilla phases."""
