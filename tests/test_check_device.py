@@ -14,16 +14,12 @@ import pytest
 from qhl.cli import main
 from qhl.emulation.check import check_derivatives
 
-from made_up_clusters import TRIO_TOML, small_cluster
-
-TOML = TRIO_TOML
+from made_up_clusters import small_cluster
 
 
 @pytest.fixture
-def cluster(tmp_path):
-    p = tmp_path / "trio.toml"
-    p.write_text(TOML)
-    return str(p)
+def cluster(trio_file):
+    return trio_file
 
 
 def test_device_check_is_consistent_with_predicted_attenuation():

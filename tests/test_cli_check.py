@@ -10,16 +10,10 @@ import pytest
 
 from qhl.cli import main
 
-from made_up_clusters import TRIO_TOML
-
-TOML = TRIO_TOML
-
 
 @pytest.fixture
-def cluster(tmp_path):
-    p = tmp_path / "trio.toml"
-    p.write_text(TOML)
-    return str(p)
+def cluster(trio_file):
+    return trio_file
 
 
 def _args(cluster, *extra):
