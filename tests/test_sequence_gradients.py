@@ -256,3 +256,15 @@ def test_emulated_provider_bound_steps_for_the_delays():
     got = prov.delay_steps_for(ex)
     assert got == [trotter_steps_for(terms, 0.08, 0.8e-2, 2), trotter_steps_for(terms, 0.02, 0.2e-2, 2)]
     assert got[0] > got[1] >= 1
+
+
+def test_estimator_weight_counts_every_segment():
+    # W = sum_a |2 beta_a| of the Hadamard estimator: for an offset (H term 2 pi h Iz, Iz = Z/2, one
+    # Pauli per slot) W = 2 * 2 pi * (1/2) * (total Trotterised time) = 2 pi (t + sum of delays), the
+    # range the shot budget of a sequence gradient needs (common practice: the derivative of
+    # exp(-i 2 pi h Iz tau) is -i 2 pi Iz tau times it)
+    model = build_model(small_cluster(False, 3), free=FREE)
+    ex = Experiment("s", 0.3, 5, 0.8, steps=hahn_phased())
+    fam = sequence_gradient_circuit(model, ex, "offset:S2", 0.12, 3, 2, step_s=0.05)
+    assert abs(fam.insertions.total_weight - 2 * np.pi * (0.12 + 0.08 + 0.08 + 0.03)) < 1e-12
+    assert fam.circuit.num_qubits == 4 and fam.measured_qubits == (0, 1, 2, 3)
