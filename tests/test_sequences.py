@@ -249,13 +249,16 @@ def test_circuits_and_typical_engine_refuse_rather_than_ignore_the_steps():
         TypicalEngine(model).estimate(ex)
 
 
-def test_emulated_provider_refuses_up_front():
+def test_emulated_provider_takes_sequences_and_plans_their_time_zero():
+    # the emulator covers sequences (values checked in tests/test_sequence_gradients.py); after a
+    # preparation S(0) is not fixed by the normalisation, so t = 0 is planned for it, not for the FID
     from qhl.emulation.provider import EmulatedGradientProvider
 
     c = small_cluster(False, 3)
     ex = Experiment("s", 0.3, 5, steps=(Delay(0.1), Pulse(180)))
-    with pytest.raises(QhlInputError, match="circuit emulator"):
-        EmulatedGradientProvider(build_model(c, free=FREE), [c.experiments[0], ex], shots=10)
+    prov = EmulatedGradientProvider(build_model(c, free=FREE), [c.experiments[0], ex], shots=10, steps=2)
+    plan = prov.step_plan({c.experiments[0].name: [0.0, 0.1], "s": [0.0, 0.1]})
+    assert sorted(plan) == sorted([(c.experiments[0].name, 0.1), ("s", 0.0), ("s", 0.1)])
 
 
 def test_example_cluster_file_gives_the_hahn_maxwell_echo_top():

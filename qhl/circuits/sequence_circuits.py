@@ -21,6 +21,16 @@ Steps per delay (`delay_steps`): an integer for every delay, a sequence with one
 (delays in the order they act, repeats unrolled), or None: proportional to the delay's length,
 r_d = max(1, ceil(tau / dt)) with dt = `step_s` or, by default, the acquisition's step t / steps
 (so halving dt halves every step length of the whole circuit).
+
+Gradient families (`sequence_gradient_circuit`, Hadamard test). Pulses carry no parameter, so by the
+product rule over the factors of U_trot(t) W_trot, dS_trot/dh_n is the sum over every Trotterised
+segment (each delay and the acquisition) of that segment's insertion-point sum, exactly as for the
+free evolution (qhl.circuits.gradient_circuits): an insertion point a = (segment, slot s, Pauli k) has
+beta_a = tau_s 2 pi s_n g_{n,k} with tau_s the slot length of its own segment, the controlled Pauli
+is placed right after its block inside that segment, and
+    dS_trot/dh_n = sum_segments sum_a (2 beta_a) <Y (x) A>_a .
+These are exact derivatives of the Trotterised sequence signal (not of the exact one; they converge
+to qhl.exact.sequence_engine's gradient as every step length shrinks).
 """
 
 import dataclasses
@@ -28,17 +38,20 @@ import math
 
 import numpy as np
 from qiskit import QuantumCircuit
+from qiskit.circuit import Parameter, ParameterVector
 
 from ..base.errors import QhlInputError
 from ..exact.sequence_engine import _pulse_qubits
 from ..spins.cluster import Delay, Pulse, flat_steps
 from .circuit_family import CircuitFamily, InsertionTable, count_build
-from .gradient_circuits import _prepare, _read_out, _system_observable
+from .gradient_circuits import (_ancilla_phase, _controlled_pauli, _evolve, _prepare, _read_out, _require_points,
+                                _system_observable, insertion_points)
 from .state_prep import input_ensemble
-from .trotter import check_evolution_arguments, trotter_circuit, trotter_terms
+from .trotter import check_evolution_arguments, product_formula_slots, trotter_circuit, trotter_terms
 
 __all__ = ["PlannedDelay", "PlannedPulse", "sequence_plan", "acquisition_terms", "append_pulse",
-           "preparation_circuit", "sequence_signal_circuit", "sequence_counts", "pulse_counts", "PULSE_LAYERS",
+           "preparation_circuit", "sequence_signal_circuit", "sequence_segments", "sequence_insertion_points",
+           "sequence_gradient_circuit", "sequence_counts", "pulse_counts", "PULSE_LAYERS",
            "ASSUMPTIONS"]
 
 PULSE_LAYERS = 5     # RGate in [cx, rz, sx, x]: rz sx rz sx rz at most (common practice; tested on transpiles)
@@ -226,4 +239,87 @@ def sequence_signal_circuit(model, experiment, time: float = 0.0, steps: int = 1
                            evolution=None)
     family.preparation = tuple(plan)
     family.sequence = {"terms": terms, "plan": tuple(plan)}   # for the emulator's fast path (qhl.emulation)
+    return family
+
+
+# ---------------------------------------------------------------- gradients
+def sequence_segments(terms, plan, time: float, steps: int, order: int) -> list:
+    """The evolution in the order it acts: ("delay" | "acquisition", slots) per Trotterised segment
+    (slots from product_formula_slots, the same as trotter_circuit writes) and ("pulse", PlannedPulse)."""
+    out = []
+    for item in plan:
+        if isinstance(item, PlannedDelay):
+            out.append(("delay", product_formula_slots(len(terms.groups), item.seconds, item.steps, order)))
+        else:
+            out.append(("pulse", item))
+    out.append(("acquisition", product_formula_slots(len(terms.groups), time, steps, order)))
+    return out
+
+
+def sequence_insertion_points(terms, segments, parameter: str) -> list:
+    """[(segment index, InsertionPoint)] of `parameter` over every Trotterised segment, in circuit order
+    (slot indices are local to their segment; pulses have none)."""
+    return [(i, pt) for i, (kind, body) in enumerate(segments) if kind != "pulse"
+            for pt in insertion_points(terms, body, parameter)]
+
+
+def sequence_gradient_circuit(model, experiment, parameter: str = "", time: float = 0.0, steps: int = 1,
+                              order: int = 1, *, delay_steps=None, step_s=None, grouping="pairs",
+                              ordering="offsets-first", scheme="product", values_hz=None) -> CircuitFamily:
+    """The Hadamard-test family whose weighted expectation is dS_trot/dh_n (1/Hz) of a sequence experiment.
+
+    Args:
+        parameter: name of h_n (any model parameter).
+        Other arguments as in sequence_signal_circuit (time may be 0: the delays still depend on h_n).
+
+    Returns:
+        CircuitFamily (kind 'gradient', one ancilla after the spins); `insertions.rows` describe
+        (segment, step, slot, block, pauli, beta); `evolution` is None (exact_expectation needs
+        method='statevector' or 'density'); `preparation` the plan; `sequence` {terms, plan,
+        segments, points} for the emulator's fast path.
+
+    Raises:
+        QhlInputError: unknown parameter, bad time / steps / order / delay steps, or a parameter that
+            acts in no segment.
+    """
+    model.parameter(parameter)
+    check_evolution_arguments(time, steps, order)
+    terms = acquisition_terms(model, experiment, values_hz, grouping, ordering)
+    plan = sequence_plan(model, experiment, time, steps, delay_steps, step_s)
+    segments = sequence_segments(terms, plan, time, steps, order)
+    located = sequence_insertion_points(terms, segments, parameter)
+    _require_points(located, parameter, experiment)
+    n = model.n_spins
+    anc = n
+    qc = QuantumCircuit(n + 1, name="sequence-gradient")
+    prep = _prepare(qc, n)
+    qc.h(anc)
+    phi = ParameterVector("ins", len(located))
+    gadgets = [{} for _ in segments]
+    for a, (i, pt) in enumerate(located):
+        gadgets[i].setdefault((pt.slot, pt.group, pt.block), []).append(_controlled_pauli(anc, pt, phi[a]))
+    for i, (kind, body) in enumerate(segments):
+        if kind == "pulse":
+            append_pulse(qc, body)
+        else:
+            _evolve(qc, terms, body, gadgets=gadgets[i])
+    lam = Parameter("anc_phase")
+    qc.p(lam, anc)
+    qc.h(anc)
+    basis = _read_out(qc, model)
+    k = len(located)
+    values = np.zeros((k, k + 1))
+    values[np.arange(k), np.arange(k)] = np.pi
+    values[:, -1] = [_ancilla_phase(pt) for _, pt in located]
+    weights = np.array([2 * pt.beta for _, pt in located])
+    rows = tuple({"segment": i, "segment_kind": segments[i][0], **pt.describe()} for i, pt in located)
+    table = InsertionTable((*phi, lam), values, weights, rows)
+    count_build()
+    family = CircuitFamily(kind="gradient", circuit=qc, observable=_system_observable(model, n + 1, (anc,)),
+                           inputs=input_ensemble(model, scheme), prep=prep, basis=basis, insertions=table,
+                           measured_qubits=(*model.observed_qubits(), anc), time=float(time), steps=int(steps),
+                           order=int(order), parameters=(parameter,),
+                           step_circuit=trotter_circuit(terms, time / steps, 1, order), evolution=None)
+    family.preparation = tuple(plan)
+    family.sequence = {"terms": terms, "plan": tuple(plan), "segments": segments, "points": tuple(located)}
     return family

@@ -17,6 +17,9 @@ Hadamard-test families (qhl.circuits.gradient_circuits) are untouched by the evo
   Signal: U psi_k.
   Pulse-sequence signal (qhl.circuits.sequence_circuits): U = U_acq W_trot, the delays' blocks and
       the pulses' RGate matrices in circuit order (`sequence_tables`), psi_k evolved gate by gate.
+  Pulse-sequence gradient: as the gradient above on that flat gate sequence, position p of an
+      insertion point = first gate of its segment (delay or acquisition) + its slot's and block's
+      place inside the segment (`EvolutionTables.segment_offsets`).
 followed by the read-out rz(mu), h on every observed spin. U_{<=p} psi_k (the states after
 block p, shared by every setting of input k) come from one forward sweep and the dense suffixes
 U_{>p} from one backward sweep; both are cached per evolution (`EvolutionTables`), so the families of
@@ -48,6 +51,7 @@ from ..base.errors import QhlInputError
 from ..base.memory import require_memory
 from ..circuits.circuit_family import _BASIS_ANGLE
 from ..circuits.gradient_circuits import insertion_points
+from ..circuits.sequence_circuits import sequence_insertion_points, sequence_segments
 from ..circuits.trotter import append_block_rotations, product_formula_slots, trotter_terms
 
 __all__ = ["FAST_KINDS", "MAX_FAST_QUBITS", "supports_fast_path", "FastFamily", "EvolutionTables",
@@ -68,12 +72,12 @@ _CACHE_BYTES = 1.5 * 2 ** 30   # tables above this are not kept for the whole ev
 def supports_fast_path(family) -> bool:
     """True for signal, Hadamard-gradient and Hessian families with a recorded evolution (Hessians up
     to MAX_FAST_QUBITS spins; signal and gradient beyond it in the streaming mode, memory permitting),
-    and for the signal families of pulse-sequence experiments (qhl.circuits.sequence_circuits) up to
-    MAX_FAST_QUBITS spins."""
+    and for the signal and Hadamard-gradient families of pulse-sequence experiments
+    (qhl.circuits.sequence_circuits) up to MAX_FAST_QUBITS spins."""
     if family.kind not in FAST_KINDS:
         return False
     if family.evolution is None:
-        return (family.kind == "signal" and getattr(family, "sequence", None) is not None
+        return (family.kind in ("signal", "gradient") and getattr(family, "sequence", None) is not None
                 and family.inputs.n_qubits <= MAX_FAST_QUBITS)
     return family.inputs.n_qubits <= MAX_FAST_QUBITS or family.kind in STREAM_KINDS
 
@@ -303,22 +307,29 @@ def sequence_tables(family) -> EvolutionTables:
     tables = EvolutionTables(terms, [])
     cache, gates = {}, []
 
+    segment_offsets = []
+
     def evolve(seconds, steps):
+        offsets = []
         for s in product_formula_slots(len(terms.groups), seconds, steps, family.order):
+            offsets.append(len(gates))
             for bi, block in enumerate(terms.groups[s.group].blocks):
                 key = (s.group, bi, float(s.duration))
                 if key not in cache:
                     cache[key] = _block_gate(block, s.duration, n)
                 gates.append(cache[key])
+        segment_offsets.append(offsets)
 
     for item in spec["plan"]:
         if hasattr(item, "steps"):
             evolve(item.seconds, item.steps)
         else:
+            segment_offsets.append(None)
             mat = RGate(item.theta, item.phi).to_matrix()
             gates.extend(((q,), mat) for q in item.qubits)
     evolve(family.time, family.steps)
     tables.gates = gates
+    tables.segment_offsets = segment_offsets   # per plan item then the acquisition: slot -> flat index
     tables.observed = tuple(bool(o) for o in family.inputs.observed)
     return tables
 
@@ -378,6 +389,12 @@ class FastFamily:
         table = family.insertions
         if family.kind == "signal":
             self.rows = [()]
+        elif family.kind == "gradient" and family.evolution is None:       # pulse sequence
+            segments = sequence_segments(terms, family.sequence["plan"], family.time, family.steps, family.order)
+            located = sequence_insertion_points(terms, segments, family.parameters[0])
+            pts = [self._insertion(p, 0, i) for i, p in located]
+            self._check_rows(pts, len(pts), lambda j: (j,))
+            self.rows = [(pts[j],) for j in range(len(pts))]
         elif family.kind == "gradient":
             pts = [self._insertion(p, 0) for p in insertion_points(terms, slots, family.parameters[0])]
             self._check_rows(pts, len(pts), lambda j: (j,))
@@ -393,11 +410,13 @@ class FastFamily:
         self.measured = list(family.measured_qubits)
         self.n_outcomes = 2 ** len(self.measured)
 
-    def _insertion(self, pt, ancilla):
+    def _insertion(self, pt, ancilla, segment=None):
         mat = np.array([[1.0 + 0j]])
         for ch in reversed(pt.pauli):             # pt.pauli lists the lowest qubit first
             mat = np.kron(mat, _PAULI[ch])
-        return _Insertion(self.tables.position(pt.slot, pt.block), pt.qubits, (-1j) ** pt.weight * mat, ancilla)
+        position = (self.tables.position(pt.slot, pt.block) if segment is None
+                    else self.tables.segment_offsets[segment][pt.slot] + pt.block)
+        return _Insertion(position, pt.qubits, (-1j) ** pt.weight * mat, ancilla)
 
     def _check_rows(self, points, n_rows, columns):
         table = self.family.insertions

@@ -15,6 +15,15 @@ Trotter steps r(t), in this order of precedence:
               <= eps (also where the signal search declines or hits its time limit: the bound is
               valid for every observable, so it is never too few).
 
+Pulse-sequence experiments (steps): the families are qhl.circuits.sequence_circuits' signal and
+Hadamard-gradient families (delays Trotterised, ideal pulses as rotations, then the acquisition).
+The acquisition's r(t) is chosen as above, except that the signal-based search (free evolution
+only) is replaced by the bound. The delays' steps: with `steps` fixed, every delay gets that count;
+otherwise the commutator bound holds the delays to eps together, each delay tau_d to
+eps tau_d / sum_d tau_d (so by the triangle inequality the whole propagator is within 2 eps, the
+acquisition's eps plus the delays'; common practice). t = 0 is estimated too (after a
+preparation S(0) and dS/dh are not fixed by the normalisation).
+
 Calibration (`family_seconds`): the measured time of one signal and one gradient family at a
 given (t, r) with the same estimator (fast path when noiseless), on its own random stream; the
 run-time prediction built from it is qhl.learning.emulated_run's.
@@ -26,10 +35,10 @@ import numpy as np
 
 from ..base.errors import QhlInputError
 from ..circuits.gradient_circuits import gradient_circuit, signal_circuit
+from ..circuits.sequence_circuits import acquisition_terms, sequence_gradient_circuit, sequence_signal_circuit
 from ..exact.provider import GradientProvider
-from ..circuits.trotter import trotter_terms
 from ..circuits.trotter_bounds import trotter_steps_for
-from ..spins.cluster import refuse_steps
+from ..spins.cluster import Delay, flat_steps
 from ..circuits.signal_trotter import signal_trotter_steps
 from .derivatives import as_generator, check_shots, estimate_family
 
@@ -63,8 +72,6 @@ class EmulatedGradientProvider(GradientProvider):
 
     def __init__(self, model, experiments, shots: int, seed=0, steps=None, eps: float = 1e-3, order: int = 2,
                  noise=None, signal_target=None, engine=None, unit_hz: float = 1.0, step_time_limit_s: float = 10.0):
-        for ex in experiments:
-            refuse_steps(ex, "the circuit emulator")
         self.model = model
         self.experiments = {ex.name: ex for ex in experiments}
         self.parameter_names = tuple(model.free)
@@ -82,6 +89,7 @@ class EmulatedGradientProvider(GradientProvider):
         self.signal_target, self.engine = signal_target, engine
         self.unit_hz, self.step_time_limit_s = float(unit_hz), float(step_time_limit_s)
         self._steps_cache = {}
+        self._delay_cache = {}
         self.step_sources = {}
         self.step_search_seconds = {}
 
@@ -91,10 +99,10 @@ class EmulatedGradientProvider(GradientProvider):
         if self.steps is not None:
             self.step_sources[key] = "fixed"
             return int(self.steps)
-        if self.signal_target is not None:
+        if self.signal_target is not None and not _has_steps(experiment):
             if key not in self._steps_cache:
                 t0 = _time.perf_counter()
-                bound = max(1, trotter_steps_for(trotter_terms(self.model, experiment, self.model.values_hz),
+                bound = max(1, trotter_steps_for(acquisition_terms(self.model, experiment, self.model.values_hz),
                                                  time, self.eps, self.order))
                 r, _ = signal_trotter_steps(self.model, experiment, self.engine, float(time), self.order,
                                             self.signal_target, self.unit_hz, r_max=bound,
@@ -104,9 +112,37 @@ class EmulatedGradientProvider(GradientProvider):
             r, source = self._steps_cache[key]
             self.step_sources[key] = source
             return r
-        terms = trotter_terms(self.model, experiment, values_all)
+        terms = acquisition_terms(self.model, experiment, values_all)
         self.step_sources[key] = "bound"
         return max(1, trotter_steps_for(terms, time, self.eps, self.order))
+
+    def delay_steps_for(self, experiment) -> list:
+        """Steps of each delay of a sequence experiment, in the order they act (module docstring):
+        the fixed count, or the bound at the model's values (cached per experiment)."""
+        delays = [st.seconds for st in flat_steps(experiment.steps) if isinstance(st, Delay)]
+        if self.steps is not None:
+            return [int(self.steps)] * len(delays)
+        if experiment.name not in self._delay_cache:
+            terms = acquisition_terms(self.model, experiment, self.model.values_hz)
+            total = float(sum(delays))
+            self._delay_cache[experiment.name] = [
+                max(1, trotter_steps_for(terms, d, self.eps * d / total, self.order)) if d > 0 else 1 for d in delays]
+        return self._delay_cache[experiment.name]
+
+    def signal_family(self, experiment, time, steps, values_all=None):
+        """The signal family of (experiment, t, r): the sequence family when the experiment has steps."""
+        if _has_steps(experiment):
+            return sequence_signal_circuit(self.model, experiment, float(time), int(steps), self.order,
+                                           delay_steps=self.delay_steps_for(experiment), values_hz=values_all)
+        return signal_circuit(self.model, experiment, float(time), int(steps), self.order, values_hz=values_all)
+
+    def gradient_family(self, experiment, name, time, steps, values_all=None):
+        """The Hadamard gradient family of h_name at (experiment, t, r) (sequence family with steps)."""
+        if _has_steps(experiment):
+            return sequence_gradient_circuit(self.model, experiment, name, float(time), int(steps), self.order,
+                                             delay_steps=self.delay_steps_for(experiment), values_hz=values_all)
+        return gradient_circuit(self.model, experiment, name, float(time), int(steps), self.order,
+                                values_hz=values_all)
 
     def step_plan(self, times_by_experiment, progress=None) -> dict:
         """{(experiment name, t): r} for every non-zero time, at the model's values (no shots spent).
@@ -115,7 +151,8 @@ class EmulatedGradientProvider(GradientProvider):
         """
         values_all = self.model.values_hz.copy()
         points = [(name, float(t)) for name, times in times_by_experiment.items()
-                  for t in np.atleast_1d(np.asarray(times, float)) if t != 0]
+                  for t in np.atleast_1d(np.asarray(times, float))
+                  if t != 0 or _has_steps(self.experiments.get(name))]
         plan = {}
         for k, (name, t) in enumerate(points):
             if name not in self.experiments:
@@ -138,14 +175,12 @@ class EmulatedGradientProvider(GradientProvider):
         rng = np.random.default_rng(calibration_seed)
         names = self.parameter_names[:1] if parameters is None else tuple(parameters)
         t0 = _time.perf_counter()
-        estimate_family(signal_circuit(self.model, experiment, float(time), int(steps), self.order), self.shots, rng,
-                        self.noise)
+        estimate_family(self.signal_family(experiment, time, steps), self.shots, rng, self.noise)
         signal_s = _time.perf_counter() - t0
         gradient_s = {}
         for name in names:
             t0 = _time.perf_counter()
-            estimate_family(gradient_circuit(self.model, experiment, name, float(time), int(steps), self.order),
-                            self.shots, rng, self.noise)
+            estimate_family(self.gradient_family(experiment, name, time, steps), self.shots, rng, self.noise)
             gradient_s[name] = _time.perf_counter() - t0
         return signal_s, gradient_s
 
@@ -160,8 +195,9 @@ class EmulatedGradientProvider(GradientProvider):
         values_all = self.model.values_hz.copy()
         values_all[self.model.free_indices] = np.asarray(values_hz, float)
         out = {}
-        total = sum(int(np.count_nonzero(np.atleast_1d(np.asarray(t, float))))
-                    for t in times_by_experiment.values()) * (1 + len(self.parameter_names))
+        total = sum(np.atleast_1d(np.asarray(t, float)).size if _has_steps(self.experiments.get(name))
+                    else int(np.count_nonzero(np.atleast_1d(np.asarray(t, float))))
+                    for name, t in times_by_experiment.items()) * (1 + len(self.parameter_names))
         done = 0
 
         def tick(label):
@@ -179,14 +215,17 @@ class EmulatedGradientProvider(GradientProvider):
             sig = np.ones(len(times), complex)
             grad = np.zeros((len(self.parameter_names), len(times)), complex)
             for k, t in enumerate(times):
-                if t == 0:
+                if t == 0 and not _has_steps(ex):
                     continue
                 r = self.steps_for(ex, t, values_all)
-                sig[k] = self._estimate(signal_circuit(self.model, ex, t, r, self.order, values_hz=values_all))
+                sig[k] = self._estimate(self.signal_family(ex, t, r, values_all))
                 tick(f"{name} t={t:.3g} s signal")
                 for p, nm in enumerate(self.parameter_names):
-                    grad[p, k] = self._estimate(gradient_circuit(self.model, ex, nm, t, r, self.order,
-                                                                 values_hz=values_all))
+                    grad[p, k] = self._estimate(self.gradient_family(ex, nm, t, r, values_all))
                     tick(f"{name} t={t:.3g} s {nm}")
             out[name] = (sig, grad)
         return out
+
+
+def _has_steps(experiment) -> bool:
+    return bool(getattr(experiment, "steps", ()))
