@@ -77,6 +77,22 @@ def test_steps_override_and_plan_without_shots():
     assert js["predicted_seconds"] == pytest.approx(plan.predicted_seconds) and js["trotter_target"] is None
 
 
+def test_plan_counts_time_zero_of_a_sequence_experiment():
+    # after a pulse sequence S(0) and dS/dh are not fixed by the normalisation, so the provider estimates
+    # t = 0 too and the time prediction must count its families (common practice: the plan counts what runs)
+    from qhl.spins.cluster import Delay, Pulse
+    model, fid = small_model(False, n=3)
+    seq = Experiment("echo", 0.3, 4, steps=(Delay(0.05), Pulse(180.0, 90.0), Delay(0.05)))
+    prov = EmulatedGradientProvider(model, [fid, seq], shots=100, steps=3, signal_target=1e-3,
+                                    engine=ExactEngine(model))
+    data = Dataset(signals={fid.name: (np.array([0.0, 0.1, 0.2]), np.ones(3, complex), 0.01),
+                            "echo": (np.array([0.0, 0.1, 0.2]), np.ones(3, complex), 0.01)})
+    plan = plan_emulated_run(prov, data, max_iter=1, max_minutes=None)
+    assert sorted(plan.steps) == sorted([(fid.name, 0.1), (fid.name, 0.2), ("echo", 0.0), ("echo", 0.1),
+                                         ("echo", 0.2)])
+    assert plan.families_per_evaluation == 5 * (1 + len(model.free))
+
+
 def test_steps_with_exact_gradients_is_refused():
     with pytest.raises(QhlInputError) as info:
         learn(four_spin_cluster(), gradients="exact", steps=3)

@@ -144,8 +144,13 @@ def plan_emulated_run(provider, dataset, max_iter: int, max_minutes: float | Non
     """
     if max_minutes is not None and (not np.isfinite(max_minutes) or max_minutes <= 0):
         raise QhlInputError(f"expected --max-minutes > 0, got {max_minutes!r}", key="--max-minutes")
-    times = {name: np.sort(np.asarray(v[0], float)[np.asarray(v[0], float) != 0])
-             for name, v in dataset.signals.items()}
+    def estimated_times(name, t):
+        # t = 0 needs no shots after a bare 90-degree pulse (S = 1, dS/dh = 0), but after a pulse sequence
+        # the provider estimates it too
+        t = np.asarray(t, float)
+        return np.sort(t if getattr(provider.experiments.get(name), "steps", ()) else t[t != 0])
+
+    times = {name: estimated_times(name, v[0]) for name, v in dataset.signals.items()}
     times = {name: t for name, t in times.items() if t.size}
     n_params = len(provider.parameter_names)
     evaluations = int(max_iter) + 1
