@@ -36,8 +36,10 @@ parameter binding, cached transpiled templates). Every family draws its settings
 streams as one at a time (batch=0, estimate_family per family), so the rows agree in distribution
 (tests/test_check_batch.py). Rows are added per finished group, so Ctrl-C keeps every group done
 before it; progress is reported after each group. Noiseless runs stay one family at a time (the
-numpy fast path has no per-call cost to share; Ctrl-C keeps every finished family), and device
-mode runs each family's SamplerV2 jobs as before.
+numpy fast path has no per-call cost to share; Ctrl-C keeps every finished family). In device
+mode the PUBs of a group's families go to the sampler together
+(qhl.emulation.sampler_path.run_sampler_batch: as few sampler jobs as `max_circuits` allows, one
+without it), the same streams drawing the settings.
 
 Power and bias (POWER_RULE, BIAS_RULE): a row can detect an error as large as the value it tests
 only when stderr <= max(|exact|, |trotter_exact|) / POWER_RATIO (an error of 100% of the value then
@@ -186,6 +188,32 @@ def _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device,
     return est, atten, runner
 
 
+def _device_batch(model, ex, group, t, steps, order, shots, rng, device, sampler_options):
+    """({(kind, pars): (ComplexEstimate, predicted Attenuation)}, sampler jobs, PUBs) of a group of
+    families in device mode, their PUBs sent together (qhl.emulation.sampler_path.run_sampler_batch).
+    Settings come from the same streams as one family at a time (_device_estimate); the sampler
+    seeds from one further stream."""
+    from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit
+    from .device_fidelity import target_attenuation
+    from .estimate import ComplexEstimate
+    from .sampler_path import SamplerRunner, run_sampler_batch
+    jobs, runners = [], []
+    for kind, pars in group:
+        family = gradient_circuit(model, ex, pars[0], t, steps, order) if kind == "gradient" else \
+            hessian_circuit(model, ex, tuple(pars), t, steps, order)
+        runner = SamplerRunner(family, device=device, **(sampler_options or {}))
+        re, im = rng.spawn(2)
+        jobs += [(runner, shots, re, "re"), (runner, shots, im, "im")]
+        runners.append(runner)
+    got, n_jobs, n_pubs = run_sampler_batch(jobs, rng.spawn(1)[0])
+    out = {}
+    for n, (task, runner) in enumerate(zip(group, runners)):
+        atten = target_attenuation(runner.transpiled, runner.measured_physical_qubits(), runner.masks,
+                                   runner.backend.target)
+        out[task] = (ComplexEstimate(got[2 * n], got[2 * n + 1]), atten)
+    return out, n_jobs, n_pubs
+
+
 def _groups(tasks, batch):
     """The tasks in consecutive groups of `batch` families (0: one at a time)."""
     size = int(batch) if batch else 1
@@ -292,8 +320,8 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
     Raises:
         QhlInputError: bad time, shots, steps, unknown parameter or experiment; an unknown device or
             target (listing the valid names) or a cluster wider than the device or target (both numbers).
-        batch: families per Aer batch (module docstring; 0: one family at a time through
-            estimate_family, the previous scheme). Not used in device mode.
+        batch: families per Aer or sampler batch of noisy and device runs (module docstring; 0: one
+            family at a time through estimate_family, the previous scheme).
     """
     t = check_time(time)
     routing_target = None
@@ -337,9 +365,14 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
             _, _, hess_exact = engine.hessian(ex, [t])
             hess_trot = trotter_hessian_exact(model, ex, t, steps, order, names)
         k = 0
-        batched = bool(batch) and device is None and noise is not None and not noise.is_noiseless
+        batched = bool(batch) and (device is not None or (noise is not None and not noise.is_noiseless))
         for group in _groups(tasks, batch if batched else 0):
-            if batched:
+            if batched and device is not None:
+                ests, n_jobs, n_pubs = _device_batch(model, ex, group, t, steps, order, shots, rng, device,
+                                                     sampler_options)
+                report.sampler_jobs = (report.sampler_jobs or 0) + n_jobs
+                report.sampler_pubs = (report.sampler_pubs or 0) + n_pubs
+            elif batched:
                 ests = _batched_estimates(model, ex, group, t, steps, order, shots, rng, noise)
             for kind, pars in group:
                 if kind == "gradient":
@@ -352,7 +385,9 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
                     exact, trot = complex(hess_exact[fi, fj, 0]), complex(hess_trot[i, j])
                     label = f"{pars[0]} x {pars[1]}"
                 atten = None
-                if device is not None:
+                if batched and device is not None:
+                    est, atten = ests[(kind, pars)]
+                elif device is not None:
                     est, atten, runner = _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device,
                                                           sampler_options)
                     report.sampler_jobs = (report.sampler_jobs or 0) + runner.jobs_run
