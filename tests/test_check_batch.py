@@ -122,3 +122,18 @@ def test_device_batched_rows_agree_and_share_sampler_jobs():
     capped = _check(8, sampler_options={"max_circuits": 40}, **kw)
     circuits = sum(r["circuits_run"] for r in capped.rows)
     assert capped.sampler_jobs == -(-circuits // 40)
+
+
+def test_noisy_hessian_rows_batched_with_gradients(aer_calls):
+    """--hessian with noise: gradient (1 ancilla) and Hessian (2 ancillas) families share the group's Aer run
+    calls (one per shot count); 2 parameters give 2 gradients + 3 entries = 10 rows, each within |z| < 4 of
+    one family at a time (false-failure rate <= 10 x 6.3e-5, normal tail)."""
+    kw = dict(params=PARAMS[:2], shots=1500, seed=4, hessian=True)
+    batched = _check(8, **kw)
+    calls = list(aer_calls)
+    one = _check(0, **kw)
+    assert len(calls) == len(set(calls)) and len(batched.rows) == len(one.rows) == 10
+    assert [r["kind"] for r in batched.rows] == ["gradient"] * 4 + ["hessian"] * 6
+    for a, b in zip(one.rows, batched.rows):
+        assert (a["parameter"], a["part"]) == (b["parameter"], b["part"])
+        assert abs(b["emulated"] - a["emulated"]) < 4 * np.hypot(a["stderr"], b["stderr"])

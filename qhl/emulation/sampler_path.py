@@ -14,7 +14,9 @@ n_g shots. A PUB carries one shot count for all its parameter rows, and the n_g 
     ceil(n_g / S) S shots are kept (a multivariate hypergeometric draw from its counts: a random
     subset of i.i.d. shots is i.i.d.; common practice). At most S - 1 extra shots per setting.
 Batching: the PUBs are sent in jobs of at most `max_circuits` bound circuits (parameter rows)
-each; a PUB with more rows is split. The single-shot value is scale_g * a, with a the
+each; a PUB with more rows is split. `run_sampler_batch` sends the PUBs of many families (each
+drawn as by `run`) together under the same cap, so a group of families needs as few sampler jobs
+as `max_circuits` allows (one without it). The single-shot value is scale_g * a, with a the
 observable's eigenvalue on the measured bit string, and the estimator, its standard error and
 the stratified variance are those of FamilyRunner.run (this class only replaces how the shots of
 the distinct settings are produced), so z-scores mean the same on either path.
