@@ -28,8 +28,8 @@ def test_device_check_is_consistent_with_predicted_attenuation():
     pessimistic bound: the exact density-matrix shrink of this family under the device's noise model
     (qiskit-aer, NoiseModel.from_backend) is 0.657 against F R = 0.532 (1.23 F R), so the expected
     Re-row z against the prediction is +2.5; the check therefore tests the interval [predicted,
-    trotter_exact] (DEVICE_RULE). Re: emulated 0.484 +- 0.039, predicted 0.420, noiseless 0.790
-    (z 1.64, z_noiseless -7.9). The true value sits 2.5 sd inside the lower edge and 7 sd inside the
+    trotter_exact] (DEVICE_RULE). Re: emulated 0.446 +- 0.038, predicted 0.420, noiseless 0.790
+    (z 0.68, z_noiseless -9.0; sampler seeded per batch, qhl.emulation.check). The true value sits 2.5 sd inside the lower edge and 7 sd inside the
     upper one, so a false failure needs a 2.5-sd fluctuation (~6e-3 per row). The Re row has power
     and rejects the unattenuated value (z_noiseless < -4): the check sees the noise."""
     rep = check_derivatives(small_cluster(False, 3), 1.0, 2, 30000, 3, parameters=["offset:S0"],
@@ -143,14 +143,15 @@ def test_cli_target_reports_routed_counts(cluster, capsys):
 
 def test_cli_shots_per_pub_sets_the_pub_plan(cluster, capsys):
     """`--shots-per-pub 1` on the device path: every shot is its own parameter row (qhl.emulation.sampler_path's
-    documented plan: setting g appears ceil(n_g / S) times), so 300 shots per part in jobs of at most 16 rows make
-    ceil(300 / 16) = 19 jobs (19 PUBs) per part, 38 for Re and Im; the default plan (one PUB per distinct shot
-    count) needs fewer. Same total shots either way."""
+    documented plan: setting g appears ceil(n_g / S) times), so 600 rows (300 shots per part, Re and Im batched
+    together, qhl.emulation.check's `batch`) in jobs of at most 16 rows make ceil(600 / 16) = 38 jobs; the Re PUB's
+    last 12 rows share job 19 with the Im PUB's first 4, so 39 PUBs. The default plan (one PUB per distinct shot
+    count) needs fewer jobs. Same total shots either way."""
     base = ["check", cluster, "--time", "2e-4", "--steps", "1", "--shots", "300", "--seed", "1", "--param", "offset:A",
             "--device", "fake_lima", "--max-circuits", "16", "--json"]
     assert main(base + ["--shots-per-pub", "1"]) == 0
     one = json.loads(capsys.readouterr().out)
-    assert one["sampler_jobs"] == 38 and one["sampler_pubs"] == 38 and one["shots"] == 600
+    assert one["sampler_jobs"] == 38 and one["sampler_pubs"] == 39 and one["shots"] == 600
     assert main(base) == 0
     default = json.loads(capsys.readouterr().out)
     assert default["sampler_jobs"] < 38 and default["shots"] == 600

@@ -23,7 +23,7 @@ def register(sub):
                    help="emulate on an offline fake backend's noise model through SamplerV2 and compare with the "
                         "exact value times the attenuation predicted from its calibrated error rates")
     p.add_argument("--max-circuits", type=CIRCUITS, metavar="N",
-                   help="with --device: at most N bound circuits per sampler job (default: one job per family)")
+                   help="with --device: at most N bound circuits per sampler job (default: one job per group of 8 families)")
     p.add_argument("--shots-per-pub", type=PUB_SHOTS, metavar="N",
                    help="with --device: a fixed shot count N per PUB (default: one PUB per distinct shot count)")
     p.add_argument("--target", default="all-to-all", metavar="NAME",

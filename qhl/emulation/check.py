@@ -29,6 +29,18 @@ pass manager and the coupling-strength layout search (qhl.circuits.routing.route
 the report's `routing` lists, per family, the routed counts of the whole circuit and of one Trotter
 step beside the all-to-all two-qubit count. Counts only: the emulation itself is unchanged.
 
+Batching (`batch`, default BATCH families; noisy runs, `noise` with a nonzero rate): the families
+(one per row pair) are taken in consecutive groups of `batch` and run together through
+qhl.emulation.runner.run_batch, one Aer run call per shot count for the whole group (runtime
+parameter binding, cached transpiled templates). Every family draws its settings from the same
+streams as one at a time (batch=0, estimate_family per family), so the rows agree in distribution
+(tests/test_check_batch.py). Rows are added per finished group, so Ctrl-C keeps every group done
+before it; progress is reported after each group. Noiseless runs stay one family at a time (the
+numpy fast path has no per-call cost to share; Ctrl-C keeps every finished family). In device
+mode the PUBs of a group's families go to the sampler together
+(qhl.emulation.sampler_path.run_sampler_batch: as few sampler jobs as `max_circuits` allows, one
+without it), the same streams drawing the settings.
+
 Power and bias (POWER_RULE, BIAS_RULE): a row can detect an error as large as the value it tests
 only when stderr <= max(|exact|, |trotter_exact|) / POWER_RATIO (an error of 100% of the value then
 gives |z| >= POWER_RATIO; common practice for a 3-sigma test). When no row can, the verdict is
@@ -51,9 +63,10 @@ from ..circuits.circuit_fidelity import MODEL
 from ..circuits.trotter_reference import trotter_gradient_exact, trotter_hessian_exact
 
 __all__ = ["CheckReport", "check_derivatives", "ATTENUATION_MODEL", "DEVICE_RULE", "Z_LIMIT", "POWER_RATIO", "POWER_RULE", "BIAS_RULE",
-           "annotate_row"]
+           "annotate_row", "BATCH"]
 
 Z_LIMIT = 4.0
+BATCH = 8            # families per Aer batch (benchmarks/bench_emulator.py part 7)
 POWER_RATIO = 3.0
 POWER_RULE = (f"power: stderr <= |value|/{POWER_RATIO:g} with |value| = max(|exact|, |trotter_exact|), so an "
               f"error as large as the value gives |z| >= {POWER_RATIO:g}")
@@ -175,6 +188,85 @@ def _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device,
     return est, atten, runner
 
 
+def _device_batch(model, ex, group, t, steps, order, shots, rng, device, sampler_options):
+    """({(kind, pars): (ComplexEstimate, predicted Attenuation)}, sampler jobs, PUBs) of a group of
+    families in device mode, their PUBs sent together (qhl.emulation.sampler_path.run_sampler_batch).
+    Settings come from the same streams as one family at a time (_device_estimate); the sampler
+    seeds from one further stream."""
+    from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit
+    from .device_fidelity import target_attenuation
+    from .estimate import ComplexEstimate
+    from .sampler_path import SamplerRunner, run_sampler_batch
+    jobs, runners = [], []
+    for kind, pars in group:
+        family = gradient_circuit(model, ex, pars[0], t, steps, order) if kind == "gradient" else \
+            hessian_circuit(model, ex, tuple(pars), t, steps, order)
+        runner = SamplerRunner(family, device=device, **(sampler_options or {}))
+        re, im = rng.spawn(2)
+        jobs += [(runner, shots, re, "re"), (runner, shots, im, "im")]
+        runners.append(runner)
+    got, n_jobs, n_pubs = run_sampler_batch(jobs, rng.spawn(1)[0])
+    out = {}
+    for n, (task, runner) in enumerate(zip(group, runners)):
+        atten = target_attenuation(runner.transpiled, runner.measured_physical_qubits(), runner.masks,
+                                   runner.backend.target)
+        out[task] = (ComplexEstimate(got[2 * n], got[2 * n + 1]), atten)
+    return out, n_jobs, n_pubs
+
+
+def _groups(tasks, batch):
+    """The tasks in consecutive groups of `batch` families (0: one at a time)."""
+    size = int(batch) if batch else 1
+    return [tasks[i:i + size] for i in range(0, len(tasks), size)]
+
+
+def _batched_estimates(model, ex, group, t, steps, order, shots, rng, noise) -> dict:
+    """{(kind, pars): ComplexEstimate} of a group of families, their Aer shots in one run_batch.
+
+    Every family draws its settings from the same two streams as the one-at-a-time path
+    (rng.spawn(2) per family, in task order; estimate_family), so fast-path rows are identical to
+    it; Aer seeds of the group come from one further stream, spawned only when some family of the
+    group runs on Aer.
+    """
+    from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit
+    from .estimate import ComplexEstimate
+    from .runner import FamilyRunner, run_batch
+    jobs = []
+    for kind, pars in group:
+        family = gradient_circuit(model, ex, pars[0], t, steps, order) if kind == "gradient" else \
+            hessian_circuit(model, ex, tuple(pars), t, steps, order)
+        runner = FamilyRunner(family, noise)
+        re, im = rng.spawn(2)
+        jobs += [(runner, shots, re, "re"), (runner, shots, im, "im")]
+    on_aer = any(not runner.uses_fast_path for runner, _, _, _ in jobs)
+    got = run_batch(jobs, rng.spawn(1)[0] if on_aer else None)
+    return {task: ComplexEstimate(got[2 * n], got[2 * n + 1]) for n, task in enumerate(group)}
+
+
+def _add_rows(report, label, kind, exact, trot, est, atten) -> None:
+    """The Re and Im rows of one family's estimate (module docstring), and the report's totals."""
+    for part in ("re", "im"):
+        e = est.part(part)
+        pick = (lambda z: z.real) if part == "re" else (lambda z: z.imag)
+        ref = pick(trot) * (1.0 if atten is None else atten.total)
+        z = (e.value - ref) / e.stderr if e.stderr > 0 else (0.0 if e.value == ref else np.inf)
+        row = {"parameter": label, "part": part, "kind": kind, "exact": pick(exact),
+               "trotter_exact": pick(trot), "emulated": e.value, "stderr": e.stderr,
+               "z": float(z), "trotter_bias": pick(trot) - pick(exact),
+               "shots": e.shots, "circuits_run": e.circuits_run, "seconds": e.seconds}
+        if atten is not None:
+            size = pick(trot)
+            row.update(predicted=ref, attenuation=atten.total, attenuation_gates=atten.gates,
+                       attenuation_readout=atten.readout, two_qubit_gates=atten.two_qubit_gates,
+                       z_noiseless=float((e.value - size) / e.stderr) if e.stderr > 0 else
+                       (0.0 if e.value == size else float(np.inf)),
+                       measured_attenuation=e.value / size if size else float("nan"),
+                       measured_attenuation_stderr=e.stderr / abs(size) if size else float("nan"))
+        report.rows.append(annotate_row(row))
+    report.shots += est.shots
+    report.circuits_run += est.circuits_run
+
+
 def _routed(model, ex, kind, pars, t, steps, order, target, label) -> dict:
     """Routed counts of one checked family on `target` (module docstring)."""
     from ..circuits.circuit_counts import family_counts, transpile_for_counts
@@ -204,7 +296,8 @@ def check_time(time) -> float:
 def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | None = None, hessian=False,
                       parameters=None, experiment=None, order: int = 1, progress=None,
                       reference_progress=None, device: str | None = None,
-                      sampler_options: dict | None = None, target: str | None = None) -> CheckReport:
+                      sampler_options: dict | None = None, target: str | None = None,
+                      batch: int = BATCH) -> CheckReport:
     """Emulated dS/dh_n (and Hessian entries) at one time against the exact and Trotterised values.
 
     Args:
@@ -227,6 +320,8 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
     Raises:
         QhlInputError: bad time, shots, steps, unknown parameter or experiment; an unknown device or
             target (listing the valid names) or a cluster wider than the device or target (both numbers).
+        batch: families per Aer or sampler batch of noisy and device runs (module docstring; 0: one
+            family at a time through estimate_family, the previous scheme).
     """
     t = check_time(time)
     routing_target = None
@@ -243,6 +338,8 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
         device = device_backend(device, len(cluster.spins) + anc,
                        needs=f"{len(cluster.spins)} spins + {anc} ancilla{'s' if anc > 1 else ''}").name
     shots = check_shots(shots)
+    if isinstance(batch, bool) or int(batch) != batch or batch < 0:
+        raise QhlInputError(f"expected a batch of >= 0 families, got {batch!r}", key="batch")
     if int(steps) != steps or steps < 1:
         raise QhlInputError(f"expected steps >= 1, got {steps!r}", key="--steps")
     ex = _experiment(cluster, experiment)
@@ -267,50 +364,46 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
         if hessian:
             _, _, hess_exact = engine.hessian(ex, [t])
             hess_trot = trotter_hessian_exact(model, ex, t, steps, order, names)
-        for k, (kind, pars) in enumerate(tasks):
-            if kind == "gradient":
-                i, fi = names.index(pars[0]), free.index(pars[0])
-                exact, trot = complex(grad_exact[fi, 0]), complex(grad_trot[i])
-                if device is None:
+        k = 0
+        batched = bool(batch) and (device is not None or (noise is not None and not noise.is_noiseless))
+        for group in _groups(tasks, batch if batched else 0):
+            if batched and device is not None:
+                ests, n_jobs, n_pubs = _device_batch(model, ex, group, t, steps, order, shots, rng, device,
+                                                     sampler_options)
+                report.sampler_jobs = (report.sampler_jobs or 0) + n_jobs
+                report.sampler_pubs = (report.sampler_pubs or 0) + n_pubs
+            elif batched:
+                ests = _batched_estimates(model, ex, group, t, steps, order, shots, rng, noise)
+            for kind, pars in group:
+                if kind == "gradient":
+                    i, fi = names.index(pars[0]), free.index(pars[0])
+                    exact, trot = complex(grad_exact[fi, 0]), complex(grad_trot[i])
+                    label = pars[0]
+                else:
+                    i, j = names.index(pars[0]), names.index(pars[1])
+                    fi, fj = free.index(pars[0]), free.index(pars[1])
+                    exact, trot = complex(hess_exact[fi, fj, 0]), complex(hess_trot[i, j])
+                    label = f"{pars[0]} x {pars[1]}"
+                atten = None
+                if batched and device is not None:
+                    est, atten = ests[(kind, pars)]
+                elif device is not None:
+                    est, atten, runner = _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device,
+                                                          sampler_options)
+                    report.sampler_jobs = (report.sampler_jobs or 0) + runner.jobs_run
+                    report.sampler_pubs = (report.sampler_pubs or 0) + runner.pubs_run
+                elif batched:
+                    est = ests[(kind, pars)]
+                elif kind == "gradient":
                     est = emulate_gradient(model, ex, pars[0], t, steps, shots, rng, order, noise)
-                label = pars[0]
-            else:
-                i, j = names.index(pars[0]), names.index(pars[1])
-                fi, fj = free.index(pars[0]), free.index(pars[1])
-                exact, trot = complex(hess_exact[fi, fj, 0]), complex(hess_trot[i, j])
-                if device is None:
+                else:
                     est = emulate_hessian(model, ex, pars, t, steps, shots, rng, order, noise)
-                label = f"{pars[0]} x {pars[1]}"
-            atten = None
-            if device is not None:
-                est, atten, runner = _device_estimate(model, ex, kind, pars, t, steps, order, shots, rng, device,
-                                                      sampler_options)
-                report.sampler_jobs = (report.sampler_jobs or 0) + runner.jobs_run
-                report.sampler_pubs = (report.sampler_pubs or 0) + runner.pubs_run
-            for part in ("re", "im"):
-                e = est.part(part)
-                pick = (lambda z: z.real) if part == "re" else (lambda z: z.imag)
-                ref = pick(trot) * (1.0 if atten is None else atten.total)
-                z = (e.value - ref) / e.stderr if e.stderr > 0 else (0.0 if e.value == ref else np.inf)
-                row = {"parameter": label, "part": part, "kind": kind, "exact": pick(exact),
-                       "trotter_exact": pick(trot), "emulated": e.value, "stderr": e.stderr,
-                       "z": float(z), "trotter_bias": pick(trot) - pick(exact),
-                       "shots": e.shots, "circuits_run": e.circuits_run, "seconds": e.seconds}
-                if atten is not None:
-                    size = pick(trot)
-                    row.update(predicted=ref, attenuation=atten.total, attenuation_gates=atten.gates,
-                               attenuation_readout=atten.readout, two_qubit_gates=atten.two_qubit_gates,
-                               z_noiseless=float((e.value - size) / e.stderr) if e.stderr > 0 else
-                               (0.0 if e.value == size else float(np.inf)),
-                               measured_attenuation=e.value / size if size else float("nan"),
-                               measured_attenuation_stderr=e.stderr / abs(size) if size else float("nan"))
-                report.rows.append(annotate_row(row))
-            if routing_target is not None:
-                report.routing.append(_routed(model, ex, kind, pars, t, steps, order, routing_target, label))
-            report.shots += est.shots
-            report.circuits_run += est.circuits_run
-            if progress is not None:
-                progress(k + 1, len(tasks), label)
+                _add_rows(report, label, kind, exact, trot, est, atten)
+                if routing_target is not None:
+                    report.routing.append(_routed(model, ex, kind, pars, t, steps, order, routing_target, label))
+                k += 1
+                if progress is not None:
+                    progress(k, len(tasks), label)
     except KeyboardInterrupt:
         report.interrupted = True
     report.seconds = _time.perf_counter() - start

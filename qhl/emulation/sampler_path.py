@@ -14,7 +14,9 @@ n_g shots. A PUB carries one shot count for all its parameter rows, and the n_g 
     ceil(n_g / S) S shots are kept (a multivariate hypergeometric draw from its counts: a random
     subset of i.i.d. shots is i.i.d.; common practice). At most S - 1 extra shots per setting.
 Batching: the PUBs are sent in jobs of at most `max_circuits` bound circuits (parameter rows)
-each; a PUB with more rows is split. The single-shot value is scale_g * a, with a the
+each; a PUB with more rows is split. `run_sampler_batch` sends the PUBs of many families (each
+drawn as by `run`) together under the same cap, so a group of families needs as few sampler jobs
+as `max_circuits` allows (one without it). The single-shot value is scale_g * a, with a the
 observable's eigenvalue on the measured bit string, and the estimator, its standard error and
 the stratified variance are those of FamilyRunner.run (this class only replaces how the shots of
 the distinct settings are produced), so z-scores mean the same on either path.
@@ -50,7 +52,7 @@ from ..base.memory import require_memory
 from .noise import NOISY_BASIS, NoiseSpec
 from .runner import FamilyRunner, values_of_outcomes
 
-__all__ = ["SamplerRunner", "device_backend", "pub_plan", "DENSITY_MAX_QUBITS", "active_qubits"]
+__all__ = ["SamplerRunner", "device_backend", "pub_plan", "DENSITY_MAX_QUBITS", "active_qubits", "run_sampler_batch"]
 
 DENSITY_MAX_QUBITS = 10
 
@@ -241,3 +243,87 @@ class SamplerRunner(FamilyRunner):
             a = values_of_outcomes(self.masks, keys)
             shot_sums[g], shot_sq[g] = float(kept @ a), float(kept @ a ** 2)
         return shot_sums, shot_sq
+
+
+def _sampler_config(runner):
+    """SamplerRunners with equal keys can send their PUBs in one sampler job."""
+    return (runner.device, runner.noise, runner.shots_per_pub, runner.max_circuits, id(runner.user_sampler),
+            tuple(sorted(runner.simulator_options.items(), key=str)), active_qubits(runner.transpiled))
+
+
+def run_sampler_batch(jobs, rng) -> list:
+    """Estimates of many (SamplerRunner, shots, rng, part) jobs, their PUBs sent together.
+
+    Each job draws and groups its settings with its own rng (as SamplerRunner.run), and its PUBs
+    are those of `run` (pub_plan: one per distinct shot count, or fixed `shots_per_pub`). The PUBs
+    of all jobs with one configuration (device, noise, options, active qubits) go to the sampler
+    together, in jobs of at most `max_circuits` bound circuits (None: one sampler job); a PUB with
+    more rows is split. `rng` seeds the samplers; each job's rng draws its kept subsets, so the
+    estimates equal in distribution those of `run`.
+
+    Returns:
+        ([Estimate] in the order of `jobs`, sampler jobs run, PUBs run); `seconds` of an estimate is
+        its own sampling time plus its share (by distinct settings) of the shared sampler time.
+    """
+    import time as _time
+    out = [None] * len(jobs)
+    preps, own = {}, {}
+    groups = {}
+    for j, (runner, shots, job_rng, part) in enumerate(jobs):
+        start = _time.perf_counter()
+        preps[j] = runner._prepare(int(shots), job_rng, part)
+        own[j] = _time.perf_counter() - start
+        groups.setdefault(_sampler_config(runner), []).append(j)
+    n_jobs = n_pubs = 0
+    for members in groups.values():
+        first = jobs[members[0]][0]
+        blocks = []           # (job index, setting indices, shots of the PUB)
+        for j in members:
+            for job in pub_plan(preps[j]["counts"], first.shots_per_pub, None):
+                blocks += [(j, idx, n) for idx, n in job]
+        cap = first.max_circuits
+        calls, call, size = [], [], 0
+        for j, idx, n in blocks:
+            start = 0
+            while start < len(idx):
+                room = len(idx) - start if cap is None else min(len(idx) - start, cap - size)
+                call.append((j, idx[start:start + room], n))
+                size += room
+                start += room
+                if cap is not None and size >= cap:
+                    calls.append(call)
+                    call, size = [], 0
+        if call:
+            calls.append(call)
+        got = {j: [dict() for _ in range(len(preps[j]["counts"]))] for j in members}
+        start = _time.perf_counter()
+        for call in calls:
+            pubs = []
+            for j, idx, n in call:
+                runner = jobs[j][0]
+                cols = [k for _, k in runner._bound]
+                pubs.append((runner.transpiled, preps[j]["params"][idx][:, cols], n))
+            result = first._sampler(rng.integers(0, 2 ** 31 - 1)).run(pubs).result()
+            n_jobs += 1
+            n_pubs += len(pubs)
+            for (j, idx, _), pub_result in zip(call, result):
+                bits = pub_result.join_data() if hasattr(pub_result, "join_data") else pub_result.data.m
+                for loc, g in enumerate(idx):
+                    table = got[j][g]
+                    for key, c in bits.get_int_counts(loc).items():
+                        table[key] = table.get(key, 0) + c
+        shared = _time.perf_counter() - start
+        n_set = sum(len(preps[j]["counts"]) for j in members)
+        for j in members:
+            runner, _, job_rng, _ = jobs[j]
+            counts = preps[j]["counts"]
+            per_row, per_row_sq = np.zeros(len(counts)), np.zeros(len(counts))
+            for g, table in enumerate(got[j]):
+                keys = np.fromiter(table.keys(), np.int64, len(table))
+                d = np.fromiter(table.values(), np.int64, len(table))
+                kept = d if d.sum() == counts[g] else job_rng.multivariate_hypergeometric(d, int(counts[g]))
+                a = values_of_outcomes(runner.masks, keys)
+                per_row[g], per_row_sq[g] = float(kept @ a), float(kept @ a ** 2)
+            out[j] = runner._finish(preps[j], per_row, per_row_sq,
+                                    own[j] + shared * len(counts) / max(n_set, 1))
+    return out, n_jobs, n_pubs
