@@ -147,3 +147,17 @@ def test_cli_design_json_and_table(capsys, tmp_path):
     assert e.value.code == 2
     assert main(["design", "--free", *FREE, "--criterion", "A", "--parameters", "j:*"]) == 2
     assert "no free parameter matches j:*" in capsys.readouterr().err
+
+
+def test_shots_go_to_the_chosen_set_only():
+    # efficient rounding (Pukelsheim and Rieder, Biometrika 79, 763 (1992)) gives every positive share at
+    # least one unit; shares below the chosen threshold must get none (invented Hahn-echo example file)
+    from pathlib import Path
+    from qhl import load_cluster
+    from qhl.learning.design import CHOSEN_MIN_SHARE, design_experiments
+
+    c = load_cluster(Path(__file__).resolve().parent.parent / "examples" / "hahn_echo.toml")
+    rep = design_experiments(c, budget=2)
+    small = rep.shares < CHOSEN_MIN_SHARE
+    assert small.any() and np.all(rep.shots[small] == 0)
+    assert rep.shots.sum() == 2

@@ -192,7 +192,10 @@ def design_experiments(cluster, criterion: str = "D", per: str = "shot", budget=
         w = v
         n_base = len(base_cands)
         B = float(n_base if budget is None else budget)
-        shots = efficient_rounding(w, int(round(B))) if B >= 1 else np.zeros(len(w), int)
+        # rounding over the chosen set only: efficient rounding gives every positive share at least one
+        # shot, so shares the optimiser left at 1e-9 would take shots from the design
+        shots = (efficient_rounding(np.where(w >= CHOSEN_MIN_SHARE, w, 0.0), int(round(B))) if B >= 1
+                 else np.zeros(len(w), int))
         M_opt = B * np.einsum("k,kij->ij", w, fishers)
         M_base = B * base_f.mean(axis=0)
     else:
