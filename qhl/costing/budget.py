@@ -42,7 +42,7 @@ from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthes
 from . import coherent_input, family_variance, learning_run, noisy_shots, trotter_order4
 from ..circuits import signal_trotter
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
-from .near_term import near_term_model
+from .near_term import near_term_model, sequence_gradient_range, total_delay_s
 from .trotter_cost import ORDERS, empirical_flops, empirical_trotter_steps, trotter_model
 
 __all__ = ["BudgetSettings", "BudgetModel", "Budget", "BudgetSweep", "all_assumptions", "fit_exponents",
@@ -63,8 +63,19 @@ SEQUENCE_ASSUMPTION = (
     "step length dt = t / r' for delays and acquisition, r' = ceil(r ((t + T_delays) / t)^(1/p)) so that the "
     "Trotter error, which adds over the delays and the acquisition (errors of unitary factors add; error per unit "
     "time ~ C dt^p), stays within the free-evolution share; counts by the step-count rule (CX exact for order 1, "
-    "rotations and CX estimates, depth the sum of the parts); gradients of sequence experiments not costed "
-    "(a Hadamard test through the preparation would cost (preparation + acquisition) per insertion point)")
+    "rotations and CX estimates, depth the sum of the parts)")
+SEQUENCE_GRADIENT_ASSUMPTION = (
+    "gradients of pulse-sequence experiments (per experiment under 'sequences', worst-range component): the "
+    "Hadamard test through the preparation (qhl.circuits.sequence_circuits.sequence_gradient_circuit), insertion "
+    "points over every delay and the acquisition; single-shot range R = 2 (t + T_delays) ||g_n||_1 2 pi |s_n| N_obs "
+    "(the whole Trotterised time; qhl.costing.near_term.sequence_gradient_range, Banchi and Crooks, Quantum 5, 386 "
+    "(2021)); shots: Hoeffding 2 R^2 ln(2/delta)/eps^2, bound R^2/eps^2, R^2 - mu^2 with mu the exact sequence "
+    "gradient (qhl.exact.sequence_engine; an upper bound for the product-input circuits), and on small clusters the "
+    "compiled estimator's exact variance (qhl.emulation.variance; circuit_variance_steps acquisition steps, delays "
+    "at the same step length); fault-tolerant: Trotter steps of the whole evolution (the signal circuit's r' "
+    "above plus the delays' steps), gradient circuit = signal-circuit counts + one controlled-Pauli gadget "
+    "(2 w CX, Clifford at the sampled point, 3 w + 4 layers, w the largest Pauli weight of g_n; common practice); "
+    "the top-level near_term and fault_tolerant numbers cover the free-evolution experiments")
 HESSIAN_FLOPS_PER_ELEMENT = 5000.0
 
 EXPECTED_EXPONENTS = {
@@ -406,9 +417,9 @@ class BudgetModel:
         if self.sequence_experiments:
             self.notes.append(
                 f"pulse-sequence experiments ({', '.join(ex.name for ex in self.sequence_experiments)}): signal "
-                "circuits counted under 'sequences' (preparation + acquisition); their gradients are not in the "
-                "shot and fault-tolerant counts, which cover the free-evolution experiments "
-                f"({', '.join(ex.name for ex in self.experiments)}) only")
+                "circuits, gradient shots (range over the whole Trotterised time t + delays) and fault-tolerant "
+                "counts under 'sequences'; the top-level shot and fault-tolerant counts cover the free-evolution "
+                f"experiments ({', '.join(ex.name for ex in self.experiments)})")
         require_memory(f"the bound-tier budget of {self.model.n_spins} spins", bound_tier_memory_bytes(
             self.model, self.experiments))
         from ..circuits.targets import resolve_target
@@ -694,9 +705,10 @@ class BudgetModel:
         methods_ft["gate_counts_per_step"] = tm.counts_method
         methods = {"near_term": methods_near, "fault_tolerant": methods_ft,
                    "surface_code": "bound" if sc else None}
-        sequences = self._sequence_counts(t, order, int(ch["steps"]))
+        sequences = self._sequence_counts(t, order, int(ch["steps"]), eps)
         if sequences:
             assumptions["sequence_circuits"] = SEQUENCE_ASSUMPTION
+            assumptions["sequence_gradients"] = SEQUENCE_GRADIENT_ASSUMPTION
         notes = list(self.notes) + [
             f"sequence '{name}': {c['total']['steps']:,} Trotter steps (order {c['order']}; preparation "
             f"{c['preparation']['steps']:,} steps over {c['preparation']['delay_s']:g} s of delays and "
@@ -706,21 +718,70 @@ class BudgetModel:
         return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name, methods,
                       notes, dict(self.tiers), self._precision_hz(t, eps, hb), self.classical, sequences)
 
-    def _sequence_counts(self, t, order, steps):
-        """Signal-circuit counts of each pulse-sequence experiment at acquisition time t (SEQUENCE_ASSUMPTION)."""
+    def _sequence_counts(self, t, order, steps, eps=None):
+        """Per pulse-sequence experiment at acquisition time t: its signal-circuit counts (SEQUENCE_ASSUMPTION)
+        and, with eps, the near-term shots and fault-tolerant counts of its worst gradient component
+        (SEQUENCE_GRADIENT_ASSUMPTION; `_sequence_gradient`)."""
         if not self.sequence_experiments:
             return None
         from ..circuits.sequence_circuits import acquisition_terms, sequence_counts
-        from ..spins.cluster import flat_steps
         out = {}
         for ex in self.sequence_experiments:
-            delays = sum(st.seconds for st in flat_steps(ex.steps) if hasattr(st, "seconds"))
+            delays = total_delay_s(ex)
             r = max(int(steps), math.ceil(steps * ((t + delays) / t) ** (1.0 / order) * (1 - 1e-12)))
             c = sequence_counts(self.model, ex, t, r, order, terms=acquisition_terms(self.model, ex))
             c.update({"order": int(order), "step_s": t / r, "acquisition_steps_free_evolution": int(steps),
                       "method": "count rule (qhl.circuits.step_counts; all-to-all), estimate"})
+            if eps is not None:
+                c.update(self._sequence_gradient(ex, t, eps, c))
             out[ex.name] = c
         return out
+
+    def _sequence_gradient(self, ex, t, eps, counts):
+        """{evolution_time_s, near_term, fault_tolerant, methods} of the worst-range gradient component of one
+        sequence experiment (module constant SEQUENCE_GRADIENT_ASSUMPTION states the model)."""
+        s, nt = self.settings, self.near
+        scales = self.model.scale_factors(ex)[self.model.free_indices]
+        ranges = sequence_gradient_range(t, ex, nt.l1, scales, nt.kappa, s.unit_hz)
+        n = int(np.argmax(ranges))
+        name, rng = nt.names[n], float(ranges[n])
+        near = {"worst_parameter": name, "component_range": rng,
+                "shots_per_component_bound": math.ceil(rng**2 / eps**2 * (1 - 1e-12)),
+                "shots_per_component_hoeffding": shots.hoeffding_shots(rng, eps, s.delta),
+                "shots_per_component_circuit": None}
+        methods = {"component_range": "bound", "shots_per_component_bound": "bound",
+                   "shots_per_component_hoeffding": "bound", "shots_per_component": "bound",
+                   "shots_per_component_circuit": None}
+        mu = None
+        if self.engine is not None:
+            try:
+                _, g = self.engine.gradient(ex, times=[t], parameters=[name])
+                mu = float(np.real(g[0, 0])) * s.unit_hz
+            except MemoryBudgetError as e:
+                self._note(f"sequence '{ex.name}': exact mean skipped: {e}")
+        near["mean"] = mu
+        var = float(shots.two_valued_variance(rng, mu)) if mu is not None else rng**2
+        near["shots_per_component"] = math.ceil(var / eps**2 * (1 - 1e-12))
+        if mu is not None:
+            methods["shots_per_component"] = "exact"
+        if family_variance.fits_circuit_variance(self.model.n_spins, s.circuit_variance_max_spins):
+            from ..circuits.sequence_circuits import sequence_gradient_circuit
+            from ..emulation.variance import family_moments
+            fam = sequence_gradient_circuit(self.model, ex, name, t, s.circuit_variance_steps,
+                                            s.circuit_variance_order)
+            mo = family_moments(fam, "re")
+            near["shots_per_component_circuit"] = math.ceil(mo.variance * s.unit_hz**2 / eps**2 * (1 - 1e-12))
+            near["circuit_range"] = float(mo.value_range * s.unit_hz)
+            methods["shots_per_component_circuit"] = "exact"
+        w = max(len(label.replace("I", "")) for label in self.model.parameter(name).generator.paulis.to_labels())
+        tot = counts["total"]
+        ft = {"trotter_order": counts["order"], "trotter_steps": int(tot["steps"]),
+              "gadget": {"pauli_weight": int(w), "cx": 2 * int(w), "rotations": 0, "depth": 3 * int(w) + 4},
+              "gradient_circuit": {"cx": int(tot["cx"]) + 2 * int(w), "rotations": int(tot["rotations"]),
+                                   "depth": int(tot["depth"]) + 3 * int(w) + 4}}
+        methods.update({"trotter_steps": "bound", "gradient_circuit": "estimate (count rule)"})
+        return {"evolution_time_s": t + total_delay_s(ex), "total_delay_s": total_delay_s(ex), "near_term": near,
+                "fault_tolerant": ft, "methods": methods}
 
     # ------------------------------------------------------------------ noise-aware near-term counts
     @staticmethod
