@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 from qhl import build_model
+from qhl.base.errors import QhlInputError
 from qhl.circuits.sequence_circuits import sequence_gradient_circuit
 from qhl.costing.budget import BudgetModel, BudgetSettings
 from qhl.costing.near_term import sequence_gradient_range
@@ -113,3 +114,41 @@ def test_sequence_block_counts_the_gradient_circuit_and_states_its_sources():
     assert near["shots_per_component_circuit"] <= near["shots_per_component"] <= near["shots_per_component_bound"]
     assert blk["methods"]["shots_per_component"] == "exact"
     assert "sequence_gradients" in b.assumptions and "t + T_delays" in b.assumptions["sequence_gradients"]
+
+
+def test_a_cluster_of_sequence_experiments_only_gets_a_budget_naming_its_sources():
+    # Every experiment a Hahn echo (Hahn 1950): no refusal any more. The top level carries the experiment
+    # with the largest range; its fault-tolerant steps cover the whole evolution t + delays (commutator
+    # bound; at least as many as for the acquisition t alone of the same Hamiltonian, common practice:
+    # the Trotter error grows with the simulated time); methods name each number's source.
+    c = invented(0, [hahn("short", tau=0.05), hahn("long", tau=0.2)])
+    bm = BudgetModel(c, free=FREE, settings=BudgetSettings(empirical_trotter=False, classical_meter=False))
+    assert bm.sequence_only and any("every experiment" in note for note in bm.notes)
+    b = bm.budget(0.2, 0.05)
+    assert b.near_term["experiment"] == "long"
+    assert b.fault_tolerant["evolution_time_s"] == pytest.approx(0.6)
+    assert b.near_term["component_range"] == max(b.sequences[k]["near_term"]["component_range"] for k in b.sequences)
+    assert b.sequences["long"]["fault_tolerant"]["steps_whole_evolution"] >= \
+        b.sequences["short"]["fault_tolerant"]["steps_whole_evolution"]
+    src = b.methods["sources"]
+    assert "sequence_gradient_range" in src["component_range"] and "Hoeffding" in src["shots_per_component_hoeffding"]
+    assert "sequence_engine" in src["shots_per_component"] and "ft_cost_arrays" in src["trotter_steps"]
+    assert b.fault_tolerant["t_count"] > 0 and b.fault_tolerant["logical_qubits"] > c.n_spins
+    assert b.near_term["shots_per_component_hoeffding"] == math.ceil(
+        2 * b.near_term["component_range"] ** 2 * math.log(2 / 0.05) / 0.05**2)
+    assert b.to_json()["sequences"]["short"]["near_term"]["worst_parameter"] in bm.model.free
+    with pytest.raises(QhlInputError, match="sweeps"):
+        bm.sweep([0.1, 0.2], [0.05])
+
+
+def test_cli_budget_of_a_sequence_only_cluster(tmp_path, capsys):
+    # The example's Hahn echo alone (examples/hahn_echo.toml without its FID): exit 0, the text names it.
+    from pathlib import Path
+    from qhl.cli import main
+    text = (Path(__file__).resolve().parents[1] / "examples" / "hahn_echo.toml").read_text()
+    start, end = text.index('[[experiment]]\nname = "fid"'), text.index('[[experiment]]\nname = "hahn"')
+    path = tmp_path / "hahn_only.toml"
+    path.write_text(text[:start] + text[end:])
+    assert main(["budget", str(path), "--precision", "0.01", "--no-classical"]) == 0
+    out = capsys.readouterr().out
+    assert "sequence 'hahn'" in out and "shots per component" in out

@@ -403,30 +403,32 @@ class BudgetModel:
             raise QhlInputError("no free parameters to learn", key="free")
         if not cluster.experiments:
             raise QhlInputError("the cluster has no experiments", key="experiment")
-        # pulse-sequence experiments: their signal circuits are counted (sequence_counts); their gradient
-        # circuits (Hadamard tests through the preparation) are not built yet, so the gradient budget below
-        # covers the free-evolution experiments only
+        # pulse-sequence experiments are costed per experiment under 'sequences' (SEQUENCE_GRADIENT_ASSUMPTION);
+        # the full-gradient, Hessian and Fisher machinery below covers the free-evolution experiments; a cluster
+        # of sequence experiments only gets the per-component budget of its worst sequence (sequence_only)
         self.sequence_experiments = [ex for ex in cluster.experiments if getattr(ex, "steps", ())]
         self.experiments = [ex for ex in cluster.experiments if not getattr(ex, "steps", ())]
-        if not self.experiments:
-            raise QhlInputError(f"every experiment of '{cluster.name}' has pulse-sequence steps: gradient budgets "
-                                "of sequence experiments are not covered yet (add a free-evolution experiment; "
-                                "their signal circuits are counted by qhl.circuits.sequence_circuits.sequence_counts)",
-                                key="experiment.step")
+        self.sequence_only = not self.experiments
         self.notes = []
-        if self.sequence_experiments:
+        if self.sequence_only:
+            self.notes.append(
+                f"every experiment of '{cluster.name}' has pulse-sequence steps: the budget is per component of "
+                "the worst sequence experiment (range over t + delays, fault-tolerant steps over the whole "
+                "evolution); full-gradient, Hessian, Fisher, learning-run, noise-aware and sweep numbers cover "
+                "free-evolution experiments only")
+        elif self.sequence_experiments:
             self.notes.append(
                 f"pulse-sequence experiments ({', '.join(ex.name for ex in self.sequence_experiments)}): signal "
                 "circuits, gradient shots (range over the whole Trotterised time t + delays) and fault-tolerant "
                 "counts under 'sequences'; the top-level shot and fault-tolerant counts cover the free-evolution "
                 f"experiments ({', '.join(ex.name for ex in self.experiments)})")
         require_memory(f"the bound-tier budget of {self.model.n_spins} spins", bound_tier_memory_bytes(
-            self.model, self.experiments))
+            self.model, self.experiments or self.sequence_experiments))
         from ..circuits.targets import resolve_target
         self.target = resolve_target(self.settings.target, self.model.n_spins + NOISY_ANCILLAS, key="--target",
                                      what=f"{self.model.n_spins} spins + {NOISY_ANCILLAS} ancilla")
         self._routes = {}
-        self.exact_plan = exact_engine_plan(self.model, self.experiments, self.settings)
+        self.exact_plan = exact_engine_plan(self.model, self.experiments or self.sequence_experiments, self.settings)
         self.engine = None
         if self.exact_plan["use_engine"]:
             say(f"exact engine (about {self.exact_plan['memory_bytes'] / 2**30:.2g} GiB, "
@@ -461,6 +463,14 @@ class BudgetModel:
         say(f"time-quadrature commutators ({_time.perf_counter() - t0:.1f} s)")
         self._inserted = pauli_arrays([self.model.parameter(n).generator for n in self.model.free])
         self._quad = [self._quadrature(ex) for ex in self.experiments]
+        # sequence-only clusters: Trotter constants of each sequence's Hamiltonian (the same during delays and
+        # the acquisition: its dipolar scale; pulses are exact rotations)
+        self._seq_trotter = {}
+        if self.sequence_only:
+            import dataclasses
+            for ex in self.sequence_experiments:
+                bare = dataclasses.replace(ex, steps=())
+                self._seq_trotter[ex.name] = (trotter_model(self.model, bare), self._quadrature(bare))
         self._n_terms = np.array([len(self.model.parameter(n).generator) for n in self.model.free])
         self.classical = None
         if self.settings.classical_meter:
@@ -479,6 +489,8 @@ class BudgetModel:
     @property
     def default_time_s(self):
         """The shortest experiment window among experiments that see every free parameter."""
+        if self.sequence_only:
+            return float(min(ex.t_max_s for ex in self.sequence_experiments))
         full = [ex.t_max_s for x, ex in enumerate(self.experiments) if np.all(self.near.scales[x] != 0)]
         return float(min(full or [ex.t_max_s for ex in self.experiments]))
 
@@ -530,6 +542,8 @@ class BudgetModel:
         t, eps = float(time_s), float(precision)
         s = self.settings
         its = _iterations(s.iterations if iterations is None else iterations)
+        if self.sequence_only:
+            return self._sequence_only_budget(t, eps, its)
         nt = self.near
         has = nt.has_means
         tier = nt.method if has else "bound"
@@ -724,18 +738,101 @@ class BudgetModel:
         (SEQUENCE_GRADIENT_ASSUMPTION; `_sequence_gradient`)."""
         if not self.sequence_experiments:
             return None
-        from ..circuits.sequence_circuits import acquisition_terms, sequence_counts
         out = {}
         for ex in self.sequence_experiments:
             delays = total_delay_s(ex)
             r = max(int(steps), math.ceil(steps * ((t + delays) / t) ** (1.0 / order) * (1 - 1e-12)))
-            c = sequence_counts(self.model, ex, t, r, order, terms=acquisition_terms(self.model, ex))
-            c.update({"order": int(order), "step_s": t / r, "acquisition_steps_free_evolution": int(steps),
-                      "method": "count rule (qhl.circuits.step_counts; all-to-all), estimate"})
-            if eps is not None:
-                c.update(self._sequence_gradient(ex, t, eps, c))
-            out[ex.name] = c
+            out[ex.name] = self._sequence_block(ex, t, order, r, eps)
+            out[ex.name]["acquisition_steps_free_evolution"] = int(steps)
         return out
+
+    def _sequence_block(self, ex, t, order, r, eps):
+        """Signal-circuit counts of `ex` with r acquisition steps (delays at the same step length t / r) and,
+        with eps, its gradient budget (_sequence_gradient)."""
+        from ..circuits.sequence_circuits import acquisition_terms, sequence_counts
+        c = sequence_counts(self.model, ex, t, r, order, terms=acquisition_terms(self.model, ex))
+        c.update({"order": int(order), "step_s": t / r,
+                  "method": "count rule (qhl.circuits.step_counts; all-to-all), estimate"})
+        if eps is not None:
+            c.update(self._sequence_gradient(ex, t, eps, c))
+        return c
+
+    def _sequence_only_budget(self, t, eps, its):
+        """The budget of a cluster whose every experiment has pulse-sequence steps: per experiment the worst-range
+        component, fault-tolerant counts (qhl.costing.fault_tolerant) over the whole evolution t + T_delays with
+        that experiment's Hamiltonian (Trotter errors of the segments add: the bound for a free evolution of
+        length t + T_delays), its signal/gradient circuit with the acquisition's share of those steps; the top
+        level carries the experiment with the largest range (SEQUENCE_GRADIENT_ASSUMPTION)."""
+        s = self.settings
+        say = getattr(self, "_say", lambda msg: None)
+        say("pulse-sequence budget (every experiment has steps)")
+        chosen, sequences = [], {}
+        for ex in self.sequence_experiments:
+            total = t + total_delay_s(ex)
+            scales = self.model.scale_factors(ex)[self.model.free_indices]
+            ranges = sequence_gradient_range(t, ex, self.near.l1, scales, self.near.kappa, s.unit_hz)
+            n = int(np.argmax(ranges))
+            tm, quad = self._seq_trotter[ex.name]
+            ft_all = ft_cost_arrays(float(ranges[n]), total, eps, tm, quad, self._n_terms[n], self.model.n_spins,
+                                    s.split_dict(), s.synthesis, ORDERS, 1.0, delta=s.delta,
+                                    n_observed=int(self.near.kappa))
+            order, ch = choose_order(ft_all)
+            order, r_total = int(order), int(ch["steps"])
+            r_acq = max(1, math.ceil(r_total * t / total * (1 - 1e-12)))
+            blk = self._sequence_block(ex, t, order, r_acq, eps)
+            blk["fault_tolerant"].update({
+                "logical_qubits": int(ch["logical_qubits"]), "steps_whole_evolution": r_total,
+                "depth": int(ch["gate_layers"]), "t_depth": int(ch["t_depth"]), "t_count": int(ch["t_count"]),
+                "rotations_fault_tolerant": int(ch["rotations"]), "queries": int(ch["queries"]),
+                "trotter_steps_source": "time quadrature" if ch["steps_quadrature"] > ch["steps_trotter"]
+                else "commutator bound", "error_split": {k: float(v) for k, v in ft_all["split"].items()}})
+            sequences[ex.name] = blk
+            chosen.append((float(ranges[n]), ex.name))
+        worst = max(chosen)[1]
+        blk = sequences[worst]
+        near = dict(blk["near_term"], experiment=worst, iterations=its)
+        ftw = blk["fault_tolerant"]
+        ft = {k: ftw[k] for k in ("logical_qubits", "trotter_order", "depth", "t_depth", "t_count", "queries",
+                                  "trotter_steps_source")}
+        ft.update({"trotter_steps": ftw["steps_whole_evolution"], "rotations": ftw["rotations_fault_tolerant"],
+                   "evolution_time_s": blk["evolution_time_s"], "gradient_circuit": ftw["gradient_circuit"],
+                   "worst_component": {"experiment": worst, "parameter": near["worst_parameter"],
+                                       "range": near["component_range"]},
+                   "synthesis": s.synthesis})
+        layers = float(ftw["gradient_circuit"]["depth"])
+        best = near["shots_per_component_circuit"] or near["shots_per_component"]
+        comparison = {"near_term_layers_per_shot": layers,
+                      "near_term_total_layers_per_component": near["shots_per_component"] * layers,
+                      "near_term_total_layers_per_component_circuit": (near["shots_per_component_circuit"] * layers
+                                                                       if near["shots_per_component_circuit"] else None),
+                      "fault_tolerant_total_layers_per_component": float(ft["depth"]),
+                      "fault_tolerant_cheaper": bool(ft["depth"] < best * layers)}
+        methods = {"near_term": dict(blk["methods"]),
+                   "fault_tolerant": {k: "bound" for k in ("logical_qubits", "trotter_steps", "depth", "t_count",
+                                                           "rotations", "queries")},
+                   "sources": {"component_range": "qhl.costing.near_term.sequence_gradient_range (Banchi and Crooks "
+                                                  "2021, whole Trotterised time)",
+                               "shots_per_component_hoeffding": "qhl.costing.shots.hoeffding_shots (Hoeffding 1963)",
+                               "shots_per_component": "R^2 - mu^2, mu from qhl.exact.sequence_engine"
+                                                      if near["mean"] is not None else "R^2 (no exact mean)",
+                               "shots_per_component_circuit": "qhl.emulation.variance.family_moments of "
+                                                              "qhl.circuits.sequence_circuits.sequence_gradient_circuit",
+                               "trotter_steps": "qhl.costing.fault_tolerant.ft_cost_arrays over t + T_delays",
+                               "gradient_circuit": "qhl.circuits.sequence_circuits.sequence_counts + one "
+                                                   "controlled-Pauli gadget"},
+                   "surface_code": None}
+        sc = None
+        if s.physical_error is not None:
+            sc = surface_code.surface_code_estimate(ft["logical_qubits"], ft["depth"], ft["t_count"],
+                                                    s.physical_error, s.cycle_time_s, s.failure_budget,
+                                                    t_depth=ft["t_depth"]).to_json()
+            methods["surface_code"] = "bound"
+        assumptions = all_assumptions(s)
+        assumptions["sequence_circuits"] = SEQUENCE_ASSUMPTION
+        assumptions["sequence_gradients"] = SEQUENCE_GRADIENT_ASSUMPTION
+        notes = list(self.notes)
+        return Budget(t, eps, near, ft, ftw["error_split"], comparison, sc, assumptions, self.cluster.name, methods,
+                      notes, dict(self.tiers), None, self.classical, sequences)
 
     def _sequence_gradient(self, ex, t, eps, counts):
         """{evolution_time_s, near_term, fault_tolerant, methods} of the worst-range gradient component of one
@@ -936,6 +1033,9 @@ class BudgetModel:
         One engine gradient call per experiment covers every time of the sweep; eps enters as
         1/eps^2 for the near-term counts and through the vectorised fault-tolerant formulas.
         """
+        if self.sequence_only:
+            raise QhlInputError("sweeps of a cluster whose every experiment has pulse-sequence steps are not "
+                                "covered yet: give one --time and --precision", key="--sweep-time")
         times = np.atleast_1d(np.asarray(times, float))
         precisions = np.atleast_1d(np.asarray(precisions, float))
         shots.check_time(times, "sweep-time")
