@@ -107,7 +107,8 @@ def test_sequence_block_counts_the_gradient_circuit_and_states_its_sources():
     b = _budget(invented(2, [Experiment("fid", 0.3, 4, 0.8), hahn()]))
     blk = b.sequences["hahn"]
     near, ft = blk["near_term"], blk["fault_tolerant"]
-    assert ft["gradient_circuit"]["cx"] == blk["total"]["cx"] + 2 * ft["gadget"]["pauli_weight"]
+    assert ft["gradient_circuit"]["cx"] == blk["total"]["cx"] + ft["gadget"]["cx"]
+    assert ft["gradient_circuit"]["rotations"] == blk["total"]["rotations"] + ft["gadget"]["rotations"]
     assert ft["trotter_steps"] == blk["total"]["steps"]
     assert blk["evolution_time_s"] == pytest.approx(0.2 + 0.2)
     assert abs(near["mean"]) <= near["component_range"]
@@ -152,3 +153,40 @@ def test_cli_budget_of_a_sequence_only_cluster(tmp_path, capsys):
     assert main(["budget", str(path), "--precision", "0.01", "--no-classical"]) == 0
     out = capsys.readouterr().out
     assert "sequence 'hahn'" in out and "shots per component" in out
+
+
+@pytest.mark.parametrize("pauli", ["Z", "XX", "YZX"])
+def test_gadget_rule_bounds_the_transpiled_controlled_pauli(pauli):
+    # The budget's gadget rule (2 w CX, 2 w rz) against qiskit transpiles (basis [cx, rz, sx, x], counts by
+    # qhl.circuits.circuit_counts): the gadget the gradient family runs at its sampled point (phi = pi) needs
+    # no more; it is controlled-((-i)^w P), checked as a matrix against qiskit's controlled Pauli
+    # (qiskit.circuit.library.PauliGate(...).control()), which transpiles with no arbitrary-angle rotation
+    # (the gate is Clifford: the rule's rotations are conservative).
+    from types import SimpleNamespace
+    from qiskit import QuantumCircuit
+    from qiskit.circuit.library import PauliGate
+    from qiskit.quantum_info import Operator
+    from qhl.circuits.circuit_counts import circuit_counts
+    from qhl.circuits.gradient_circuits import _controlled_pauli
+    w = len(pauli)
+    ours = QuantumCircuit(w + 1)
+    _controlled_pauli(w, SimpleNamespace(qubits=tuple(range(w)), pauli=pauli), np.pi)(ours)
+    ref = QuantumCircuit(w + 1)
+    ref.append(PauliGate(pauli[::-1]).control(1), [w, *range(w)])
+    assert Operator(ours).equiv(Operator(ref)) or np.allclose(
+        Operator(ours).data, Operator(ref).data @ np.diag(np.r_[np.ones(2**w), np.full(2**w, (-1j) ** w)]))
+    b = _budget(invented(0, [Experiment("fid", 0.3, 4, 0.8), hahn()]), circuit_variance_max_spins=0)
+    gadget = b.sequences["hahn"]["fault_tolerant"]["gadget"]
+    assert gadget["cx"] == 2 * gadget["pauli_weight"] == gadget["rotations"]
+    got, qiskit_own = circuit_counts(ours), circuit_counts(ref)
+    assert got.cx <= 2 * w and got.rotations <= 2 * w
+    assert qiskit_own.cx <= 2 * w and qiskit_own.rotations == 0
+
+
+def test_compiled_variance_is_skipped_with_a_note_for_very_long_delays():
+    # Delays 200 times the acquisition: about 8 x 401 steps exceed SEQUENCE_VARIANCE_MAX_STEPS, so the exact
+    # compiled variance is skipped (a note says why) while the range-based counts stay (common practice).
+    b = _budget(invented(1, [Experiment("fid", 0.3, 4, 0.8), hahn(tau=2.0, t_max=0.01)]), t=0.01)
+    near = b.sequences["hahn"]["near_term"]
+    assert near["shots_per_component_circuit"] is None and near["shots_per_component_bound"] > 0
+    assert any("compiled estimator's variance skipped" in note for note in b.notes)

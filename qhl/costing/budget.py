@@ -74,9 +74,13 @@ SEQUENCE_GRADIENT_ASSUMPTION = (
     "compiled estimator's exact variance (qhl.emulation.variance; circuit_variance_steps acquisition steps, delays "
     "at the same step length); fault-tolerant: Trotter steps of the whole evolution (the signal circuit's r' "
     "above plus the delays' steps), gradient circuit = signal-circuit counts + one controlled-Pauli gadget "
-    "(2 w CX, Clifford at the sampled point, 3 w + 4 layers, w the largest Pauli weight of g_n; common practice); "
+    "(controlled-((-i)^w P), a Clifford gate; counted as 2 w CX, at most 2 w rz and 3 w + 4 layers, the most a "
+    "[cx, rz, sx, x] transpile of qhl.circuits.gradient_circuits' gadget shows, w the largest Pauli weight of g_n); "
     "the top-level near_term and fault_tolerant numbers cover the free-evolution experiments")
 HESSIAN_FLOPS_PER_ELEMENT = 5000.0
+# The compiled sequence estimator's exact variance is computed when its circuit has at most this many Trotter
+# steps (acquisition + delays at one step length): each step adds insertion rows of dense unitaries.
+SEQUENCE_VARIANCE_MAX_STEPS = 512
 
 EXPECTED_EXPONENTS = {
     "near_term_component_bound": (2.0, -2.0),
@@ -861,7 +865,11 @@ class BudgetModel:
         near["shots_per_component"] = math.ceil(var / eps**2 * (1 - 1e-12))
         if mu is not None:
             methods["shots_per_component"] = "exact"
-        if family_variance.fits_circuit_variance(self.model.n_spins, s.circuit_variance_max_spins):
+        circuit_steps = s.circuit_variance_steps * (1 + total_delay_s(ex) / t)
+        if circuit_steps > SEQUENCE_VARIANCE_MAX_STEPS:
+            self._note(f"sequence '{ex.name}': compiled estimator's variance skipped: about {circuit_steps:.0f} "
+                       f"Trotter steps at the acquisition's step length (at most {SEQUENCE_VARIANCE_MAX_STEPS})")
+        elif family_variance.fits_circuit_variance(self.model.n_spins, s.circuit_variance_max_spins):
             from ..circuits.sequence_circuits import sequence_gradient_circuit
             from ..emulation.variance import family_moments
             fam = sequence_gradient_circuit(self.model, ex, name, t, s.circuit_variance_steps,
@@ -873,8 +881,8 @@ class BudgetModel:
         w = max(len(label.replace("I", "")) for label in self.model.parameter(name).generator.paulis.to_labels())
         tot = counts["total"]
         ft = {"trotter_order": counts["order"], "trotter_steps": int(tot["steps"]),
-              "gadget": {"pauli_weight": int(w), "cx": 2 * int(w), "rotations": 0, "depth": 3 * int(w) + 4},
-              "gradient_circuit": {"cx": int(tot["cx"]) + 2 * int(w), "rotations": int(tot["rotations"]),
+              "gadget": {"pauli_weight": int(w), "cx": 2 * int(w), "rotations": 2 * int(w), "depth": 3 * int(w) + 4},
+              "gradient_circuit": {"cx": int(tot["cx"]) + 2 * int(w), "rotations": int(tot["rotations"]) + 2 * int(w),
                                    "depth": int(tot["depth"]) + 3 * int(w) + 4}}
         methods.update({"trotter_steps": "bound", "gradient_circuit": "estimate (count rule)"})
         return {"evolution_time_s": t + total_delay_s(ex), "total_delay_s": total_delay_s(ex), "near_term": near,
