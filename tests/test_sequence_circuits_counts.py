@@ -13,7 +13,6 @@ import pytest
 from qiskit import QuantumCircuit
 
 from qhl import build_model
-from qhl.base.errors import QhlInputError
 from qhl.circuits.circuit_counts import circuit_counts
 from qhl.circuits.sequence_circuits import (PULSE_LAYERS, PlannedPulse, acquisition_terms, preparation_circuit,
                                             pulse_counts, sequence_counts, sequence_plan)
@@ -96,12 +95,13 @@ def test_budget_of_a_cluster_with_a_sequence_experiment():
     assert "sequence_circuits" in b.assumptions
 
 
-def test_budget_refuses_when_every_experiment_is_a_sequence():
+def test_budget_no_longer_refuses_when_every_experiment_is_a_sequence():
+    # A cluster of sequence experiments only is budgeted per component (tests/test_sequence_budget.py).
     import dataclasses
 
-    from qhl.costing import BudgetModel
+    from qhl.costing import BudgetModel, BudgetSettings
 
     cluster = load_cluster(EXAMPLE)
     only = dataclasses.replace(cluster, experiments=cluster.experiments[1:])
-    with pytest.raises(QhlInputError, match="every experiment .* pulse-sequence steps"):
-        BudgetModel(only)
+    bm = BudgetModel(only, settings=BudgetSettings(empirical_trotter=False, classical_meter=False))
+    assert bm.sequence_only and list(bm.budget(0.05, 0.01).sequences) == ["hahn"]

@@ -125,7 +125,9 @@ def run(args):
     _progress(f"budget at t = {t:g} s, eps = {args.precision:g}")
     known = len(bm.notes)
     budget = bm.budget(t, args.precision)
-    if args.clifford_t:
+    if args.clifford_t and bm.sequence_only:
+        _progress("note: --clifford-t writes a free-evolution step; this cluster has sequence experiments only")
+    elif args.clifford_t:
         from ..costing.synthesis import write_clifford_t_step
         ft = budget.fault_tolerant
         x = [e.name for e in bm.experiments].index(ft["worst_component"]["experiment"])
@@ -199,7 +201,32 @@ def _print_noisy(nt):
           "estimates, see --json 'assumptions'")
 
 
+def _print_sequence_budget(b, bm):
+    """Text of a budget whose every experiment has pulse-sequence steps (per component, worst experiment)."""
+    nt, ft = b.near_term, b.fault_tolerant
+    print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
+          f"t = {b.time_s:g} s after the sequence, eps = {b.precision:g} (per kHz)  [model-based estimates]")
+    for name, blk in b.sequences.items():
+        n, f = blk["near_term"], blk["fault_tolerant"]
+        print(f"sequence '{name}': evolution {blk['evolution_time_s']:.4g} s (delays {blk['total_delay_s']:.4g} s), "
+              f"worst component {n['worst_parameter']}, R = {n['component_range']:.4g}")
+        print(f"  shots per component: {_fmt(n['shots_per_component'])} (R^2 - mu^2; bound R^2 "
+              f"{_fmt(n['shots_per_component_bound'])}, Hoeffding {_fmt(n['shots_per_component_hoeffding'])}, "
+              f"compiled estimator {_fmt(n['shots_per_component_circuit'])})")
+        print(f"  gradient circuit: {_fmt(f['trotter_steps'])} Trotter steps (order {f['trotter_order']}), "
+              f"{_fmt(f['gradient_circuit']['cx'])} CX, {_fmt(f['gradient_circuit']['rotations'])} rotations, "
+              f"depth {_fmt(f['gradient_circuit']['depth'])}")
+        print(f"  fault-tolerant: {_fmt(f['steps_whole_evolution'])} steps over the whole evolution, T-count "
+              f"{_fmt(f['t_count'])}, gate layers {_fmt(f['depth'])}, {f['logical_qubits']} logical qubits")
+    c = b.comparison
+    print(f"worst: '{nt['experiment']}'; {'fault-tolerant' if c['fault_tolerant_cheaper'] else 'near-term'} is "
+          "cheaper per component (total gate layers). Full-gradient, Hessian and learning-run numbers need a "
+          "free-evolution experiment; see --json 'assumptions' and 'notes'")
+
+
 def _print_budget(b, bm):
+    if getattr(bm, "sequence_only", False):
+        return _print_sequence_budget(b, bm)
     nt, ft = b.near_term, b.fault_tolerant
     print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
           f"t = {b.time_s:g} s, eps = {b.precision:g} (per kHz)  [model-based estimates]")

@@ -42,7 +42,7 @@ from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthes
 from . import coherent_input, family_variance, learning_run, noisy_shots, trotter_order4
 from ..circuits import signal_trotter
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
-from .near_term import near_term_model
+from .near_term import near_term_model, sequence_gradient_range, total_delay_s
 from .trotter_cost import ORDERS, empirical_flops, empirical_trotter_steps, trotter_model
 
 __all__ = ["BudgetSettings", "BudgetModel", "Budget", "BudgetSweep", "all_assumptions", "fit_exponents",
@@ -63,9 +63,24 @@ SEQUENCE_ASSUMPTION = (
     "step length dt = t / r' for delays and acquisition, r' = ceil(r ((t + T_delays) / t)^(1/p)) so that the "
     "Trotter error, which adds over the delays and the acquisition (errors of unitary factors add; error per unit "
     "time ~ C dt^p), stays within the free-evolution share; counts by the step-count rule (CX exact for order 1, "
-    "rotations and CX estimates, depth the sum of the parts); gradients of sequence experiments not costed "
-    "(a Hadamard test through the preparation would cost (preparation + acquisition) per insertion point)")
+    "rotations and CX estimates, depth the sum of the parts)")
+SEQUENCE_GRADIENT_ASSUMPTION = (
+    "gradients of pulse-sequence experiments (per experiment under 'sequences', worst-range component): the "
+    "Hadamard test through the preparation (qhl.circuits.sequence_circuits.sequence_gradient_circuit), insertion "
+    "points over every delay and the acquisition; single-shot range R = 2 (t + T_delays) ||g_n||_1 2 pi |s_n| N_obs "
+    "(the whole Trotterised time; qhl.costing.near_term.sequence_gradient_range, Banchi and Crooks, Quantum 5, 386 "
+    "(2021)); shots: Hoeffding 2 R^2 ln(2/delta)/eps^2, bound R^2/eps^2, R^2 - mu^2 with mu the exact sequence "
+    "gradient (qhl.exact.sequence_engine; an upper bound for the product-input circuits), and on small clusters the "
+    "compiled estimator's exact variance (qhl.emulation.variance; circuit_variance_steps acquisition steps, delays "
+    "at the same step length); fault-tolerant: Trotter steps of the whole evolution (the signal circuit's r' "
+    "above plus the delays' steps), gradient circuit = signal-circuit counts + one controlled-Pauli gadget "
+    "(controlled-((-i)^w P), a Clifford gate; counted as 2 w CX, at most 2 w rz and 3 w + 4 layers, the most a "
+    "[cx, rz, sx, x] transpile of qhl.circuits.gradient_circuits' gadget shows, w the largest Pauli weight of g_n); "
+    "the top-level near_term and fault_tolerant numbers cover the free-evolution experiments")
 HESSIAN_FLOPS_PER_ELEMENT = 5000.0
+# The compiled sequence estimator's exact variance is computed when its circuit has at most this many Trotter
+# steps (acquisition + delays at one step length): each step adds insertion rows of dense unitaries.
+SEQUENCE_VARIANCE_MAX_STEPS = 512
 
 EXPECTED_EXPONENTS = {
     "near_term_component_bound": (2.0, -2.0),
@@ -392,30 +407,32 @@ class BudgetModel:
             raise QhlInputError("no free parameters to learn", key="free")
         if not cluster.experiments:
             raise QhlInputError("the cluster has no experiments", key="experiment")
-        # pulse-sequence experiments: their signal circuits are counted (sequence_counts); their gradient
-        # circuits (Hadamard tests through the preparation) are not built yet, so the gradient budget below
-        # covers the free-evolution experiments only
+        # pulse-sequence experiments are costed per experiment under 'sequences' (SEQUENCE_GRADIENT_ASSUMPTION);
+        # the full-gradient, Hessian and Fisher machinery below covers the free-evolution experiments; a cluster
+        # of sequence experiments only gets the per-component budget of its worst sequence (sequence_only)
         self.sequence_experiments = [ex for ex in cluster.experiments if getattr(ex, "steps", ())]
         self.experiments = [ex for ex in cluster.experiments if not getattr(ex, "steps", ())]
-        if not self.experiments:
-            raise QhlInputError(f"every experiment of '{cluster.name}' has pulse-sequence steps: gradient budgets "
-                                "of sequence experiments are not covered yet (add a free-evolution experiment; "
-                                "their signal circuits are counted by qhl.circuits.sequence_circuits.sequence_counts)",
-                                key="experiment.step")
+        self.sequence_only = not self.experiments
         self.notes = []
-        if self.sequence_experiments:
+        if self.sequence_only:
+            self.notes.append(
+                f"every experiment of '{cluster.name}' has pulse-sequence steps: the budget is per component of "
+                "the worst sequence experiment (range over t + delays, fault-tolerant steps over the whole "
+                "evolution); full-gradient, Hessian, Fisher, learning-run, noise-aware and sweep numbers cover "
+                "free-evolution experiments only")
+        elif self.sequence_experiments:
             self.notes.append(
                 f"pulse-sequence experiments ({', '.join(ex.name for ex in self.sequence_experiments)}): signal "
-                "circuits counted under 'sequences' (preparation + acquisition); their gradients are not in the "
-                "shot and fault-tolerant counts, which cover the free-evolution experiments "
-                f"({', '.join(ex.name for ex in self.experiments)}) only")
+                "circuits, gradient shots (range over the whole Trotterised time t + delays) and fault-tolerant "
+                "counts under 'sequences'; the top-level shot and fault-tolerant counts cover the free-evolution "
+                f"experiments ({', '.join(ex.name for ex in self.experiments)})")
         require_memory(f"the bound-tier budget of {self.model.n_spins} spins", bound_tier_memory_bytes(
-            self.model, self.experiments))
+            self.model, self.experiments or self.sequence_experiments))
         from ..circuits.targets import resolve_target
         self.target = resolve_target(self.settings.target, self.model.n_spins + NOISY_ANCILLAS, key="--target",
                                      what=f"{self.model.n_spins} spins + {NOISY_ANCILLAS} ancilla")
         self._routes = {}
-        self.exact_plan = exact_engine_plan(self.model, self.experiments, self.settings)
+        self.exact_plan = exact_engine_plan(self.model, self.experiments or self.sequence_experiments, self.settings)
         self.engine = None
         if self.exact_plan["use_engine"]:
             say(f"exact engine (about {self.exact_plan['memory_bytes'] / 2**30:.2g} GiB, "
@@ -450,6 +467,14 @@ class BudgetModel:
         say(f"time-quadrature commutators ({_time.perf_counter() - t0:.1f} s)")
         self._inserted = pauli_arrays([self.model.parameter(n).generator for n in self.model.free])
         self._quad = [self._quadrature(ex) for ex in self.experiments]
+        # sequence-only clusters: Trotter constants of each sequence's Hamiltonian (the same during delays and
+        # the acquisition: its dipolar scale; pulses are exact rotations)
+        self._seq_trotter = {}
+        if self.sequence_only:
+            import dataclasses
+            for ex in self.sequence_experiments:
+                bare = dataclasses.replace(ex, steps=())
+                self._seq_trotter[ex.name] = (trotter_model(self.model, bare), self._quadrature(bare))
         self._n_terms = np.array([len(self.model.parameter(n).generator) for n in self.model.free])
         self.classical = None
         if self.settings.classical_meter:
@@ -468,6 +493,8 @@ class BudgetModel:
     @property
     def default_time_s(self):
         """The shortest experiment window among experiments that see every free parameter."""
+        if self.sequence_only:
+            return float(min(ex.t_max_s for ex in self.sequence_experiments))
         full = [ex.t_max_s for x, ex in enumerate(self.experiments) if np.all(self.near.scales[x] != 0)]
         return float(min(full or [ex.t_max_s for ex in self.experiments]))
 
@@ -519,6 +546,8 @@ class BudgetModel:
         t, eps = float(time_s), float(precision)
         s = self.settings
         its = _iterations(s.iterations if iterations is None else iterations)
+        if self.sequence_only:
+            return self._sequence_only_budget(t, eps, its)
         nt = self.near
         has = nt.has_means
         tier = nt.method if has else "bound"
@@ -694,9 +723,10 @@ class BudgetModel:
         methods_ft["gate_counts_per_step"] = tm.counts_method
         methods = {"near_term": methods_near, "fault_tolerant": methods_ft,
                    "surface_code": "bound" if sc else None}
-        sequences = self._sequence_counts(t, order, int(ch["steps"]))
+        sequences = self._sequence_counts(t, order, int(ch["steps"]), eps)
         if sequences:
             assumptions["sequence_circuits"] = SEQUENCE_ASSUMPTION
+            assumptions["sequence_gradients"] = SEQUENCE_GRADIENT_ASSUMPTION
         notes = list(self.notes) + [
             f"sequence '{name}': {c['total']['steps']:,} Trotter steps (order {c['order']}; preparation "
             f"{c['preparation']['steps']:,} steps over {c['preparation']['delay_s']:g} s of delays and "
@@ -706,21 +736,157 @@ class BudgetModel:
         return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name, methods,
                       notes, dict(self.tiers), self._precision_hz(t, eps, hb), self.classical, sequences)
 
-    def _sequence_counts(self, t, order, steps):
-        """Signal-circuit counts of each pulse-sequence experiment at acquisition time t (SEQUENCE_ASSUMPTION)."""
+    def _sequence_counts(self, t, order, steps, eps=None):
+        """Per pulse-sequence experiment at acquisition time t: its signal-circuit counts (SEQUENCE_ASSUMPTION)
+        and, with eps, the near-term shots and fault-tolerant counts of its worst gradient component
+        (SEQUENCE_GRADIENT_ASSUMPTION; `_sequence_gradient`)."""
         if not self.sequence_experiments:
             return None
-        from ..circuits.sequence_circuits import acquisition_terms, sequence_counts
-        from ..spins.cluster import flat_steps
         out = {}
         for ex in self.sequence_experiments:
-            delays = sum(st.seconds for st in flat_steps(ex.steps) if hasattr(st, "seconds"))
+            delays = total_delay_s(ex)
             r = max(int(steps), math.ceil(steps * ((t + delays) / t) ** (1.0 / order) * (1 - 1e-12)))
-            c = sequence_counts(self.model, ex, t, r, order, terms=acquisition_terms(self.model, ex))
-            c.update({"order": int(order), "step_s": t / r, "acquisition_steps_free_evolution": int(steps),
-                      "method": "count rule (qhl.circuits.step_counts; all-to-all), estimate"})
-            out[ex.name] = c
+            out[ex.name] = self._sequence_block(ex, t, order, r, eps)
+            out[ex.name]["acquisition_steps_free_evolution"] = int(steps)
         return out
+
+    def _sequence_block(self, ex, t, order, r, eps):
+        """Signal-circuit counts of `ex` with r acquisition steps (delays at the same step length t / r) and,
+        with eps, its gradient budget (_sequence_gradient)."""
+        from ..circuits.sequence_circuits import acquisition_terms, sequence_counts
+        c = sequence_counts(self.model, ex, t, r, order, terms=acquisition_terms(self.model, ex))
+        c.update({"order": int(order), "step_s": t / r,
+                  "method": "count rule (qhl.circuits.step_counts; all-to-all), estimate"})
+        if eps is not None:
+            c.update(self._sequence_gradient(ex, t, eps, c))
+        return c
+
+    def _sequence_only_budget(self, t, eps, its):
+        """The budget of a cluster whose every experiment has pulse-sequence steps: per experiment the worst-range
+        component, fault-tolerant counts (qhl.costing.fault_tolerant) over the whole evolution t + T_delays with
+        that experiment's Hamiltonian (Trotter errors of the segments add: the bound for a free evolution of
+        length t + T_delays), its signal/gradient circuit with the acquisition's share of those steps; the top
+        level carries the experiment with the largest range (SEQUENCE_GRADIENT_ASSUMPTION)."""
+        s = self.settings
+        say = getattr(self, "_say", lambda msg: None)
+        say("pulse-sequence budget (every experiment has steps)")
+        chosen, sequences = [], {}
+        for ex in self.sequence_experiments:
+            total = t + total_delay_s(ex)
+            scales = self.model.scale_factors(ex)[self.model.free_indices]
+            ranges = sequence_gradient_range(t, ex, self.near.l1, scales, self.near.kappa, s.unit_hz)
+            n = int(np.argmax(ranges))
+            tm, quad = self._seq_trotter[ex.name]
+            ft_all = ft_cost_arrays(float(ranges[n]), total, eps, tm, quad, self._n_terms[n], self.model.n_spins,
+                                    s.split_dict(), s.synthesis, ORDERS, 1.0, delta=s.delta,
+                                    n_observed=int(self.near.kappa))
+            order, ch = choose_order(ft_all)
+            order, r_total = int(order), int(ch["steps"])
+            r_acq = max(1, math.ceil(r_total * t / total * (1 - 1e-12)))
+            blk = self._sequence_block(ex, t, order, r_acq, eps)
+            blk["fault_tolerant"].update({
+                "logical_qubits": int(ch["logical_qubits"]), "steps_whole_evolution": r_total,
+                "depth": int(ch["gate_layers"]), "t_depth": int(ch["t_depth"]), "t_count": int(ch["t_count"]),
+                "rotations_fault_tolerant": int(ch["rotations"]), "queries": int(ch["queries"]),
+                "trotter_steps_source": "time quadrature" if ch["steps_quadrature"] > ch["steps_trotter"]
+                else "commutator bound", "error_split": {k: float(v) for k, v in ft_all["split"].items()}})
+            sequences[ex.name] = blk
+            chosen.append((float(ranges[n]), ex.name))
+        worst = max(chosen)[1]
+        blk = sequences[worst]
+        near = dict(blk["near_term"], experiment=worst, iterations=its)
+        ftw = blk["fault_tolerant"]
+        ft = {k: ftw[k] for k in ("logical_qubits", "trotter_order", "depth", "t_depth", "t_count", "queries",
+                                  "trotter_steps_source")}
+        ft.update({"trotter_steps": ftw["steps_whole_evolution"], "rotations": ftw["rotations_fault_tolerant"],
+                   "evolution_time_s": blk["evolution_time_s"], "gradient_circuit": ftw["gradient_circuit"],
+                   "worst_component": {"experiment": worst, "parameter": near["worst_parameter"],
+                                       "range": near["component_range"]},
+                   "synthesis": s.synthesis})
+        layers = float(ftw["gradient_circuit"]["depth"])
+        best = near["shots_per_component_circuit"] or near["shots_per_component"]
+        comparison = {"near_term_layers_per_shot": layers,
+                      "near_term_total_layers_per_component": near["shots_per_component"] * layers,
+                      "near_term_total_layers_per_component_circuit": (near["shots_per_component_circuit"] * layers
+                                                                       if near["shots_per_component_circuit"] else None),
+                      "fault_tolerant_total_layers_per_component": float(ft["depth"]),
+                      "fault_tolerant_cheaper": bool(ft["depth"] < best * layers)}
+        methods = {"near_term": dict(blk["methods"]),
+                   "fault_tolerant": {k: "bound" for k in ("logical_qubits", "trotter_steps", "depth", "t_count",
+                                                           "rotations", "queries")},
+                   "sources": {"component_range": "qhl.costing.near_term.sequence_gradient_range (Banchi and Crooks "
+                                                  "2021, whole Trotterised time)",
+                               "shots_per_component_hoeffding": "qhl.costing.shots.hoeffding_shots (Hoeffding 1963)",
+                               "shots_per_component": "R^2 - mu^2, mu from qhl.exact.sequence_engine"
+                                                      if near["mean"] is not None else "R^2 (no exact mean)",
+                               "shots_per_component_circuit": "qhl.emulation.variance.family_moments of "
+                                                              "qhl.circuits.sequence_circuits.sequence_gradient_circuit",
+                               "trotter_steps": "qhl.costing.fault_tolerant.ft_cost_arrays over t + T_delays",
+                               "gradient_circuit": "qhl.circuits.sequence_circuits.sequence_counts + one "
+                                                   "controlled-Pauli gadget"},
+                   "surface_code": None}
+        sc = None
+        if s.physical_error is not None:
+            sc = surface_code.surface_code_estimate(ft["logical_qubits"], ft["depth"], ft["t_count"],
+                                                    s.physical_error, s.cycle_time_s, s.failure_budget,
+                                                    t_depth=ft["t_depth"]).to_json()
+            methods["surface_code"] = "bound"
+        assumptions = all_assumptions(s)
+        assumptions["sequence_circuits"] = SEQUENCE_ASSUMPTION
+        assumptions["sequence_gradients"] = SEQUENCE_GRADIENT_ASSUMPTION
+        notes = list(self.notes)
+        return Budget(t, eps, near, ft, ftw["error_split"], comparison, sc, assumptions, self.cluster.name, methods,
+                      notes, dict(self.tiers), None, self.classical, sequences)
+
+    def _sequence_gradient(self, ex, t, eps, counts):
+        """{evolution_time_s, near_term, fault_tolerant, methods} of the worst-range gradient component of one
+        sequence experiment (module constant SEQUENCE_GRADIENT_ASSUMPTION states the model)."""
+        s, nt = self.settings, self.near
+        scales = self.model.scale_factors(ex)[self.model.free_indices]
+        ranges = sequence_gradient_range(t, ex, nt.l1, scales, nt.kappa, s.unit_hz)
+        n = int(np.argmax(ranges))
+        name, rng = nt.names[n], float(ranges[n])
+        near = {"worst_parameter": name, "component_range": rng,
+                "shots_per_component_bound": math.ceil(rng**2 / eps**2 * (1 - 1e-12)),
+                "shots_per_component_hoeffding": shots.hoeffding_shots(rng, eps, s.delta),
+                "shots_per_component_circuit": None}
+        methods = {"component_range": "bound", "shots_per_component_bound": "bound",
+                   "shots_per_component_hoeffding": "bound", "shots_per_component": "bound",
+                   "shots_per_component_circuit": None}
+        mu = None
+        if self.engine is not None:
+            try:
+                _, g = self.engine.gradient(ex, times=[t], parameters=[name])
+                mu = float(np.real(g[0, 0])) * s.unit_hz
+            except MemoryBudgetError as e:
+                self._note(f"sequence '{ex.name}': exact mean skipped: {e}")
+        near["mean"] = mu
+        var = float(shots.two_valued_variance(rng, mu)) if mu is not None else rng**2
+        near["shots_per_component"] = math.ceil(var / eps**2 * (1 - 1e-12))
+        if mu is not None:
+            methods["shots_per_component"] = "exact"
+        circuit_steps = s.circuit_variance_steps * (1 + total_delay_s(ex) / t)
+        if circuit_steps > SEQUENCE_VARIANCE_MAX_STEPS:
+            self._note(f"sequence '{ex.name}': compiled estimator's variance skipped: about {circuit_steps:.0f} "
+                       f"Trotter steps at the acquisition's step length (at most {SEQUENCE_VARIANCE_MAX_STEPS})")
+        elif family_variance.fits_circuit_variance(self.model.n_spins, s.circuit_variance_max_spins):
+            from ..circuits.sequence_circuits import sequence_gradient_circuit
+            from ..emulation.variance import family_moments
+            fam = sequence_gradient_circuit(self.model, ex, name, t, s.circuit_variance_steps,
+                                            s.circuit_variance_order)
+            mo = family_moments(fam, "re")
+            near["shots_per_component_circuit"] = math.ceil(mo.variance * s.unit_hz**2 / eps**2 * (1 - 1e-12))
+            near["circuit_range"] = float(mo.value_range * s.unit_hz)
+            methods["shots_per_component_circuit"] = "exact"
+        w = max(len(label.replace("I", "")) for label in self.model.parameter(name).generator.paulis.to_labels())
+        tot = counts["total"]
+        ft = {"trotter_order": counts["order"], "trotter_steps": int(tot["steps"]),
+              "gadget": {"pauli_weight": int(w), "cx": 2 * int(w), "rotations": 2 * int(w), "depth": 3 * int(w) + 4},
+              "gradient_circuit": {"cx": int(tot["cx"]) + 2 * int(w), "rotations": int(tot["rotations"]) + 2 * int(w),
+                                   "depth": int(tot["depth"]) + 3 * int(w) + 4}}
+        methods.update({"trotter_steps": "bound", "gradient_circuit": "estimate (count rule)"})
+        return {"evolution_time_s": t + total_delay_s(ex), "total_delay_s": total_delay_s(ex), "near_term": near,
+                "fault_tolerant": ft, "methods": methods}
 
     # ------------------------------------------------------------------ noise-aware near-term counts
     @staticmethod
@@ -875,6 +1041,9 @@ class BudgetModel:
         One engine gradient call per experiment covers every time of the sweep; eps enters as
         1/eps^2 for the near-term counts and through the vectorised fault-tolerant formulas.
         """
+        if self.sequence_only:
+            raise QhlInputError("sweeps of a cluster whose every experiment has pulse-sequence steps are not "
+                                "covered yet: give one --time and --precision", key="--sweep-time")
         times = np.atleast_1d(np.asarray(times, float))
         precisions = np.atleast_1d(np.asarray(precisions, float))
         shots.check_time(times, "sweep-time")

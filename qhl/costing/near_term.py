@@ -29,7 +29,7 @@ import numpy as np
 
 from .shots import gradient_shot_range, hessian_shot_range, two_valued_variance
 
-__all__ = ["NearTermModel", "near_term_model"]
+__all__ = ["NearTermModel", "near_term_model", "total_delay_s", "sequence_gradient_range"]
 
 
 @dataclass
@@ -226,3 +226,31 @@ def near_term_model(engine, experiments, unit_hz=1e3, model=None, method="exact"
     sig = np.array([ex.noise if ex.noise else 1.0 for ex in experiments], float)
     return NearTermModel(engine, list(experiments), free, l1, scales, kappa, unit_hz, 1.0 / sig,
                          method if engine is not None else "bound")
+
+
+# ---------------------------------------------------------------- pulse-sequence experiments
+def total_delay_s(experiment) -> float:
+    """Sum of the delays of an experiment's pulse sequence in seconds (repeats unrolled; 0 for a free evolution)."""
+    from ..spins.cluster import flat_steps
+    return float(sum(st.seconds for st in flat_steps(getattr(experiment, "steps", ()) or ()) if hasattr(st, "seconds")))
+
+
+def sequence_gradient_range(t, experiment, coefficient_l1, scale, kappa, unit_hz=1e3):
+    """Single-shot range R of dS/dh_n (per unit_hz) of a pulse-sequence experiment at acquisition time t.
+
+    Derivation (the Hadamard-test family of qhl.circuits.sequence_circuits.sequence_gradient_circuit).
+    Pulses carry no parameter, so the insertion points run over every Trotterised segment (each delay
+    tau_d and the acquisition t); point a = (segment, slot s, Pauli k) has beta_a = tau_s 2 pi s_n g_{n,k}
+    and the family's weight 2 beta_a. In every step of a product formula of order 1 or 2 each term acts
+    for a total of the step's length (the two halves of order 2 add up to it), so summed over a segment
+    the slot lengths give the segment's length and
+        sum_a |beta_a| = 2 pi |s_n| ||g_n||_1 (t + sum_d tau_d) =: W.
+    One shot draws a row with probability |beta_a| / W and returns the sign times 2 W times one
+    read-out of the signal observable, which lies in [-N_obs, N_obs] (qhl.circuits.state_prep), so
+        |x| <= R = 2 W N_obs = 2 (t + T_delays) ||g_n||_1 2 pi |s_n| N_obs,
+    the free-evolution formula (qhl.costing.shots.gradient_shot_range, Banchi and Crooks, Quantum 5,
+    386 (2021)) with t replaced by the whole Trotterised time t + T_delays. For an experiment without
+    steps T_delays = 0 and R is the FID range.
+    """
+    total = np.asarray(t, float) + total_delay_s(experiment)
+    return gradient_shot_range(total, coefficient_l1, scale, kappa, unit_hz)
