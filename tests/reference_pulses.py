@@ -79,3 +79,31 @@ def net_rotation(model, experiment):
         if not hasattr(st, "seconds"):
             w = pulse_matrix(model, st.angle_deg, st.phase_deg, st.isotope) @ w
     return w
+
+
+def dense_trotter_sequence_signal(model, experiment, values, time, steps, order, delay_steps):
+    """S_trot(t) at parameter values `values` (None: the model's own): each delay S(tau/r_d)^{r_d}, each
+    pulse its full-space matrix, then S(t/r)^r (reference_trotter's product formula; nothing of qhl)."""
+    from reference_trotter import _group_terms, _sequence, _values
+
+    vals = _values(model, values)
+    mats = [sum(vals[k] * m for k, m in g.items()) for g in _group_terms(model, experiment)]
+    dim = 2 ** len(model.labels)
+
+    def u_trot(t, r):
+        step = np.eye(dim, dtype=complex)
+        for g, d in _sequence(len(mats), t, r, order):
+            step = sla.expm(-1j * d * mats[g]) @ step
+        return np.linalg.matrix_power(step, r)
+
+    w = np.eye(dim, dtype=complex)
+    k = 0
+    for st in unrolled(experiment.steps):
+        if hasattr(st, "seconds"):
+            w = u_trot(st.seconds, delay_steps[k]) @ w
+            k += 1
+        else:
+            w = pulse_matrix(model, st.angle_deg, st.phase_deg, st.isotope) @ w
+    u = u_trot(time, steps) @ w
+    rho, obs = initial_and_detection(model)
+    return np.trace(obs @ u @ rho @ u.conj().T) / np.trace(obs @ rho).real

@@ -12,7 +12,6 @@ Phys. Rev. X 11, 011020 (2021)).
 
 import numpy as np
 import pytest
-import scipy.linalg as sla
 
 from qhl import ExactEngine, build_model
 from qhl.base.errors import QhlInputError
@@ -23,9 +22,8 @@ from qhl.spins.cluster import Cluster, Delay, Experiment, Pair, Pulse, Spin
 from qhl.spins.sequences import named_block
 
 from made_up_clusters import small_cluster
-from reference_dense import initial_and_detection
-from reference_pulses import pulse_matrix, unrolled
-from reference_trotter import _group_terms, _sequence, _values, five_point
+from reference_pulses import dense_trotter_sequence_signal
+from reference_trotter import _values, five_point
 
 FREE = ["offset:*", "dipolar:*", "j:*"]
 
@@ -38,29 +36,6 @@ def other_cluster():
     return Cluster(9.4, "1H", spins, pairs, (Experiment("x", 0.3, 4, 1.0),))
 
 
-def dense_trotter_sequence_signal(model, experiment, values, time, steps, order, delay_steps):
-    """S_trot(t) at parameter values `values`: each delay S(tau/r_d)^{r_d}, each pulse its matrix, S(t/r)^r."""
-    vals = _values(model, values)
-    mats = [sum(vals[k] * m for k, m in g.items()) for g in _group_terms(model, experiment)]
-    dim = 2 ** len(model.labels)
-
-    def u_trot(t, r):
-        step = np.eye(dim, dtype=complex)
-        for g, d in _sequence(len(mats), t, r, order):
-            step = sla.expm(-1j * d * mats[g]) @ step
-        return np.linalg.matrix_power(step, r)
-
-    w = np.eye(dim, dtype=complex)
-    k = 0
-    for st in unrolled(experiment.steps):
-        if hasattr(st, "seconds"):
-            w = u_trot(st.seconds, delay_steps[k]) @ w
-            k += 1
-        else:
-            w = pulse_matrix(model, st.angle_deg, st.phase_deg, st.isotope) @ w
-    u = u_trot(time, steps) @ w
-    rho, obs = initial_and_detection(model)
-    return np.trace(obs @ u @ rho @ u.conj().T) / np.trace(obs @ rho).real
 
 
 def fd_gradient(model, experiment, name, time, steps, order, delay_steps):
