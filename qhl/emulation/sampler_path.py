@@ -52,7 +52,7 @@ from ..base.memory import require_memory
 from .noise import NOISY_BASIS, NoiseSpec
 from .runner import FamilyRunner, values_of_outcomes
 
-__all__ = ["SamplerRunner", "device_backend", "pub_plan", "DENSITY_MAX_QUBITS", "active_qubits", "run_sampler_batch"]
+__all__ = ["SamplerRunner", "device_backend", "pub_plan", "capped_jobs", "DENSITY_MAX_QUBITS", "active_qubits", "run_sampler_batch"]
 
 DENSITY_MAX_QUBITS = 10
 
@@ -101,13 +101,20 @@ def pub_plan(counts, shots_per_pub=None, max_circuits=None):
     else:
         reps = -(-counts // int(shots_per_pub))
         blocks.append((np.repeat(np.arange(len(counts)), reps), int(shots_per_pub)))
+    return [[(idx, n) for _, idx, n in job]
+            for job in capped_jobs([(None, idx, n) for idx, n in blocks], max_circuits)]
+
+
+def capped_jobs(blocks, max_circuits=None):
+    """[(tag, setting indices, shots)] cut, in order, into jobs of at most `max_circuits` bound circuits
+    (None or 0: one job); a block that does not fit is split across jobs, keeping its tag and shots."""
     cap = int(max_circuits) if max_circuits else None
     jobs, job, size = [], [], 0
-    for idx, n in blocks:
+    for tag, idx, n in blocks:
         start = 0
         while start < len(idx):
             room = len(idx) - start if cap is None else min(len(idx) - start, cap - size)
-            job.append((idx[start:start + room], n))
+            job.append((tag, idx[start:start + room], n))
             size += room
             start += room
             if cap is not None and size >= cap:
@@ -281,20 +288,7 @@ def run_sampler_batch(jobs, rng) -> list:
         for j in members:
             for job in pub_plan(preps[j]["counts"], first.shots_per_pub, None):
                 blocks += [(j, idx, n) for idx, n in job]
-        cap = first.max_circuits
-        calls, call, size = [], [], 0
-        for j, idx, n in blocks:
-            start = 0
-            while start < len(idx):
-                room = len(idx) - start if cap is None else min(len(idx) - start, cap - size)
-                call.append((j, idx[start:start + room], n))
-                size += room
-                start += room
-                if cap is not None and size >= cap:
-                    calls.append(call)
-                    call, size = [], 0
-        if call:
-            calls.append(call)
+        calls = capped_jobs(blocks, first.max_circuits)
         got = {j: [dict() for _ in range(len(preps[j]["counts"]))] for j in members}
         start = _time.perf_counter()
         for call in calls:
