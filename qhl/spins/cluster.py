@@ -13,6 +13,7 @@ import numpy as np
 
 from ..base.errors import QhlInputError
 from .nuclei import larmor_frequency_hz, nucleus
+from .spinning import MAGIC_ANGLE_DEG
 
 __all__ = ["Spin", "Pair", "Delay", "Pulse", "Block", "Experiment", "Cluster", "flat_steps", "refuse_steps",
            "MAX_STEPS", "MIN_DISTANCE_ANGSTROM", "MAX_SPINS", "MAX_POINTS",
@@ -28,6 +29,7 @@ MAX_COORDINATE_ANGSTROM = 1e6   # |x|, |y|, |z| <= 1e6 angstrom (0.1 mm): far be
 MAX_T_MAX_S = 1e3               # 0 < t_max_s <= 1000 s: far beyond any FID (T2 <= seconds, common practice)
 MAX_POINTS = 2**20              # 2 <= points <= 1,048,576: 16 MiB per complex signal and per gradient row;
 #                                 spectrometers record at most a few 1e5 complex points (common practice)
+MAX_SPINNING_HZ = 1e6            # 0 <= spinning_hz <= 1 MHz: above the fastest rotors, about 0.15 MHz (common practice)
 MAX_DIPOLAR_SCALE = 10.0        # |dipolar_scale| <= 10 (scaling sequences give |s| <= 1)
 NOISE_RANGE = (1e-15, 1e3)      # noise per point relative to S(0) = 1: above round-off, below nonsense
 MAX_PPM = 1e6                   # |shift_ppm|, |reference_ppm| <= 1e6 ppm
@@ -163,6 +165,13 @@ def flat_steps(steps) -> list:
     return out
 
 
+def refuse_spinning(experiment, what: str) -> None:
+    """Refuse a spinning experiment where `what` covers static samples only (not ignore the spinning)."""
+    if experiment is not None and float(getattr(experiment, "spinning_hz", 0.0) or 0.0) > 0:
+        raise QhlInputError(f"experiment '{experiment.name}' spins ({experiment.spinning_hz:g} Hz), not covered yet "
+                            f"by {what} (static samples only)", key="experiment.spinning_hz")
+
+
 def refuse_steps(experiment, what: str) -> None:
     """Refuse a pulse-sequence experiment where `what` covers free evolution only (not ignore its steps)."""
     if experiment is not None and getattr(experiment, "steps", ()):
@@ -189,6 +198,8 @@ class Experiment:
     dipolar_scale: float = 1.0
     noise: float | None = None
     steps: tuple = ()
+    spinning_hz: float = 0.0
+    spinning_angle_deg: float = MAGIC_ANGLE_DEG
 
     @property
     def times_s(self) -> np.ndarray:
@@ -216,6 +227,9 @@ def check_experiment(ex, key="experiment", source=None) -> None:
             raise QhlInputError(f"{e} (one complex signal alone would need {_bytes_text(need)})") from None
         raise
     checked_number(ex.dipolar_scale, key + ".dipolar_scale", source, max_abs=MAX_DIPOLAR_SCALE)
+    checked_number(getattr(ex, "spinning_hz", 0.0), key + ".spinning_hz", source, low=0, high=MAX_SPINNING_HZ)
+    checked_number(getattr(ex, "spinning_angle_deg", MAGIC_ANGLE_DEG), key + ".spinning_angle_deg", source,
+                   low=0, high=90)
     if ex.noise is not None:
         checked_number(ex.noise, key + ".noise", source, low=NOISE_RANGE[0], high=NOISE_RANGE[1])
     steps = getattr(ex, "steps", ())

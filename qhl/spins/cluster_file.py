@@ -25,6 +25,9 @@ TOML layout (all keys checked; unknown keys are errors):
     steps = [{delay_s = 1e-5}, {pulse_deg = 180}, {delay_s = 1e-5}]
                                      # (or [[experiment.step.steps]] tables; blocks may nest)
     The sampling times count from the end of the last step.
+    spinning_hz = 10e3               # optional on an experiment: spin the sample (0 <= rate <= 1 MHz) about an
+    spinning_angle_deg = 54.7356     # axis this far from the field (0-90, default the magic angle); rotor frame
+                                     # and crystallite orientation: qhl.spins.spinning
 
 Every number is checked for type (no bool, no string, no integer beyond a float) and range
 (the constants of qhl.spins.cluster: |offset|, |J|, |dipolar| <= 1e9 Hz, 0 < t_max_s <= 1e3 s,
@@ -38,6 +41,7 @@ import tomllib
 
 import numpy as np
 
+from .spinning import MAGIC_ANGLE_DEG
 from .cluster import (MAX_ANGLE_DEG, MAX_COORDINATE_ANGSTROM, MAX_FIELD_TESLA, MAX_FREQUENCY_HZ,
                       MAX_NESTING_STEPS, MAX_PPM, MAX_REPEAT, MAX_T_MAX_S, Block, Cluster, Delay, Experiment,
                       Pair, Pulse, Spin, _short, check_experiment, check_spin_count, checked_number)
@@ -52,7 +56,7 @@ __all__ = ["load_cluster", "parse_cluster_toml", "step_tables", "load_xyz", "rea
 _TOP = {"name", "field_tesla", "field_direction", "observe", "reference_ppm", "spin", "pair", "experiment"}
 _SPIN = {"label", "isotope", "position_angstrom", "offset_hz", "shift_ppm"}
 _PAIR = {"spins", "j_hz", "dipolar_hz"}
-_EXPERIMENT = {"name", "t_max_s", "points", "dipolar_scale", "noise", "step"}
+_EXPERIMENT = {"name", "t_max_s", "points", "dipolar_scale", "noise", "step", "spinning_hz", "spinning_angle_deg"}
 _STEP_KINDS = ("delay_s", "pulse_deg", "sequence", "steps")
 _STEP_KEYS = {"delay_s": {"delay_s"}, "pulse_deg": {"pulse_deg", "phase_deg", "isotope"},
               "sequence": {"sequence", "tau_s", "repeat", "isotope"}, "steps": {"steps", "repeat"}}
@@ -243,12 +247,18 @@ def parse_cluster_toml(text: str, source: str = "<string>") -> Cluster:
         if not isinstance(raw_steps, list):
             raise QhlInputError("expected [[experiment.step]] entries", source=source, key=where + ".step")
         steps = _parse_steps(raw_steps, where + ".step", source, 0)
+        if "spinning_angle_deg" in t and not t.get("spinning_hz"):
+            raise QhlInputError("spinning_angle_deg needs spinning_hz > 0 (a static sample has no rotor axis)",
+                                source=source, key=where + ".spinning_angle_deg")
         ex = Experiment(name=name, t_max_s=t_max, points=points, dipolar_scale=t.get("dipolar_scale", 1.0),
-                        noise=t.get("noise"), steps=steps)
+                        noise=t.get("noise"), steps=steps, spinning_hz=t.get("spinning_hz", 0.0),
+                        spinning_angle_deg=t.get("spinning_angle_deg", MAGIC_ANGLE_DEG))
         check_experiment(ex, where, source)
         experiments.append(Experiment(name=name, t_max_s=float(t_max), points=int(points),
                                       dipolar_scale=float(ex.dipolar_scale),
-                                      noise=None if ex.noise is None else float(ex.noise), steps=steps))
+                                      noise=None if ex.noise is None else float(ex.noise), steps=steps,
+                                      spinning_hz=float(ex.spinning_hz),
+                                      spinning_angle_deg=float(ex.spinning_angle_deg)))
     direction = doc.get("field_direction", [0.0, 0.0, 1.0])
     if not isinstance(direction, list) or len(direction) != 3:
         raise QhlInputError(f"expected [x, y, z], got {_short(direction)}", source=source, key="field_direction")

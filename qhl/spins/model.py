@@ -45,6 +45,7 @@ class Parameter:
     spins: tuple         # labels
     value_hz: float
     generator: SparsePauliOp
+    direction: tuple | None = None   # dipolar terms: unit internuclear vector (cluster frame), if positioned
 
 
 def spin_operator(axis: str, qubit: int, n: int) -> SparsePauliOp:
@@ -87,6 +88,7 @@ class HamiltonianModel:
     parameters: tuple
     free: tuple
     hidden: tuple = ()
+    field_direction: tuple = (0.0, 0.0, 1.0)   # static field in the cluster frame (dipolar values use it)
 
     @property
     def n_spins(self) -> int:
@@ -153,7 +155,15 @@ class HamiltonianModel:
         return replace(self, parameters=params)
 
     def scale_factors(self, experiment: Experiment | None) -> np.ndarray:
-        """s_n for each parameter in `experiment` (dipolar terms times its dipolar_scale)."""
+        """s_n for each parameter in `experiment` (dipolar terms times its dipolar_scale).
+
+        Raises:
+            QhlInputError: a spinning experiment (its factors change in time: qhl.spins.spinning).
+        """
+        if experiment is not None and float(getattr(experiment, "spinning_hz", 0.0) or 0.0) > 0:
+            raise QhlInputError(f"experiment '{experiment.name}' spins ({experiment.spinning_hz:g} Hz): its dipolar "
+                                f"factors change in time (qhl.spins.spinning.spinning_factors); this path covers "
+                                f"static experiments only", key="experiment.spinning_hz")
         s = np.ones(len(self.parameters))
         if experiment is not None:
             for k, p in enumerate(self.parameters):
@@ -227,6 +237,11 @@ def build_model(cluster: Cluster, free=DEFAULT_FREE, orientation=None) -> Hamilt
         homo = isotopes[i] == isotopes[j]
         pair = overrides.get(frozenset((si.label, sj.label)))
         value = None
+        vec = None
+        if si.position_angstrom is not None and sj.position_angstrom is not None:
+            d = np.subtract(sj.position_angstrom, si.position_angstrom, dtype=float)
+            norm = float(np.linalg.norm(d))
+            vec = tuple(float(x) for x in d / norm) if norm > 0 else None
         if pair is not None and pair.dipolar_hz is not None:
             value = float(pair.dipolar_hz)
         elif si.position_angstrom is not None and sj.position_angstrom is not None:
@@ -235,7 +250,7 @@ def build_model(cluster: Cluster, free=DEFAULT_FREE, orientation=None) -> Hamilt
                                         si.position_angstrom, sj.position_angstrom, direction)
         if value is not None:
             params.append(Parameter(f"dipolar:{si.label}-{sj.label}", "dipolar", (si.label, sj.label),
-                                    value, _dipolar_generator(i, j, n, homo)))
+                                    value, _dipolar_generator(i, j, n, homo), vec))
     for i, j in itertools.combinations(range(n), 2):
         si, sj = cluster.spins[i], cluster.spins[j]
         pair = overrides.get(frozenset((si.label, sj.label)))
@@ -243,7 +258,9 @@ def build_model(cluster: Cluster, free=DEFAULT_FREE, orientation=None) -> Hamilt
             params.append(Parameter(f"j:{si.label}-{sj.label}", "j", (si.label, sj.label), float(pair.j_hz),
                                     _j_generator(i, j, n, isotopes[i] == isotopes[j])))
     model = HamiltonianModel(labels=labels, isotopes=isotopes, observed=observed,
-                             parameters=tuple(params), free=())
+                             parameters=tuple(params), free=(),
+                             field_direction=tuple(float(x) for x in np.asarray(direction, float)
+                                                   / np.linalg.norm(direction)))
     patterns = [free] if isinstance(free, str) else list(free)
     model = model.with_free(patterns) if patterns else model
     if tuple(patterns) == tuple(DEFAULT_FREE):

@@ -336,6 +336,9 @@ def cluster_to_toml(cluster: Cluster, comment: str | None = None) -> str:
                 f"points = {int(ex.points)}", f"dipolar_scale = {_toml_float(ex.dipolar_scale)}"]
         if ex.noise is not None:
             out.append(f"noise = {_toml_float(ex.noise)}")
+        if getattr(ex, "spinning_hz", 0.0):
+            out += [f"spinning_hz = {_toml_float(ex.spinning_hz)}",
+                    f"spinning_angle_deg = {_toml_float(ex.spinning_angle_deg)}"]
     return "\n".join(out) + "\n"
 
 
