@@ -41,12 +41,26 @@ def pulse_matrix(model, angle_deg, phase_deg, isotope):
     return sla.expm(-1j * th * gen)
 
 
+def rf_matrix(model, angle_deg, phase_deg, isotope, duration_s):
+    """2 pi nu1 sum_k (cos phi Ix_k + sin phi Iy_k), nu1 = (angle / 360) / duration: a finite pulse's RF term."""
+    n = len(model.labels)
+    qubits = ([q for q in range(n) if model.observed[q]] if isotope is None else
+              [q for q in range(n) if model.isotopes[q] == isotope])
+    ph = np.deg2rad(phase_deg)
+    nu1 = angle_deg / 360.0 / duration_s
+    return 2 * np.pi * nu1 * sum(np.cos(ph) * spin_matrix("x", q, n) + np.sin(ph) * spin_matrix("y", q, n)
+                                 for q in qubits)
+
+
 def preparation(model, experiment, h):
-    """W, the product of the steps' matrices in order."""
+    """W, the product of the steps' matrices in order (a finite pulse: expm(-i (H + H_rf) duration))."""
     w = np.eye(h.shape[0], dtype=complex)
     for st in unrolled(experiment.steps):
         if hasattr(st, "seconds"):
             w = sla.expm(-1j * h * st.seconds) @ w
+        elif getattr(st, "duration_s", None) is not None:
+            rf = rf_matrix(model, st.angle_deg, st.phase_deg, st.isotope, st.duration_s)
+            w = sla.expm(-1j * (h + rf) * st.duration_s) @ w
         else:
             w = pulse_matrix(model, st.angle_deg, st.phase_deg, st.isotope) @ w
     return w

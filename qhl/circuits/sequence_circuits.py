@@ -42,7 +42,7 @@ from qiskit.circuit import Parameter, ParameterVector
 
 from ..base.errors import QhlInputError
 from ..exact.sequence_engine import _pulse_qubits
-from ..spins.cluster import Delay, Pulse, flat_steps
+from ..spins.cluster import Delay, Pulse, flat_steps, has_finite_pulses
 from .circuit_family import CircuitFamily, InsertionTable, count_build
 from .gradient_circuits import (_ancilla_phase, _controlled_pauli, _evolve, _prepare, _read_out, _require_points,
                                 _system_observable, insertion_points)
@@ -99,6 +99,9 @@ def sequence_plan(model, experiment, time: float, steps: int, delay_steps=None, 
             and no step_s).
     """
     flat = flat_steps(getattr(experiment, "steps", ()) or ())
+    if has_finite_pulses(experiment):
+        raise QhlInputError(f"experiment '{experiment.name}' has finite pulses (duration_s): the circuits compile "
+                            "ideal pulses only (the exact engine covers finite ones)", key="experiment.step.duration_s")
     delays = [st for st in flat if isinstance(st, Delay)]
     if delay_steps is None:
         dt = step_s if step_s is not None else (time / steps if time > 0 else None)

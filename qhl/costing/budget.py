@@ -38,6 +38,7 @@ from ..base.errors import MemoryBudgetError, QhlInputError
 from ..base.memory import available_memory_bytes, require_memory
 from ..circuits.pauli_commutators import pauli_arrays, quadrature_norms
 from ..spins.model import DEFAULT_FREE, build_model
+from ..spins.cluster import has_finite_pulses
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
 from . import coherent_input, family_variance, learning_run, noisy_shots, trotter_order4
 from ..circuits import signal_trotter
@@ -410,10 +411,19 @@ class BudgetModel:
         # pulse-sequence experiments are costed per experiment under 'sequences' (SEQUENCE_GRADIENT_ASSUMPTION);
         # the full-gradient, Hessian and Fisher machinery below covers the free-evolution experiments; a cluster
         # of sequence experiments only gets the per-component budget of its worst sequence (sequence_only)
-        self.sequence_experiments = [ex for ex in cluster.experiments if getattr(ex, "steps", ())]
+        finite = [ex.name for ex in cluster.experiments if has_finite_pulses(ex)]
+        if finite and len(finite) == len(cluster.experiments):
+            raise QhlInputError(f"every experiment of '{cluster.name}' has finite pulses (duration_s), which the "
+                                "circuits do not compile yet (ideal pulses only): nothing to cost",
+                                key="experiment.step.duration_s")
+        self.sequence_experiments = [ex for ex in cluster.experiments if getattr(ex, "steps", ())
+                                     and ex.name not in finite]
         self.experiments = [ex for ex in cluster.experiments if not getattr(ex, "steps", ())]
         self.sequence_only = not self.experiments
         self.notes = []
+        if finite:
+            self.notes.append(f"experiments with finite pulses ({', '.join(finite)}) are left out: the circuits "
+                              "compile ideal pulses only (the exact engine covers finite ones)")
         if self.sequence_only:
             self.notes.append(
                 f"every experiment of '{cluster.name}' has pulse-sequence steps: the budget is per component of "

@@ -1,4 +1,4 @@
-"""Exact signals and gradients of pulse-sequence experiments (ideal pulses, free delays).
+"""Exact signals and gradients of pulse-sequence experiments (ideal or finite pulses, free delays).
 
 Signal (normalised as the FID, N = Tr[O rho0], so a perfect echo has |S(0)| = 1):
     S(t) = Tr[O U(t) rho_prep U(t)^dag] / N,   rho_prep = W rho0 W^dag,
@@ -22,6 +22,11 @@ forward through the steps in the same eigenbasis, dX = V^dag (d rho) V:
             of exp(-i E tau) (Daleckii-Krein; R. Bhatia, "Matrix Analysis", 1997, ch. V;
             qhl.exact.divided_differences),
     pulse:  dX -> R dX R^dag (ideal pulses do not depend on h).
+    finite pulse (qhl.spins.cluster.Pulse with duration_s): R = exp(-i (H + H_rf) tau_p) in the full
+            2^n space (the RF term mixes the magnetisation sectors), from one dense eigendecomposition
+            H + H_rf = W diag(eps) W^dag; it depends on h through H, so
+            d(R rho R^dag) = R drho R^dag + dR rho R^dag + R rho dR^dag,
+            dR = W ((W^dag 2 pi s_n G_n W) o F) W^dag, F_ab = f[eps_a, eps_b] as for a delay.
 Parameters go in chunks that fit CHUNK_BYTES; X is propagated once per chunk. Work above
 PROGRESS_ABOVE_FLOPS (estimate: 8 D sum_k d_k^2 per matrix and run of steps) shows a progress line.
 
@@ -32,12 +37,15 @@ sequence experiments are refused by the engine (not covered).
 """
 
 import numpy as np
+import scipy.linalg as sla
+import scipy.sparse as sp
 
-from ..base.blas import blas_limited
+from ..base.blas import blas_limited, blas_threads
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
 from ..base.progress import Progress
 from ..spins.cluster import Delay, Pulse, flat_steps
+from ..spins.model import spin_operator
 from .divided_differences import first_divided_difference
 
 __all__ = ["sequence_signal", "sequence_gradient", "sequence_memory_bytes", "pulse_rotation",
@@ -52,19 +60,26 @@ def _chunk(n_spins, n_params):
     return min(n_params, max(1, int(CHUNK_BYTES // (9 * 16 * 4.0**n_spins))))
 
 
-def sequence_memory_bytes(n_spins: int, n_params: int = 0, n_times: int = 64) -> float:
+def sequence_memory_bytes(n_spins: int, n_params: int = 0, n_times: int = 64, finite_pulses: int = 0) -> float:
     """Peak-memory model (bytes), D = 2^n: X, O~, rho0 and three work copies (16 D^2 each), the
     eigenvectors (8 D^2 at most), one chunk of c parameters at 9 dense complex matrices each (dX,
     the two delay products, and the copies of a pulse's basis changes), and time tables (48 D T).
+    Each finite pulse adds W, R and the divided differences (3 x 16 D^2, held for the run) and, in a
+    gradient, the chunk's dR and two work products (16 D^2 each, one pulse at a time).
     Checked against the tracemalloc peak in tests/test_sequences.py (6 and 7 spins)."""
     d2 = 4.0 ** n_spins
     chunk = _chunk(n_spins, n_params) if n_params else 0
-    return 16.0 * d2 * (6 + 9 * chunk) + 8.0 * d2 + 48.0 * 2.0**n_spins * n_times
+    finite = 16.0 * d2 * (3 * finite_pulses + (chunk + 2 if finite_pulses else 0))
+    return 16.0 * d2 * (6 + 9 * chunk) + 8.0 * d2 + 48.0 * 2.0**n_spins * n_times + finite
 
 
-def _require(engine, n_params, n_times):
+def _finite_count(experiment):
+    return sum(1 for st in flat_steps(experiment.steps) if isinstance(st, Pulse) and st.duration_s is not None)
+
+
+def _require(engine, n_params, n_times, experiment=None):
     n = engine.model.n_spins
-    need = sequence_memory_bytes(n, n_params, n_times)
+    need = sequence_memory_bytes(n, n_params, n_times, 0 if experiment is None else _finite_count(experiment))
     if n > MAX_SEQUENCE_SPINS:
         raise QhlInputError(f"{n} spins: pulse-sequence experiments hold dense 2^n x 2^n density matrices "
                             f"(about {need / 2**30:.3g} GiB here); expected at most {MAX_SEQUENCE_SPINS} spins",
@@ -101,6 +116,18 @@ def _apply_pulse(a, rot, qubits, n):
     return a.reshape(lead + (d, d))
 
 
+def _apply_finite(a, pulse, d_r):
+    """R a R^dag on a stack a = [A0, dA_1, ...] (computational basis); with d_r (c, D, D), the product rule
+    dA_r -> R dA_r R^dag + dR_r A0 R^dag + R A0 dR_r^dag (module docstring)."""
+    r, rh = pulse.r, pulse.r.conj().T
+    out = r @ a @ rh
+    if d_r is not None:
+        a0r = a[0] @ rh
+        ra0 = r @ a[0]
+        out[1:] += d_r @ a0r[None] + ra0[None] @ d_r.conj().transpose(0, 2, 1)
+    return out
+
+
 def _two_by_two(m, a):
     """m (2 x 2) applied to axis -2 (length 2) of a, as two elementwise combinations."""
     a0, a1 = a[..., 0, :], a[..., 1, :]
@@ -133,6 +160,37 @@ class _Basis:
         return y[..., self.inv, :][..., :, self.inv]
 
 
+class _FinitePulse:
+    """A finite pulse at one parameter point: R = exp(-i (H + H_rf) tau_p) in the full space (docstring)."""
+
+    def __init__(self, model, coeffs, pulse):
+        n = model.n_spins
+        tau = float(pulse.duration_s)
+        nu1 = pulse.angle_deg / 360.0 / tau
+        ph = np.deg2rad(pulse.phase_deg)
+        h = sum((c * p.generator.to_matrix(sparse=True) for c, p in zip(coeffs, model.parameters) if c != 0),
+                start=sp.csr_matrix((2**n, 2**n), dtype=complex))
+        for q in _pulse_qubits(model, pulse.isotope):
+            h = h + (2 * np.pi * nu1) * (np.cos(ph) * spin_operator("x", q, n).to_matrix(sparse=True)
+                                        + np.sin(ph) * spin_operator("y", q, n).to_matrix(sparse=True))
+        with blas_threads(2**n):
+            self.e, self.w = sla.eigh(h.toarray(), driver="evd")
+        self.tau = tau
+        self.r = (self.w * np.exp(-1j * self.e * tau)[None, :]) @ self.w.conj().T
+        self.f = None
+
+    def derivatives(self, model, rows):
+        """dR for each (parameter index, scale) row, stacked (c, D, D)."""
+        if self.f is None:
+            self.f = first_divided_difference(self.e[:, None], self.e[None, :], self.tau)
+        w, wh = self.w, self.w.conj().T
+        out = np.empty((len(rows),) + w.shape, complex)
+        for r, (idx, scale) in enumerate(rows):
+            g = model.parameters[idx].generator.to_matrix(sparse=True)
+            out[r] = w @ (((2 * np.pi * scale) * (wh @ (g @ w))) * self.f) @ wh
+        return out
+
+
 def _runs(steps):
     """Merge the flat steps into runs: ('delay', tau) and ('pulses', [(rotation, qubits-key), ...])."""
     out = []
@@ -161,8 +219,10 @@ class _Sequence:
         self.spec = engine._spectrum(self.coeffs)
         self.basis = _Basis(engine, self.spec)
         self.runs = [(kind, val if kind == "delay" else
-                      [(pulse_rotation(p.angle_deg, p.phase_deg), _pulse_qubits(model, p.isotope)) for p in val])
+                      [_FinitePulse(model, self.coeffs, p) if p.duration_s is not None else
+                       (pulse_rotation(p.angle_deg, p.phase_deg), _pulse_qubits(model, p.isotope)) for p in val])
                      for kind, val in _runs(flat_steps(experiment.steps))]
+        self.rows = None      # (parameter index, scale) of the chunk being differentiated (finite pulses)
         rho0 = model.initial_operator().to_matrix()
         obs = model.detection_operator().to_matrix()
         self.x0 = self.basis.to_eigen(rho0)
@@ -212,8 +272,12 @@ class _Sequence:
             else:
                 stack = x[None] if dx is None else np.concatenate([x[None], dx])
                 a = self.basis.to_computational(stack)
-                for rot, qubits in val:
-                    a = _apply_pulse(a, rot, qubits, self.n)
+                for item in val:
+                    if isinstance(item, _FinitePulse):
+                        a = _apply_finite(a, item, None if dx is None else item.derivatives(self.engine.model,
+                                                                                            self.rows))
+                    else:
+                        a = _apply_pulse(a, item[0], item[1], self.n)
                 y = self.basis.to_eigen(a)
                 x = y[0]
                 if dx is not None:
@@ -258,7 +322,7 @@ class _Pair:
 @blas_limited
 def sequence_signal(engine, experiment, t, free_values_hz=None) -> np.ndarray:
     """S(t) of a pulse-sequence experiment (module docstring), complex (T,)."""
-    _require(engine, 0, t.size)
+    _require(engine, 0, t.size, experiment)
     seq = _Sequence(engine, experiment, free_values_hz)
     bar = seq.progress(1, 1, f"pulse sequence '{experiment.name}', runs of steps")
     x, _ = seq.propagate(seq.x0, progress=bar)
@@ -270,7 +334,7 @@ def sequence_signal(engine, experiment, t, free_values_hz=None) -> np.ndarray:
 @blas_limited
 def sequence_gradient(engine, experiment, t, free_values_hz, rows):
     """(S (T,), dS/dh (len(rows), T)) of a pulse-sequence experiment; rows as ExactEngine._rows."""
-    _require(engine, len(rows), t.size)
+    _require(engine, len(rows), t.size, experiment)
     seq = _Sequence(engine, experiment, free_values_hz)
     chunk = _chunk(seq.n, len(rows))
     grad = np.zeros((len(rows), t.size), complex)
@@ -282,6 +346,7 @@ def sequence_gradient(engine, experiment, t, free_values_hz, rows):
     for c0 in range(0, len(rows), chunk):
         sub = rows[c0:c0 + chunk]
         gens = _stacked_generators(engine, seq.spec, sub)
+        seq.rows = sub
         x, dx = seq.propagate(seq.x0, np.zeros((len(sub),) + seq.x0.shape, complex), gens, bar,
                               (c0 // chunk) * len(seq.runs))
         for r in range(len(sub)):

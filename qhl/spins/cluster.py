@@ -133,15 +133,21 @@ class Delay:
 
 @dataclass(frozen=True)
 class Pulse:
-    """An ideal (instantaneous) pulse: R = exp(-i theta sum_k (cos phi Ix_k + sin phi Iy_k)).
+    """A pulse: ideal R = exp(-i theta sum_k (cos phi Ix_k + sin phi Iy_k)), or finite.
 
     theta = `angle_deg`, phi = `phase_deg` (0: about +x, 90: about +y), the sum over every spin
-    of `isotope` (None: the observed isotope); rho -> R rho R^dag.
+    of `isotope` (None: the observed isotope); rho -> R rho R^dag. With `duration_s` the pulse
+    lasts that long at constant amplitude, on resonance with the pulsed isotope's reference
+    frequency, and the spins evolve under H plus the RF term during it:
+        R = exp(-i (H + 2 pi nu1 sum_k (cos phi Ix_k + sin phi Iy_k)) duration_s),
+        nu1 = (angle_deg / 360) / duration_s   (Hz; the nominal flip angle sets the amplitude),
+    which tends to the ideal pulse as duration_s -> 0.
     """
 
     angle_deg: float
     phase_deg: float = 0.0
     isotope: str | None = None
+    duration_s: float | None = None
 
 
 @dataclass(frozen=True)
@@ -163,6 +169,12 @@ def flat_steps(steps) -> list:
         else:
             out.append(st)
     return out
+
+
+def has_finite_pulses(experiment) -> bool:
+    """True when a pulse of `experiment` has a duration (a finite pulse; Pulse docstring)."""
+    return any(isinstance(st, Pulse) and st.duration_s is not None
+               for st in flat_steps(getattr(experiment, "steps", ()) or ()))
 
 
 def refuse_spinning(experiment, what: str) -> None:
@@ -258,6 +270,9 @@ def _check_steps(steps, key, source, depth):
         elif isinstance(st, Pulse):
             checked_number(st.angle_deg, where + ".pulse_deg", source, max_abs=MAX_ANGLE_DEG)
             checked_number(st.phase_deg, where + ".phase_deg", source, max_abs=MAX_ANGLE_DEG)
+            if getattr(st, "duration_s", None) is not None:
+                seconds += checked_number(st.duration_s, where + ".duration_s", source, low=0, high=MAX_T_MAX_S,
+                                          low_open=True)
             if st.isotope is not None:
                 if not isinstance(st.isotope, str):
                     raise QhlInputError(f"expected an isotope symbol such as \"1H\", got {_short(st.isotope)}",

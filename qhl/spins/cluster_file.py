@@ -17,7 +17,8 @@ TOML layout (all keys checked; unknown keys are errors):
     delay_s = 1e-3                   # each step is exactly one of: a delay,
     [[experiment.step]]
     pulse_deg = 180; phase_deg = 90  # an ideal pulse (phase 0 = about +x, default 0; isotope = "13C"
-                                     # optional, default the observed isotope),
+                                     # optional, default the observed isotope; duration_s = 2.5e-6
+                                     # optional: a finite pulse, evolving under H plus the RF term),
     [[experiment.step]]
     sequence = "wahuha"; tau_s = 5e-6; repeat = 8   # a named sequence (qhl.spins.sequences), or
     [[experiment.step]]
@@ -58,7 +59,7 @@ _SPIN = {"label", "isotope", "position_angstrom", "offset_hz", "shift_ppm"}
 _PAIR = {"spins", "j_hz", "dipolar_hz"}
 _EXPERIMENT = {"name", "t_max_s", "points", "dipolar_scale", "noise", "step", "spinning_hz", "spinning_angle_deg"}
 _STEP_KINDS = ("delay_s", "pulse_deg", "sequence", "steps")
-_STEP_KEYS = {"delay_s": {"delay_s"}, "pulse_deg": {"pulse_deg", "phase_deg", "isotope"},
+_STEP_KEYS = {"delay_s": {"delay_s"}, "pulse_deg": {"pulse_deg", "phase_deg", "isotope", "duration_s"},
               "sequence": {"sequence", "tau_s", "repeat", "isotope"}, "steps": {"steps", "repeat"}}
 
 DEMO_PATH = "demo_cluster.toml"
@@ -302,7 +303,10 @@ def _parse_steps(raw, where, source, depth) -> tuple:
         if kind == "pulse_deg":
             out.append(Pulse(checked_number(t["pulse_deg"], key + ".pulse_deg", source, max_abs=MAX_ANGLE_DEG),
                              checked_number(t.get("phase_deg", 0.0), key + ".phase_deg", source,
-                                            max_abs=MAX_ANGLE_DEG), iso))
+                                            max_abs=MAX_ANGLE_DEG), iso,
+                             None if t.get("duration_s") is None else
+                             checked_number(t["duration_s"], key + ".duration_s", source, low=0, high=MAX_T_MAX_S,
+                                            low_open=True)))
             continue
         repeat = checked_number(t.get("repeat", 1), key + ".repeat", source, low=1, high=MAX_REPEAT, integer=True)
         if kind == "sequence":
@@ -333,6 +337,8 @@ def step_tables(steps) -> list:
             row = {"pulse_deg": st.angle_deg, "phase_deg": st.phase_deg}
             if st.isotope is not None:
                 row["isotope"] = st.isotope
+            if getattr(st, "duration_s", None) is not None:
+                row["duration_s"] = st.duration_s
             out.append(row)
         else:
             row = {"repeat": st.repeat, "steps": step_tables(st.steps)}
