@@ -190,3 +190,39 @@ def test_compiled_variance_is_skipped_with_a_note_for_very_long_delays():
     near = b.sequences["hahn"]["near_term"]
     assert near["shots_per_component_circuit"] is None and near["shots_per_component_bound"] > 0
     assert any("compiled estimator's variance skipped" in note for note in b.notes)
+
+
+def test_sequence_fault_tolerant_counts_include_the_pulse_rotations():
+    # The amplitude-estimation counts of a sequence experiment's gradient circuit count its pulses'
+    # rotations: a pulse at a non-Clifford angle (73 degrees) adds rotations that a 180-degree pulse does
+    # not. Reference for the per-pulse rotations: qiskit's transpiler on RGate(theta, 0) alone, counting
+    # the rz angles that are not multiples of pi/2 (common practice: those need synthesis).
+    from qiskit import QuantumCircuit, transpile
+    ex180 = Experiment("e", 0.3, 4, 0.8, steps=(Delay(0.1), Pulse(180, 0), Delay(0.1)))
+    ex73 = Experiment("e", 0.3, 4, 0.8, steps=(Delay(0.1), Pulse(73, 0), Delay(0.1)))
+    b180 = _budget(invented(0, [Experiment("fid", 0.3, 4, 0.8), ex180]))
+    b73 = _budget(invented(0, [Experiment("fid", 0.3, 4, 0.8), ex73]))
+    ae180 = b180.sequences["e"]["fault_tolerant"]["amplitude_estimation"]
+    ae73 = b73.sequences["e"]["fault_tolerant"]["amplitude_estimation"]
+    qc = QuantumCircuit(1)
+    qc.r(np.deg2rad(73), 0.0, 0)
+    tq = transpile(qc, basis_gates=["rz", "sx", "x"], optimization_level=1)
+    odd = sum(1 for inst in tq.data if inst.operation.name == "rz"
+              and not np.isclose((float(inst.operation.params[0]) / (np.pi / 2)) % 1, 0, atol=1e-9)
+              and not np.isclose((float(inst.operation.params[0]) / (np.pi / 2)) % 1, 1, atol=1e-9))
+    n_pulsed = 3          # three protons, all pulsed
+    assert odd >= 1
+    assert ae73["rotations_per_call"] - ae180["rotations_per_call"] == odd * n_pulsed
+    assert ae73["t_count"] > ae180["t_count"]
+    assert b73.sequences["e"]["methods"]["amplitude_estimation"].startswith("estimate")
+
+
+def test_sequence_t_per_rotation_matches_gridsynth():
+    # qiskit.synthesis.gridsynth_rz (Ross and Selinger, Quantum Inf. Comput. 16, 901 (2016)) at the budget's
+    # own rotation error: its T-count on a few generic angles lies within 15 % of the budget's T per rotation
+    from qiskit.synthesis import gridsynth_rz
+    b = _budget(invented(1, [Experiment("fid", 0.3, 4, 0.8), hahn()]))
+    ae = b.sequences["hahn"]["fault_tolerant"]["amplitude_estimation"]
+    counts = [gridsynth_rz(a, ae["rotation_error"]).count_ops().get("t", 0) for a in (0.3117, 1.0471, 2.2222)]
+    assert np.median(counts) == pytest.approx(ae["t_per_rotation"], rel=0.15)
+    assert ae["t_count"] > ae["runs"] * (2 * ae["queries"] + 1) * ae["rotations_per_call"] * min(counts) * 0.8

@@ -42,7 +42,7 @@ from ..spins.cluster import has_finite_pulses
 from . import amplitude_estimation, fault_tolerant, shots, surface_code, synthesis, trotter_cost
 from . import coherent_input, family_variance, learning_run, noisy_shots, trotter_order4
 from ..circuits import signal_trotter
-from .fault_tolerant import DEFAULT_SPLIT, choose_order, ft_cost_arrays
+from .fault_tolerant import DEFAULT_SPLIT, choose_order, fixed_circuit_ft_counts, ft_cost_arrays
 from .near_term import near_term_model, sequence_gradient_range, total_delay_s
 from .trotter_cost import ORDERS, empirical_flops, empirical_trotter_steps, trotter_model
 
@@ -894,7 +894,12 @@ class BudgetModel:
               "gadget": {"pauli_weight": int(w), "cx": 2 * int(w), "rotations": 2 * int(w), "depth": 3 * int(w) + 4},
               "gradient_circuit": {"cx": int(tot["cx"]) + 2 * int(w), "rotations": int(tot["rotations"]) + 2 * int(w),
                                    "depth": int(tot["depth"]) + 3 * int(w) + 4}}
-        methods.update({"trotter_steps": "bound", "gradient_circuit": "estimate (count rule)"})
+        ft["amplitude_estimation"] = fixed_circuit_ft_counts(
+            rng, eps, int(tot["steps"]), ft["gradient_circuit"]["rotations"], ft["gradient_circuit"]["depth"],
+            len(self.model.parameter(name).generator), self.model.n_spins, int(sum(self.model.observed)), s.split_dict(),
+            s.delta)
+        methods.update({"trotter_steps": "bound", "gradient_circuit": "estimate (count rule)",
+                        "amplitude_estimation": "estimate (count rule; T-depth a bound, rotations in series)"})
         return {"evolution_time_s": t + total_delay_s(ex), "total_delay_s": total_delay_s(ex), "near_term": near,
                 "fault_tolerant": ft, "methods": methods}
 

@@ -46,7 +46,7 @@ from .trotter_cost import TRANSPILE_MAX_QUBITS
 from .synthesis import measured_t_per_rotation, rotation_depth_profile, synthesised_step, t_count_per_rotation
 from .trotter_cost import ORDERS
 
-__all__ = ["DEFAULT_SPLIT", "ft_cost_arrays", "choose_order", "step_profile", "ASSUMPTIONS"]
+__all__ = ["DEFAULT_SPLIT", "ft_cost_arrays", "fixed_circuit_ft_counts", "choose_order", "step_profile", "ASSUMPTIONS"]
 
 DEFAULT_SPLIT = {"trotter": 0.25, "synthesis": 0.05, "estimation": 0.70}
 _PROFILE_TIME_S = 1e-6      # generic duration: no rotation angle is a Clifford multiple of pi/2
@@ -160,12 +160,9 @@ def ft_cost_arrays(value_range, t, eps, trotter, quadrature, n_terms_insert, n_q
         q = n_qubits + 1 + _clog2(r + 1) + _clog2(n_terms_insert) + _clog2(extra_select) + _clog2(k) + cin["qubits"]
         calls = 2 * queries + 1
         qft_rot = m_bits * (m_bits - 1)
-        ands = np.maximum(q - 1, 0)
-        t_run = calls * (r * step_t + n_prep * t_rot + 4 * (k - 1) + cin["t_count"]) + queries * 4 * ands \
-            + qft_rot * t_rot
-        td_run = calls * (r * step_d + n_prep * t_rot + 2 * (k - 1) + cin["t_depth"]) + queries * 2 * ands \
-            + qft_rot * t_rot
-        cl_run = calls * (r * step_c + 2 * k + cin["clifford_layers"]) + queries * 2 * (q + 1)
+        t_run, td_run, cl_run = _run_counts(queries, m_bits, q, k, t_rot, r * step_t + n_prep * t_rot + cin["t_count"],
+                                            r * step_d + n_prep * t_rot + cin["t_depth"],
+                                            r * step_c + cin["clifford_layers"])
         out[p] = {"queries": queries, "queries_bhmt": m_bhmt, "runs": runs + 0 * queries,
                   "queries_total": runs * queries, "steps": r, "steps_trotter": r_trot,
                   "steps_trotter_bound": r_bound, "steps_quadrature": r_quad,
@@ -178,6 +175,58 @@ def ft_cost_arrays(value_range, t, eps, trotter, quadrature, n_terms_insert, n_q
                   "layers_per_shot": r * trotter.layers_per_step(p)}
     out["split"] = {"trotter": e_t, "synthesis": e_s, "estimation": e_e}
     return out
+
+
+def _run_counts(queries, m_bits, q, k, t_rot, call_t, call_td, call_cl):
+    """(T-count, T-depth, Clifford layers) of one amplitude-estimation run (module docstring): 2M + 1 calls of
+    A (its own T, T-depth and Clifford layers call_*, plus the select over K branches), M controlled
+    reflections on Q + 1 qubits and the inverse QFT on m phase qubits."""
+    calls = 2 * queries + 1
+    qft_rot = m_bits * (m_bits - 1)
+    ands = np.maximum(q - 1, 0)
+    t_run = calls * (call_t + 4 * (k - 1)) + queries * 4 * ands + qft_rot * t_rot
+    td_run = calls * (call_td + 2 * (k - 1)) + queries * 2 * ands + qft_rot * t_rot
+    cl_run = calls * (call_cl + 2 * k) + queries * 2 * (q + 1)
+    return t_run, td_run, cl_run
+
+
+def fixed_circuit_ft_counts(value_range, eps, steps, rotations, depth, n_terms_insert, n_qubits, n_observed=None,
+                            split=None, delta=0.05):
+    """Fault-tolerant counts of amplitude estimation on a given gradient circuit (scalars).
+
+    For circuits whose rotations are counted, not modelled per step (a pulse-sequence experiment's
+    gradient circuit: Trotterised delays and acquisition, the pulses' single-qubit rotations and the
+    controlled-Pauli gadget; `rotations` of them per call of A). The same model as ft_cost_arrays
+    (module docstring): queries M from e_E / (2R), k median runs, the time register over steps + 1
+    insertion points and the term register (P_prep = steps + 1 + L_n more rotations, K = (steps + 1)
+    L_n select branches), every rotation synthesised to e_S / (4R) / (rotations + P_prep) at the
+    measured gridsynth T per rotation, the purified input when n_observed is given.
+    T-depth is a bound here: the rotations of A are placed in series (their depth is not counted);
+    Clifford layers per call are bounded by the circuit's gate depth `depth`.
+
+    Returns:
+        {queries, runs, rotations_per_call, rotation_error, t_per_rotation, t_count_per_call, t_count,
+         t_depth_bound, clifford_layers, logical_qubits}.
+    """
+    s = dict(DEFAULT_SPLIT if split is None else split)
+    r_range = max(float(value_range), 1e-300)
+    e_s, e_e = s["synthesis"] * eps, s["estimation"] * eps
+    queries, m_bits = phase_register_queries(queries_for_amplitude_error(min(e_e / (2 * r_range), 0.5)))
+    runs = median_repetitions(delta)
+    from .coherent_input import coherent_input_counts
+    cin = coherent_input_counts(n_qubits, n_observed) if n_observed else \
+        {"qubits": 0, "t_count": 0, "t_depth": 0, "rotations": 0, "clifford_layers": 0}
+    k = (steps + 1) * n_terms_insert
+    rot_a = rotations + (steps + 1) + n_terms_insert + cin["rotations"]
+    eps_rot = min(e_s / (4 * r_range) / rot_a, 0.5)
+    t_rot = float(measured_t_per_rotation(eps_rot))
+    q = n_qubits + 1 + _clog2(steps + 1) + _clog2(n_terms_insert) + _clog2(k) + cin["qubits"]
+    call_t = rot_a * t_rot + cin["t_count"]
+    t_run, td_run, cl_run = _run_counts(queries, m_bits, q, k, t_rot, call_t, call_t, depth + cin["clifford_layers"])
+    return {"queries": int(queries), "runs": int(runs), "rotations_per_call": int(rot_a),
+            "rotation_error": float(eps_rot), "t_per_rotation": t_rot, "t_count_per_call": float(call_t),
+            "t_count": float(runs * t_run), "t_depth_bound": float(runs * td_run),
+            "clifford_layers": float(runs * cl_run), "logical_qubits": int(q + m_bits)}
 
 
 def choose_order(costs, orders=ORDERS, key="t_count"):
