@@ -1,5 +1,6 @@
 """Experiment design on the exact engine (qhl.learning.design, qhl.learning.design_candidates)."""
 
+import dataclasses
 import json
 
 import numpy as np
@@ -161,3 +162,19 @@ def test_shots_go_to_the_chosen_set_only():
     small = rep.shares < CHOSEN_MIN_SHARE
     assert small.any() and np.all(rep.shots[small] == 0)
     assert rep.shots.sum() == 2
+
+
+def test_sequence_candidate_costs_its_delays_and_pulses(engine):
+    # A Hahn echo with Clifford pulses (180 about x) costs exactly the free evolution of t + 2 tau
+    # (its delays are Trotterised like the acquisition, common practice); a 73-degree pulse adds
+    # rotations, so it costs more; the preparation costs T gates even at t = 0.
+    from qhl.spins.cluster import Delay, Pulse
+    tc = TCostModel(engine.model)
+    fid = demo_cluster().experiments[0]
+    tau = 2e-5
+    echo = dataclasses.replace(fid, name="echo", steps=(Delay(tau), Pulse(180, 0), Delay(tau)))
+    odd = dataclasses.replace(fid, name="odd", steps=(Delay(tau), Pulse(73, 0), Delay(tau)))
+    t = np.array([0.0, 1e-5, 5e-5])
+    np.testing.assert_allclose(tc.per_time(echo, t), tc.per_time(fid, t + 2 * tau), rtol=1e-12)
+    assert np.all(tc.per_time(odd, t) > tc.per_time(echo, t))
+    assert tc.per_time(echo, t)[0] > 0

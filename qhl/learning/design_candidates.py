@@ -26,6 +26,10 @@ Cost of one shot in T gates (fault-tolerant; model-based, qhl.costing):
     the order with the fewest T gates is taken; t = 0 costs nothing. The input ensemble and the
     measurement are Clifford. The cost of a shot is the sum over its times. It grows with the
     evolution time (r grows as t^(1 + 1/p)).
+    A pulse-sequence candidate evolves for t + T_delays (its delays Trotterised like the
+    acquisition, the steps counted over the whole time) and adds its pulses' rotations (count
+    rule of qhl.circuits.sequence_circuits.pulse_counts); the synthesis error is shared by all of
+    them, and t = 0 still costs the preparation.
 """
 
 from dataclasses import dataclass, field, replace
@@ -225,7 +229,7 @@ class TCostModel:
         scale; gates per step are shared by scales with the same Pauli terms (only the angles differ)."""
         key = float(experiment.dipolar_scale)
         if key not in self._models:
-            tm = trotter_model(self.model, experiment)
+            tm = trotter_model(self.model, replace(experiment, steps=()))   # delays: the same Hamiltonian
             labels = tuple(sorted(tm.hamiltonian.simplify(atol=0).paulis.to_labels()))
             if labels not in self._counts:
                 self._counts[labels] = {p: float(tm.rotations_per_step(p)) for p in ORDERS}
@@ -233,14 +237,26 @@ class TCostModel:
         return self._models[key]
 
     def per_time(self, experiment, times) -> np.ndarray:
-        """T gates of the circuit at each time (0 at t = 0)."""
+        """T gates of the circuit at each time (0 at t = 0 for a free evolution; module docstring)."""
         t = np.asarray(times, float)
         tm, rotations = self._trotter(experiment)
+        delays, pulse_rot = self._preparation(experiment)
+        evolution = t + delays
         best = np.full(t.shape, np.inf)
         for p in ORDERS:
-            n_rot = tm.steps(p, np.maximum(t, 1e-300), self.trotter_eps) * rotations[p]
-            best = np.minimum(best, n_rot * t_count_per_rotation(self.synthesis_eps / n_rot))
-        return np.where(t > 0, best, 0.0)
+            n_rot = tm.steps(p, np.maximum(evolution, 1e-300), self.trotter_eps) * rotations[p] + pulse_rot
+            best = np.minimum(best, n_rot * t_count_per_rotation(self.synthesis_eps / np.maximum(n_rot, 1)))
+        return np.where((evolution > 0) | (pulse_rot > 0), best, 0.0)
+
+    def _preparation(self, experiment):
+        """(total delay in s, rotations of the pulses) of a pulse-sequence experiment; (0, 0) for an FID."""
+        if not getattr(experiment, "steps", ()):
+            return 0.0, 0
+        from ..circuits.sequence_circuits import PlannedPulse, pulse_counts, sequence_plan
+        from ..costing.near_term import total_delay_s
+        plan = sequence_plan(self.model, experiment, 1.0, 1, delay_steps=1)
+        return total_delay_s(experiment), int(sum(pulse_counts(x)["rotations"] for x in plan
+                                                   if isinstance(x, PlannedPulse)))
 
     def shot(self, candidate) -> float:
         """T gates of one shot of `candidate` (the sum over its times)."""
