@@ -18,6 +18,14 @@ excitation leaves rho0 = sum Ix, so "along the magnetisation" means phase 0.
         average dipolar term (D_x + D_y + D_z) / 3 vanishes and the offset term becomes
         Omega (Ix + Iy + Iz) / 3 up to signs: a rotation at Omega / sqrt(3), the chemical
         shift scaled by 1/sqrt(3). The net pulse rotation over a cycle is the identity.
+    mlev-4       tau - 180(0) - 2 tau - 180(0) - 2 tau - 180(180) - 2 tau - 180(180) - tau, cycle 8 tau:
+        the MLEV-4 phase cycle R R Rbar Rbar (M. H. Levitt, R. Freeman and T. Frenkiel, J. Magn.
+        Reson. 47, 328 (1982)) of ideal, windowed 180-degree pulses. Applied to another isotope
+        (isotope = "13C" while observing 1H) it is a heteronuclear decoupling train: each pulse
+        flips Sz, so Sz and every 2 Iz Sz term change sign from window to window and average to
+        zero over the cycle (toggling frame), while the observed spins' offsets and their
+        homonuclear couplings are untouched. For terms that commute (an isolated I-S pair) the
+        average is exact; the net rotation over a cycle is the identity.
 The scaling factors are checked numerically in tests/test_sequences_named.py.
 """
 
@@ -40,8 +48,13 @@ def _wahuha(tau, iso):
             Pulse(90.0, 90.0, iso), Delay(tau), Pulse(90.0, 180.0, iso), Delay(tau))
 
 
-NAMED_SEQUENCES = {"hahn-echo": _hahn, "solid-echo": _solid, "wahuha": _wahuha}
-CYCLE_TAUS = {"hahn-echo": 2, "solid-echo": 2, "wahuha": 6}   # block length in units of tau_s
+def _mlev4(tau, iso):
+    return (Delay(tau), Pulse(180.0, 0.0, iso), Delay(2 * tau), Pulse(180.0, 0.0, iso), Delay(2 * tau),
+            Pulse(180.0, 180.0, iso), Delay(2 * tau), Pulse(180.0, 180.0, iso), Delay(tau))
+
+
+NAMED_SEQUENCES = {"hahn-echo": _hahn, "solid-echo": _solid, "wahuha": _wahuha, "mlev-4": _mlev4}
+CYCLE_TAUS = {"hahn-echo": 2, "solid-echo": 2, "wahuha": 6, "mlev-4": 8}   # block length in units of tau_s
 
 
 def named_block(name, tau_s: float, repeat: int = 1, isotope=None) -> Block:
