@@ -141,13 +141,13 @@ def test_fisher_information_of_a_sequence_experiment_from_dense_differences():
     np.testing.assert_allclose(got, want, rtol=1e-7, atol=1e-6 * np.abs(want).max())
 
 
-def test_hessian_and_line_list_refuse_sequence_experiments():
+def test_line_list_refuses_sequence_experiments():
+    # (their Hessians are covered: tests/test_sequence_hessian.py)
     c = small_cluster(False, 3)
     eng = ExactEngine(build_model(c, free=FREE))
     ex = Experiment("s", 0.3, 5, steps=(Delay(0.1), Pulse(180)))
-    for call in (lambda: eng.hessian(ex), lambda: eng.transitions(ex)):
-        with pytest.raises(QhlInputError, match="pulse-sequence steps"):
-            call()
+    with pytest.raises(QhlInputError, match="pulse-sequence steps"):
+        eng.transitions(ex)
 
 
 def test_size_limit_refused_with_the_memory_estimate(monkeypatch):
