@@ -27,20 +27,58 @@ factor: sum_{k > K} |a_k| < tol.
 import numpy as np
 from scipy.special import jv
 
-__all__ = ["chebyshev_window", "chebyshev_terms", "lanczos_bounds", "sparse_times"]
+__all__ = ["chebyshev_window", "chebyshev_terms", "lanczos_bounds", "sparse_times", "RowApply",
+           "row_parts", "csr_rows", "PRECISIONS"]
 
 MULTI_COLUMNS = 4
+MIN_PART_ROWS = 4000
+FLUSH_ROWS = 1 << 15        # rows per product when stored terms are added to the outputs
+PRECISIONS = {"double": (np.float64, np.complex128), "single": (np.float32, np.complex64)}
 
 
 def sparse_times(mat, y):
-    """mat @ y for a CSR matrix and a real (d, c) array, column by column below MULTI_COLUMNS."""
+    """mat @ y for a CSR matrix and a real (d, c) array, column by column below MULTI_COLUMNS
+    (the result has contiguous columns then; pass y with contiguous columns to avoid copies)."""
     c = y.shape[1]
     if c >= MULTI_COLUMNS:
         return mat @ y
-    out = np.empty((mat.shape[0], c), np.result_type(mat.dtype, y.dtype))
+    out = np.empty((mat.shape[0], c), np.result_type(mat.dtype, y.dtype), order="F")
     for j in range(c):
-        out[:, j] = mat @ np.ascontiguousarray(y[:, j])
+        out[:, j] = mat @ y[:, j]
     return out
+
+
+def row_parts(d: int, threads: int, min_rows: int | None = None):
+    """Rows 0..d split into at most `threads` contiguous parts of at least min_rows rows each
+    (default MIN_PART_ROWS: below it a thread hand-off costs more than the part's product)."""
+    min_rows = MIN_PART_ROWS if min_rows is None else min_rows
+    k = max(1, min(int(threads), d // max(int(min_rows), 1)))
+    edges = np.linspace(0, d, k + 1).astype(int)
+    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+
+
+def csr_rows(mat, r0: int, r1: int):
+    """Rows r0:r1 of a CSR matrix as a CSR matrix sharing its data and column indices."""
+    import scipy.sparse as sps
+    a, b = int(mat.indptr[r0]), int(mat.indptr[r1])
+    sub = sps.csr_matrix((mat.data[a:b], mat.indices[a:b], mat.indptr[r0:r1 + 1] - mat.indptr[r0]),
+                         shape=(r1 - r0, mat.shape[1]), copy=False)
+    sub.has_sorted_indices = True
+    return sub
+
+
+class RowApply:
+    """Y -> A @ Y by row parts. `parts` lists (r0, r1); calling with (Y, i) returns rows r0:r1 of
+    A @ Y for part i. chebyshev_window runs the parts on separate threads (scipy's CSR products,
+    numpy's element-wise operations and BLAS release the GIL). A plain function Y -> A @ Y is
+    one part."""
+
+    def __init__(self, mat, parts=None):
+        self.parts = list(parts) if parts is not None else [(0, mat.shape[0])]
+        self.mats = [csr_rows(mat, a, b) for a, b in self.parts]
+
+    def __call__(self, y, i):
+        return sparse_times(self.mats[i], y)
 
 
 def chebyshev_terms(w_tau_max: float, tol: float, derivative: bool = True) -> int:
@@ -58,11 +96,13 @@ def chebyshev_terms(w_tau_max: float, tol: float, derivative: bool = True) -> in
 
 
 def chebyshev_window(apply, x0, taus, lo: float, hi: float, tol: float = 1e-10, on_term=None,
-                     block: int = 16, real: bool = False, derivative: bool = True):
+                     block: int = 16, real: bool = False, derivative: bool = True,
+                     precision: str = "double", pool=None):
     """exp(-i A tau) x0 for each offset tau in `taus` (one shared series).
 
     Args:
-        apply: function Y -> A @ Y on real arrays of shape (d, 2M) (real=True: (d, M)).
+        apply: function Y -> A @ Y on real arrays of shape (d, 2M) (real=True: (d, M)), or a
+            RowApply-like object (attribute `parts`, call (Y, i) -> rows of part i).
         x0: real array (d, 2M): real parts in columns [:M], imaginary parts in [M:]; with
             real=True, (d, M) real start vectors (no imaginary half).
         taus: offsets in seconds (>= 0); A in rad/s.
@@ -71,10 +111,14 @@ def chebyshev_window(apply, x0, taus, lo: float, hi: float, tol: float = 1e-10, 
         block: terms collected before they are added to the outputs in one matrix product.
         real: x0 holds real vectors only (see the module docstring).
         derivative: cut with the derivative factor (needed when A is block-triangular).
+        precision: "double" or "single" (float32 vectors, terms and outputs; the caller's
+            operator should then hold float32 data).
+        pool: optional concurrent.futures executor that runs the row parts of `apply`.
 
     Returns:
-        complex array (len(taus), d, M).
+        complex array (len(taus), d, M) (complex64 for precision="single").
     """
+    rdt, cdt = PRECISIONS[precision]
     taus = np.asarray(taus, float)
     d, two_m = x0.shape
     m = two_m if real else two_m // 2
@@ -87,63 +131,72 @@ def chebyshev_window(apply, x0, taus, lo: float, hi: float, tol: float = 1e-10, 
     coef[1:] *= 2.0
     coef *= np.exp(-1j * c * taus)[None, :]
     block = max(1, min(int(block), K))
+    if hasattr(apply, "parts"):
+        parts, rows_of = apply.parts, apply
+    else:
+        parts, rows_of = [(0, d)], (lambda y, i: apply(y))
+    nt = taus.size
+    out = np.zeros((nt, d, m), cdt)
     if real:
         # out = coef^T Y with Y real: one real product of [Re coef | Im coef] (2T rows)
-        acc = np.zeros((2 * taus.size, d * m))
-        coef2 = np.concatenate([coef.real, coef.imag], axis=1)
-        buf = np.empty((block, d, m))
+        coef2 = np.ascontiguousarray(np.concatenate([coef.real, coef.imag], axis=1).T, rdt)   # (2T, K)
+        buf = np.empty((block, d, m), rdt)
     else:
-        out = np.zeros((taus.size, d * m), complex)
-        buf = np.empty((block, d, m), complex)
-    state = {"n": 0, "k0": 0}
+        coefc = np.ascontiguousarray(coef.T, cdt)                                             # (T, K)
+        buf = np.empty((block, d, m), cdt)
+    prev = np.array(x0, rdt, order="F")
+    cur = np.empty_like(prev)
+    c_r, w_r = rdt(c), rdt(w)
 
-    def add(y):
+    def store(slot, y, r0, r1):
         if real:
-            buf[state["n"]] = y
+            buf[slot, r0:r1] = y
         else:
-            buf[state["n"]].real = y[:, :m]
-            buf[state["n"]].imag = y[:, m:]
-        state["n"] += 1
-        if state["n"] == block:
-            flush()
+            buf[slot, r0:r1].real = y[:, :m]
+            buf[slot, r0:r1].imag = y[:, m:]
 
-    def flush():
-        nb, k0 = state["n"], state["k0"]
-        if nb and real:
-            acc[:] += coef2[k0:k0 + nb].T @ buf[:nb].reshape(nb, -1)
-        elif nb:
-            out[:] += coef[k0:k0 + nb].T @ buf[:nb].reshape(nb, -1)
-        state["k0"] += nb
-        state["n"] = 0
+    def flush(nb, k0, r0, r1):
+        for a in range(r0, r1, FLUSH_ROWS):
+            b = min(a + FLUSH_ROWS, r1)
+            terms = buf[:nb, a:b].reshape(nb, -1)
+            if real:
+                prod = (coef2[:, k0:k0 + nb] @ terms).reshape(2 * nt, b - a, m)
+                out[:, a:b].real += prod[:nt]
+                out[:, a:b].imag += prod[nt:]
+            else:
+                out[:, a:b] += (coefc[:, k0:k0 + nb] @ terms).reshape(nt, b - a, m)
 
-    def step(y, prev):
-        z = apply(y)
-        z -= c * y
-        z *= 2.0 / w
-        z -= prev
-        return z
+    def part(i, kk):
+        r0, r1 = parts[i]
+        if kk == 0:
+            y = prev[r0:r1]
+        elif kk == 1:
+            y = rows_of(prev, i)
+            y -= c_r * prev[r0:r1]
+            y /= w_r
+            cur[r0:r1] = y
+        else:                         # T_{k+1} = 2 S T_k - T_{k-1}, written over T_{k-1}
+            y = rows_of(cur, i)
+            y -= c_r * cur[r0:r1]
+            y *= 2 / w_r
+            y -= prev[r0:r1]
+            prev[r0:r1] = y
+        slot = kk % block
+        store(slot, y, r0, r1)
+        if slot == block - 1 or kk == K - 1:
+            flush(slot + 1, kk - slot, r0, r1)
 
-    prev = x0
-    add(prev)
-    if K > 1:
-        cur = apply(prev)
-        cur -= c * prev
-        cur /= w
-        add(cur)
-        if on_term:
-            on_term(1)
-        for kk in range(2, K):
-            prev, cur = cur, step(cur, prev)
-            add(cur)
-            if on_term:
-                on_term(kk)
-    flush()
-    if real:
-        out = np.empty((taus.size, d * m), complex)
-        out.real = acc[:taus.size]
-        out.imag = acc[taus.size:]
-        del acc
-    return out.reshape(taus.size, d, m)
+    for kk in range(K):
+        if pool is not None and len(parts) > 1:
+            list(pool.map(part, range(len(parts)), [kk] * len(parts)))
+        else:
+            for i in range(len(parts)):
+                part(i, kk)
+        if kk >= 2:
+            prev, cur = cur, prev
+        if on_term and kk:
+            on_term(kk)
+    return out
 
 
 def lanczos_bounds(mat, steps: int = 30, seed: int = 0):

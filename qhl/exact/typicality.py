@@ -37,8 +37,10 @@ exponential holds the Duhamel integral -i int_0^t e^{-iH(t-u)} G e^{-iHu} du wit
 the Chebyshev cut. Cost: about (1 + P) times the signal for P parameters.
 """
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 import math
+import os
 
 import numpy as np
 
@@ -46,7 +48,7 @@ from ..base.blas import single_thread_blas
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
 from ..spins.cluster import refuse_steps
-from .chebyshev import chebyshev_window, lanczos_bounds, sparse_times
+from .chebyshev import PRECISIONS, chebyshev_window, csr_rows, lanczos_bounds, row_parts, sparse_times
 from .sector_operators import SectorSpace, csr_bytes, ladder_block, pauli_groups, sector_matrix
 from .sectors import conserves_magnetisation
 
@@ -125,35 +127,39 @@ def typical_memory_bytes(model, n_times: int = 64, replicas: int = 4, n_gradient
     """
     eng = TypicalEngine.__new__(TypicalEngine)
     eng._setup(model)
-    eng.replicas, eng.window_bytes, eng.start = replicas, WINDOW_BYTES, "real"
+    eng.replicas, eng.window_bytes, eng.start, eng.precision = replicas, WINDOW_BYTES, "real", "double"
     return eng.memory_bytes(n_times, replicas, n_gradient, window)
 
 
-def window_points(d_pair: float, m: int, n_times: int, window_bytes: float = WINDOW_BYTES) -> int:
+def window_points(d_pair: float, m: int, n_times: int, window_bytes: float = WINDOW_BYTES,
+                  item: float = 16.0) -> int:
     """Time points per Chebyshev window: as many as `window_bytes` holds (complex outputs of two
-    sectors, m columns), at most MAX_WINDOW_POINTS and at most n_times."""
-    return int(max(1, min(n_times, MAX_WINDOW_POINTS, window_bytes // max(16.0 * d_pair * m, 1.0))))
+    sectors, m columns, `item` bytes a complex number), at most MAX_WINDOW_POINTS and at most n_times."""
+    return int(max(1, min(n_times, MAX_WINDOW_POINTS, window_bytes // max(item * d_pair * m, 1.0))))
 
 
 def pair_memory_bytes(ds, dp, nnz_s, nnz_p, n_obs, replicas, n_times, n_gradient=0,
-                      window_bytes=WINDOW_BYTES, window=None, real_start=True) -> float:
+                      window_bytes=WINDOW_BYTES, window=None, real_start=True, precision="double") -> float:
     """Peak memory (bytes) while one sector pair (dimensions ds, dp) is propagated.
 
-    Two sector Hamiltonians (CSR), two ladder blocks (at most n_obs entries per row), and per
-    sector the Chebyshev work arrays (6 real arrays of 2M columns, M = replicas (1 + n_gradient)),
-    the window's complex outputs twice (the outputs and the product added to them) and the
-    blocked accumulation buffer of TERM_BLOCK terms (real, 8 bytes an entry, when real start
-    vectors cover every point in one window; else complex), plus the generators of
-    the differentiated parameters (at most two entries per row each).
+    Two sector Hamiltonians (CSR; 4-byte data with precision="single"), two ladder blocks (at
+    most n_obs entries per row), and per sector the Chebyshev work arrays (4 real arrays of 2M
+    columns, M = replicas (1 + n_gradient)), the window's complex outputs (added to in slices
+    of FLUSH_ROWS rows, so no second copy) and the blocked accumulation buffer of TERM_BLOCK
+    terms (real when real start vectors cover every point in one window; else complex), plus
+    the generators of the differentiated parameters (at most two entries per row each) and the
+    double-precision copy of one time point per sector (the inner products are summed in double).
     """
+    rsz = 4.0 if precision == "single" else 8.0
     m = replicas * (1 + n_gradient)
-    w = window if window is not None else window_points(ds + dp, m, n_times, window_bytes)
-    blk = window_points(max(ds, dp), m, TERM_BLOCK, window_bytes)
-    mats = csr_bytes(nnz_s, ds) + csr_bytes(nnz_p, dp)
+    w = window if window is not None else window_points(ds + dp, m, n_times, window_bytes, 2 * rsz)
+    blk = window_points(max(ds, dp), m, TERM_BLOCK, window_bytes, 2 * rsz)
+    mats = csr_bytes(nnz_s, ds, rsz) + csr_bytes(nnz_p, dp, rsz)
     ladders = 2 * csr_bytes(dp * n_obs, ds)
-    item = 8.0 if real_start and w >= n_times else 16.0
-    work = (ds + dp) * (8.0 * 2 * m * 6 + 16.0 * m * (2 * w + 1) + 16.0) + item * max(ds, dp) * m * blk
-    gens = n_gradient * 2 * csr_bytes(2 * (ds + dp), ds + dp)
+    item = rsz if real_start and w >= n_times else 2 * rsz
+    work = ((ds + dp) * (rsz * 2 * m * 4 + 2 * rsz * m * w + 16.0 * 2 * m + 16.0)
+            + item * max(ds, dp) * m * blk)
+    gens = n_gradient * 2 * csr_bytes(2 * (ds + dp), ds + dp, rsz)
     return mats + ladders + work + gens
 
 
@@ -170,6 +176,11 @@ class TypicalEngine:
         window_bytes: memory allowed for the stored time points of one Chebyshev window.
         start: "real" (random +-1 vectors, real propagation until the first restart; default) or
             "phase" (random-phase complex vectors); see the module docstring.
+        precision: "double" (default) or "single": float32 sector matrices, Chebyshev vectors
+            and stored time points; inner products summed in double. Rounding adds a relative
+            error of order 1e-6 (K eps_32 for K Chebyshev terms; measured in
+            tests/test_typicality_fast.py), far below the statistical error 2^(-n/2).
+        threads: threads sharing each sector's rows (default min(4, cores); 1 turns them off).
 
     Example:
         >>> from qhl import demo_cluster, build_model
@@ -179,14 +190,19 @@ class TypicalEngine:
     """
 
     def __init__(self, model, replicas: int = 4, seed: int = 0, tol: float = 1e-10, progress=None,
-                 window_bytes: float = WINDOW_BYTES, start: str = "real"):
+                 window_bytes: float = WINDOW_BYTES, start: str = "real", precision: str = "double",
+                 threads: int | None = None):
         if int(replicas) < 2:
             raise QhlInputError(f"expected at least 2 replicas (for the error estimate), got {replicas}",
                                 key="replicas")
         if start not in ("real", "phase"):
             raise QhlInputError(f"start {start!r}: expected 'real' or 'phase'", key="start")
+        if precision not in PRECISIONS:
+            raise QhlInputError(f"precision {precision!r}: expected 'double' or 'single'", key="precision")
         self._setup(model)
         self.start = start
+        self.precision = precision
+        self.threads = max(1, int(threads)) if threads is not None else min(4, os.cpu_count() or 1)
         self.replicas = int(replicas)
         self.seed = int(seed)
         self.tol = float(tol)
@@ -243,12 +259,16 @@ class TypicalEngine:
         r = self.replicas if replicas is None else replicas
         dims = self.space.dims
         peak = max(pair_memory_bytes(dims[s], dims[p], self._nnz(s), self._nnz(p), len(self.observed), r,
-                                     n_times, n_gradient, self.window_bytes, window, self.start == "real")
+                                     n_times, n_gradient, self.window_bytes, window, self.start == "real",
+                                     self.precision)
                    for s, p in self.blocks)
         return max(peak + self.space.index_bytes(), 32.0 * 2**self.model.n_spins)
 
     def _window(self, d_pair, m, n_times):
-        return window_points(d_pair, m, n_times, self.window_bytes)
+        return window_points(d_pair, m, n_times, self.window_bytes, 2 * self._rdt().itemsize)
+
+    def _rdt(self):
+        return np.dtype(PRECISIONS[self.precision][0])
 
     # ------------------------------------------------------------------ estimates
     def _times(self, experiment, times):
@@ -282,10 +302,10 @@ class TypicalEngine:
         Raises:
             MemoryBudgetError: the estimate would not fit (the message gives the estimate).
         """
-        with single_thread_blas(0):
-            return self._estimate(experiment, times, free_values_hz, gradient, parameters)
+        with single_thread_blas(0), ThreadPoolExecutor(self.threads) as pool:
+            return self._estimate(experiment, times, free_values_hz, gradient, parameters, pool)
 
-    def _estimate(self, experiment, times, free_values_hz, gradient, parameters):
+    def _estimate(self, experiment, times, free_values_hz, gradient, parameters, pool):
         model = self.model
         refuse_steps(experiment, "the typical engine")
         t = self._times(experiment, times)
@@ -317,21 +337,29 @@ class TypicalEngine:
                 for old in [key for key in cache if key not in current]:
                     del cache[old]
                 st = sp.states(k)
-                mat, glo, ghi = sector_matrix(sp, k, h_groups, states=st, bounds=True)
+                mat, glo, ghi = sector_matrix(sp, k, h_groups, states=st, bounds=True, dtype=rdt)
                 llo, lhi = lanczos_bounds(mat, seed=self.seed)
-                gens = [sector_matrix(sp, k, g, states=st) for g in g_groups]
+                gens = [sector_matrix(sp, k, g, states=st, dtype=rdt) for g in g_groups]
                 cache[k] = [st, mat, max(glo, llo), min(ghi, lhi), gens, (glo, ghi)]
             return cache[k]
 
+        rdt = self._rdt()
+        # norm drift that flags a too-tight Lanczos interval: far above the rounding of the series
+        # (double: ~1e-13; single: ~K eps_32 ~ 1e-5), far below the growth of a component outside
+        drift = 1e-8 if self.precision == "double" else 3e-4
+
         def propagate(k, apply, x, taus, real):
             entry = cache[k]
-            kw = dict(block=blk, real=real, derivative=P > 0)
+            kw = dict(block=blk, real=real, derivative=P > 0, precision=self.precision, pool=pool)
             out = chebyshev_window(apply[real], x, taus, entry[2], entry[3], self.tol, **kw)
-            n0 = np.linalg.norm(x[:, :R], axis=0) ** 2
+            xd = np.asarray(x, float)
+            n0 = np.linalg.norm(xd[:, :R], axis=0) ** 2
             if not real:
-                n0 += np.linalg.norm(x[:, m:m + R], axis=0) ** 2
-            n1 = np.sum(np.abs(out[:, :, :R]) ** 2, axis=1)
-            if np.any(np.abs(n1 - n0[None, :]) > 1e-8 * np.maximum(n0, 1e-300)[None, :]):
+                n0 += np.linalg.norm(xd[:, m:m + R], axis=0) ** 2
+            # checked at the window's largest offset: a component outside [lo, hi] grows most there
+            # (its series coefficients J_k(w tau) are largest at the largest tau)
+            n1 = np.linalg.norm(np.asarray(out[-1][:, :R], complex), axis=0) ** 2
+            if np.any(np.abs(n1 - n0) > drift * np.maximum(n0, 1e-300)):
                 entry[2], entry[3] = entry[5]          # the Lanczos estimate was too tight
                 out = chebyshev_window(apply[real], x, taus, entry[2], entry[3], self.tol, **kw)
             return out
@@ -349,16 +377,17 @@ class TypicalEngine:
             re, im = self._random_vectors(bi, dp)
             m = R * (1 + P)
             real = im is None                      # real start: M columns until the first restart
-            xa = np.zeros((dp, m if real else 2 * m))
-            xb = np.zeros((ds, m if real else 2 * m))
+            xa = np.zeros((dp, m if real else 2 * m), rdt, order="F")
+            xb = np.zeros((ds, m if real else 2 * m), rdt, order="F")
             xa[:, :R], xb[:, :R] = re, 0.5 * (lower @ re)
             if not real:
                 xa[:, m:m + R], xb[:, m:m + R] = im, 0.5 * (lower @ im)
             del re, im
             w = self._window(ds + dp, m, t.size)
             blk = self._window(max(ds, dp), m, TERM_BLOCK)
-            apply_a = {flag: _augmented(h_p, g_p, R, m, flag) for flag in (True, False)}
-            apply_b = {flag: _augmented(h_s, g_s, R, m, flag) for flag in (True, False)}
+            parts_p, parts_s = row_parts(dp, self.threads), row_parts(ds, self.threads)
+            apply_a = {flag: _Augmented(h_p, g_p, R, m, flag, parts_p) for flag in (True, False)}
+            apply_b = {flag: _Augmented(h_s, g_s, R, m, flag, parts_s) for flag in (True, False)}
             tc = 0.0
             for start in range(0, t.size, w):
                 sl = slice(start, min(start + w, t.size))
@@ -367,15 +396,15 @@ class TypicalEngine:
                 out_b = propagate(s, apply_b, xb, taus, real)
                 real = False                       # restarts carry complex states
                 for j, ti in enumerate(range(sl.start, sl.stop)):
-                    ob = (raise_op @ out_b[j].view(float)).view(complex)     # (dp, m)
-                    a = out_a[j].reshape(dp, 1 + P, R)
+                    ob = (raise_op @ np.asarray(out_b[j], complex).view(float)).view(complex)  # (dp, m)
+                    a = np.asarray(out_a[j], complex).reshape(dp, 1 + P, R)
                     b = ob.reshape(dp, 1 + P, R)
                     rep_s[:, order[ti]] += np.einsum("xr,xr->r", a[:, 0].conj(), b[:, 0])
                     if P:
                         rep_g[:, :, order[ti]] += (np.einsum("xpr,xr->rp", a[:, 1:].conj(), b[:, 0])
                                                    + np.einsum("xr,xpr->rp", a[:, 0].conj(), b[:, 1:]))
-                xa = np.concatenate([out_a[-1].real, out_a[-1].imag], axis=1)
-                xb = np.concatenate([out_b[-1].real, out_b[-1].imag], axis=1)
+                xa = np.asfortranarray(np.concatenate([out_a[-1].real, out_a[-1].imag], axis=1))
+                xb = np.asfortranarray(np.concatenate([out_b[-1].real, out_b[-1].imag], axis=1))
                 tc = ts[sl.stop - 1]
                 del out_a, out_b
                 if self.progress:
@@ -402,17 +431,20 @@ class TypicalEngine:
         return est.signal, est.gradient
 
 
-def _augmented(h, gens, r, m, real=False):
+class _Augmented:
     """Y -> [[H, 0], [G_1, H], [G_2, 0, H], ...] Y on stacked real columns [Re (m) | Im (m)]
-    (real=True: m real columns, no imaginary half)."""
-    if not gens:
-        return lambda y: sparse_times(h, y)
-    halves = (0,) if real else (0, m)
+    (real=True: m real columns, no imaginary half), by row parts (chebyshev.RowApply protocol)."""
 
-    def apply(y):
-        z = sparse_times(h, y)
-        for q, g in enumerate(gens):
-            for half in halves:
+    def __init__(self, h, gens, r, m, real, parts):
+        self.parts = parts
+        self.h = [csr_rows(h, a, b) for a, b in parts]
+        self.g = [[csr_rows(g, a, b) for g in gens] for a, b in parts]
+        self.r, self.halves = r, ((0,) if real else (0, m))
+
+    def __call__(self, y, i):
+        z = sparse_times(self.h[i], y)
+        r = self.r
+        for q, g in enumerate(self.g[i]):
+            for half in self.halves:
                 z[:, half + r * (1 + q): half + r * (2 + q)] += sparse_times(g, y[:, half: half + r])
         return z
-    return apply
