@@ -46,7 +46,7 @@ import numpy as np
 
 from ..base.blas import single_thread_blas
 from ..base.errors import QhlInputError
-from ..base.memory import require_memory
+from ..base.memory import available_memory_bytes, require_memory
 from ..spins.cluster import refuse_steps
 from .chebyshev import PRECISIONS, chebyshev_window, csr_rows, lanczos_bounds, row_parts, sparse_times
 from .sector_operators import SectorSpace, csr_bytes, ladder_block, pauli_groups, sector_matrix
@@ -56,7 +56,9 @@ __all__ = ["TypicalEngine", "TypicalEstimate", "typical_memory_bytes", "pair_mem
            "MAX_TYPICAL_SPINS"]
 
 MAX_TYPICAL_SPINS = 30
-WINDOW_BYTES = 2.0**30      # stored time points of one Chebyshev window (complex outputs)
+WINDOW_BYTES = 2.0**30      # stored time points of one Chebyshev window (complex outputs), at least
+MAX_WINDOW_BYTES = 2.0**32  # ... and at most, when window_bytes="auto" finds the memory free
+BLOCK_BYTES = 2.0**29       # the buffer of Chebyshev terms waiting to be added to the outputs
 MAX_WINDOW_POINTS = 64      # a 64-point signal in one window: real start vectors stay real
 TERM_BLOCK = 64             # Chebyshev terms added to the outputs per product (fewer passes over them)
 
@@ -100,6 +102,15 @@ class TypicalEstimate:
         """(half-width of Re S, half-width of Im S) of the `level` confidence intervals."""
         q = self.t_quantile(level)
         return q * self.signal_stderr_real, q * self.signal_stderr_imag
+
+
+def idle_cores(most: int = 4) -> int:
+    """Cores the 1-minute load average leaves idle (at least 1, at most `most`)."""
+    try:
+        load = os.getloadavg()[0]
+    except OSError:
+        load = 0.0
+    return int(max(1, min(most, round((os.cpu_count() or 1) - load))))
 
 
 def _stderr(samples):
@@ -153,7 +164,7 @@ def pair_memory_bytes(ds, dp, nnz_s, nnz_p, n_obs, replicas, n_times, n_gradient
     rsz = 4.0 if precision == "single" else 8.0
     m = replicas * (1 + n_gradient)
     w = window if window is not None else window_points(ds + dp, m, n_times, window_bytes, 2 * rsz)
-    blk = window_points(max(ds, dp), m, TERM_BLOCK, window_bytes, 2 * rsz)
+    blk = window_points(max(ds, dp), m, TERM_BLOCK, BLOCK_BYTES, rsz)
     mats = csr_bytes(nnz_s, ds, rsz) + csr_bytes(nnz_p, dp, rsz)
     ladders = 2 * csr_bytes(dp * n_obs, ds)
     item = rsz if real_start and w >= n_times else 2 * rsz
@@ -173,14 +184,20 @@ class TypicalEngine:
             gradient: common random numbers).
         tol: Chebyshev cut per point.
         progress: optional callback(fraction_done) called during long runs.
-        window_bytes: memory allowed for the stored time points of one Chebyshev window.
+        window_bytes: memory allowed for the stored time points of one Chebyshev window, or
+            "auto" (default): the largest of 4, 2 and 1 GiB whose peak-memory estimate fits in
+            half the memory available when the estimate starts (fewer windows: fewer restarts,
+            and real start vectors stay real). Windows change results only by rounding.
         start: "real" (random +-1 vectors, real propagation until the first restart; default) or
             "phase" (random-phase complex vectors); see the module docstring.
         precision: "double" (default) or "single": float32 sector matrices, Chebyshev vectors
             and stored time points; inner products summed in double. Rounding adds a relative
             error of order 1e-6 (K eps_32 for K Chebyshev terms; measured in
             tests/test_typicality_fast.py), far below the statistical error 2^(-n/2).
-        threads: threads sharing each sector's rows (default min(4, cores); 1 turns them off).
+        threads: threads sharing each sector's rows; default (None): the cores the 1-minute load
+            average leaves idle when the estimate starts, 1 to 4 (the threads meet after every
+            product, so on busy cores they wait on each other: measured 1.6x faster on two idle
+            cores at 16 spins, 1.3-1.6x slower at load 4 on 2 cores).
 
     Example:
         >>> from qhl import demo_cluster, build_model
@@ -190,7 +207,7 @@ class TypicalEngine:
     """
 
     def __init__(self, model, replicas: int = 4, seed: int = 0, tol: float = 1e-10, progress=None,
-                 window_bytes: float = WINDOW_BYTES, start: str = "real", precision: str = "double",
+                 window_bytes: float | str = "auto", start: str = "real", precision: str = "double",
                  threads: int | None = None):
         if int(replicas) < 2:
             raise QhlInputError(f"expected at least 2 replicas (for the error estimate), got {replicas}",
@@ -202,12 +219,13 @@ class TypicalEngine:
         self._setup(model)
         self.start = start
         self.precision = precision
-        self.threads = max(1, int(threads)) if threads is not None else min(4, os.cpu_count() or 1)
+        self.threads = None if threads is None else max(1, int(threads))
         self.replicas = int(replicas)
         self.seed = int(seed)
         self.tol = float(tol)
         self.progress = progress
-        self.window_bytes = float(window_bytes)
+        self.auto_window = window_bytes == "auto"
+        self.window_bytes = WINDOW_BYTES if self.auto_window else float(window_bytes)
         require_memory(f"the typical (pure-state) engine for {model.n_spins} spins",
                        self.memory_bytes(64, self.replicas, 0, 1))
 
@@ -267,6 +285,23 @@ class TypicalEngine:
     def _window(self, d_pair, m, n_times):
         return window_points(d_pair, m, n_times, self.window_bytes, 2 * self._rdt().itemsize)
 
+    def _block(self, d, m):
+        return window_points(d, m, TERM_BLOCK, BLOCK_BYTES, self._rdt().itemsize)
+
+    def _choose_window_bytes(self, n_times, replicas, n_gradient):
+        """window_bytes="auto": the largest of MAX_WINDOW_BYTES, its half, ... down to WINDOW_BYTES
+        whose memory estimate fits in half the available memory."""
+        if not self.auto_window:
+            return
+        avail = available_memory_bytes()
+        wb = MAX_WINDOW_BYTES
+        while wb > WINDOW_BYTES:
+            self.window_bytes = wb
+            if self.memory_bytes(n_times, replicas, n_gradient) <= 0.5 * avail:
+                return
+            wb /= 2
+        self.window_bytes = WINDOW_BYTES
+
     def _rdt(self):
         return np.dtype(PRECISIONS[self.precision][0])
 
@@ -302,10 +337,11 @@ class TypicalEngine:
         Raises:
             MemoryBudgetError: the estimate would not fit (the message gives the estimate).
         """
-        with single_thread_blas(0), ThreadPoolExecutor(self.threads) as pool:
-            return self._estimate(experiment, times, free_values_hz, gradient, parameters, pool)
+        threads = self.threads or idle_cores()
+        with single_thread_blas(0), ThreadPoolExecutor(threads) as pool:
+            return self._estimate(experiment, times, free_values_hz, gradient, parameters, pool, threads)
 
-    def _estimate(self, experiment, times, free_values_hz, gradient, parameters, pool):
+    def _estimate(self, experiment, times, free_values_hz, gradient, parameters, pool, threads):
         model = self.model
         refuse_steps(experiment, "the typical engine")
         t = self._times(experiment, times)
@@ -321,6 +357,7 @@ class TypicalEngine:
         pidx = [model.names.index(nm) for nm in names]
         P = len(pidx)
         R = self.replicas
+        self._choose_window_bytes(t.size, R, P)
         require_memory(f"the typical estimate for {model.n_spins} spins ({P} gradient parameters)",
                        self.memory_bytes(t.size, R, P))
         h_groups = pauli_groups(model.hamiltonian(experiment, values))
@@ -384,8 +421,8 @@ class TypicalEngine:
                 xa[:, m:m + R], xb[:, m:m + R] = im, 0.5 * (lower @ im)
             del re, im
             w = self._window(ds + dp, m, t.size)
-            blk = self._window(max(ds, dp), m, TERM_BLOCK)
-            parts_p, parts_s = row_parts(dp, self.threads), row_parts(ds, self.threads)
+            blk = self._block(max(ds, dp), m)
+            parts_p, parts_s = row_parts(dp, threads), row_parts(ds, threads)
             apply_a = {flag: _Augmented(h_p, g_p, R, m, flag, parts_p) for flag in (True, False)}
             apply_b = {flag: _Augmented(h_s, g_s, R, m, flag, parts_s) for flag in (True, False)}
             tc = 0.0
