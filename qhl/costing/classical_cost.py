@@ -175,7 +175,7 @@ def route_costs(n, flip_pairs, half_width, t_max, n_times, n_obs=None, replicas=
     from ..base.memory import available_memory_bytes
     from ..exact.chebyshev import chebyshev_terms
     from ..exact.engine import _MAX_SPINS, estimate_memory_bytes
-    from ..exact.typicality import (MAX_TYPICAL_SPINS, MAX_WINDOW_BYTES, WINDOW_BYTES, pair_memory_bytes,
+    from ..exact.typicality import (MAX_TYPICAL_SPINS, WINDOW_BYTES, pair_memory_bytes, window_candidates,
                                     window_points)
 
     cal = cal or calibrate()
@@ -197,10 +197,9 @@ def route_costs(n, flip_pairs, half_width, t_max, n_times, n_obs=None, replicas=
                   for s, p in pairs) + 8.0 * 2**n
         return max(out, 32.0 * 2**n)
 
-    wb = MAX_WINDOW_BYTES               # the engine's window_bytes="auto" rule (half the free memory)
-    while wb > WINDOW_BYTES and pure_memory(wb) > 0.5 * avail / 0.8:
-        wb /= 2
-    wb = max(wb, WINDOW_BYTES)
+    # the engine's window_bytes="auto" rule: the first candidate that fits half the free memory
+    wb = next((b for b in window_candidates(dmax, m, n_times) if pure_memory(b) <= 0.5 * avail / 0.8),
+              WINDOW_BYTES)
     w = window_points(dmax, m, n_times, wb)
     t = np.linspace(0.0, t_max, n_times)
     work = sum(nnz[s] + nnz[p] for s, p in pairs)

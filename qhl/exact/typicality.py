@@ -57,7 +57,7 @@ __all__ = ["TypicalEngine", "TypicalEstimate", "typical_memory_bytes", "pair_mem
 
 MAX_TYPICAL_SPINS = 30
 WINDOW_BYTES = 2.0**30      # stored time points of one Chebyshev window (complex outputs), at least
-MAX_WINDOW_BYTES = 2.0**32  # ... and at most, when window_bytes="auto" finds the memory free
+MAX_WINDOW_BYTES = 2.0**33  # ... and at most, when window_bytes="auto" finds the memory free
 BLOCK_BYTES = 2.0**29       # the buffer of Chebyshev terms waiting to be added to the outputs
 MAX_WINDOW_POINTS = 64      # a 64-point signal in one window: real start vectors stay real
 TERM_BLOCK = 64             # Chebyshev terms added to the outputs per product (fewer passes over them)
@@ -149,12 +149,27 @@ def window_points(d_pair: float, m: int, n_times: int, window_bytes: float = WIN
     return int(max(1, min(n_times, MAX_WINDOW_POINTS, window_bytes // max(item * d_pair * m, 1.0))))
 
 
+def window_candidates(d_pair: float, m: int, n_times: int, item: float = 16.0) -> list:
+    """window_bytes tried by window_bytes="auto", largest first: enough for every point (when at
+    most MAX_WINDOW_BYTES), then halvings of MAX_WINDOW_BYTES down to WINDOW_BYTES."""
+    pts = min(n_times, MAX_WINDOW_POINTS)
+    need = item * d_pair * m * pts
+    out = [need] if WINDOW_BYTES < need <= MAX_WINDOW_BYTES else []
+    wb = MAX_WINDOW_BYTES
+    while wb >= WINDOW_BYTES:
+        if wb < need:
+            out.append(wb)
+        wb /= 2
+    return out or [WINDOW_BYTES]
+
+
 def pair_memory_bytes(ds, dp, nnz_s, nnz_p, n_obs, replicas, n_times, n_gradient=0,
                       window_bytes=WINDOW_BYTES, window=None, real_start=True, precision="double") -> float:
     """Peak memory (bytes) while one sector pair (dimensions ds, dp) is propagated.
 
-    Two sector Hamiltonians (CSR; 4-byte data with precision="single"), two ladder blocks (at
-    most n_obs entries per row), and per sector the Chebyshev work arrays (4 real arrays of 2M
+    The sector Hamiltonians (CSR; 4-byte data with precision="single"): both with several time
+    windows, the larger one when one window holds every point (the engine then frees sector p's
+    before building sector s's), one ladder block (at most n_obs entries per row), and per sector the Chebyshev work arrays (4 real arrays of 2M
     columns, M = replicas (1 + n_gradient)), the window's complex outputs (added to in slices
     of FLUSH_ROWS rows, so no second copy) and the blocked accumulation buffer of TERM_BLOCK
     terms (real when real start vectors cover every point in one window; else complex), plus
@@ -165,8 +180,10 @@ def pair_memory_bytes(ds, dp, nnz_s, nnz_p, n_obs, replicas, n_times, n_gradient
     m = replicas * (1 + n_gradient)
     w = window if window is not None else window_points(ds + dp, m, n_times, window_bytes, 2 * rsz)
     blk = window_points(max(ds, dp), m, TERM_BLOCK, BLOCK_BYTES, rsz)
-    mats = csr_bytes(nnz_s, ds, rsz) + csr_bytes(nnz_p, dp, rsz)
-    ladders = 2 * csr_bytes(dp * n_obs, ds)
+    one = w >= n_times               # one window: one sector matrix at a time (the engine frees p's)
+    mats_s, mats_p = csr_bytes(nnz_s, ds, rsz), csr_bytes(nnz_p, dp, rsz)
+    mats = max(mats_s, mats_p) if one else mats_s + mats_p
+    ladders = csr_bytes(dp * n_obs, ds)
     item = rsz if real_start and w >= n_times else 2 * rsz
     work = ((ds + dp) * (rsz * 2 * m * 4 + 2 * rsz * m * w + 16.0 * 2 * m + 16.0)
             + item * max(ds, dp) * m * blk)
@@ -185,9 +202,10 @@ class TypicalEngine:
         tol: Chebyshev cut per point.
         progress: optional callback(fraction_done) called during long runs.
         window_bytes: memory allowed for the stored time points of one Chebyshev window, or
-            "auto" (default): the largest of 4, 2 and 1 GiB whose peak-memory estimate fits in
-            half the memory available when the estimate starts (fewer windows: fewer restarts,
-            and real start vectors stay real). Windows change results only by rounding.
+            "auto" (default): the first of window_candidates (all points in one window, else
+            8, 4, 2, 1 GiB) whose peak-memory estimate fits in half the memory available when
+            the estimate starts (fewer windows: fewer restarts, real start vectors stay real,
+            one sector matrix at a time). Windows change results only by rounding.
         start: "real" (random +-1 vectors, real propagation until the first restart; default) or
             "phase" (random-phase complex vectors); see the module docstring.
         precision: "double" (default) or "single": float32 sector matrices, Chebyshev vectors
@@ -289,17 +307,17 @@ class TypicalEngine:
         return window_points(d, m, TERM_BLOCK, BLOCK_BYTES, self._rdt().itemsize)
 
     def _choose_window_bytes(self, n_times, replicas, n_gradient):
-        """window_bytes="auto": the largest of MAX_WINDOW_BYTES, its half, ... down to WINDOW_BYTES
-        whose memory estimate fits in half the available memory."""
+        """window_bytes="auto": the first of window_candidates whose memory estimate fits in half
+        the available memory (else WINDOW_BYTES)."""
         if not self.auto_window:
             return
         avail = available_memory_bytes()
-        wb = MAX_WINDOW_BYTES
-        while wb > WINDOW_BYTES:
+        dims = self.space.dims
+        d_pair = max(dims[s] + dims[p] for s, p in self.blocks)
+        for wb in window_candidates(d_pair, replicas * (1 + n_gradient), n_times, 2 * self._rdt().itemsize):
             self.window_bytes = wb
             if self.memory_bytes(n_times, replicas, n_gradient) <= 0.5 * avail:
                 return
-            wb /= 2
         self.window_bytes = WINDOW_BYTES
 
     def _rdt(self):
@@ -403,14 +421,13 @@ class TypicalEngine:
 
         for bi, (s, p) in enumerate(self.blocks):
             current = {s, p}
-            st_s, h_s, _, _, g_s, _ = ham(s)
             st_p, h_p, _, _, g_p, _ = ham(p)
+            st_s = cache[s][0] if s in cache else sp.states(s)
             ds, dp = st_s.size, st_p.size
             lower = ladder_block(sp, s, p, self.observed, raising=False, row_states=st_s, col_states=st_p)
             if not sp.masks:        # one sector (H mixes magnetisations): rho0 = (I+ + I-) / 2 in full
                 lower = lower + ladder_block(sp, s, p, self.observed, raising=True, row_states=st_s,
                                              col_states=st_p)
-            raise_op = ladder_block(sp, p, s, self.observed, raising=True, row_states=st_p, col_states=st_s)
             re, im = self._random_vectors(bi, dp)
             m = R * (1 + P)
             real = im is None                      # real start: M columns until the first restart
@@ -419,17 +436,28 @@ class TypicalEngine:
             xa[:, :R], xb[:, :R] = re, 0.5 * (lower @ re)
             if not real:
                 xa[:, m:m + R], xb[:, m:m + R] = im, 0.5 * (lower @ im)
-            del re, im
+            del re, im, lower
+            raise_op = ladder_block(sp, p, s, self.observed, raising=True, row_states=st_p, col_states=st_s)
             w = self._window(ds + dp, m, t.size)
             blk = self._block(max(ds, dp), m)
-            parts_p, parts_s = row_parts(dp, threads), row_parts(ds, threads)
-            apply_a = {flag: _Augmented(h_p, g_p, R, m, flag, parts_p) for flag in (True, False)}
-            apply_b = {flag: _Augmented(h_s, g_s, R, m, flag, parts_s) for flag in (True, False)}
+            apply_a = {flag: _Augmented(h_p, g_p, R, m, flag, row_parts(dp, threads)) for flag in (True, False)}
+            apply_b = None
+            del h_p, g_p
             tc = 0.0
             for start in range(0, t.size, w):
                 sl = slice(start, min(start + w, t.size))
                 taus = ts[sl] - tc
                 out_a = propagate(p, apply_a, xa, taus, real)
+                if w >= t.size and p != s:
+                    # one window: sector p is done (the next pair starts from sector s), so its
+                    # matrix goes before sector s's is built (one sector matrix held at a time)
+                    apply_a = None
+                    del cache[p]
+                if apply_b is None:
+                    _, h_s, _, _, g_s, _ = ham(s)
+                    apply_b = {flag: _Augmented(h_s, g_s, R, m, flag, row_parts(ds, threads))
+                               for flag in (True, False)}
+                    del h_s, g_s
                 out_b = propagate(s, apply_b, xb, taus, real)
                 real = False                       # restarts carry complex states
                 for j, ti in enumerate(range(sl.start, sl.stop)):
