@@ -101,3 +101,34 @@ def test_single_precision_memory_model_is_smaller():
     d = TypicalEngine(m, replicas=4).memory_bytes(64)
     s = TypicalEngine(m, replicas=4, precision="single").memory_bytes(64)
     assert 0.4 * d < s < 0.8 * d
+
+
+def test_window_candidates_start_with_every_point():
+    # 1e6 states x 2 columns x 16 bytes x 64 points = 2.048e9 bytes: all points first, then the
+    # powers of two below it down to 1 GiB (arithmetic of the rule, written out by hand)
+    from qhl.exact.typicality import window_candidates
+    assert window_candidates(1e6, 2, 64, 16.0) == [2.048e9, 2.0**30]
+    assert window_candidates(1e3, 2, 64, 16.0) == [2.0**30]                 # all points fit in 1 GiB
+    assert window_candidates(1e8, 2, 64, 16.0) == [2.0**33, 2.0**32, 2.0**31, 2.0**30]
+
+
+def test_auto_window_falls_back_when_memory_is_short(monkeypatch):
+    # 22 spins (setup only, nothing propagated): with half the free memory below the one-window
+    # estimate, the engine must take a smaller window whose estimate fits
+    import qhl.exact.typicality as typ
+    m = build_model(invented_cluster(22))
+    eng = TypicalEngine(m, replicas=2)
+    dims = eng.space.dims
+    d = max(dims[s] + dims[p] for s, p in eng.blocks)
+    cands = typ.window_candidates(d, 2, 64)
+    mems = []
+    for wb in cands:
+        eng.window_bytes = wb
+        mems.append(eng.memory_bytes(64, 2, 0))
+    assert eng._window(d, 2, 64) < 64 and len(cands) >= 2        # the last candidate splits the points
+    monkeypatch.setattr(typ, "available_memory_bytes", lambda: 2.0 * min(mems) * 1.001)
+    eng._choose_window_bytes(64, 2, 0)
+    assert eng.memory_bytes(64, 2, 0) <= min(mems) * 1.001
+    monkeypatch.setattr(typ, "available_memory_bytes", lambda: 2.0 * mems[0] * 1.001)
+    eng._choose_window_bytes(64, 2, 0)
+    assert eng.window_bytes == cands[0] and eng._window(d, 2, 64) == 64
