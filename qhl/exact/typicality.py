@@ -35,6 +35,14 @@ each vector is propagated with the block-triangular operator [[H, 0], [2 pi s_n 
 exponential holds the Duhamel integral -i int_0^t e^{-iH(t-u)} G e^{-iHu} du without quadrature
 (Van Loan 1978), so the only errors are the statistical one (stated, per parameter and time) and
 the Chebyshev cut. Cost: about (1 + P) times the signal for P parameters.
+
+Speed and memory. One window holds every time point when its outputs fit in half the free
+memory (window_bytes="auto"): real start vectors then stay real throughout, and sector p's
+matrix is freed before sector s's is built. precision="single" stores the sector matrices,
+Chebyshev terms and outputs in float32 (inner products summed in double): rounding adds a
+relative error of order K eps_32 ~ 1e-6 (measured |single - double| <= 7e-8 of S(0) at 10-18
+spins), far below the statistical error 2^(-n/2) / sqrt(R). threads split each sector's rows
+(qhl.exact.chebyshev.RowApply); they help on idle cores only.
 """
 
 from concurrent.futures import ThreadPoolExecutor
