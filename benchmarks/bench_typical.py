@@ -105,7 +105,8 @@ def main():
     cal = calibrate()
     print(f"calibration: c_term {cal.c_term:.3g} s/(nnz col), c_build {cal.c_build:.3g} s/nnz, "
           f"c_eigh {cal.c_eigh:.3g} s/d^3; load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
-    extra = f" {'against CPU (s)':>16} {'against/this':>13} {'its stderr':>11}" if args.against else ""
+    extra = (f" {'against CPU (s)':>16} {'against/this':>13} {'its stderr':>11} {'its RSS (GiB)':>14}"
+             if args.against else "")
     print(f"{'n':>3} {'predicted (s)':>14} {'wall (s)':>10} {'CPU (s)':>10} {'CPU/pred':>9} "
           f"{'peak RSS (GiB)':>15} {'max stderr':>11}{extra}")
     ratio = None
@@ -127,7 +128,7 @@ def main():
                 f"{r['rss']:>15.3g} {r['stderr']:>11.2e}")
         if args.against:
             o = case(args.against, n, args.replicas, None)
-            line += f" {o['cpu']:>16.4g} {o['cpu'] / r['cpu']:>13.2f} {o['stderr']:>11.2e}"
+            line += f" {o['cpu']:>16.4g} {o['cpu'] / r['cpu']:>13.2f} {o['stderr']:>11.2e} {o['rss']:>14.3g}"
         print(line + f"   [{args.variants[0] or 'defaults'}]", flush=True)
         ref = np.array(r["signal"])
         for v in args.variants[1:]:
