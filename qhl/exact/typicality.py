@@ -177,10 +177,11 @@ def pair_memory_bytes(ds, dp, nnz_s, nnz_p, n_obs, replicas, n_times, n_gradient
 
     The sector Hamiltonians (CSR; 4-byte data with precision="single"): both with several time
     windows, the larger one when one window holds every point (the engine then frees sector p's
-    before building sector s's), one ladder block (at most n_obs entries per row), and per sector the Chebyshev work arrays (4 real arrays of 2M
-    columns, M = replicas (1 + n_gradient)), the window's complex outputs (added to in slices
-    of FLUSH_ROWS rows, so no second copy) and the blocked accumulation buffer of TERM_BLOCK
-    terms (real when real start vectors cover every point in one window; else complex), plus
+    before building sector s's), one ladder block (at most n_obs entries per row), and per
+    sector the Chebyshev work arrays (4 real arrays of 2M columns, M = replicas (1 + n_gradient)),
+    the window's complex outputs (added to in slices of chebyshev.FLUSH_ROWS rows, so no second copy) and
+    the blocked accumulation buffer of at most TERM_BLOCK terms and BLOCK_BYTES (real when real
+    start vectors cover every point in one window; else complex), plus
     the generators of the differentiated parameters (at most two entries per row each) and the
     double-precision copy of one time point per sector (the inner products are summed in double).
     """
