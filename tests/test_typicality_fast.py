@@ -132,3 +132,16 @@ def test_auto_window_falls_back_when_memory_is_short(monkeypatch):
     monkeypatch.setattr(typ, "available_memory_bytes", lambda: 2.0 * mems[0] * 1.001)
     eng._choose_window_bytes(64, 2, 0)
     assert eng.window_bytes == cands[0] and eng._window(d, 2, 64) == 64
+
+
+def test_row_parts_share_the_matrix_and_multiply_like_it():
+    # scipy's own product of the whole matrix is the reference; the parts must be views (no
+    # second copy of a multi-GiB sector matrix per thread)
+    import scipy.sparse as sps
+    a = sps.random(3000, 3000, 0.01, format="csr", dtype=np.float32, random_state=1)
+    x = np.random.default_rng(0).standard_normal((3000, 2)).astype(np.float32)
+    ra = cheb.RowApply(a, cheb.row_parts(3000, 3, min_rows=10))
+    assert len(ra.parts) == 3
+    for i, (r0, r1) in enumerate(ra.parts):
+        assert np.shares_memory(ra.mats[i].data, a.data) and np.shares_memory(ra.mats[i].indices, a.indices)
+        assert np.array_equal(ra(np.asfortranarray(x), i), (a @ x)[r0:r1])

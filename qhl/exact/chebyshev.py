@@ -72,9 +72,14 @@ def csr_rows(mat, r0: int, r1: int):
     """Rows r0:r1 of a CSR matrix as a CSR matrix sharing its data and column indices."""
     import scipy.sparse as sps
     a, b = int(mat.indptr[r0]), int(mat.indptr[r1])
-    sub = sps.csr_matrix((mat.data[a:b], mat.indices[a:b], mat.indptr[r0:r1 + 1] - mat.indptr[r0]),
-                         shape=(r1 - r0, mat.shape[1]), copy=False)
-    sub.has_sorted_indices = True
+    if (r0, r1) == (0, mat.shape[0]):
+        return mat
+    # the constructor copies a slice smaller than half its base (scipy's pruning), so the
+    # views are set directly: no second copy of the matrix
+    sub = sps.csr_matrix((r1 - r0, mat.shape[1]), dtype=mat.dtype)
+    sub.data, sub.indices = mat.data[a:b], mat.indices[a:b]
+    sub.indptr = (mat.indptr[r0:r1 + 1] - mat.indptr[r0]).astype(mat.indptr.dtype)
+    sub.has_sorted_indices = mat.has_sorted_indices
     return sub
 
 
