@@ -220,6 +220,9 @@ def lanczos_bounds(mat, steps: int = 30, seed: int = 0):
     (C. Lanczos, J. Res. Natl. Bur. Stand. 45, 255 (1950)) widened by their residuals plus 2 %
     of the width. An estimate, not a bound: callers check the norm after propagation and fall
     back to Gershgorin bounds when it grew (a component outside [lo, hi] grows like cosh(k ...)).
+    A float32 matrix is multiplied with float32 copies of the Lanczos vectors (scipy would
+    otherwise convert the whole matrix to float64 at every product); the recursion stays in
+    float64, and the product's rounding (~1e-7 of the norm) is far inside the 2 % margin.
     """
     d = mat.shape[0]
     if d <= 2:
@@ -232,7 +235,7 @@ def lanczos_bounds(mat, steps: int = 30, seed: int = 0):
     alpha, beta = [], []
     b = 0.0
     for _ in range(min(steps, d)):
-        wv = mat @ v - b * v_prev
+        wv = (mat @ v.astype(mat.dtype)).astype(float) - b * v_prev
         a = float(v @ wv)
         wv -= a * v
         alpha.append(a)
