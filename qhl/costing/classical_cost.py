@@ -13,10 +13,13 @@ calls, cached) and the known scaling of the method:
                 + c_build * sum_s nnz_s,
   with M = replicas vectors: C_w = M real columns in the first window (real +-1 start vectors
   stay real until the first restart) and 2M in later ones (complex states), K_w Chebyshev terms
-  of window w (qhl.exact.chebyshev.chebyshev_terms over the engine's time windows, spectral half-width
-  w = rho * sum_P |c_P|, rho measured by Lanczos on a sub-cluster of at most 12 spins of this
-  cluster), nnz per sector from the fraction of rows on which each flip-flop pair stays in the
-  sector; memory = qhl.exact.typicality.pair_memory_bytes of the largest sector pair.
+  of window w (qhl.exact.chebyshev.chebyshev_terms, signal cut, over the engine's time windows:
+  its window_bytes="auto" rule, one window when half the free memory holds it; spectral
+  half-width w = rho * sum_P |c_P|, rho measured by Lanczos on a sub-cluster of at most 12
+  spins of this cluster), nnz per sector from the fraction of rows on which each flip-flop pair
+  stays in the sector; memory = qhl.exact.typicality.pair_memory_bytes of the largest sector
+  pair. The engine's defaults are modelled: double precision, one core (precision="single" was
+  measured 1.3-1.5x faster at 18-20 spins; threads help on idle cores only).
   This route gives estimates with a statistical error (about 2^(-n/2) / sqrt(replicas)).
 
 Assumptions (stated with every result): one node as fast as this machine's measured rates;
