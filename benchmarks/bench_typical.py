@@ -17,6 +17,8 @@ over this tree's.
 TypicalEngine, e.g. `threads=1`, `precision=single,threads=2`), right after each other; the
 first variant is the reference of the `wall ratio` and `CPU ratio` columns (its time over the
 variant's: > 1 is faster). The meter's columns and the growth fit use the first variant.
+Default: double precision on one core, single precision on one core, single precision with
+the engine's thread rule (the cores the load average leaves idle).
 
 Sizes whose predicted time exceeds --max-seconds are not run: their line gives the meter's
 prediction scaled by the measured/predicted ratio (of CPU time) of the largest size that was run.
@@ -89,7 +91,7 @@ def main():
     ap.add_argument("--max-seconds", type=float, default=600.0)
     ap.add_argument("--against", default=None, help="a second qhl tree, timed side by side")
     ap.add_argument("--start", default=None, choices=["real", "phase"], help="start vectors (default: the engine's)")
-    ap.add_argument("--variants", nargs="+", default=[""],
+    ap.add_argument("--variants", nargs="+", default=["threads=1", "precision=single,threads=1", "precision=single"],
                     help="engine option sets, e.g. threads=1 precision=single,threads=2")
     ap.add_argument("--case", nargs=4, help=argparse.SUPPRESS)
     args = ap.parse_args()
