@@ -223,8 +223,8 @@ class TypicalEngine:
             tests/test_typicality_fast.py), far below the statistical error 2^(-n/2).
         threads: threads sharing each sector's rows; default (None): the cores the 1-minute load
             average leaves idle when the estimate starts, 1 to 4 (the threads meet after every
-            product, so on busy cores they wait on each other: measured 1.6x faster on two idle
-            cores at 16 spins, 1.3-1.6x slower at load 4 on 2 cores).
+            product, so on busy cores they wait on each other: measured 1.2-1.4x faster on two
+            cores at 16-22 spins, 1.3-1.6x slower at load 4-7 on 2 cores).
 
     Example:
         >>> from qhl import demo_cluster, build_model
