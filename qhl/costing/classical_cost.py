@@ -9,12 +9,17 @@ calls, cached) and the known scaling of the method:
   memory = qhl.exact.engine.estimate_memory_bytes (the engine's own model; sum d^2 scaling).
 * 'pure-state' (the typical engine, qhl.exact.typicality): sparse Chebyshev propagation of
   random states, sector pair by sector pair,
-      seconds = (c_fixed + c_term * 2M) * K * sum_(s,p) (nnz_s + nnz_p) + c_build * sum_s nnz_s,
-  with M = replicas complex columns (2M real ones), K Chebyshev terms per propagation
-  (qhl.exact.chebyshev.chebyshev_terms over the engine's time windows, spectral half-width
-  w = rho * sum_P |c_P|, rho measured by Lanczos on a sub-cluster of at most 12 spins of this
-  cluster), nnz per sector from the fraction of rows on which each flip-flop pair stays in the
-  sector; memory = qhl.exact.typicality.pair_memory_bytes of the largest sector pair.
+      seconds = sum_windows (c_fixed + c_term * C_w) * K_w * sum_(s,p) (nnz_s + nnz_p)
+                + c_build * sum_s nnz_s,
+  with M = replicas vectors: C_w = M real columns in the first window (real +-1 start vectors
+  stay real until the first restart) and 2M in later ones (complex states), K_w Chebyshev terms
+  of window w (qhl.exact.chebyshev.chebyshev_terms, signal cut, over the engine's time windows:
+  its window_bytes="auto" rule, one window when half the free memory holds it; spectral
+  half-width w = rho * sum_P |c_P|, rho measured by Lanczos on a sub-cluster of at most 12
+  spins of this cluster), nnz per sector from the fraction of rows on which each flip-flop pair
+  stays in the sector; memory = qhl.exact.typicality.pair_memory_bytes of the largest sector
+  pair. The engine's defaults are modelled: double precision, one core (precision="single" was
+  measured 1.3-1.5x faster at 18-20 spins; threads help on idle cores only).
   This route gives estimates with a statistical error (about 2^(-n/2) / sqrt(replicas)).
 
 Assumptions (stated with every result): one node as fast as this machine's measured rates;
@@ -173,7 +178,8 @@ def route_costs(n, flip_pairs, half_width, t_max, n_times, n_obs=None, replicas=
     from ..base.memory import available_memory_bytes
     from ..exact.chebyshev import chebyshev_terms
     from ..exact.engine import _MAX_SPINS, estimate_memory_bytes
-    from ..exact.typicality import MAX_TYPICAL_SPINS, pair_memory_bytes, window_points
+    from ..exact.typicality import (MAX_TYPICAL_SPINS, WINDOW_BYTES, pair_memory_bytes, window_candidates,
+                                    window_points)
 
     cal = cal or calibrate()
     n_obs = n if n_obs is None else n_obs
@@ -188,18 +194,25 @@ def route_costs(n, flip_pairs, half_width, t_max, n_times, n_obs=None, replicas=
     nnz = [_nnz(n, k, flip_pairs) for k in range(n + 1)]
     m = replicas
     dmax = max(dims[s] + dims[p] for s, p in pairs)
-    w = window_points(dmax, m, n_times)
+
+    def pure_memory(wb):
+        out = max(pair_memory_bytes(dims[s], dims[p], nnz[s], nnz[p], n_obs, replicas, n_times, window_bytes=wb)
+                  for s, p in pairs) + 8.0 * 2**n
+        return max(out, 32.0 * 2**n)
+
+    # the engine's window_bytes="auto" rule: the first candidate that fits half the free memory
+    wb = next((b for b in window_candidates(dmax, m, n_times) if pure_memory(b) <= 0.5 * avail / 0.8),
+              WINDOW_BYTES)
+    w = window_points(dmax, m, n_times, wb)
     t = np.linspace(0.0, t_max, n_times)
-    k_total, tc = 0, 0.0
+    work = sum(nnz[s] + nnz[p] for s, p in pairs)
+    ps_s, tc = cal.c_build * sum(nnz), 0.0
     for start in range(0, n_times, w):
         seg = t[start:start + w]
-        k_total += chebyshev_terms(half_width * (seg[-1] - tc), tol)
+        cols = m if start == 0 else 2 * m          # real start vectors until the first restart
+        ps_s += cal.term_seconds(work, cols) * chebyshev_terms(half_width * (seg[-1] - tc), tol, False)
         tc = seg[-1]
-    work = sum(nnz[s] + nnz[p] for s, p in pairs)
-    ps_s = cal.term_seconds(work, 2 * m) * k_total + cal.c_build * sum(nnz)
-    ps_m = max(pair_memory_bytes(dims[s], dims[p], nnz[s], nnz[p], n_obs, replicas, n_times)
-               for s, p in pairs) + 8.0 * 2**n
-    ps_m = max(ps_m, 32.0 * 2**n)
+    ps_m = pure_memory(wb)
     ps = {"method": "pure-state", "memory_bytes": ps_m, "seconds": ps_s,
           "feasible_here": bool(ps_m <= avail and n <= MAX_TYPICAL_SPINS and ps_s <= DAY_S)}
     return [eig, ps]

@@ -133,7 +133,7 @@ def _group_values(states, xm, terms):
 
 
 def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: float = 0.0,
-                  bounds: bool = False):
+                  bounds: bool = False, dtype=np.float64):
     """The block of the operator `groups` on sector k as a real CSR matrix (int32 indices).
 
     With bounds=True also returns the Gershgorin bounds (lo, hi) of its spectrum:
@@ -142,6 +142,7 @@ def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: fl
 
     Raises QhlInputError when the operator is complex or connects sector k to another sector.
     Two passes over the groups (count, then fill) keep the peak memory at the CSR itself.
+    dtype: of the stored entries (np.float32 halves the data; the bounds are computed in double).
     """
     st = space.states(k) if states is None else states
     d = st.size
@@ -170,7 +171,7 @@ def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: fl
     idx_dtype = np.int32 if nnz < 2**31 else np.int64
     indptr = indptr.astype(idx_dtype)
     indices = np.empty(nnz, idx_dtype)
-    data = np.empty(nnz, float)
+    data = np.empty(nnz, dtype)
     fill = indptr[:-1].astype(np.int64)
     diag = np.zeros(d) if bounds else None
     offabs = np.zeros(d) if bounds else None
@@ -224,6 +225,6 @@ def ladder_block(space: SectorSpace, row_k: int, col_k: int, qubits, raising: bo
     return m
 
 
-def csr_bytes(nnz: float, rows: float) -> float:
-    """Memory of a CSR matrix with float64 data and int32 indices."""
-    return 12.0 * nnz + 4.0 * (rows + 1)
+def csr_bytes(nnz: float, rows: float, item: float = 8.0) -> float:
+    """Memory of a CSR matrix with `item`-byte data (8: float64) and int32 indices."""
+    return (item + 4.0) * nnz + 4.0 * (rows + 1)
