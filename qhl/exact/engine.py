@@ -33,7 +33,7 @@ parameters in float64 (float32 BLAS sums its own products in float32). Measured:
 gradient error relative to the largest gradient entry 2.4e-6 at n = 10 (55 parameters, 256
 points) and 4.5e-7 at n = 12 (78 parameters) on benchmarks/bench_engine.py's random proton
 clusters, 1e-8 to 4e-7 at n = 3-7 (tests/test_engine_fast.py). SINGLE_RTOL = 1e-4 is the stated
-bound. The signal, Hessian and adjoint path are always double.
+bound. The signal, Hessian, adjoint and weighted paths are always double.
 
 Adjoint (time-point) gradient. For few time points the derivative is taken per time point,
     dS(t)/dh = sum_k sum_(a,a') G~_k[a,a'] Z_k[a,a'](t),
@@ -44,6 +44,12 @@ Transformed back, Y_k = V_k Z_k^T V_k^dag, the sum runs over the stored entries 
 generators, so no eigen-generator is formed: in all about T (2 (d_s^2 d_p + d_s d_p^2) + 4 d^3)
 real operations against P (d^3 + d_s^2 d_p + d_s d_p^2 + 4 d_s d_p T) for the full path; it is
 chosen when its count is lower (gradient(method="auto"), roughly T < P / 3).
+
+Weighted (vector-Jacobian) gradient. v_n = sum_t c_t dS(t)/dh_n for given weights c_t (the
+likelihood gradient is Re v with c_t = conj(r_t) / sigma_t^2) sums the adjoint path's Z over time
+before the back-transform, through tables C_j[a, b] = sum_t c_t t^j exp(-i (E_a - E_b) t): cost
+independent of P and about that of one more signal (ExactEngine.gradient_weighted, which states the
+formula).
 
 Memory-lean mode. Above LEAN_ABOVE_BYTES of eigenvectors (n >= 15 protons) signal and gradient
 sweep the sector pairs in order, holding the eigenvectors of only the (at most three) sectors in
