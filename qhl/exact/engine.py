@@ -648,26 +648,29 @@ class ExactEngine:
         (V_p^dag O_ps V_s)^T, both d_s x d_p). The adjoint path's per-time Z(tau) summed with weights c_tau
         before the back-transform; the divided difference is separable,
             F_aa'(tau) = (phi_a - phi_a') / (E_a - E_a'),  phi_a = exp(-i E_a tau),
-        so with the table C_j[a, b] = sum_tau c_tau tau^j exp(-i (E_a - E_b) tau)  (d_s x d_p, j = 0, 1):
+        so with the tables C_j[a, b] = sum_tau c_tau tau^j exp(-i (E_a - E_b) tau)  (d_s x d_p):
             ket side (sector s)  Z_s[a, a'] = sum_b Q_ab R_a'b W_aa'b,  W_aa'b = sum_tau c F_aa'(tau) exp(i E_b tau)
                                  = ((C_0 o Q) R^T - Q (C_0 o R)^T)_aa' / (E_a - E_a'),
-            bra side (sector p)  Z_p[b, b'] = sum_a Q_ab' R_ab W'_bb'a,  W' with conj-type F(-tau)
+            bra side (sector p)  Z_p[b, b'] = sum_a Q_ab' R_ab W'_bb'a,  W'_bb'a = sum_tau c F_bb'(-tau) exp(-i E_a tau)
                                  = ((C_0 o R)^T Q - R^T (C_0 o Q))_bb' / (E_b - E_b'),
-        where o is the elementwise product. Pairs with |E_a - E_a'| max|t| < WEIGHTED_TAYLOR_BELOW
-        (the diagonal, exact and near degeneracies) lose digits to cancellation there and take the
-        Taylor series of the divided difference about E_a instead,
+        where o is the elementwise product. On the diagonal Z_s[a, a] = -i sum_b Q_ab R_ab C_1[a, b] and
+        Z_p[b, b] = +i sum_a Q_ab R_ab C_1[a, b]. Pairs with |E_a - E_a'| max|t| < WEIGHTED_TAYLOR_BELOW
+        (exact and near degeneracies) lose digits to cancellation in the quotient and take the Taylor
+        series of the divided difference about E_a instead,
             F_aa'(tau) = exp(-i E_a tau) sum_(k=0..K-1) (-i tau)^(k+1) (E_a' - E_a)^k / (k+1)!,
-        i.e. W_aa'b = sum_k (-i)^(k+1) (E_a' - E_a)^k / (k+1)! C_(k+1)[a, b] (bra side: i instead of -i,
-        C_(k+1)[a, b] about E_b), K = _WEIGHTED_TAYLOR_TERMS = 4: truncation (x^4 / 120 at x =
-        |gap| max|t| = 2e-3) and cancellation (1e-16 / x) both stay near 1e-13 relative. Then, as in
-        the adjoint path, Y_k = V_k Z_k^T V_k^dag and v_n = sum_k sum_ij (2 pi s_n G_n)_ij (Y_k)_ji / N
+        i.e. W_aa'b = sum_k (-i)^(k+1) (E_a' - E_a)^k / (k+1)! C_(k+1)[a, b], and on the bra side
+        W'_bb'a = sum_k (+i)^(k+1) (E_b' - E_b)^k / (k+1)! C_(k+1)[a, b] (tables built for the rows in such
+        pairs only). K = _WEIGHTED_TAYLOR_TERMS = 4: truncation (x^4 / 120 at x = |gap| max|t| = 2e-3)
+        and cancellation (1e-16 / x) both stay near 1e-13 relative. Then, as in the adjoint path,
+        Y_k = V_k Z_k^T V_k^dag and v_n = sum_k sum_ij (2 pi s_n G_n)_ij (Y_k)_ji / N
         over the stored generator entries (R. Bhatia, "Matrix Analysis", 1997, ch. V, Daleckii-Krein).
 
         Cost, independent of P: per sector pair 2 d_s d_p T complex products (C_0, C_1), 2 (d_s^2 d_p +
         d_s d_p^2) complex-by-real products, per sector the back-transform 4 d^3 (real V); plus the
         signal; real=True with real H halves the products. Against P (d^3 + ...) for the full Jacobian.
-        Always float64 (precision="single" applies to
-        the full path only). The memory-lean mode (n >= 15) contracts the full Jacobian instead.
+        Measured (benchmarks/bench_engine.py --weighted): 1.4-1.7 signals for the real part at 10-12
+        protons. Always float64 (precision="single" applies to the full path only). The memory-lean
+        mode (n >= 15) contracts the full Jacobian instead.
 
         Args:
             experiment: the experiment (pulse-sequence experiments are refused).
