@@ -9,6 +9,8 @@ tests/test_engine_fast.py and is the reference where all gaps are tiny. One test
 differentiates sum_t c_t S_dense(t) directly (no engine in the reference).
 """
 
+import tracemalloc
+
 import numpy as np
 import pytest
 
@@ -161,6 +163,30 @@ def test_lean_mode_contracts_the_full_jacobian():
     cw = _weights(rng, ex.points)
     ref = ExactEngine(model).gradient_weighted(ex, cw)[1]
     assert _rel(ExactEngine(model, lean=True).gradient_weighted(ex, cw)[1], ref) < RTOL
+
+
+@pytest.mark.parametrize("n,points,real", [(10, 256, True), (11, 64, True), (11, 64, False)])
+def test_memory_estimate_within_1p5x_of_measured_peak(n, points, real):
+    """weighted_memory_bytes against the tracemalloc peak (numpy reports its arrays to Python's
+    allocation tracer) of engine construction + weighted gradient; 1.5x either way is the project's
+    accuracy goal for memory models (common practice for refusing jobs up front)."""
+    rng = np.random.default_rng(n)
+    spins = []
+    while len(spins) < n:
+        pos = rng.uniform(0, 1, 3) * n ** (1 / 3) * 2.2
+        if all(np.linalg.norm(pos - np.array(s.position_angstrom)) > 1.5 for s in spins):
+            spins.append(Spin(f"H{len(spins)}", "1H", tuple(pos), float(rng.normal(0, 1000))))
+    c = Cluster(9.4, "1H", tuple(spins), (), (Experiment("fid", 2e-4, points),))
+    model = build_model(c)
+    tracemalloc.start()
+    try:
+        eng = ExactEngine(model)
+        eng.gradient_weighted(c.experiments[0], np.full(points, 1 + 0.5j), real=real)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    est = eng.weighted_memory_bytes(points, real)
+    assert 1 / 1.5 < est / peak < 1.5, (peak, est)
 
 
 def test_callable_weights_zero_times_and_bad_input():

@@ -711,9 +711,34 @@ class ExactEngine:
             _, jac = self.gradient(experiment, t, free_values_hz, parameters, method="full")
             v = jac @ c
             return sig, (v.real if real else v)
+        n = self.model.n_spins
+        require_memory(f"the weighted gradient for {n} spins and {t.size:,} time points",
+                       self.weighted_memory_bytes(t.size, bool(real)))
         full = self._weighted_full(coeffs, t, c, bool(real))
         v = np.array([(2 * np.pi * scale) * full[n] for n, scale in rows], dtype=float if real else complex)
         return sig, v / self.norm
+
+    def weighted_memory_bytes(self, n_times: int, real: bool = False) -> float:
+        """Peak-memory model of gradient_weighted (bytes), the signal's estimate included.
+
+        Terms: estimate_memory_bytes without the gradient (eigenvectors, transformed blocks, sparse
+        generators, eigensolver); the accumulators Z of every sector (sum d^2, float64 for the real
+        part of a real H, else complex); for the largest sector pair, the time tables (80 (d_s + d_p) T
+        bytes), the tables C_0, C_1 and the elementwise products (64 d_s d_p bytes in real arithmetic,
+        128 complex) and the block products (24 (d_s^2 + d_p^2) bytes, 32 complex). Measured with
+        tracemalloc (numpy reports its arrays to it) on benchmarks/bench_engine.py's clusters, 256
+        points (64 at 11): estimate / peak 1.25-1.36 for the real part at 10-12 protons, 1.34-1.37 complex
+        at 11-12 and 1.6 complex at 10 (the signal's own peak dominates there); checked within 1.5x in
+        tests/test_engine_weighted.py.
+        """
+        dims = self._dims
+        base = estimate_memory_bytes(self.model.n_spins, dims, n_times, gradient=False)
+        fast = real and self.mirrored
+        z = (8.0 if fast else 16.0) * float(sum(d * d for d in dims))
+        block = max((80.0 * (dims[b.s] + dims[b.p]) * n_times + (64.0 if fast else 128.0) * dims[b.s] * dims[b.p]
+                     + (24.0 if fast else 32.0) * (dims[b.s] ** 2 + dims[b.p] ** 2) for b in self._blocks),
+                    default=0.0)
+        return float(base + z + block)
 
     def _weighted_full(self, coeffs, t, c, real_part=False):
         """sum_t c_t d(N S(t))/d(2 pi s_n h_n) for every model parameter n (gradient_weighted's docstring);
@@ -728,15 +753,14 @@ class ExactEngine:
         nsec = len(self.sectors)
         z = [None] * nsec
         pairs = [None] * nsec        # near-degenerate off-diagonal pairs per sector (a, a', E_a' - E_a)
-        inv = [None] * nsec
         for k in {b.s for b in self._blocks} | {b.p for b in self._blocks}:
-            e = spec.energies[k]
-            diff = e[:, None] - e[None, :]
-            close = np.abs(diff) < near
-            with np.errstate(divide="ignore"):
-                inv[k] = np.where(close, 0.0, 1.0 / np.where(close, 1.0, diff))
-            np.fill_diagonal(close, False)
-            a, a2 = np.nonzero(close)
+            e = spec.energies[k]                                       # ascending (eigh)
+            lo = np.searchsorted(e, e - near, side="right")
+            hi = np.searchsorted(e, e + near, side="left")
+            a = np.repeat(np.arange(len(e)), hi - lo)
+            a2 = np.concatenate([np.arange(i, j) for i, j in zip(lo, hi)]) if a.size else a
+            off = a != a2
+            a, a2 = a[off], a2[off]
             pairs[k] = (a, a2, e[a2] - e[a])
             z[k] = np.zeros((len(e), len(e)), float if fast else complex)
         for b, rt, ot in zip(self._blocks, spec.rho_t, spec.obs_t):
@@ -769,8 +793,8 @@ class ExactEngine:
                     qc = c0 * ot
                     zs = qc @ rt.T - ot @ rc.T
                     zp = rc.T @ ot - rt.T @ qc
-                zs *= inv[b.s]
-                zp *= inv[b.p]
+                _divide_by_gaps(zs, es, near)
+                _divide_by_gaps(zp, ep, near)
                 w1 = ot * rt * c1
                 d_s, d_p = -1j * w1.sum(axis=1), 1j * w1.sum(axis=0)
                 zs[np.diag_indices_from(zs)] += d_s.real if fast else d_s
@@ -908,6 +932,15 @@ def _second_order_term(m, g, e, tau):
     z = np.einsum("acb,pac->pcb", t3, g, optimize=True)
     piece = z.reshape(len(g), -1) @ g.reshape(len(g), -1).T
     return piece + piece.T
+
+
+def _divide_by_gaps(z, e, near):
+    """z[a, a'] /= (E_a - E_a') in place, and 0 where |E_a - E_a'| < near (the diagonal included)."""
+    diff = e[:, None] - e[None, :]
+    close = np.abs(diff) < near
+    diff[close] = 1.0
+    z /= diff
+    z[close] = 0.0
 
 
 def _taylor_pairs(zz, a, a2, gap, q, r, left, right, t, unit):
