@@ -155,21 +155,28 @@ def test_single_precision_engine_runs_the_weighted_path_in_double():
     assert _rel(ExactEngine(model, precision="single").gradient_weighted(ex, cw)[1], ref) < RTOL
 
 
-def test_lean_mode_contracts_the_full_jacobian():
+@pytest.mark.parametrize("hetero", [False, True])
+def test_lean_sweep_equals_full_storage(hetero):
     rng = np.random.default_rng(29)
-    c = random_cluster(rng, 5)
+    c = random_cluster(rng, 5, hetero)
     model = build_model(c, free=FREE)
     ex = c.experiments[0]
     cw = _weights(rng, ex.points)
-    ref = ExactEngine(model).gradient_weighted(ex, cw)[1]
-    assert _rel(ExactEngine(model, lean=True).gradient_weighted(ex, cw)[1], ref) < RTOL
+    ref = ExactEngine(model).gradient(ex, method="full")[1] @ cw
+    lean = ExactEngine(model, lean=True)
+    assert _rel(lean.gradient_weighted(ex, cw)[1], ref) < RTOL
+    assert _rel(lean.gradient_weighted(ex, cw, real=True)[1], ref.real) < RTOL
 
 
-@pytest.mark.parametrize("n,points,real", [(10, 256, True), (11, 64, True), (11, 64, False)])
-def test_memory_estimate_within_1p5x_of_measured_peak(n, points, real):
+@pytest.mark.parametrize("n,points,real,lean", [(10, 256, True, False), (11, 64, True, False),
+                                                (11, 64, False, False), (11, 64, True, True)])
+def test_memory_estimate_within_1p5x_of_measured_peak(n, points, real, lean, monkeypatch):
     """weighted_memory_bytes against the tracemalloc peak (numpy reports its arrays to Python's
     allocation tracer) of engine construction + weighted gradient; 1.5x either way is the project's
-    accuracy goal for memory models (common practice for refusing jobs up front)."""
+    accuracy goal for memory models (common practice for refusing jobs up front). lean: a lowered
+    threshold puts the engine and the estimate in the memory-lean mode."""
+    if lean:
+        monkeypatch.setattr(engine_module, "LEAN_ABOVE_BYTES", 1 << 20)
     rng = np.random.default_rng(n)
     spins = []
     while len(spins) < n:
@@ -185,6 +192,7 @@ def test_memory_estimate_within_1p5x_of_measured_peak(n, points, real):
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
+    assert eng.lean == lean
     est = eng.weighted_memory_bytes(points, real)
     assert 1 / 1.5 < est / peak < 1.5, (peak, est)
 

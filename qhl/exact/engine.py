@@ -669,8 +669,10 @@ class ExactEngine:
         d_s d_p^2) complex-by-real products, per sector the back-transform 4 d^3 (real V); plus the
         signal; real=True with real H halves the products. Against P (d^3 + ...) for the full Jacobian.
         Measured (benchmarks/bench_engine.py --weighted): 1.4-1.7 signals for the real part at 10-12
-        protons. Always float64 (precision="single" applies to the full path only). The memory-lean
-        mode (n >= 15) contracts the full Jacobian instead.
+        protons. Always float64 (precision="single" applies to the full path only). The sector pairs are
+        swept in order and each sector's Z is back-transformed after its last pair, so in the
+        memory-lean mode (n >= 15) only the sectors in use are held, as for the signal (each sector is
+        then diagonalised twice: once for the signal, once in the weighted sweep).
 
         Args:
             experiment: the experiment (pulse-sequence experiments are refused).
@@ -707,10 +709,6 @@ class ExactEngine:
             raise QhlInputError(f"weights: expected {t.size} finite values (one per time point), got shape "
                                 f"{c.shape}", key="weights")
         c = c.astype(complex)
-        if self.lean:
-            _, jac = self.gradient(experiment, t, free_values_hz, parameters, method="full")
-            v = jac @ c
-            return sig, (v.real if real else v)
         n = self.model.n_spins
         require_memory(f"the weighted gradient for {n} spins and {t.size:,} time points",
                        self.weighted_memory_bytes(t.size, bool(real)))
@@ -722,22 +720,30 @@ class ExactEngine:
         """Peak-memory model of gradient_weighted (bytes), the signal's estimate included.
 
         Terms: estimate_memory_bytes without the gradient (eigenvectors, transformed blocks, sparse
-        generators, eigensolver); the accumulators Z of every sector (sum d^2, float64 for the real
-        part of a real H, else complex); for the largest sector pair, the time tables (80 (d_s + d_p) T
-        bytes), the tables C_0, C_1 and the elementwise products (64 d_s d_p bytes in real arithmetic,
-        128 complex) and the block products (24 (d_s^2 + d_p^2) bytes, 32 complex). Measured with
-        tracemalloc (numpy reports its arrays to it) on benchmarks/bench_engine.py's clusters, 256
-        points (64 at 11): estimate / peak 1.25-1.36 for the real part at 10-12 protons, 1.34-1.37 complex
-        at 11-12 and 1.6 complex at 10 (the signal's own peak dominates there); checked within 1.5x in
-        tests/test_engine_weighted.py.
+        generators, eigensolver; the memory-lean mode's when lean); the accumulators Z of the sectors
+        open at once (d^2 each, from a sector's first sector pair to its last; float64 for the real
+        part of a real H, else complex) and the back-transform (2 d^2); for the largest sector pair,
+        the time tables ((32 d_s + 64 d_p) T bytes), the tables C_0, C_1 and the elementwise products
+        (64 d_s d_p bytes in real arithmetic, 80 complex) and the block products (24 (d_s^2 + d_p^2)
+        bytes). Measured with tracemalloc (numpy reports its arrays to it) on
+        benchmarks/bench_engine.py's clusters, 256 points (64 at 11): estimate / peak 1.31-1.35 for the
+        real part at 10-12 protons, 1.25-1.34 complex at 11-12 and 1.55 complex at 10 (the signal's
+        own tables dominate there); checked within 1.5x in tests/test_engine_weighted.py.
         """
         dims = self._dims
         base = estimate_memory_bytes(self.model.n_spins, dims, n_times, gradient=False)
         fast = real and self.mirrored
-        z = (8.0 if fast else 16.0) * float(sum(d * d for d in dims))
-        block = max((80.0 * (dims[b.s] + dims[b.p]) * n_times + (64.0 if fast else 128.0) * dims[b.s] * dims[b.p]
-                     + (24.0 if fast else 32.0) * (dims[b.s] ** 2 + dims[b.p] ** 2) for b in self._blocks),
-                    default=0.0)
+        first, last = {}, {}
+        for i, b in enumerate(self._blocks):
+            for k in (b.s, b.p):
+                first.setdefault(k, i)
+                last[k] = i
+        open_sq = max((sum(dims[k] ** 2 for k in first if first[k] <= i <= last[k])
+                       for i in range(len(self._blocks))), default=0)
+        big = max(dims)
+        z = (8.0 if fast else 16.0) * float(open_sq + 2 * big * big)
+        block = max(((32.0 * dims[b.s] + 64.0 * dims[b.p]) * n_times + (64.0 if fast else 80.0) * dims[b.s] * dims[b.p]
+                     + 24.0 * (dims[b.s] ** 2 + dims[b.p] ** 2) for b in self._blocks), default=0.0)
         return float(base + z + block)
 
     def _weighted_full(self, coeffs, t, c, real_part=False):
@@ -747,24 +753,19 @@ class ExactEngine:
         tmax = float(np.max(np.abs(t))) if t.size else 0.0
         if tmax == 0.0 or not np.any(c):
             return np.zeros(n_all, float if real_part else complex)
-        spec = self._spectrum(coeffs)
         near = WEIGHTED_TAYLOR_BELOW / tmax
         fast = real_part and self.mirrored            # Re v in real arithmetic (Q = 2 R, V real)
-        nsec = len(self.sectors)
-        z = [None] * nsec
-        pairs = [None] * nsec        # near-degenerate off-diagonal pairs per sector (a, a', E_a' - E_a)
-        for k in {b.s for b in self._blocks} | {b.p for b in self._blocks}:
-            e = spec.energies[k]                                       # ascending (eigh)
-            lo = np.searchsorted(e, e - near, side="right")
-            hi = np.searchsorted(e, e + near, side="left")
-            a = np.repeat(np.arange(len(e)), hi - lo)
-            a2 = np.concatenate([np.arange(i, j) for i, j in zip(lo, hi)]) if a.size else a
-            off = a != a2
-            a, a2 = a[off], a2[off]
-            pairs[k] = (a, a2, e[a2] - e[a])
-            z[k] = np.zeros((len(e), len(e)), float if fast else complex)
-        for b, rt, ot in zip(self._blocks, spec.rho_t, spec.obs_t):
-            es, ep = spec.energies[b.s], spec.energies[b.p]
+        last = {}                                     # the last block touching each sector
+        for i, b in enumerate(self._blocks):
+            last[b.s] = last[b.p] = i
+        z, pairs = {}, {}    # open accumulators; near-degenerate off-diagonal pairs (a, a', E_a' - E_a)
+        full = np.zeros(n_all, float if real_part else complex)
+        for i, b, es, vs, ep, vp, rt, ot in self._sweep(coeffs):
+            ot = 2 * rt if ot is None else ot                          # lean sweep, mirrored blocks
+            for k, e in ((b.s, es), (b.p, ep)):
+                if k not in z:
+                    pairs[k] = _near_pairs(e, near)
+                    z[k] = np.zeros((len(e), len(e)), float if fast else complex)
             ds, dp = len(es), len(ep)
             with blas_threads(max(ds, dp)):
                 fs = np.exp(-1j * np.outer(es, t))                              # (d_s, T)
@@ -808,26 +809,30 @@ class ExactEngine:
                     _taylor_pairs(zp, a, a2, gap, rt.T, ot.T, gp, fs, t, 1j)
             z[b.s] += zs
             z[b.p] += zp
-        full = np.zeros(n_all, float if real_part else complex)
-        for k in range(nsec):
-            if z[k] is None:
-                continue
-            v = spec.vectors[k]
-            rows_k, cols_k, pidx, vals, _ = self._h_parts[k]
-            with blas_threads(len(v)):
-                if fast:
-                    y = v @ z[k].T @ v.T
-                elif np.isrealobj(v):
-                    y = _cr(_rc(v, z[k].T), v.T)
-                else:
-                    y = v @ z[k].T @ v.conj().T
-            contrib = vals * y[cols_k, rows_k]
-            if real_part:
-                full += np.bincount(pidx, contrib.real, minlength=n_all)
-            else:
-                full += (np.bincount(pidx, contrib.real, minlength=n_all)
-                         + 1j * np.bincount(pidx, contrib.imag, minlength=n_all))
+            del zs, zp
+            for k, v in ((b.s, vs), (b.p, vp)):
+                if last[k] == i and k in z:            # sector complete: back-transform, read off
+                    pairs.pop(k)
+                    full += self._read_generators(k, v, z.pop(k), fast, real_part)
         return full
+
+    def _read_generators(self, k, v, z, fast, real_part):
+        """sum_ij (G_n)_ij Y_ji over the stored entries of sector k, Y = V Z^T V^dag, for every
+        parameter n (the 2 pi s_n factors are applied by the caller)."""
+        n_all = len(self.model.parameters)
+        rows_k, cols_k, pidx, vals, _ = self._h_parts[k]
+        with blas_threads(len(v)):
+            if fast:
+                y = v @ z.T @ v.T
+            elif np.isrealobj(v):
+                y = _cr(_rc(v, z.T), v.T)
+            else:
+                y = v @ z.T @ v.conj().T
+        contrib = vals * y[cols_k, rows_k]
+        if real_part:
+            return np.bincount(pidx, contrib.real, minlength=n_all)
+        return (np.bincount(pidx, contrib.real, minlength=n_all)
+                + 1j * np.bincount(pidx, contrib.imag, minlength=n_all))
 
     # ------------------------------------------------------------------ Hessian
     @blas_limited
@@ -932,6 +937,18 @@ def _second_order_term(m, g, e, tau):
     z = np.einsum("acb,pac->pcb", t3, g, optimize=True)
     piece = z.reshape(len(g), -1) @ g.reshape(len(g), -1).T
     return piece + piece.T
+
+
+def _near_pairs(e, near):
+    """(a, a', E_a' - E_a) for a != a' with |E_a - E_a'| < near, by bisection on the ascending levels e."""
+    lo = np.searchsorted(e, e - near, side="right")
+    hi = np.searchsorted(e, e + near, side="left")
+    counts = hi - lo
+    a = np.repeat(np.arange(len(e)), counts)
+    a2 = lo[a] + np.arange(a.size) - np.repeat(np.cumsum(counts) - counts, counts)
+    off = a != a2
+    a, a2 = a[off], a2[off]
+    return a, a2, e[a2] - e[a]
 
 
 def _divide_by_gaps(z, e, near):
