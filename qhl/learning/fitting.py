@@ -252,7 +252,6 @@ def _scipy(evaluate, start, method, max_iter, record):
     first = evaluate(start)
     scale = _scales(first.fisher)
     last = {}
-    record.scale = scale
 
     def fun(x):
         p = evaluate(start + x * scale, light=True)
@@ -345,9 +344,13 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
 
     history = []
 
+    start_scale = []      # 1/sqrt(F_nn) of the first point recorded (the start): units of points without F
+
     def record(k, point):
+        if point.fisher is not None and not start_scale:
+            start_scale.append(_scales(point.fisher))
         history.append({"iteration": k, "cost": point.cost,
-                        "gradient_norm": _gradient_norm(point, getattr(record, "scale", None))})
+                        "gradient_norm": _gradient_norm(point, start_scale[0] if start_scale else None)})
         if progress is not None:
             progress(history[-1])
         costs = [h["cost"] for h in history[-DIVERGENCE_RISES - 1:]]
