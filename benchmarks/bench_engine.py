@@ -20,10 +20,11 @@ with peak memory. --crossover prints BLAS one- against two-thread times of squar
 processes, interleaved with the eigh floor, the qhl tree in DIR (for example `git archive <commit>
 qhl | tar -x -C DIR`) and the peer: medians of --repeats rounds, CPU and wall seconds.
 --weighted [--n N]: the likelihood gradient at n = 10 and 12 (or N): signal, full gradient
-(Jacobian, all P rows), the weighted gradient sum_t c_t dS/dh (ExactEngine.gradient_weighted, complex
-and real part) with random complex weights, on an engine built beforehand (spectrum cache emptied
-before each call; the four in interleaved rounds), their ratios, and with the peer its central-difference gradient, 2P + 1 signals
-(the weighted path returns the signal too), against the weighted gradient.
+(Jacobian, all P rows), the weighted gradient sum_t c_t dS/dh (ExactEngine.gradient_weighted,
+complex and real part) with random complex weights, on an engine built beforehand (spectrum cache
+emptied before each call; the four in interleaved rounds), their ratios, and with the peer its
+central-difference gradient, 2P + 1 signals (the weighted path returns the signal too), against
+the weighted gradient.
 BLAS: qhl picks its threads per block (qhl.base.blas); the peer runs with one BLAS/OpenMP thread.
 """
 
