@@ -668,8 +668,8 @@ class ExactEngine:
         Cost, independent of P: per sector pair 2 d_s d_p T complex products (C_0, C_1), 2 (d_s^2 d_p +
         d_s d_p^2) complex-by-real products, per sector the back-transform 4 d^3 (real V); plus the
         signal; real=True with real H halves the products. Against P (d^3 + ...) for the full Jacobian.
-        Measured (benchmarks/bench_engine.py --weighted): 1.4-1.7 signals for the real part at 10-12
-        protons. Always float64 (precision="single" applies to the full path only). The sector pairs are
+        Measured (benchmarks/bench_engine.py --weighted, shared machine under load): 1.3-2.4 signals
+        for the real part at 10-12 protons, 20-24x below the full gradient at 12. Always float64 (precision="single" applies to the full path only). The sector pairs are
         swept in order and each sector's Z is back-transformed after its last pair, so in the
         memory-lean mode (n >= 15) only the sectors in use are held, as for the signal (each sector is
         then diagonalised twice: once for the signal, once in the weighted sweep).
