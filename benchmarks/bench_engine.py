@@ -2,6 +2,7 @@
 
 Prints medians and ratios measured side by side in one run. Usage:
     python benchmarks/bench_engine.py [--quick] [--n N] [--quspin-python PATH] [--scale] [--crossover]
+                                      [--weighted]
 
 Columns (one random proton cluster, offsets + all dipolar couplings free, 256 points):
   * floor: the eigendecomposition alone (scipy eigh of every sector's H, H assembled beforehand);
@@ -18,6 +19,12 @@ with peak memory. --crossover prints BLAS one- against two-thread times of squar
 --signal-at N [--against DIR]: the N-spin signal alone (256 points), one BLAS thread, fresh
 processes, interleaved with the eigh floor, the qhl tree in DIR (for example `git archive <commit>
 qhl | tar -x -C DIR`) and the peer: medians of --repeats rounds, CPU and wall seconds.
+--weighted [--n N]: the likelihood gradient at n = 10 and 12 (or N): signal, full gradient
+(Jacobian, all P rows), the weighted gradient sum_t c_t dS/dh (ExactEngine.gradient_weighted,
+complex and real part) with random complex weights, on an engine built beforehand (spectrum cache
+emptied before each call; the four in interleaved rounds), their ratios, and with the peer its
+central-difference gradient, 2P + 1 signals (the weighted path returns the signal too), against
+the weighted gradient.
 BLAS: qhl picks its threads per block (qhl.base.blas); the peer runs with one BLAS/OpenMP thread.
 """
 
@@ -187,6 +194,50 @@ def signal_at(n, against, quspin, repeats):
         print(f"  {k:<52} {w:10.2f} {cpu:10.2f} {w / ref[0]:12.2f} {cpu / ref[1]:11.2f}")
 
 
+def weighted(sizes, quspin, reps):
+    """Signal, full gradient and weighted gradient side by side (medians of `reps`)."""
+    print(f"weighted gradient: 256 points, offsets + all dipolar couplings free; load average "
+          f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores; medians of {reps}; engine built beforehand")
+    for n in sizes:
+        c = bench_cluster(n)
+        ex = c.experiments[0]
+        model = build_model(c)
+        P = len(model.free)
+        eng = ExactEngine(model)
+        cw = np.array([1.0, 1j]) @ np.random.default_rng(n).normal(size=(2, ex.points))
+        out, laps = {}, {}
+        runs = {"signal": lambda: eng.signal(ex), "full": lambda: eng.gradient(ex, method="full")[1],
+                "weighted": lambda: eng.gradient_weighted(ex, cw)[1],
+                "real": lambda: eng.gradient_weighted(ex, cw, real=True)[1]}
+        eng.gradient(ex, times=ex.times_s[:2], method="full")       # builds the generator blocks once
+        for _ in range(reps):                                         # interleaved rounds: load hits all alike
+            for key, fun in runs.items():
+                eng._cache.clear()
+                t0 = time.perf_counter()
+                out[key] = fun()
+                laps.setdefault(key, []).append(time.perf_counter() - t0)
+        t_sig, t_full, t_w, t_wr = (statistics.median(laps[k]) for k in ("signal", "full", "weighted", "real"))
+        ref = out["full"] @ cw
+        err = np.abs(out["weighted"] - ref).max() / np.abs(ref).max()
+        err_r = np.abs(out["real"] - ref.real).max() / np.abs(ref.real).max()
+        print(f"n = {n} ({P} parameters, load now {os.getloadavg()[0]:.1f}):")
+        row("qhl signal", t_sig)
+        row(f"qhl full gradient (Jacobian, {P} rows)", t_full, t_sig, "ratio to signal")
+        row("qhl weighted gradient sum_t c_t dS/dh (complex)", t_w, t_sig,
+            f"ratio to signal; full / weighted {t_full / t_w:.1f}; difference {err:.1e}")
+        row("qhl weighted gradient, real part (likelihood)", t_wr, t_sig,
+            f"ratio to signal; full / weighted {t_full / t_wr:.1f}; difference {err_r:.1e}")
+        if quspin:
+            try:
+                t_peer, _ = peer_signal(quspin, model, ex, reps)
+            except (OSError, RuntimeError) as e:
+                print(f"  peer column skipped: {e}")
+                continue
+            row("peer (QuSpin) signal", t_peer, t_sig, "ratio to qhl signal")
+            row(f"peer (QuSpin) central differences ({2 * P + 1} signals, scaled)", (2 * P + 1) * t_peer, t_wr,
+                "ratio to qhl weighted (real part)")
+
+
 def crossover():
     from threadpoolctl import threadpool_limits
     rng = np.random.default_rng(0)
@@ -217,7 +268,11 @@ def main():
     ap.add_argument("--signal-at", type=int, default=None, metavar="N")
     ap.add_argument("--against", default=None, metavar="DIR")
     ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--weighted", action="store_true")
     args = ap.parse_args()
+    if args.weighted:
+        weighted([args.n] if args.n else [10, 12], args.quspin_python, args.repeats)
+        return
     if args.signal_at:
         signal_at(args.signal_at, args.against, args.quspin_python, args.repeats)
         return

@@ -33,7 +33,7 @@ parameters in float64 (float32 BLAS sums its own products in float32). Measured:
 gradient error relative to the largest gradient entry 2.4e-6 at n = 10 (55 parameters, 256
 points) and 4.5e-7 at n = 12 (78 parameters) on benchmarks/bench_engine.py's random proton
 clusters, 1e-8 to 4e-7 at n = 3-7 (tests/test_engine_fast.py). SINGLE_RTOL = 1e-4 is the stated
-bound. The signal, Hessian and adjoint path are always double.
+bound. The signal, Hessian, adjoint and weighted paths are always double.
 
 Adjoint (time-point) gradient. For few time points the derivative is taken per time point,
     dS(t)/dh = sum_k sum_(a,a') G~_k[a,a'] Z_k[a,a'](t),
@@ -45,6 +45,12 @@ generators, so no eigen-generator is formed: in all about T (2 (d_s^2 d_p + d_s 
 real operations against P (d^3 + d_s^2 d_p + d_s d_p^2 + 4 d_s d_p T) for the full path; it is
 chosen when its count is lower (gradient(method="auto"), roughly T < P / 3).
 
+Weighted (vector-Jacobian) gradient. v_n = sum_t c_t dS(t)/dh_n for given weights c_t (the
+likelihood gradient is Re v with c_t = conj(r_t) / sigma_t^2) sums the adjoint path's Z over time
+before the back-transform, through tables C_j[a, b] = sum_t c_t t^j exp(-i (E_a - E_b) t): cost
+independent of P and about that of one more signal (ExactEngine.gradient_weighted, which states the
+formula).
+
 Memory-lean mode. Above LEAN_ABOVE_BYTES of eigenvectors (n >= 15 protons) signal and gradient
 sweep the sector pairs in order, holding the eigenvectors of only the (at most three) sectors in
 use (the gradient first runs one eigenvalue-only pass for the degeneracy tolerance); spectrum(),
@@ -53,6 +59,7 @@ transitions(), hessian() and the adjoint path still hold all sectors.
 
 from dataclasses import dataclass
 import itertools
+import math
 
 import numpy as np
 import scipy.linalg as sla
@@ -66,7 +73,7 @@ from ..spins.cluster import refuse_steps
 from ..spins.model import HamiltonianModel
 from .sectors import conserves_magnetisation, full_space, magnetisation_sectors
 
-__all__ = ["ExactEngine", "Spectrum", "DEGENERACY_RTOL", "SINGLE_RTOL", "estimate_memory_bytes"]
+__all__ = ["ExactEngine", "Spectrum", "DEGENERACY_RTOL", "SINGLE_RTOL", "WEIGHTED_TAYLOR_BELOW", "estimate_memory_bytes"]
 
 DEGENERACY_RTOL = 1e-10
 SINGLE_RTOL = 1e-4          # stated bound of precision="single": max |error| / max |gradient|
@@ -74,6 +81,10 @@ LEAN_ABOVE_BYTES = 1 << 30  # eigenvectors of all sectors above this: memory-lea
 _CHUNK_BYTES = 256 << 20    # work arrays of one parameter chunk
 _KCACHE_BYTES = 768 << 20   # eigen-generators kept for the next sector pair
 _MAX_SPINS = 20
+# gradient_weighted: pairs with |E_a - E_a'| max|t| below this take the Taylor series of the divided
+# difference (K terms); truncation x^K / (K+1)! and cancellation eps / x both near 1e-13 at x = 2e-3
+WEIGHTED_TAYLOR_BELOW = 2e-3
+_WEIGHTED_TAYLOR_TERMS = 4
 
 
 @dataclass
@@ -624,6 +635,205 @@ class ExactEngine:
             grad[r] = (2 * np.pi * scale) * full[n]
         return grad
 
+    # ------------------------------------------------------------------ weighted gradient
+    @blas_limited
+    def gradient_weighted(self, experiment=None, weights=None, times=None, free_values_hz=None,
+                          parameters=None, real: bool = False):
+        """v_n = sum_t c_t dS(t)/dh_n (1/Hz) for complex weights c_t, at about the cost of two signals.
+
+        The vector-Jacobian product of the signal: for the Gaussian log-likelihood of
+        qhl.learning.fitting, c_t = conj(r_t) / sigma_t^2 (r = S - D) and its gradient is Re v_n.
+
+        Formula (convention of the module docstring; R = V_s^dag rho0_sp V_p, Q = obs_t =
+        (V_p^dag O_ps V_s)^T, both d_s x d_p). The adjoint path's per-time Z(tau) summed with weights c_tau
+        before the back-transform; the divided difference is separable,
+            F_aa'(tau) = (phi_a - phi_a') / (E_a - E_a'),  phi_a = exp(-i E_a tau),
+        so with the tables C_j[a, b] = sum_tau c_tau tau^j exp(-i (E_a - E_b) tau)  (d_s x d_p):
+            ket side (sector s)  Z_s[a, a'] = sum_b Q_ab R_a'b W_aa'b,  W_aa'b = sum_tau c F_aa'(tau) exp(i E_b tau)
+                                 = ((C_0 o Q) R^T - Q (C_0 o R)^T)_aa' / (E_a - E_a'),
+            bra side (sector p)  Z_p[b, b'] = sum_a Q_ab' R_ab W'_bb'a,  W'_bb'a = sum_tau c F_bb'(-tau) exp(-i E_a tau)
+                                 = ((C_0 o R)^T Q - R^T (C_0 o Q))_bb' / (E_b - E_b'),
+        where o is the elementwise product. On the diagonal Z_s[a, a] = -i sum_b Q_ab R_ab C_1[a, b] and
+        Z_p[b, b] = +i sum_a Q_ab R_ab C_1[a, b]. Pairs with |E_a - E_a'| max|t| < WEIGHTED_TAYLOR_BELOW
+        (exact and near degeneracies) lose digits to cancellation in the quotient and take the Taylor
+        series of the divided difference about E_a instead,
+            F_aa'(tau) = exp(-i E_a tau) sum_(k=0..K-1) (-i tau)^(k+1) (E_a' - E_a)^k / (k+1)!,
+        i.e. W_aa'b = sum_k (-i)^(k+1) (E_a' - E_a)^k / (k+1)! C_(k+1)[a, b], and on the bra side
+        W'_bb'a = sum_k (+i)^(k+1) (E_b' - E_b)^k / (k+1)! C_(k+1)[a, b] (tables built for the rows in such
+        pairs only). K = _WEIGHTED_TAYLOR_TERMS = 4: truncation (x^4 / 120 at x = |gap| max|t| = 2e-3)
+        and cancellation (1e-16 / x) both stay near 1e-13 relative. Then, as in the adjoint path,
+        Y_k = V_k Z_k^T V_k^dag and v_n = sum_k sum_ij (2 pi s_n G_n)_ij (Y_k)_ji / N
+        over the stored generator entries (R. Bhatia, "Matrix Analysis", 1997, ch. V, Daleckii-Krein).
+
+        Cost, independent of P: per sector pair 2 d_s d_p T complex products (C_0, C_1), 2 (d_s^2 d_p +
+        d_s d_p^2) complex-by-real products, per sector the back-transform 4 d^3 (real V); plus the
+        signal; real=True with real H halves the products. Against P (d^3 + ...) for the full Jacobian.
+        Measured (benchmarks/bench_engine.py --weighted, shared machine under load): 1.3-2.4 signals
+        for the real part at 10-12 protons, 20-24x below the full gradient at 12. Always float64 (precision="single" applies to the full path only). The sector pairs are
+        swept in order and each sector's Z is back-transformed after its last pair, so in the
+        memory-lean mode (n >= 15) only the sectors in use are held, as for the signal (each sector is
+        then diagonalised twice: once for the signal, once in the weighted sweep).
+
+        Args:
+            experiment: the experiment (pulse-sequence experiments are refused).
+            weights: c_t, complex (T,), or a callable taking the signal S (T,) and returning c
+                (the signal is computed once either way).
+            times, free_values_hz, parameters: as in `gradient`.
+            real: return Re v only (float), the likelihood gradient; where H is real and the blocks
+                mirrored (the usual case) it runs in real arithmetic, about half the products.
+
+        Returns:
+            (signal (T,) complex, v (P,) complex, or real with real=True).
+
+        Example:
+            >>> from qhl import demo_cluster, build_model, ExactEngine
+            >>> import numpy as np
+            >>> c = demo_cluster(); eng = ExactEngine(build_model(c)); ex = c.experiments[0]
+            >>> s, v = eng.gradient_weighted(ex, lambda s: np.conj(s))    # d/dh of sum |S|^2 / 2 is Re v
+            >>> _, jac = eng.gradient(ex)
+            >>> bool(np.allclose(v, jac @ np.conj(s), rtol=1e-10, atol=0))
+            True
+        """
+        refuse_steps(experiment, "the weighted gradient")
+        t = self._times(experiment, times)
+        self._require_times(t, 2)
+        coeffs, _ = self._coefficients(experiment, free_values_hz)
+        _, rows = self._rows(experiment, free_values_hz, parameters)
+        sig = self.signal(experiment, t, free_values_hz)
+        if weights is None:
+            raise QhlInputError("give the weights c_t (one per time point) or a callable of the signal",
+                                key="weights")
+        c = weights(sig) if callable(weights) else weights
+        c = np.asarray(c)
+        if c.shape != t.shape or not np.all(np.isfinite(c)):
+            raise QhlInputError(f"weights: expected {t.size} finite values (one per time point), got shape "
+                                f"{c.shape}", key="weights")
+        c = c.astype(complex)
+        n = self.model.n_spins
+        require_memory(f"the weighted gradient for {n} spins and {t.size:,} time points",
+                       self.weighted_memory_bytes(t.size, bool(real)))
+        full = self._weighted_full(coeffs, t, c, bool(real))
+        v = np.array([(2 * np.pi * scale) * full[n] for n, scale in rows], dtype=float if real else complex)
+        return sig, v / self.norm
+
+    def weighted_memory_bytes(self, n_times: int, real: bool = False) -> float:
+        """Peak-memory model of gradient_weighted (bytes), the signal's estimate included.
+
+        Terms: estimate_memory_bytes without the gradient (eigenvectors, transformed blocks, sparse
+        generators, eigensolver; the memory-lean mode's when lean); the accumulators Z of the sectors
+        open at once (d^2 each, from a sector's first sector pair to its last; float64 for the real
+        part of a real H, else complex) and the back-transform (2 d^2); for the largest sector pair,
+        the time tables ((32 d_s + 64 d_p) T bytes), the tables C_0, C_1 and the elementwise products
+        (64 d_s d_p bytes in real arithmetic, 80 complex) and the block products (24 (d_s^2 + d_p^2)
+        bytes). Measured with tracemalloc (numpy reports its arrays to it) on
+        benchmarks/bench_engine.py's clusters, 256 points (64 at 11): estimate / peak 1.31-1.35 for the
+        real part at 10-12 protons, 1.25-1.34 complex at 11-12 and 1.55 complex at 10 (the signal's
+        own tables dominate there); checked within 1.5x in tests/test_engine_weighted.py.
+        """
+        dims = self._dims
+        base = estimate_memory_bytes(self.model.n_spins, dims, n_times, gradient=False)
+        fast = real and self.mirrored
+        first, last = {}, {}
+        for i, b in enumerate(self._blocks):
+            for k in (b.s, b.p):
+                first.setdefault(k, i)
+                last[k] = i
+        open_sq = max((sum(dims[k] ** 2 for k in first if first[k] <= i <= last[k])
+                       for i in range(len(self._blocks))), default=0)
+        big = max(dims)
+        z = (8.0 if fast else 16.0) * float(open_sq + 2 * big * big)
+        block = max(((32.0 * dims[b.s] + 64.0 * dims[b.p]) * n_times + (64.0 if fast else 80.0) * dims[b.s] * dims[b.p]
+                     + 24.0 * (dims[b.s] ** 2 + dims[b.p] ** 2) for b in self._blocks), default=0.0)
+        return float(base + z + block)
+
+    def _weighted_full(self, coeffs, t, c, real_part=False):
+        """sum_t c_t d(N S(t))/d(2 pi s_n h_n) for every model parameter n (gradient_weighted's docstring);
+        real_part: only its real part, in real arithmetic where H is real and the blocks mirrored."""
+        n_all = len(self.model.parameters)
+        tmax = float(np.max(np.abs(t))) if t.size else 0.0
+        if tmax == 0.0 or not np.any(c):
+            return np.zeros(n_all, float if real_part else complex)
+        near = WEIGHTED_TAYLOR_BELOW / tmax
+        fast = real_part and self.mirrored            # Re v in real arithmetic (Q = 2 R, V real)
+        last = {}                                     # the last block touching each sector
+        for i, b in enumerate(self._blocks):
+            last[b.s] = last[b.p] = i
+        z, pairs = {}, {}    # open accumulators; near-degenerate off-diagonal pairs (a, a', E_a' - E_a)
+        full = np.zeros(n_all, float if real_part else complex)
+        for i, b, es, vs, ep, vp, rt, ot in self._sweep(coeffs):
+            ot = 2 * rt if ot is None else ot                          # lean sweep, mirrored blocks
+            for k, e in ((b.s, es), (b.p, ep)):
+                if k not in z:
+                    pairs[k] = _near_pairs(e, near)
+                    z[k] = np.zeros((len(e), len(e)), float if fast else complex)
+            ds, dp = len(es), len(ep)
+            with blas_threads(max(ds, dp)):
+                fs = np.exp(-1j * np.outer(es, t))                              # (d_s, T)
+                gp = np.exp(1j * np.outer(ep, t)) * c[None, :]                 # c_t exp(i E_b t), (d_p, T)
+                if fast:
+                    # [Re C_0 | Im C_1] in one real product: Re(f g) = Re f Re g - Im f Im g, etc.
+                    g1 = gp * t[None, :]
+                    rhs = np.block([[gp.real.T, g1.imag.T], [-gp.imag.T, g1.real.T]])
+                    both = np.concatenate([fs.real, fs.imag], axis=1) @ rhs
+                    c0, c1 = both[:, :dp], 1j * both[:, dp:]              # Re C_0, i Im C_1
+                else:
+                    both = fs @ np.concatenate([gp, gp * t[None, :]]).T         # [C_0 | C_1]
+                    c0, c1 = both[:, :dp], both[:, dp:]
+                rc = c0 * rt
+                if fast:
+                    x = rc @ rt.T                                              # (C_0 o R) R^T, Q = 2 R
+                    zs = 2.0 * (x - x.T)
+                    y = rc.T @ rt                                              # (C_0 o R)^T R
+                    zp = 2.0 * (y - y.T)
+                elif self.mirrored:
+                    x = _cr(rc, rt.T)
+                    zs = 2.0 * (x - x.T)
+                    y = _cr(rc.T, rt)
+                    zp = 2.0 * (y - y.T)
+                else:
+                    qc = c0 * ot
+                    zs = qc @ rt.T - ot @ rc.T
+                    zp = rc.T @ ot - rt.T @ qc
+                _divide_by_gaps(zs, es, near)
+                _divide_by_gaps(zp, ep, near)
+                w1 = ot * rt * c1
+                d_s, d_p = -1j * w1.sum(axis=1), 1j * w1.sum(axis=0)
+                zs[np.diag_indices_from(zs)] += d_s.real if fast else d_s
+                zp[np.diag_indices_from(zp)] += d_p.real if fast else d_p
+                a, a2, gap = pairs[b.s]
+                if a.size:
+                    _taylor_pairs(zs, a, a2, gap, ot, rt, fs, gp, t, -1j)
+                a, a2, gap = pairs[b.p]
+                if a.size:
+                    # bra side: rows <-> columns and i for -i; C_j[a, b] = sum c t^j exp(i E_b t) exp(-i E_a t)
+                    _taylor_pairs(zp, a, a2, gap, rt.T, ot.T, gp, fs, t, 1j)
+            z[b.s] += zs
+            z[b.p] += zp
+            del zs, zp
+            for k, v in ((b.s, vs), (b.p, vp)):
+                if last[k] == i and k in z:            # sector complete: back-transform, read off
+                    pairs.pop(k)
+                    full += self._read_generators(k, v, z.pop(k), fast, real_part)
+        return full
+
+    def _read_generators(self, k, v, z, fast, real_part):
+        """sum_ij (G_n)_ij Y_ji over the stored entries of sector k, Y = V Z^T V^dag, for every
+        parameter n (the 2 pi s_n factors are applied by the caller)."""
+        n_all = len(self.model.parameters)
+        rows_k, cols_k, pidx, vals, _ = self._h_parts[k]
+        with blas_threads(len(v)):
+            if fast:
+                y = v @ z.T @ v.T
+            elif np.isrealobj(v):
+                y = _cr(_rc(v, z.T), v.T)
+            else:
+                y = v @ z.T @ v.conj().T
+        contrib = vals * y[cols_k, rows_k]
+        if real_part:
+            return np.bincount(pidx, contrib.real, minlength=n_all)
+        return (np.bincount(pidx, contrib.real, minlength=n_all)
+                + 1j * np.bincount(pidx, contrib.imag, minlength=n_all))
+
     # ------------------------------------------------------------------ Hessian
     @blas_limited
     def hessian(self, experiment=None, times=None, free_values_hz=None, parameters=None):
@@ -736,6 +946,56 @@ def _second_order_term(m, g, e, tau):
     z = np.einsum("acb,pac->pcb", t3, g, optimize=True)
     piece = z.reshape(len(g), -1) @ g.reshape(len(g), -1).T
     return piece + piece.T
+
+
+def _near_pairs(e, near):
+    """(a, a', E_a' - E_a) for a != a' with |E_a - E_a'| < near, by bisection on the ascending levels e."""
+    lo = np.searchsorted(e, e - near, side="right")
+    hi = np.searchsorted(e, e + near, side="left")
+    counts = hi - lo
+    a = np.repeat(np.arange(len(e)), counts)
+    a2 = lo[a] + np.arange(a.size) - np.repeat(np.cumsum(counts) - counts, counts)
+    off = a != a2
+    a, a2 = a[off], a2[off]
+    return a, a2, e[a2] - e[a]
+
+
+def _divide_by_gaps(z, e, near):
+    """z[a, a'] /= (E_a - E_a') in place, and 0 where |E_a - E_a'| < near (the diagonal included)."""
+    diff = e[:, None] - e[None, :]
+    close = np.abs(diff) < near
+    diff[close] = 1.0
+    z /= diff
+    z[close] = 0.0
+
+
+def _taylor_pairs(zz, a, a2, gap, q, r, left, right, t, unit):
+    """zz[a, a'] += sum_b q[a, b] r[a', b] W_aa'b on the near-degenerate pairs (a, a', gap = E_a' - E_a),
+        W_aa'b = sum_(k<K) unit^(k+1) gap^k / (k+1)! C_(k+1)[a, b],  C_j[a, b] = sum_t left[a, t] t^j right[b, t]
+    (gradient_weighted's docstring; unit = -i on the ket side, +i on the bra side). The tables are built
+    for the rows in the pairs only. zz real: the real part is added."""
+    uniq, pos = np.unique(a, return_inverse=True)
+    K = _WEIGHTED_TAYLOR_TERMS
+    tables = np.stack([left[uniq] @ (right * t[None, :] ** j).T for j in range(1, K + 1)])   # (K, u, d')
+    k = np.arange(K)
+    factorial = np.array([math.factorial(j + 1) for j in k], float)
+    step = max(1, (1 << 21) // max(q.shape[1], 1))
+    for i0 in range(0, a.size, step):
+        sl = slice(i0, i0 + step)
+        coef = unit ** (k + 1)[None, :] * gap[sl, None] ** k[None, :] / factorial[None, :]      # (m, K)
+        w = np.einsum("mk,kmb->mb", coef, tables[:, pos[sl], :])
+        val = np.einsum("mb,mb,mb->m", q[a[sl]], r[a2[sl]], w)
+        np.add.at(zz, (a[sl], a2[sl]), val.real if np.isrealobj(zz) else val)
+
+
+def _cr(x, r):
+    """complex x @ real r as two real products (numpy would promote r and use a complex product)."""
+    return (x.real @ r) + 1j * (x.imag @ r)
+
+
+def _rc(r, x):
+    """real r @ complex x as two real products."""
+    return (r @ x.real) + 1j * (r @ x.imag)
 
 
 def _mm(a, b):

@@ -20,6 +20,11 @@ Optimisers:
              1190 (1995)).
 For 'cg' and 'lbfgs' each parameter is measured in units of 1/sqrt(F_nn) at the start (diagonal
 preconditioning, common practice): offsets and couplings differ in scale by orders of magnitude.
+They need only C and g after the start, so where the provider has a weighted path
+(GradientProvider.weighted_gradients; the exact engine's ExactEngine.gradient_weighted, with weights
+c_t = conj(r_t) / sigma_t^2 so that g_n = Re sum_t c_t dS(t)/dh_n) each evaluation costs about two
+signals instead of the full dS/dh; F is computed at the start and once more at the best point
+(its Cramer-Rao errors).
 
 Every optimiser keeps the lowest-cost point it evaluated and says whether it converged. A fit
 that diverges (a non-finite value or cost, a parameter farther than DIVERGENCE_FACTOR times the
@@ -41,6 +46,7 @@ from .emulated_run import DEFAULT_MAX_MINUTES, plan_emulated_run, trotter_signal
 from .methods import METHODS
 
 __all__ = ["GradientProvider", "ExactGradientProvider", "CostPoint", "FitResult", "evaluate_cost",
+           "evaluate_cost_gradient",
            "fit", "perturbed_start", "emulated_gradient_provider", "relative_error", "METHODS",
            "LearnReport", "learn",
            "DECREMENT_TOL", "NOISY_STALL_TOL", "NOISY_PATIENCE", "DIVERGENCE_FACTOR", "DIVERGENCE_RISES"]
@@ -75,7 +81,8 @@ def emulated_gradient_provider(model, experiments, shots, seed=0, **options):
 
 @dataclass(frozen=True)
 class CostPoint:
-    """Cost C (nats), gradient g (1/Hz) and Fisher / Gauss-Newton matrix F (1/Hz^2) at `values_hz`."""
+    """Cost C (nats), gradient g (1/Hz) and Fisher / Gauss-Newton matrix F (1/Hz^2) at `values_hz`
+    (F is None where only C and g were evaluated: `evaluate_cost_gradient`)."""
 
     values_hz: np.ndarray
     cost: float
@@ -112,6 +119,27 @@ def evaluate_cost(provider: GradientProvider, dataset: Dataset, values_hz) -> Co
     return CostPoint(values_hz, cost, grad, 0.5 * (fisher + fisher.T))
 
 
+def evaluate_cost_gradient(provider: GradientProvider, dataset: Dataset, values_hz):
+    """C and g (module docstring) through the provider's weighted path, F left out (None), or None
+    where the provider has no weighted path (GradientProvider.weighted_gradients)."""
+    values_hz = np.asarray(values_hz, float)
+    times = {name: np.asarray(v[0], float) for name, v in dataset.signals.items()}
+    weights = {}
+    for name, (_, d, s) in dataset.signals.items():
+        w = 1.0 / np.broadcast_to(np.asarray(s, float), np.shape(d)) ** 2
+        weights[name] = lambda sig, d=d, w=w: np.conj(sig - d) * w          # c_t = conj(r_t) / sigma_t^2
+    results = provider.weighted_gradients(values_hz, times, weights)
+    if results is None:
+        return None
+    cost, grad = 0.0, np.zeros(len(values_hz))
+    for name, (_, d, s) in dataset.signals.items():
+        sig, g = results[name]
+        w = 1.0 / np.broadcast_to(np.asarray(s, float), np.shape(d)) ** 2
+        cost += 0.5 * float(np.sum(w * np.abs(sig - d) ** 2))
+        grad += np.real(g)
+    return CostPoint(values_hz, cost, grad, None)
+
+
 @dataclass
 class FitResult:
     """Outcome of `fit`.
@@ -126,7 +154,8 @@ class FitResult:
         converged: whether the stopping test was met (else `message` says why not).
         diverged: the fit ran away (module docstring) and stopped; `values_hz` is no result.
         history: per iteration {'iteration', 'cost', 'gradient_norm'} (gradient norm in the
-            preconditioned units sqrt(g^T diag(F)^-1 g), dimensionless).
+            preconditioned units sqrt(g^T diag(F)^-1 g), dimensionless; F of the point, or for
+            'cg' / 'lbfgs' on the weighted path F at the start, the optimiser's own units).
         unlearnable: [{'eigenvalue', 'combination': {name: weight}}] combinations the data do not
             determine (qhl.learning.fisher_report).
     """
@@ -174,8 +203,8 @@ def _scales(fisher):
 ZERO_DIAGONAL_RTOL = 1e-14
 
 
-def _gradient_norm(point):
-    return float(np.linalg.norm(point.gradient * _scales(point.fisher)))
+def _gradient_norm(point, scale=None):
+    return float(np.linalg.norm(point.gradient * (_scales(point.fisher) if point.fisher is not None else scale)))
 
 
 def _levenberg_marquardt(evaluate, start, max_iter, tol, record, noisy=False):
@@ -225,7 +254,7 @@ def _scipy(evaluate, start, method, max_iter, record):
     last = {}
 
     def fun(x):
-        p = evaluate(start + x * scale)
+        p = evaluate(start + x * scale, light=True)
         last["point"] = p
         return p.cost, p.gradient * scale
 
@@ -235,7 +264,7 @@ def _scipy(evaluate, start, method, max_iter, record):
     def callback(*args):
         k[0] += 1
         h = start + np.asarray(args[0], float) * scale
-        p = last["point"] if np.array_equal(last["point"].values_hz, h) else evaluate(h)
+        p = last["point"] if np.array_equal(last["point"].values_hz, h) else evaluate(h, light=True)
         record(k[0], p)
 
     opts = {"maxiter": max_iter, "gtol": 1e-5}
@@ -291,7 +320,8 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
     count = [0]
     reach = DIVERGENCE_FACTOR * max(float(np.max(np.abs(start), initial=0.0)), 1.0)
 
-    def evaluate(values):
+    def evaluate(values, light=False):
+        """CostPoint at `values`; light: C and g only, by the weighted path where the provider has one."""
         values = np.asarray(values, float)
         if not np.all(np.isfinite(values)):
             raise _Diverged("a parameter became non-finite")
@@ -300,7 +330,9 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
             k = int(np.argmax(np.abs(values - start)))
             raise _Diverged(f"{names[k]} reached {values[k]:.3g} Hz, more than {DIVERGENCE_FACTOR:.0e} times "
                             f"the largest starting value from its start")
-        p = evaluate_cost(provider, dataset, values)
+        p = evaluate_cost_gradient(provider, dataset, values) if light else None
+        if p is None:
+            p = evaluate_cost(provider, dataset, values)
         count[0] += 1
         if not np.isfinite(p.cost) or not np.all(np.isfinite(p.gradient)):
             if not best:
@@ -312,8 +344,13 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
 
     history = []
 
+    start_scale = []      # 1/sqrt(F_nn) of the first point recorded (the start): units of points without F
+
     def record(k, point):
-        history.append({"iteration": k, "cost": point.cost, "gradient_norm": _gradient_norm(point)})
+        if point.fisher is not None and not start_scale:
+            start_scale.append(_scales(point.fisher))
+        history.append({"iteration": k, "cost": point.cost,
+                        "gradient_norm": _gradient_norm(point, start_scale[0] if start_scale else None)})
         if progress is not None:
             progress(history[-1])
         costs = [h["cost"] for h in history[-DIVERGENCE_RISES - 1:]]
@@ -334,6 +371,9 @@ def fit(provider: GradientProvider, dataset: Dataset, start_hz, method: str = "g
         iterations = max(len(history) - 1, 0)
         message = f"the fit diverged after {iterations} iterations: {e}"
     point = best["point"]
+    if point.fisher is None:              # found on the weighted path: F (Cramer-Rao errors) there
+        point = evaluate_cost(provider, dataset, point.values_hz)
+        count[0] += 1
     report = report_from_fisher(names, point.values_hz, point.fisher, invisible)
     return FitResult(names, point.values_hz, report.crb_hz, point.fisher, point.cost, iterations, converged,
                      message, method, history, report.unlearnable, count[0], diverged)
