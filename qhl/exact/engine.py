@@ -62,8 +62,9 @@ from ..base.blas import blas_limited, blas_threads
 from ..base.errors import QhlInputError
 from .divided_differences import first_divided_difference, second_divided_difference
 from ..base.memory import require_memory
-from ..spins.cluster import refuse_steps
+from ..spins.cluster import refuse_spinning, refuse_steps
 from ..spins.model import HamiltonianModel
+from ..spins.spinning import is_spinning
 from .sectors import conserves_magnetisation, full_space, magnetisation_sectors
 
 __all__ = ["ExactEngine", "Spectrum", "DEGENERACY_RTOL", "SINGLE_RTOL", "estimate_memory_bytes"]
@@ -147,6 +148,11 @@ class ExactEngine:
         lean: hold the eigenvectors of only the sector pairs in use during signal/gradient
             (default: automatic, when all eigenvectors would exceed LEAN_ABOVE_BYTES).
 
+    Spinning experiments (spinning_hz > 0) go to qhl.exact.spinning_engine for signal and gradient
+    (so Fisher information, the gradient provider and fits work on them); the attribute
+    `spinning_slices_per_period` (default None: the rule in that module) sets its slices per rotor
+    period. spectrum, transitions and hessian refuse them.
+
     Example:
         >>> from qhl import demo_cluster, build_model, ExactEngine
         >>> c = demo_cluster(); eng = ExactEngine(build_model(c))
@@ -206,6 +212,7 @@ class ExactEngine:
         self.mirrored = self.real and all(
             (b.rho - 0.5 * b.obs.T).count_nonzero() == 0 for b in self._blocks)
         self._cache = {}
+        self.spinning_slices_per_period = None
 
     @property
     def _gen_blocks(self):
@@ -287,6 +294,7 @@ class ExactEngine:
     @blas_limited
     def spectrum(self, experiment=None, free_values_hz=None) -> Spectrum:
         """Eigen-decomposition of H for `experiment` (cached on the coefficient vector)."""
+        refuse_spinning(experiment, "the spectrum (time-independent H)")
         coeffs, _ = self._coefficients(experiment, free_values_hz)
         return self._spectrum(coeffs)
 
@@ -350,6 +358,9 @@ class ExactEngine:
         then count from the end of its last step)."""
         t = self._times(experiment, times)
         self._require_times(t)
+        if is_spinning(experiment):
+            from .spinning_engine import spinning_signal
+            return spinning_signal(self, experiment, t, free_values_hz)
         if _has_steps(experiment):
             from .sequence_engine import sequence_signal
             return sequence_signal(self, experiment, t, free_values_hz)
@@ -375,6 +386,7 @@ class ExactEngine:
         Lines closer than the degeneracy tolerance are merged. Amplitudes sum to S(0) = 1.
         """
         refuse_steps(experiment, "the line list")
+        refuse_spinning(experiment, "the line list (H depends on time; the spectrum has rotor sidebands)")
         spec = self.spectrum(experiment, free_values_hz)
         freqs, amps = [], []
         for b, rt, ot in zip(self._blocks, spec.rho_t, spec.obs_t):
@@ -411,7 +423,10 @@ class ExactEngine:
     def _rows(self, experiment, free_values_hz, parameters):
         """(names, full parameter index and scale per row) of the requested free parameters."""
         model = self.model
-        _, free_scale = self._coefficients(experiment, free_values_hz)
+        if is_spinning(experiment):           # the spinning engine applies s_n(t) itself
+            free_scale = np.ones(len(model.free))
+        else:
+            _, free_scale = self._coefficients(experiment, free_values_hz)
         names = list(model.free) if parameters is None else list(parameters)
         rows = []
         for name in names:
@@ -436,11 +451,14 @@ class ExactEngine:
             (signal (T,), gradient (P, T)) complex arrays.
         """
         t = self._times(experiment, times)
-        coeffs, _ = self._coefficients(experiment, free_values_hz)
         _, rows = self._rows(experiment, free_values_hz, parameters)
         self._require_times(t, 1 + len(rows))
         if method not in ("auto", "full", "adjoint", "general"):
             raise QhlInputError(f"method {method!r}: expected auto, full or adjoint", key="method")
+        if is_spinning(experiment):
+            from .spinning_engine import spinning_gradient
+            return spinning_gradient(self, experiment, t, free_values_hz, rows)
+        coeffs, _ = self._coefficients(experiment, free_values_hz)
         if _has_steps(experiment):
             from .sequence_engine import sequence_gradient
             return sequence_gradient(self, experiment, t, free_values_hz, rows)
@@ -634,6 +652,7 @@ class ExactEngine:
         """
         model = self.model
         refuse_steps(experiment, "the exact Hessian")
+        refuse_spinning(experiment, "the exact Hessian")
         t = self._times(experiment, times)
         self._require_times(t, 1 + len(model.free if parameters is None else parameters))
         spec = self.spectrum(experiment, free_values_hz)

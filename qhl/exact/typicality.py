@@ -45,7 +45,7 @@ import numpy as np
 from ..base.blas import single_thread_blas
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
-from ..spins.cluster import refuse_steps
+from ..spins.cluster import refuse_spinning, refuse_steps
 from .chebyshev import chebyshev_window, lanczos_bounds, sparse_times
 from .sector_operators import SectorSpace, csr_bytes, ladder_block, pauli_groups, sector_matrix
 from .sectors import conserves_magnetisation
@@ -288,6 +288,7 @@ class TypicalEngine:
     def _estimate(self, experiment, times, free_values_hz, gradient, parameters):
         model = self.model
         refuse_steps(experiment, "the typical engine")
+        refuse_spinning(experiment, "the typical engine")
         t = self._times(experiment, times)
         order = np.argsort(t, kind="stable")
         ts = t[order]
