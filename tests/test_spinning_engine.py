@@ -308,3 +308,26 @@ def test_complex_hamiltonian_with_an_rf_term():
         dn[k] -= 1e-3
         fd = (eng.signal(ex, free_values_hz=up) - eng.signal(ex, free_values_hz=dn)) / 2e-3
         assert np.abs(g[k] - fd).max() < 1e-6 * np.abs(g).max(), name
+
+
+def test_rotor_synchronised_sampling_needs_no_partial_slices():
+    # Rotor-synchronised sampling (common practice): 8 points per period. The default K becomes a
+    # multiple of 8, every time falls on a slice boundary, and the result still equals a run with
+    # unsynchronised slices (K = 61, fourth order) and central differences of its own signal.
+    from qhl.exact.spinning_engine import _Spinning
+
+    rate = 12500.0
+    c, m, eng, ex = _setup(FOUR, rate=rate, t_max=15 / (8 * rate), points=16)
+    k = default_slices_per_period(eng, ex)
+    assert k % 8 == 0
+    assert _Spinning(eng, ex, ex.times_s, None, None, 0).inside.size == 0
+    t = ex.times_s
+    assert np.abs(eng.signal(ex) - spinning_signal(eng, ex, t, slices_per_period=61)).max() < 1e-4
+    _, g = eng.gradient(ex)
+    base = m.all_values_hz()[m.free_indices]
+    for j in (0, len(base) - 1):
+        up, dn = base.copy(), base.copy()
+        up[j] += 1e-3
+        dn[j] -= 1e-3
+        fd = (eng.signal(ex, free_values_hz=up) - eng.signal(ex, free_values_hz=dn)) / 2e-3
+        assert np.abs(g[j] - fd).max() < 1e-6 * np.abs(g).max()

@@ -39,14 +39,19 @@ tests/test_spinning_engine.py checks the order); the default K there is 31.
 Default K (slices per rotor period): K = max(MIN_SLICES, ceil(T_R ||H||_b / MAX_SLICE_ANGLE)), at
 most MAX_SLICES, with ||H||_b = sum_n 2 pi |h_n| |s_n|_b ||G_n||_inf (a bound on |H(t)|; ||G||_inf the
 largest absolute row sum of the generator, |s_n|_b the sum of the absolute Fourier coefficients),
-so the largest slice rotation stays below MAX_SLICE_ANGLE radians; override with
-`slices_per_period` (or ExactEngine.spinning_slices_per_period).
+so the largest slice rotation stays below MAX_SLICE_ANGLE radians. When every sampling time is a
+multiple of T_R / n (rotor-synchronised sampling) and the next multiple of n above K is at most
+SYNC_GROWTH K, K becomes that multiple: every sampling time then falls on a slice boundary and
+needs no partial slice (no eigendecomposition per time). Override with `slices_per_period` (or
+ExactEngine.spinning_slices_per_period).
 
 Memory (spinning_memory_bytes, checked with qhl.base.memory.require_memory before any work): per
 sector the stage eigendecompositions and the sampling-time propagators; in the gradient, for the
 largest sector d, 16 d^2 R (3 Kc + J + Q) bytes (R parameters, Kc stages per chunk, J and Q distinct
 slice and period indices of the sampling times) plus 16 d^2 T (8 + R) for the time tables.
 """
+
+from fractions import Fraction
 
 import numpy as np
 import scipy.sparse as sp
@@ -64,6 +69,7 @@ __all__ = ["spinning_signal", "spinning_gradient", "default_slices_per_period", 
 
 MAX_SLICE_ANGLE = 1.0        # radians: bound on the largest slice rotation tau ||H||_b (default K)
 MIN_SLICES = 8
+SYNC_GROWTH = 1.5            # rotor-synchronised sampling: K raised to a multiple of the grid up to this factor
 MAX_SLICES = 4096
 CHUNK_BYTES = 128 << 20      # stage derivatives of one chunk (3 complex arrays of Kc R d^2)
 _GAUSS_BELOW = 0.05          # phase width below which first moments use Gauss-Legendre quadrature
@@ -111,14 +117,32 @@ def _norm_bound(engine, values, fourier):
     return float((2 * np.pi * np.abs(values) * gnorm) @ np.abs(fourier).sum(axis=1))
 
 
-def _rule(engine, values, sf):
+def _rotor_grid(t, period):
+    """The smallest n such that every sampling time is a multiple of T_R / n (rotor-synchronised
+    sampling), or None."""
+    u = np.unique(np.asarray(t, float)) / period
+    steps = np.diff(u)
+    if steps.size == 0 or steps.min() <= 0:
+        return None
+    n = Fraction(float(steps.min())).limit_denominator(MAX_SLICES).denominator
+    return n if np.all(np.abs(u * n - np.round(u * n)) < 1e-9 * max(1.0, float(u.max()) * n)) else None
+
+
+def _rule(engine, values, sf, t=None):
     k = int(np.ceil(sf.period_s * _norm_bound(engine, values, sf.fourier) / MAX_SLICE_ANGLE))
-    return int(min(max(MIN_SLICES, k), MAX_SLICES))
+    k = int(min(max(MIN_SLICES, k), MAX_SLICES))
+    n = None if t is None else _rotor_grid(t, sf.period_s)
+    if n is not None:
+        synced = n * -(-k // n)
+        if synced <= min(SYNC_GROWTH * k, MAX_SLICES):
+            return int(synced)
+    return k
 
 
-def default_slices_per_period(engine, experiment, free_values_hz=None) -> int:
-    """K = max(MIN_SLICES, ceil(T_R ||H||_b / MAX_SLICE_ANGLE)), at most MAX_SLICES (module docstring)."""
-    return _rule(engine, engine.model.all_values_hz(free_values_hz), spinning_factors(engine.model, experiment))
+def default_slices_per_period(engine, experiment, free_values_hz=None, times=None) -> int:
+    """The default K of the module docstring for `experiment` (its own times unless `times` is given)."""
+    t = experiment.times_s if times is None else np.asarray(times, float)
+    return _rule(engine, engine.model.all_values_hz(free_values_hz), spinning_factors(engine.model, experiment), t)
 
 
 def _time_plan(t, period, k_slices):
@@ -186,7 +210,7 @@ class _Spinning:
         model = engine.model
         self.sf = spinning_factors(model, experiment)
         self.values = model.all_values_hz(free_values_hz)
-        k_slices = _rule(engine, self.values, self.sf) if k_slices is None else k_slices
+        k_slices = _rule(engine, self.values, self.sf, t) if k_slices is None else k_slices
         if int(k_slices) != k_slices or k_slices < 1:
             raise QhlInputError(f"slices_per_period = {k_slices}: expected a positive integer",
                                 key="slices_per_period")
@@ -206,7 +230,8 @@ class _Spinning:
         self.n_st = 2 * self.k if self.need_q[-1] >= 1 else 2 * self.need_j[-1]
         self.stage_factors = st.transpose(1, 0, 2).reshape(2 * self.k, -1)[:self.n_st]
         start = self.j * self.tau
-        self.part_factors = _two_stage(self.sf, start, start + self.delta)         # (2, T, P)
+        self.inside = np.nonzero(self.delta > 0)[0]          # times inside a slice (the others need no W)
+        self.part_factors = _two_stage(self.sf, start[self.inside], (start + self.delta)[self.inside])
         self.spec, self.prop = {}, {}
         for s in self.sectors:
             self._sector(s)
@@ -219,8 +244,9 @@ class _Spinning:
 
     def _sector(self, s):
         e, v = np.linalg.eigh(self._hamiltonians(s, self.stage_factors))                  # 2K stages
+        n_in = self.inside.size
         ep, vp = np.linalg.eigh(self._hamiltonians(s, self.part_factors.reshape(-1, self.values.size)))
-        parts = [(ep[:self.t.size], vp[:self.t.size]), (ep[self.t.size:], vp[self.t.size:])]   # 2 x (T stages)
+        parts = [(ep[:n_in], vp[:n_in]), (ep[n_in:], vp[n_in:])]                        # 2 x (inside times)
         u = _expm(e, v, self.tau)
         d = e.shape[-1]
         pref = np.empty((self.n_st + 1, d, d), complex)                                  # P_i, i = 0..n_st
@@ -232,8 +258,11 @@ class _Spinning:
         pw[0] = np.eye(d)
         for q in range(1, len(pw)):
             pw[q] = ur @ pw[q - 1]
-        w1 = _expm(parts[0][0], parts[0][1], self.delta)
-        w2 = _expm(parts[1][0], parts[1][1], self.delta)
+        w1 = np.broadcast_to(np.eye(d, dtype=complex), (self.t.size, d, d)).copy()
+        w2 = w1.copy()
+        if n_in:
+            w1[self.inside] = _expm(parts[0][0], parts[0][1], self.delta[self.inside])
+            w2[self.inside] = _expm(parts[1][0], parts[1][1], self.delta[self.inside])
         pj = pref[2 * self.j]
         pq = pw[self.q]
         w = w2 @ w1
@@ -284,10 +313,10 @@ class _Spinning:
         for c0 in range(0, n_st, chunk):
             sl = slice(c0, min(n_st, c0 + chunk))
             y = _h(v[sl]) @ pref[sl]                                                    # V^dag P_(i-1)
+            scale = (2 * np.pi * self.stage_factors[sl][:, idx])[:, :, None, None]
             fp = self._f_prime(e[sl], self.tau)
             vh = np.ascontiguousarray(_h(v[sl]))
-            gt = vh[:, None] @ (gens[None] @ v[sl][:, None])                            # (c, R, d, d)
-            gt *= (2 * np.pi * self.stage_factors[sl][:, idx])[:, :, None, None]
+            gt = vh[:, None] @ (gens[None] @ v[sl][:, None]) * scale                    # (c, R, d, d)
             gt = gt * fp[:, None]
             term = np.ascontiguousarray(_h(y))[:, None] @ gt @ y[:, None]
             # running sum, read off only at the marks inside this chunk (segment sums)
@@ -320,9 +349,12 @@ class _Spinning:
         a3 = x.conj() @ a @ x.swapaxes(1, 2)
         b3 = x @ b @ _h(x)
         (e1, v1), (e2, v2) = parts
-        grad += self._adjoint_stage(e1, v1, gens, idx, 0, a3, b3)
-        grad += self._adjoint_stage(e2, v2, gens, idx, 1, w1.conj() @ a3 @ w1.swapaxes(1, 2),
-                                    w1 @ b3 @ _h(w1))
+        m, w1 = self.inside, w1[self.inside]
+        if m.size:
+            a3, b3 = a3[m], b3[m]
+            grad[:, m] += self._adjoint_stage(e1, v1, gens, idx, 0, a3, b3)
+            grad[:, m] += self._adjoint_stage(e2, v2, gens, idx, 1, w1.conj() @ a3 @ w1.swapaxes(1, 2),
+                                              w1 @ b3 @ _h(w1))
         return grad
 
     @staticmethod
@@ -334,7 +366,7 @@ class _Spinning:
     def _adjoint_stage(self, e, v, gens, idx, which, a, b):
         """sum_ab [A o Omega + B o conj(Omega)] of one partial-slice stage, per parameter and time:
         Omega = V (F' o V^dag dH V) V^dag, so sum A o Omega = sum_ef dH_ef (V^* (F' o V^T A V^*) V^T)_ef."""
-        fp = self._f_prime(e, self.delta)
+        fp = self._f_prime(e, self.delta[self.inside])
         vt, vc = v.swapaxes(1, 2), v.conj()
         flat = gens.reshape(len(idx), -1)
         factor = (2 * np.pi * self.part_factors[which][:, idx]).T
