@@ -41,8 +41,8 @@ cluster = demo_cluster()
 engine = ExactEngine(build_model(cluster))
 rates = [float(x) for x in sys.argv[1:]] or [20000.0]
 print(f"demo cluster: {cluster.n_spins} spins, {len(engine.model.free)} free parameters, 64 points, 10 periods")
-print(f"{'rate (Hz)':>10}{'sampling':>10}{'K':>5}{'static grad (s)':>17}{'spinning grad (s)':>19}{'ratio':>7}{'CPU ratio':>11}"
-      f"{'|dS| vs 4K':>12}")
+print(f"{'rate (Hz)':>10}{'sampling':>10}{'K':>5}{'static grad (s)':>17}{'spinning grad (s)':>19}{'ratio':>7}"
+      f"{'CPU ratio':>11}{'|dS| vs 4K':>12}")
 cases = [(rate, label, span) for rate in rates for label, span in (("10 T_R", 10.0), ("synced", 63 * 5 / 32))]
 for rate, label, span in cases:
     static = dataclasses.replace(cluster.experiments[0], t_max_s=span / rate, points=64, spinning_hz=0.0)
