@@ -216,6 +216,24 @@ def test_callable_weights_zero_times_and_bad_input():
     seq = Experiment("s", 0.3, 5, 1.0, steps=(Delay(0.06), Pulse(90, 0)))
     with pytest.raises(QhlInputError, match="pulse-sequence"):
         eng.gradient_weighted(seq, np.ones(5))
+    spin = Experiment("m", 4e-4, 5, spinning_hz=5000.0)
+    with pytest.raises(QhlInputError, match="spinning"):
+        eng.gradient_weighted(spin, np.ones(5))
+
+
+def test_provider_weighted_path_contracts_the_full_gradient_for_spinning():
+    # common practice: the weighted gradient is sum_t Re[J_t c_t]; for a spinning experiment (no
+    # weighted sweep) the provider contracts the spinning engine's full Jacobian with the weights.
+    rng = np.random.default_rng(4)
+    c = random_cluster(rng, 3)
+    eng = ExactEngine(build_model(c, free=FREE))
+    spin = Experiment("m", 4e-4, 5, spinning_hz=5000.0)
+    prov = ExactGradientProvider(eng, [spin])
+    w = np.linspace(0.5, 1.5, 5) * np.exp(0.3j * np.arange(5))
+    out = prov.weighted_gradients(None, {"m": spin.times_s}, {"m": w})["m"]
+    sig, jac = eng.gradient(spin)
+    np.testing.assert_allclose(out[0], sig, rtol=0, atol=1e-14)
+    np.testing.assert_allclose(out[1], np.real(jac @ w), rtol=1e-12, atol=1e-14 * np.abs(jac).max())
 
 
 class _Counting(ExactGradientProvider):

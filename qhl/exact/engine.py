@@ -69,8 +69,9 @@ from ..base.blas import blas_limited, blas_threads
 from ..base.errors import QhlInputError
 from .divided_differences import first_divided_difference, second_divided_difference
 from ..base.memory import require_memory
-from ..spins.cluster import refuse_steps
+from ..spins.cluster import refuse_spinning, refuse_steps
 from ..spins.model import HamiltonianModel
+from ..spins.spinning import is_spinning
 from .sectors import conserves_magnetisation, full_space, magnetisation_sectors
 
 __all__ = ["ExactEngine", "Spectrum", "DEGENERACY_RTOL", "SINGLE_RTOL", "WEIGHTED_TAYLOR_BELOW", "estimate_memory_bytes"]
@@ -158,6 +159,11 @@ class ExactEngine:
         lean: hold the eigenvectors of only the sector pairs in use during signal/gradient
             (default: automatic, when all eigenvectors would exceed LEAN_ABOVE_BYTES).
 
+    Spinning experiments (spinning_hz > 0) go to qhl.exact.spinning_engine for signal and gradient
+    (so Fisher information, the gradient provider and fits work on them); the attribute
+    `spinning_slices_per_period` (default None: the rule in that module) sets its slices per rotor
+    period. spectrum, transitions and hessian refuse them.
+
     Example:
         >>> from qhl import demo_cluster, build_model, ExactEngine
         >>> c = demo_cluster(); eng = ExactEngine(build_model(c))
@@ -217,6 +223,7 @@ class ExactEngine:
         self.mirrored = self.real and all(
             (b.rho - 0.5 * b.obs.T).count_nonzero() == 0 for b in self._blocks)
         self._cache = {}
+        self.spinning_slices_per_period = None
 
     @property
     def _gen_blocks(self):
@@ -298,6 +305,7 @@ class ExactEngine:
     @blas_limited
     def spectrum(self, experiment=None, free_values_hz=None) -> Spectrum:
         """Eigen-decomposition of H for `experiment` (cached on the coefficient vector)."""
+        refuse_spinning(experiment, "the spectrum (time-independent H)")
         coeffs, _ = self._coefficients(experiment, free_values_hz)
         return self._spectrum(coeffs)
 
@@ -361,6 +369,9 @@ class ExactEngine:
         then count from the end of its last step)."""
         t = self._times(experiment, times)
         self._require_times(t)
+        if is_spinning(experiment):
+            from .spinning_engine import spinning_signal
+            return spinning_signal(self, experiment, t, free_values_hz)
         if _has_steps(experiment):
             from .sequence_engine import sequence_signal
             return sequence_signal(self, experiment, t, free_values_hz)
@@ -386,6 +397,7 @@ class ExactEngine:
         Lines closer than the degeneracy tolerance are merged. Amplitudes sum to S(0) = 1.
         """
         refuse_steps(experiment, "the line list")
+        refuse_spinning(experiment, "the line list (H depends on time; the spectrum has rotor sidebands)")
         spec = self.spectrum(experiment, free_values_hz)
         freqs, amps = [], []
         for b, rt, ot in zip(self._blocks, spec.rho_t, spec.obs_t):
@@ -422,7 +434,10 @@ class ExactEngine:
     def _rows(self, experiment, free_values_hz, parameters):
         """(names, full parameter index and scale per row) of the requested free parameters."""
         model = self.model
-        _, free_scale = self._coefficients(experiment, free_values_hz)
+        if is_spinning(experiment):           # the spinning engine applies s_n(t) itself
+            free_scale = np.ones(len(model.free))
+        else:
+            _, free_scale = self._coefficients(experiment, free_values_hz)
         names = list(model.free) if parameters is None else list(parameters)
         rows = []
         for name in names:
@@ -447,11 +462,14 @@ class ExactEngine:
             (signal (T,), gradient (P, T)) complex arrays.
         """
         t = self._times(experiment, times)
-        coeffs, _ = self._coefficients(experiment, free_values_hz)
         _, rows = self._rows(experiment, free_values_hz, parameters)
         self._require_times(t, 1 + len(rows))
         if method not in ("auto", "full", "adjoint", "general"):
             raise QhlInputError(f"method {method!r}: expected auto, full or adjoint", key="method")
+        if is_spinning(experiment):
+            from .spinning_engine import spinning_gradient
+            return spinning_gradient(self, experiment, t, free_values_hz, rows)
+        coeffs, _ = self._coefficients(experiment, free_values_hz)
         if _has_steps(experiment):
             from .sequence_engine import sequence_gradient
             return sequence_gradient(self, experiment, t, free_values_hz, rows)
@@ -675,7 +693,7 @@ class ExactEngine:
         then diagonalised twice: once for the signal, once in the weighted sweep).
 
         Args:
-            experiment: the experiment (pulse-sequence experiments are refused).
+            experiment: the experiment (pulse-sequence and spinning experiments are refused).
             weights: c_t, complex (T,), or a callable taking the signal S (T,) and returning c
                 (the signal is computed once either way).
             times, free_values_hz, parameters: as in `gradient`.
@@ -695,6 +713,7 @@ class ExactEngine:
             True
         """
         refuse_steps(experiment, "the weighted gradient")
+        refuse_spinning(experiment, "the weighted gradient")
         t = self._times(experiment, times)
         self._require_times(t, 2)
         coeffs, _ = self._coefficients(experiment, free_values_hz)
@@ -847,7 +866,7 @@ class ExactEngine:
         """
         model = self.model
         t = self._times(experiment, times)
-        if _has_steps(experiment):
+        if _has_steps(experiment) or is_spinning(experiment):
             from .gradient_differences import hessian_from_gradients
             names = list(model.free) if parameters is None else list(parameters)
             for name in names:

@@ -10,6 +10,7 @@ J couplings and explicit `dipolar_hz` overrides are taken as orientation indepen
 
 import numpy as np
 
+from ..spins.cluster import refuse_spinning
 from ..spins.dipolar import dipolar_coupling_hz
 from .engine import ExactEngine
 from ..spins.model import build_model
@@ -45,7 +46,8 @@ def _engine_all_free(cluster):
 
 
 def powder_signal(cluster, experiment, order: int = 17, times=None) -> np.ndarray:
-    """Orientation average of S(t): sum_k w_k S(t; direction_k)."""
+    """Orientation average of S(t): sum_k w_k S(t; direction_k) (static samples: spinning is refused)."""
+    refuse_spinning(experiment, "powder averages")
     eng = _engine_all_free(cluster)
     dirs, weights = lebedev_orientations(order)
     t = experiment.times_s if times is None else np.asarray(times, float)
@@ -57,6 +59,7 @@ def powder_signal(cluster, experiment, order: int = 17, times=None) -> np.ndarra
 
 def powder_lines(cluster, experiment=None, order: int = 17):
     """Line list of the powder average: (frequencies Hz, amplitudes weighted by the grid)."""
+    refuse_spinning(experiment, "powder averages")
     eng = _engine_all_free(cluster)
     dirs, weights = lebedev_orientations(order)
     freqs, amps = [], []

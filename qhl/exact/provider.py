@@ -9,6 +9,7 @@ from abc import ABC, abstractmethod
 import numpy as np
 
 from ..base.errors import QhlInputError
+from ..spins.spinning import is_spinning
 
 __all__ = ["GradientProvider", "ExactGradientProvider"]
 
@@ -88,15 +89,15 @@ class ExactGradientProvider(GradientProvider):
 
     def weighted_gradients(self, values_hz, times_by_experiment, weights_by_experiment):
         """The engine's weighted path (ExactEngine.gradient_weighted, real part): about two signals'
-        cost per experiment instead of the full gradient's P-fold work (pulse-sequence experiments:
-        the full gradient contracted with the weights)."""
+        cost per experiment instead of the full gradient's P-fold work (pulse-sequence and spinning
+        experiments: the full gradient contracted with the weights)."""
         out = {}
         for name, times in times_by_experiment.items():
             if name not in self.experiments:
                 raise QhlInputError(f"no experiment named '{name}': expected one of "
                                     f"{', '.join(self.experiments)}", key="experiment")
             ex, weights = self.experiments[name], weights_by_experiment[name]
-            if getattr(ex, "steps", ()):
+            if getattr(ex, "steps", ()) or is_spinning(ex):
                 sig, jac = self.engine.gradient(ex, times, values_hz)
                 c = np.asarray(weights(sig) if callable(weights) else weights)
                 out[name] = (sig, np.real(jac @ c))

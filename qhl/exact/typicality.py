@@ -55,7 +55,7 @@ import numpy as np
 from ..base.blas import single_thread_blas
 from ..base.errors import QhlInputError
 from ..base.memory import available_memory_bytes, require_memory
-from ..spins.cluster import refuse_steps
+from ..spins.cluster import refuse_spinning, refuse_steps
 from .chebyshev import PRECISIONS, chebyshev_window, csr_rows, lanczos_bounds, row_parts, sparse_times
 from .sector_operators import SectorSpace, csr_bytes, ladder_block, pauli_groups, sector_matrix
 from .sectors import conserves_magnetisation
@@ -371,6 +371,7 @@ class TypicalEngine:
     def _estimate(self, experiment, times, free_values_hz, gradient, parameters, pool, threads):
         model = self.model
         refuse_steps(experiment, "the typical engine")
+        refuse_spinning(experiment, "the typical engine")
         t = self._times(experiment, times)
         order = np.argsort(t, kind="stable")
         ts = t[order]

@@ -1,0 +1,414 @@
+"""Exact-engine signals and gradients of spinning-sample experiments (free evolution, no steps).
+
+Signal (normalised as the FID): S(t) = Tr[O U(t) rho0 U(t)^dag] / Tr[O rho0], with U the
+time-ordered propagator of H(t) = 2 pi sum_n s_n(t) h_n G_n (s_n from qhl.spins.spinning).
+H(t) keeps each isotope's total Iz, so everything is done per magnetisation sector, from the
+engine's sector blocks (ExactEngine._h_parts, _gen_blocks, _blocks).
+
+Method. Each rotor period T_R is cut into K equal slices, tau = T_R / K. On a slice [a, a + tau]
+the propagator is the fourth-order commutator-free exponential built on EXACT moments of s_n
+(S. Blanes and P. C. Moan, Appl. Numer. Math. 56, 1519 (2006); A. Alvermann and H. Fehske,
+J. Comput. Phys. 230, 5930 (2011)):
+    U_slice = exp(-i tau (Hbar/2 + 2 M)) exp(-i tau (Hbar/2 - 2 M)),
+    Hbar = (1/tau) int H,   M = (1/tau^2) int (t - a - tau/2) H(t) dt,
+both from closed-form integrals of the five Fourier terms of s_n (SpinningFactors.mean and
+first_moments here). Where H(t) commutes with itself at all times (one isolated pair with equal
+offsets) the two exponentials commute and multiply to exp(-i tau Hbar): exact to rounding.
+Each exponential is a "stage" exp(-i tau 2 pi sum_n e_n h_n G_n) with e = sbar/2 -+ 2 mu.
+  * The 2K stages are the same in every period: stage propagators from one batched eigh per
+    sector, prefix products P_i, the period propagator U_R = P_2K and its powers U_R^q.
+  * A sampling time t = q T_R + j tau + delta gets U(t) = W P_2j U_R^q, with W the same two-stage
+    exponential on the part [j tau, j tau + delta] of slice j (exact moments over that part).
+  * Gradient, the exact derivative of this propagator (Daleckii-Krein for each exponential,
+    U^dag dU = V ((V^dag dH V) o F') V^dag, F'_ab = exp(i E_a tau) f[E_a, E_b] with f the first
+    divided difference of exp(-i E tau); R. Bhatia, "Matrix Analysis", 1997, ch. V), in the
+    interaction form dU(t) = U(t) Xi:
+        Xi = (P Q)^dag Omega (P Q) + Q^dag Delta_2j Q + Gamma_q,
+        Delta_i = sum_(i' <= i) Y^dag ((V^dag dH V) o F') Y, Y = V^dag P_(i'-1) (stages, batched over
+        stages and parameters), Gamma_q = sum_(l < q) U_R^-l Delta_2K U_R^l,
+    Omega the partial slice's part, contracted per time point without a parameter axis (adjoint
+    form: the result is a sum over the generators' entries). The trace with O and rho0 is taken
+    per sector: dS = sum_k sum_ab [C_k o dU_k + C'_k o conj(dU_k)], C_k = sum over blocks
+    (rho U_p^dag O)^T, C'_k = sum over blocks O U_s rho.
+
+Error. Fourth order in the slice: the local error of the scheme is O(tau^5) per slice (nested
+commutators of H and its derivatives), so O(K^-4) per rotor period. Measured on the built-in
+six-proton demo at 20 kHz (couplings up to 10.6 kHz; 10 periods, 64 points) against K = 2048: largest
+|S| error 1.6e-3, 1.1e-4, 6.9e-6, 4.3e-7 at K = 8, 16, 32, 64 (a factor ~16 per doubling;
+tests/test_spinning_engine.py checks the order); the default K there is 31.
+Default K (slices per rotor period): K = max(MIN_SLICES, ceil(T_R ||H||_b / MAX_SLICE_ANGLE)), at
+most MAX_SLICES, with ||H||_b = sum_n 2 pi |h_n| |s_n|_b ||G_n||_inf (a bound on |H(t)|; ||G||_inf the
+largest absolute row sum of the generator, |s_n|_b the sum of the absolute Fourier coefficients),
+so the largest slice rotation stays below MAX_SLICE_ANGLE radians. When every sampling time is a
+multiple of T_R / n (rotor-synchronised sampling) and the next multiple of n above K is at most
+SYNC_GROWTH K, K becomes that multiple: every sampling time then falls on a slice boundary and
+needs no partial slice (no eigendecomposition per time). Override with `slices_per_period` (or
+ExactEngine.spinning_slices_per_period).
+
+Memory (spinning_memory_bytes, checked with qhl.base.memory.require_memory before any work): per
+sector the stage eigendecompositions and the sampling-time propagators; in the gradient, for the
+largest sector d, 16 d^2 R (3 Kc + J + Q) bytes (R parameters, Kc stages per chunk, J and Q distinct
+slice and period indices of the sampling times) plus 16 d^2 T (8 + R) for the time tables.
+"""
+
+from fractions import Fraction
+
+import numpy as np
+import scipy.sparse as sp
+
+from ..base.blas import blas_limited
+from ..base.errors import QhlInputError
+from ..base.memory import require_memory
+from ..base.progress import FractionProgress
+from ..spins.cluster import refuse_steps
+from ..spins.spinning import spinning_factors
+from .divided_differences import first_divided_difference
+
+__all__ = ["spinning_signal", "spinning_gradient", "default_slices_per_period", "spinning_memory_bytes",
+           "first_moments", "MAX_SLICE_ANGLE", "MIN_SLICES", "MAX_SLICES"]
+
+MAX_SLICE_ANGLE = 1.0        # radians: bound on the largest slice rotation tau ||H||_b (default K)
+MIN_SLICES = 8
+SYNC_GROWTH = 1.5            # rotor-synchronised sampling: K raised to a multiple of the grid up to this factor
+MAX_SLICES = 4096
+CHUNK_BYTES = 128 << 20      # stage derivatives of one chunk (3 complex arrays of Kc R d^2)
+_GAUSS_BELOW = 0.05          # phase width below which first moments use Gauss-Legendre quadrature
+
+
+def first_moments(sf, t0, t1) -> np.ndarray:
+    """(M, P) mu = (1/tau^2) int_t0^t1 (t - (t0 + t1)/2) s_n(t) dt, tau = t1 - t0 (0 where tau = 0).
+
+    Closed form from the Fourier terms (integration by parts) for phase widths >= _GAUSS_BELOW,
+    else 8-point Gauss-Legendre (error below 1e-20 there)."""
+    t0 = np.atleast_1d(np.asarray(t0, float))
+    t1 = np.atleast_1d(np.asarray(t1, float))
+    w = 2 * np.pi * sf.spinning_hz
+    pa, pb = w * t0, w * t1
+    dp = pb - pa
+    wide = dp >= _GAUSS_BELOW
+    safe = np.where(wide, dp, 1.0)
+    cols = [np.zeros_like(pa)]
+    for k in (1, 2):
+        ic = 0.5 * dp * (np.sin(k * pb) + np.sin(k * pa)) / k + (np.cos(k * pb) - np.cos(k * pa)) / k**2
+        is_ = -0.5 * dp * (np.cos(k * pb) + np.cos(k * pa)) / k + (np.sin(k * pb) - np.sin(k * pa)) / k**2
+        cols += [ic / safe**2, is_ / safe**2]
+    out = np.stack(cols, axis=1)
+    if np.any(~wide):
+        x, wt = np.polynomial.legendre.leggauss(8)
+        mid = 0.5 * (pa + pb)
+        nodes = mid[:, None] + 0.5 * dp[:, None] * x[None, :]              # (M, 8) phases
+        weight = 0.25 * x[None, :] * wt[None, :]                             # (p - mid)/dp^2 dp
+        small = [np.zeros_like(pa)]
+        for k in (1, 2):
+            small += [(np.cos(k * nodes) * weight).sum(1), (np.sin(k * nodes) * weight).sum(1)]
+        out = np.where(wide[:, None], out, np.stack(small, axis=1))
+    return out @ sf.fourier.T
+
+
+def _norm_bound(engine, values, fourier):
+    """||H||_b in rad/s: a triangle bound from the generators' largest absolute row sums."""
+    gnorm = np.zeros(len(values))
+    for rows, cols, pidx, vals, d in engine._h_parts:
+        if pidx.size == 0:
+            continue
+        rowsum = np.zeros((len(values), d))
+        np.add.at(rowsum, (pidx, rows), np.abs(vals))
+        gnorm = np.maximum(gnorm, rowsum.max(axis=1))
+    return float((2 * np.pi * np.abs(values) * gnorm) @ np.abs(fourier).sum(axis=1))
+
+
+def _rotor_grid(t, period):
+    """The smallest n such that every sampling time is a multiple of T_R / n (rotor-synchronised
+    sampling), or None."""
+    u = np.unique(np.asarray(t, float)) / period
+    steps = np.diff(u)
+    if steps.size == 0 or steps.min() <= 0:
+        return None
+    n = Fraction(float(steps.min())).limit_denominator(MAX_SLICES).denominator
+    return n if np.all(np.abs(u * n - np.round(u * n)) < 1e-9 * max(1.0, float(u.max()) * n)) else None
+
+
+def _rule(engine, values, sf, t=None):
+    k = int(np.ceil(sf.period_s * _norm_bound(engine, values, sf.fourier) / MAX_SLICE_ANGLE))
+    k = int(min(max(MIN_SLICES, k), MAX_SLICES))
+    n = None if t is None else _rotor_grid(t, sf.period_s)
+    if n is not None:
+        synced = n * -(-k // n)
+        if synced <= min(SYNC_GROWTH * k, MAX_SLICES):
+            return int(synced)
+    return k
+
+
+def default_slices_per_period(engine, experiment, free_values_hz=None, times=None) -> int:
+    """The default K of the module docstring for `experiment` (its own times unless `times` is given)."""
+    t = experiment.times_s if times is None else np.asarray(times, float)
+    return _rule(engine, engine.model.all_values_hz(free_values_hz), spinning_factors(engine.model, experiment), t)
+
+
+def _time_plan(t, period, k_slices):
+    """Per sampling time: (q periods, j whole slices, delta seconds into slice j), and tau."""
+    if np.any(t < 0):
+        raise QhlInputError("spinning experiments: sampling times must be >= 0 (they count from the start of "
+                            "the acquisition, rotor phase 0)", key="times")
+    tau = period / k_slices
+    x = t / tau
+    n = np.floor(x + 1e-9).astype(np.int64)
+    delta = np.where(np.abs(x - np.round(x)) < 1e-9, 0.0, np.maximum(t - n * tau, 0.0))
+    return n // k_slices, n % k_slices, delta, tau
+
+
+def _stage_chunk(n_stages, n_rows, d):
+    return int(max(1, min(n_stages, CHUNK_BYTES // (48.0 * max(n_rows, 1) * d * d))))
+
+
+def spinning_memory_bytes(dims, k_slices, n_rows, n_times, n_j=None, n_q=None) -> float:
+    """Peak-memory model (bytes) of the module docstring; dims: the sector dimensions in use."""
+    dims = np.asarray(dims, float)
+    d = float(dims.max())
+    n_j = n_times if n_j is None else n_j
+    n_q = n_times if n_q is None else n_q
+    cache = 16.0 * (2 * k_slices + 2 * n_times) * 2 * np.sum(dims**2)
+    per_time = 16.0 * 4 * n_times * np.sum(dims**2)
+    grad = 0.0
+    if n_rows:
+        kc = _stage_chunk(2 * k_slices, n_rows, d)
+        grad = 16.0 * d * d * (n_rows * (3 * kc + n_j + n_q + n_times) + 8 * n_times)
+    return float(cache + per_time + grad)
+
+
+def _two_stage(sf, t0, t1):
+    """Stage factors e (2, M, P) of the two exponentials on [t0, t1], first-applied first."""
+    mean, mom = sf.mean(t0, t1), first_moments(sf, t0, t1)
+    return np.stack([0.5 * mean - 2 * mom, 0.5 * mean + 2 * mom])
+
+
+def _expm(e, v, dt):
+    """V exp(-i E dt) V^dag for stacks (M, d), (M, d, d), dt (M,) or scalar."""
+    dt = np.broadcast_to(np.asarray(dt, float), e.shape[:1])
+    return (v * np.exp(-1j * e * dt[:, None])[:, None, :]) @ v.conj().transpose(0, 2, 1)
+
+
+def _linear_map(engine, s):
+    """Sparse (d^2, P_all) map from coefficients to the flattened sector-s block of H (kept on the engine)."""
+    cache = engine.__dict__.setdefault("_spinning_maps", {})
+    if s not in cache:
+        rows, cols, pidx, vals, d = engine._h_parts[s]
+        cache[s] = sp.csr_matrix((vals, (rows * d + cols, pidx)), shape=(d * d, len(engine.model.parameters)))
+    return cache[s]
+
+
+def _h(a):
+    return a.conj().swapaxes(-1, -2)
+
+
+class _Spinning:
+    """One spinning experiment at one parameter point: stage spectra and the sampling-time propagators."""
+
+    def __init__(self, engine, experiment, t, free_values_hz, k_slices, n_rows):
+        refuse_steps(experiment, "spinning experiments (the spinning engine covers free evolution only)")
+        self.engine = engine
+        model = engine.model
+        self.sf = spinning_factors(model, experiment)
+        self.values = model.all_values_hz(free_values_hz)
+        k_slices = _rule(engine, self.values, self.sf, t) if k_slices is None else k_slices
+        if int(k_slices) != k_slices or k_slices < 1:
+            raise QhlInputError(f"slices_per_period = {k_slices}: expected a positive integer",
+                                key="slices_per_period")
+        self.k = int(k_slices)
+        self.t = t
+        self.q, self.j, self.delta, self.tau = _time_plan(t, self.sf.period_s, self.k)
+        self.sectors = sorted({b.s for b in engine._blocks} | {b.p for b in engine._blocks})
+        self.need_j = sorted(set(self.j.tolist()))
+        self.need_q = sorted(set(self.q.tolist()))
+        dims = [engine._dims[s] for s in self.sectors]
+        need = spinning_memory_bytes(dims, self.k, n_rows, t.size, len(self.need_j), len(self.need_q))
+        require_memory(f"the spinning engine ({model.n_spins} spins, {self.k} slices per period, "
+                       f"{t.size} times, {n_rows} gradient rows)", need)
+        edges = np.arange(self.k + 1) * self.tau
+        st = _two_stage(self.sf, edges[:-1], edges[1:])                             # (2, K, P)
+        # stages in time order; only those before the last sampling time when it lies in the first period
+        self.n_st = 2 * self.k if self.need_q[-1] >= 1 else 2 * self.need_j[-1]
+        self.stage_factors = st.transpose(1, 0, 2).reshape(2 * self.k, -1)[:self.n_st]
+        start = self.j * self.tau
+        self.inside = np.nonzero(self.delta > 0)[0]          # times inside a slice (the others need no W)
+        self.part_factors = _two_stage(self.sf, start[self.inside], (start + self.delta)[self.inside])
+        self.spec, self.prop = {}, {}
+        for s in self.sectors:
+            self._sector(s)
+
+    def _hamiltonians(self, s, factors):
+        """(M, d, d) sector matrices 2 pi sum_n e_mn h_n G_n from the stored generator entries."""
+        d = self.engine._h_parts[s][4]
+        coeffs = 2 * np.pi * factors * self.values[None, :]
+        return np.asarray((_linear_map(self.engine, s) @ coeffs.T).T).reshape(len(factors), d, d)
+
+    def _sector(self, s):
+        e, v = np.linalg.eigh(self._hamiltonians(s, self.stage_factors))                  # 2K stages
+        n_in = self.inside.size
+        ep, vp = np.linalg.eigh(self._hamiltonians(s, self.part_factors.reshape(-1, self.values.size)))
+        parts = [(ep[:n_in], vp[:n_in]), (ep[n_in:], vp[n_in:])]                        # 2 x (inside times)
+        u = _expm(e, v, self.tau)
+        d = e.shape[-1]
+        pref = np.empty((self.n_st + 1, d, d), complex)                                  # P_i, i = 0..n_st
+        pref[0] = np.eye(d)
+        for i in range(self.n_st):
+            pref[i + 1] = u[i] @ pref[i]
+        ur = pref[-1]                                                                  # U_R when q > 0 occurs
+        pw = np.empty((self.need_q[-1] + 1, d, d), complex)                               # U_R^q
+        pw[0] = np.eye(d)
+        for q in range(1, len(pw)):
+            pw[q] = ur @ pw[q - 1]
+        w1 = np.broadcast_to(np.eye(d, dtype=complex), (self.t.size, d, d)).copy()
+        w2 = w1.copy()
+        if n_in:
+            w1[self.inside] = _expm(parts[0][0], parts[0][1], self.delta[self.inside])
+            w2[self.inside] = _expm(parts[1][0], parts[1][1], self.delta[self.inside])
+        pj = pref[2 * self.j]
+        pq = pw[self.q]
+        w = w2 @ w1
+        self.spec[s] = (e, v, parts, w1, pref, pw)
+        self.prop[s] = (pj, pq, w @ pj @ pq)                                           # U(t) = W P_2j U_R^q
+
+    def signal(self):
+        out = np.zeros(self.t.size, complex)
+        for b in self.engine._blocks:
+            us, up = self.prop[b.s][2], self.prop[b.p][2]
+            y = us @ b.rho.toarray() @ _h(up)
+            out += np.einsum("mab,ba->m", y, b.obs.toarray())
+        return out / self.engine.norm
+
+    def contraction_matrices(self):
+        """Per sector: (A, B) = (U^T C, U^dag C') with dS = sum_ab A o Xi + B o conj(Xi), dU = U Xi."""
+        cm = {s: [None, None] for s in self.sectors}
+        for b in self.engine._blocks:
+            us, up = self.prop[b.s][2], self.prop[b.p][2]
+            rho, obs = b.rho.toarray(), b.obs.toarray()
+            ca = (rho @ _h(up) @ obs).swapaxes(1, 2)
+            cb = obs @ us @ rho
+            cm[b.s][0] = ca if cm[b.s][0] is None else cm[b.s][0] + ca
+            cm[b.p][1] = cb if cm[b.p][1] is None else cm[b.p][1] + cb
+        out = {}
+        for s, (ca, cb) in cm.items():
+            u = self.prop[s][2]
+            d = u.shape[-1]
+            ca = np.zeros((self.t.size, d, d), complex) if ca is None else ca
+            cb = np.zeros((self.t.size, d, d), complex) if cb is None else cb
+            out[s] = (u.swapaxes(1, 2) @ ca, _h(u) @ cb)
+        return out
+
+    def sector_gradient(self, s, rows, ab):
+        """(R, T) contribution of sector s to the unnormalised gradient (module docstring)."""
+        e, v, parts, w1, pref, pw = self.spec[s]
+        pj, pq, _ = self.prop[s]
+        a, b = ab
+        d = e.shape[-1]
+        idx = [n for n, _ in rows]
+        gens = np.stack([self.engine._gen_blocks[n][s].toarray() for n in idx])          # (R, d, d)
+        n_st = self.n_st
+        # Delta_i at the ends of the needed whole slices (stage index 2j) and of the period
+        marks = {2 * j for j in self.need_j} | {n_st}
+        delta = {0: np.zeros((len(rows), d, d), complex)}
+        run = delta[0]
+        chunk = _stage_chunk(n_st, len(rows), d)
+        for c0 in range(0, n_st, chunk):
+            sl = slice(c0, min(n_st, c0 + chunk))
+            y = _h(v[sl]) @ pref[sl]                                                    # V^dag P_(i-1)
+            scale = (2 * np.pi * self.stage_factors[sl][:, idx])[:, :, None, None]
+            fp = self._f_prime(e[sl], self.tau)
+            vh = np.ascontiguousarray(_h(v[sl]))
+            gt = vh[:, None] @ (gens[None] @ v[sl][:, None]) * scale                    # (c, R, d, d)
+            gt = gt * fp[:, None]
+            term = np.ascontiguousarray(_h(y))[:, None] @ gt @ y[:, None]
+            # running sum, read off only at the marks inside this chunk (segment sums)
+            ends = [i + 1 - c0 for i in range(sl.start, sl.stop) if i + 1 in marks]
+            start = 0
+            for end in ends:
+                run = run + term[start:end].sum(axis=0)
+                delta[c0 + end] = run
+                start = end
+            if start < term.shape[0]:
+                run = run + term[start:].sum(axis=0)
+        # Gamma_q = sum_(l < q) U_R^-l Delta_R U_R^l
+        gam = {0: np.zeros_like(run)}
+        g = gam[0]
+        for q in range(1, self.need_q[-1] + 1):
+            g = g + _h(pw[q - 1]) @ delta[n_st] @ pw[q - 1]
+            if q in self.need_q:
+                gam[q] = g
+        grad = np.zeros((len(rows), self.t.size), complex)
+        for q in self.need_q:
+            m = np.nonzero(self.q == q)[0]
+            grad[:, m] += _pair(gam[q], a[m], b[m])
+        a2 = pq.conj() @ a @ pq.swapaxes(1, 2)                                          # conj(Q) A Q^T
+        b2 = pq @ b @ _h(pq)                                                            # Q B Q^dag
+        for j in self.need_j:
+            m = np.nonzero(self.j == j)[0]
+            grad[:, m] += _pair(delta[2 * j], a2[m], b2[m])
+        # partial slice: Omega = W1^dag Omega_2 W1 + Omega_1, contracted with conj(X) A X^T, X = P Q
+        x = pj @ pq
+        a3 = x.conj() @ a @ x.swapaxes(1, 2)
+        b3 = x @ b @ _h(x)
+        (e1, v1), (e2, v2) = parts
+        m, w1 = self.inside, w1[self.inside]
+        if m.size:
+            a3, b3 = a3[m], b3[m]
+            grad[:, m] += self._adjoint_stage(e1, v1, gens, idx, 0, a3, b3)
+            grad[:, m] += self._adjoint_stage(e2, v2, gens, idx, 1, w1.conj() @ a3 @ w1.swapaxes(1, 2),
+                                              w1 @ b3 @ _h(w1))
+        return grad
+
+    @staticmethod
+    def _f_prime(e, dt):
+        """F'_ab = exp(i E_a dt) f[E_a, E_b] for stacks e (M, d), dt scalar or (M,)."""
+        dt = np.broadcast_to(np.asarray(dt, float), e.shape[:1])[:, None, None]
+        return np.exp(1j * e[:, :, None] * dt) * first_divided_difference(e[:, :, None], e[:, None, :], dt)
+
+    def _adjoint_stage(self, e, v, gens, idx, which, a, b):
+        """sum_ab [A o Omega + B o conj(Omega)] of one partial-slice stage, per parameter and time:
+        Omega = V (F' o V^dag dH V) V^dag, so sum A o Omega = sum_ef dH_ef (V^* (F' o V^T A V^*) V^T)_ef."""
+        fp = self._f_prime(e, self.delta[self.inside])
+        vt, vc = v.swapaxes(1, 2), v.conj()
+        flat = gens.reshape(len(idx), -1)
+        factor = (2 * np.pi * self.part_factors[which][:, idx]).T
+        if self.engine.real:
+            # real V and G: sum G o conj(zb) = sum G o V (conj(F') o V^T B V) V^T, one back-transform
+            z = v @ (fp * (vt @ a @ v) + fp.conj() * (vt @ b @ v)) @ vt
+            return factor * (flat @ z.reshape(len(z), -1).T)
+        za = vc @ (fp * (vt @ a @ vc)) @ vt
+        zb = vc @ (fp * (vt @ b.conj() @ vc)) @ vt
+        ga = flat @ za.reshape(len(za), -1).T
+        gb = (flat @ zb.reshape(len(zb), -1).T).conj()
+        return factor * (ga + gb)
+
+
+def _pair(dm, ca, cb):
+    """sum_ab dM o A + conj(dM) o B: dm (R, d, d) and ca, cb (M, d, d) -> (R, M)."""
+    flat = dm.reshape(len(dm), -1)
+    return flat @ ca.reshape(len(ca), -1).T + flat.conj() @ cb.reshape(len(cb), -1).T
+
+
+def _slices(engine, k):
+    return k if k is not None else getattr(engine, "spinning_slices_per_period", None)
+
+
+@blas_limited
+def spinning_signal(engine, experiment, t, free_values_hz=None, slices_per_period=None) -> np.ndarray:
+    """S(t) of a spinning experiment (module docstring), complex (T,)."""
+    run = _Spinning(engine, experiment, np.asarray(t, float), free_values_hz, _slices(engine, slices_per_period), 0)
+    return run.signal()
+
+
+@blas_limited
+def spinning_gradient(engine, experiment, t, free_values_hz, rows, slices_per_period=None):
+    """(S (T,), dS/dh (len(rows), T)) of a spinning experiment; rows: (full parameter index, unused scale)."""
+    t = np.asarray(t, float)
+    run = _Spinning(engine, experiment, t, free_values_hz, _slices(engine, slices_per_period), len(rows))
+    grad = np.zeros((len(rows), t.size), complex)
+    if rows:
+        cm = run.contraction_matrices()
+        bar = FractionProgress(f"spinning gradient '{experiment.name}', sectors")
+        for i, s in enumerate(run.sectors):
+            grad += run.sector_gradient(s, rows, cm[s])
+            bar((i + 1) / len(run.sectors))
+        bar.close()
+    return run.signal(), grad / engine.norm
