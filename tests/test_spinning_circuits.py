@@ -194,19 +194,46 @@ def test_steps_rule():
     assert steps_rule(10000.0, 1.05e-4) == 9
 
 
-def test_emulator_estimates_the_spinning_signal():
-    # qiskit-aer shots through qhl.emulation.derivatives.estimate_family (the general sampler path: the fast
-    # path has no tables for spinning families), 4000 shots per part, fixed seed: Re and Im within 4 standard
-    # errors of the exact statevector expectation (false-failure rate about 6e-5 per part, normal estimate)
+@pytest.mark.parametrize("kind", ["signal", "gradient"])
+def test_emulator_fast_path_matches_aer_and_the_exact_value(kind):
+    # the numpy fast path (qhl.emulation.fast_path.spinning_tables) on a spinning family: every distinct
+    # setting's probabilities are recomputed by Aer's statevector method (audit, tolerance 1e-10), and the
+    # shot estimate (4000 shots per part, fixed seed) lies within 4 standard errors of the exact expectation
+    # (false-failure rate about 6e-5 per part for a normal estimate); one run through Aer itself (method
+    # 'aer') for the signal, same tolerance
     from qhl.emulation.derivatives import estimate_family
     from qhl.emulation.fast_path import supports_fast_path
 
     c = _cluster(3)
     m = build_model(c)
-    fam = spinning_signal_circuit(m, c.experiments[0], T, 8, 2)
-    assert not supports_fast_path(fam)
-    exact = exact_expectation(fam, method="statevector")
-    est = estimate_family(fam, 4000, seed=7)
-    assert abs(est.value.real - exact.real) < 4 * est.stderr.real
-    assert abs(est.value.imag - exact.imag) < 4 * est.stderr.imag
-    assert 0 < est.stderr.real < 0.05
+    ex = c.experiments[0]
+    fam = (spinning_signal_circuit(m, ex, T, 8, 2) if kind == "signal"
+           else spinning_gradient_circuit(m, ex, "dipolar:A-B", T, 8, 2))
+    assert supports_fast_path(fam)
+    exact = exact_expectation(fam, method="statevector" if kind == "signal" else "density")
+    runs = [estimate_family(fam, 4000, seed=7, method="fast", audit=8)]
+    if kind == "signal":
+        runs.append(estimate_family(fam, 4000, seed=8, method="aer"))
+    for est in runs:
+        assert abs(est.value.real - exact.real) < 4 * est.stderr.real
+        assert abs(est.value.imag - exact.imag) < 4 * est.stderr.imag
+        assert est.stderr.real > 0
+
+
+def test_emulated_provider_uses_the_spinning_families():
+    # the learning loop's emulated provider: a spinning experiment gets the spinning families with the rotor
+    # rule's steps (8 per rotor period here: r = 8 over one period; a fixed count above it wins)
+    from qhl.emulation.provider import EmulatedGradientProvider
+
+    c = _cluster(3)
+    m = build_model(c, free=["offset:A", "dipolar:A-B"])
+    ex = c.experiments[0]
+    p = EmulatedGradientProvider(m, [ex], shots=200, seed=1)
+    assert p.steps_for(ex, T, m.values_hz) == 8
+    assert EmulatedGradientProvider(m, [ex], shots=200, seed=1, steps=12).steps_for(ex, T, m.values_hz) == 12
+    fam = p.signal_family(ex, T, 8)
+    assert fam.spinning["evolution"].steps == 8
+    ref = dense_trotter_spinning_signal(c, m, ex, T, 8, 2)
+    assert abs(exact_expectation(fam, method="statevector") - ref) < 1e-10
+    g = p.gradient_family(ex, "dipolar:A-B", T, 8)
+    assert g.kind == "gradient" and g.parameters == ("dipolar:A-B",)
