@@ -15,7 +15,7 @@ import pytest
 from qiskit import transpile
 
 from qhl.cli import main
-from qhl.circuits.spinning_circuits import spinning_signal_circuit
+from qhl.circuits.spinning_circuits import spinning_gradient_circuit, spinning_signal_circuit
 
 import test_spinning_circuits as spin
 
@@ -64,6 +64,16 @@ def test_budget_json_of_a_spinning_cluster(capsys, tmp_path):
     # T-count: rotations x 3 log2(1/eps_rot), eps_rot = synthesis share x eps / rotations
     assert got["t_count"] == math.ceil(got["rotations"] * 3 * math.log2(1 / e["rotation_error"]))
     assert e["rotation_error"] < 0.01 / got["rotations"]
+    # near-term shots of the worst gradient component: the single-shot range of the compiled Hadamard estimator,
+    # 2 W N_obs with 2 W = the family's total insertion weight (qhl.circuits.gradient_circuits docstring:
+    # values in +-2 W N_obs; Popoviciu), N_obs = 3 observed protons, per kHz
+    n = e["near_term"]
+    ranges = {nm: spinning_gradient_circuit(m, c.experiments[0], nm, spin.T, 8, 2).insertions.total_weight * 3 * 1e3
+              for nm in m.free}
+    assert n["worst_parameter"] == max(ranges, key=ranges.get)
+    assert n["component_range"] == pytest.approx(max(ranges.values()), rel=1e-12)
+    assert n["shots_per_component_bound"] == math.ceil(n["component_range"] ** 2 / 0.01 ** 2 * (1 - 1e-12))
+    assert 0 < n["shots_per_component_circuit"] <= n["shots_per_component_bound"] < n["shots_per_component_hoeffding"]
     # the Richardson estimate of the signal error at r = 8 against the measured error against the dense
     # time-ordered reference (2.66e-4, tests/test_spinning_circuits.py): within 20 %
     assert e["signal_error"]["value"] == pytest.approx(2.66e-4, rel=0.2)

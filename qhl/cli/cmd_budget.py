@@ -238,6 +238,10 @@ def _print_spinning(b):
               f"{_fmt(c['depth'])}, T-count {_fmt(c['t_count'])} ({e['counts_method']})")
         print(f"  gradient circuit: {_fmt(g['cx'])} CX, {_fmt(g['rotations'])} rotations, depth {_fmt(g['depth'])}, "
               f"T-count {_fmt(g['t_count'])} (estimate)")
+        n = e["near_term"]
+        print(f"  worst gradient component {n['worst_parameter']}: range R = {n['component_range']:.4g}, shots "
+              f"R^2/eps^2 {_fmt(n['shots_per_component_bound'])} (Hoeffding {_fmt(n['shots_per_component_hoeffding'])}; "
+              f"bounds), compiled estimator's exact variance {_fmt(n['shots_per_component_circuit'])}")
         if e.get("signal_error") and e["signal_error"]["value"] is not None:
             print(f"  signal error at {e['trotter_steps']:,} steps: {e['signal_error']['value']:.2g} "
                   f"({e['signal_error']['method']})")
@@ -248,8 +252,8 @@ def _print_spinning_budget(b, bm):
     print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
           f"t = {b.time_s:g} s, eps = {b.precision:g} (per kHz)  [model-based estimates]")
     _print_spinning(b)
-    print("every experiment spins: near-term shots, fault-tolerant amplitude estimation, Hessian, Fisher and "
-          "learning-run numbers are not covered for spinning experiments (--json keys empty)")
+    print("every experiment spins: shots from exact means, fault-tolerant amplitude estimation, Hessian, Fisher "
+          "and learning-run numbers are not covered for spinning experiments (top-level --json keys empty)")
     for note in b.notes:
         print(f"note: {note}")
 

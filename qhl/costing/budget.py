@@ -88,8 +88,10 @@ SPINNING_ASSUMPTION = (
     "per circuit = rotations x 3 log2(1/eps_rot) (Ross and Selinger rule) with eps_rot = synthesis share x eps / "
     "rotations (rotation errors add); signal error on small clusters (n <= SPINNING_ERROR_MAX_SPINS): "
     "|S_r - S_4r| 16/15 from the compiled circuits' unitaries (Richardson for an order-2 error; estimate); gradient "
-    "circuit = signal circuit + one controlled-Pauli gadget (as for pulse sequences). Not covered for spinning "
-    "experiments: near-term shots, fault-tolerant amplitude estimation, Hessian/Fisher/learning-run numbers (the "
+    "circuit = signal circuit + one controlled-Pauli gadget (as for pulse sequences); near-term shots of the worst "
+    "gradient component from the compiled estimator's range R = 2 sum_a |beta_a| kappa unit_hz (R^2/eps^2 and "
+    "Hoeffding, bounds). Not covered for spinning experiments: shots from exact means, fault-tolerant amplitude "
+    "estimation, Hessian/Fisher/learning-run numbers (the "
     "top-level numbers cover the static experiments only; empty when every experiment spins)")
 # A spinning signal circuit is transpiled for exact counts up to this many product-formula slots.
 SPINNING_TRANSPILE_MAX_SLOTS = 4000
@@ -846,6 +848,7 @@ class BudgetModel:
                     "rotations": signal["rotations"] + 2 * w, "depth": signal["depth"] + 3 * w + 4,
                     "t_count": int(math.ceil((signal["rotations"] + 2 * w) * t_rot)),
                     "method": "signal circuit + one controlled-Pauli gadget (estimate)"}
+        near = self._spinning_near_term(ex, evo, eps)
         err = None
         if self.model.n_spins <= SPINNING_ERROR_MAX_SPINS and r <= SPINNING_ERROR_MAX_STEPS:
             err = {"value": self._spinning_signal_error(ex, t, r, order), "at_steps": r,
@@ -856,9 +859,36 @@ class BudgetModel:
                 "trotter_steps": int(r), "step_s": t / r, "steps_rule": STEPS_RULE_TEXT, "steps_rotor_rule": int(rotor),
                 "steps_free_evolution": None if steps is None else int(steps),
                 "steps_from": "rotor rule" if r == rotor else "free-evolution budget",
-                "signal_circuit": signal, "gradient_circuit": gradient, "count_rule": rule,
+                "signal_circuit": signal, "gradient_circuit": gradient, "near_term": near, "count_rule": rule,
                 "counts_method": method, "rotation_error": eps_rot, "t_per_rotation_rule": float(t_rot),
                 "signal_error": err}
+
+    def _spinning_near_term(self, ex, evo, eps):
+        """Worst gradient component of a spinning experiment: single-shot range of its compiled Hadamard estimator,
+        R_n = 2 sum_a |beta_a| kappa unit_hz (beta_a of qhl.circuits.spinning_circuits.spinning_insertion_points:
+        the time-dependent form of 2 t ||c_n||_1 2 pi |s_n| kappa, with t |s_n| -> sum_k tau |sbar_{n,k}|), and
+        the shots R^2 / eps^2 and Hoeffding 2 R^2 ln(2/delta) / eps^2 (bounds)."""
+        from ..circuits.spinning_circuits import spinning_insertion_points
+        s = self.settings
+        kappa = shots.observable_factor(int(sum(bool(o) for o in self.model.observed)))
+        ranges = {name: 2.0 * sum(abs(p.beta) for p in spinning_insertion_points(evo, name)) * kappa * s.unit_hz
+                  for name in self.model.free}
+        name = max(ranges, key=ranges.get)
+        rng = float(ranges[name])
+        out = {"worst_parameter": name, "component_range": rng,
+               "shots_per_component_bound": math.ceil(rng**2 / eps**2 * (1 - 1e-12)),
+               "shots_per_component_hoeffding": shots.hoeffding_shots(rng, eps, s.delta),
+               "shots_per_component_circuit": None,
+               "method": "bound: range of the compiled Hadamard estimator (2 sum |beta_a| kappa unit_hz)"}
+        if evo.steps <= SEQUENCE_VARIANCE_MAX_STEPS and \
+                family_variance.fits_circuit_variance(self.model.n_spins, s.circuit_variance_max_spins):
+            from ..circuits.spinning_circuits import spinning_gradient_circuit
+            from ..emulation.variance import family_moments
+            fam = spinning_gradient_circuit(self.model, ex, name, evo.time, evo.steps, evo.order)
+            mo = family_moments(fam, "re")
+            out["shots_per_component_circuit"] = math.ceil(mo.variance * s.unit_hz**2 / eps**2 * (1 - 1e-12))
+            out["method_circuit"] = "exact variance of the compiled estimator (qhl.emulation.variance), Re part"
+        return out
 
     def _spinning_signal_error(self, ex, t, r, order):
         """Richardson estimate of the compiled signal's error at r steps from r and 4r (dense unitaries of the
