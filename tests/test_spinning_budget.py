@@ -114,3 +114,28 @@ def test_other_commands_give_one_line_errors(capsys, tmp_path, argv):
     assert rc == 2
     assert "spins" in err and "Traceback" not in err
     assert len([ln for ln in err.splitlines() if ln.startswith("qhl: error")]) == 1
+
+
+def test_slow_rotor_takes_more_steps_than_the_rotor_rule(capsys, tmp_path):
+    # at 2 kHz one rotor period lasts 500 us: the rule's 8 steps (62.5 us each) do not resolve kHz couplings, so
+    # the budget doubles r until the Richardson error estimate is within the Trotter share of eps; the error of
+    # the chosen r against the dense time-ordered reference (tests/reference_spinning.py) must then be within
+    # twice that target (Richardson is an estimate)
+    text = spin._text(3, spinning_hz=2000.0).replace(f"t_max_s = {spin.T}", "t_max_s = 0.0005")
+    path = tmp_path / "slow.toml"
+    path.write_text(text)
+    rc, out, err = _run(capsys, "budget", str(path), "--precision", "0.01", "--json")
+    assert rc == 0, err
+    (e,) = json.loads(out)["spinning"]
+    assert e["steps_rotor_rule"] == 8 and e["trotter_steps"] > 8
+    assert e["steps_from"].startswith("signal error")
+    assert e["signal_error"]["value"] <= e["signal_error"]["target"]
+    c = spin.parse_cluster_toml(text, "made_up.toml")
+    m = spin.build_model(c)
+    ex = c.experiments[0]
+    ref = spin.dense_spinning_signal(c, m, ex, [5e-4])[0]
+    got = spin._operator_signal(m, spin.spinning_evolution(m, ex, 5e-4, e["trotter_steps"], 2))
+    assert abs(got - ref) <= 2 * e["signal_error"]["target"]
+    # and at half the steps the error is above the target (the doubling stopped at the first r that fits)
+    half = spin._operator_signal(m, spin.spinning_evolution(m, ex, 5e-4, e["trotter_steps"] // 2, 2))
+    assert abs(half - ref) > 0.5 * e["signal_error"]["target"]

@@ -82,7 +82,8 @@ SPINNING_ASSUMPTION = (
     "time t cut into r equal steps, each step the product formula of the step-averaged Hamiltonian (exact averages of "
     "the rotor factors s_n(t); error O(tau^2) for order 2: the Magnus second term and the splitting); r = max(the "
     "free-evolution budget's steps at the same order, ceil(8 nu_r t)) (8 steps per rotor period, 4 per period of the "
-    "second harmonic); a step has a static step's gates with other angles, so counts per circuit are those of a "
+    "second harmonic); where every experiment spins (no free-evolution steps) and n <= SPINNING_ERROR_MAX_SPINS, r "
+    "doubles until the Richardson signal error below is within the Trotter share of eps; a step has a static step's gates with other angles, so counts per circuit are those of a "
     "transpiled circuit ([cx, rz, sx, x], level 2, all-to-all; 'transpiled', exact for that transpile) up to "
     "SPINNING_TRANSPILE_MAX_SLOTS slots and SYNTHESIS_MAX_SPINS spins, else the step-count rule (estimate); T-count "
     "per circuit = rotations x 3 log2(1/eps_rot) (Ross and Selinger rule) with eps_rot = synthesis share x eps / "
@@ -824,6 +825,18 @@ class BudgetModel:
         s = self.settings
         rotor = steps_rule(ex.spinning_hz, t)
         r = steps_rule(ex.spinning_hz, t, steps or 1)
+        source = "rotor rule" if r == rotor else "free-evolution budget"
+        small = self.model.n_spins <= SPINNING_ERROR_MAX_SPINS
+        target = float(s.split_dict()["trotter"]) * eps
+        known_error = None
+        if steps is None and small:
+            # no free-evolution budget to follow: double r until the Richardson signal error is within the
+            # Trotter share of eps (the rotor rule alone does not see the couplings' own Trotter error)
+            known_error = self._spinning_signal_error(ex, t, r, order)
+            while known_error > target and 2 * r <= SPINNING_ERROR_MAX_STEPS:
+                r *= 2
+                source = "signal error (Richardson) within the Trotter share"
+                known_error = self._spinning_signal_error(ex, t, r, order)
         evo = spinning_evolution(self.model, ex, t, r, order)
         rule = spinning_counts_rule(evo)
         n_blocks = sum(len(evo.terms.groups[sl.group].blocks) for sl in evo.slots)
@@ -850,15 +863,16 @@ class BudgetModel:
                     "method": "signal circuit + one controlled-Pauli gadget (estimate)"}
         near = self._spinning_near_term(ex, evo, eps)
         err = None
-        if self.model.n_spins <= SPINNING_ERROR_MAX_SPINS and r <= SPINNING_ERROR_MAX_STEPS:
-            err = {"value": self._spinning_signal_error(ex, t, r, order), "at_steps": r,
+        if small and r <= SPINNING_ERROR_MAX_STEPS:
+            value = known_error if known_error is not None else self._spinning_signal_error(ex, t, r, order)
+            err = {"value": value, "at_steps": r, "target": target,
                    "method": "|S_r - S_4r| 16/15 from the compiled circuits (Richardson, order 2; estimate)"
                    if order == 2 else "|S_r - S_4r| 4/3 from the compiled circuits (Richardson, order 1; estimate)"}
         return {"name": ex.name, "spinning_hz": float(ex.spinning_hz), "angle_deg": float(ex.spinning_angle_deg),
                 "time_s": float(t), "rotor_periods": float(t * ex.spinning_hz), "trotter_order": int(order),
                 "trotter_steps": int(r), "step_s": t / r, "steps_rule": STEPS_RULE_TEXT, "steps_rotor_rule": int(rotor),
                 "steps_free_evolution": None if steps is None else int(steps),
-                "steps_from": "rotor rule" if r == rotor else "free-evolution budget",
+                "steps_from": source,
                 "signal_circuit": signal, "gradient_circuit": gradient, "near_term": near, "count_rule": rule,
                 "counts_method": method, "rotation_error": eps_rot, "t_per_rotation_rule": float(t_rot),
                 "signal_error": err}
