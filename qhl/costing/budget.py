@@ -1226,8 +1226,8 @@ class BudgetModel:
         1/eps^2 for the near-term counts and through the vectorised fault-tolerant formulas.
         """
         if self.spinning_only:
-            raise QhlInputError("sweeps of a cluster whose every experiment spins are not covered yet: give one "
-                                "--time and --precision", key="--sweep-time")
+            raise QhlInputError("sweeps (and their --plot) of a cluster whose every experiment spins are not covered "
+                                "yet: give one --time and --precision", key="--sweep-time")
         if self.sequence_only:
             raise QhlInputError("sweeps of a cluster whose every experiment has pulse-sequence steps are not "
                                 "covered yet: give one --time and --precision", key="--sweep-time")
