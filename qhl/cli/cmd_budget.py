@@ -125,7 +125,9 @@ def run(args):
     _progress(f"budget at t = {t:g} s, eps = {args.precision:g}")
     known = len(bm.notes)
     budget = bm.budget(t, args.precision)
-    if args.clifford_t and bm.sequence_only:
+    if args.clifford_t and getattr(bm, "spinning_only", False):
+        _progress("note: --clifford-t writes a free-evolution step; every experiment of this cluster spins")
+    elif args.clifford_t and bm.sequence_only:
         _progress("note: --clifford-t writes a free-evolution step; this cluster has sequence experiments only")
     elif args.clifford_t:
         from ..costing.synthesis import write_clifford_t_step
@@ -224,9 +226,45 @@ def _print_sequence_budget(b, bm):
           "free-evolution experiment; see --json 'assumptions' and 'notes'")
 
 
+def _print_spinning(b):
+    """One block per spinning experiment (the 'spinning' entries)."""
+    for e in b.spinning or ():
+        c, g = e["signal_circuit"], e["gradient_circuit"]
+        print(f"spinning '{e['name']}': {e['spinning_hz']:g} Hz at {e['angle_deg']:.4g} deg, t = {e['time_s']:g} s "
+              f"({e['rotor_periods']:.3g} rotor periods)")
+        print(f"  {e['trotter_steps']:,} Trotter steps, order {e['trotter_order']} ({e['steps_from']}; rule: "
+              f"{e['steps_rule']})")
+        print(f"  signal circuit: {c['qubits']} qubits, {_fmt(c['cx'])} CX, {_fmt(c['rotations'])} rotations, depth "
+              f"{_fmt(c['depth'])}, T-count {_fmt(c['t_count'])} ({e['counts_method']})")
+        print(f"  gradient circuit: {_fmt(g['cx'])} CX, {_fmt(g['rotations'])} rotations, depth {_fmt(g['depth'])}, "
+              f"T-count {_fmt(g['t_count'])} (estimate)")
+        n = e["near_term"]
+        print(f"  worst gradient component {n['worst_parameter']}: range R = {n['component_range']:.4g}, shots "
+              f"R^2/eps^2 {_fmt(n['shots_per_component_bound'])} (Hoeffding {_fmt(n['shots_per_component_hoeffding'])}; "
+              f"bounds), compiled estimator's exact variance {_fmt(n['shots_per_component_circuit'])}")
+        if e.get("signal_error") and e["signal_error"]["value"] is not None:
+            print(f"  signal error at {e['trotter_steps']:,} steps: {e['signal_error']['value']:.2g} "
+                  f"({e['signal_error']['method']})")
+
+
+def _print_spinning_budget(b, bm):
+    """Text of a budget whose every experiment spins: the per-experiment circuit counts only."""
+    print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
+          f"t = {b.time_s:g} s, eps = {b.precision:g} (per kHz)  [model-based estimates]")
+    _print_spinning(b)
+    print("every experiment spins: shots from exact means, fault-tolerant amplitude estimation, Hessian, Fisher "
+          "and learning-run numbers are not covered for spinning experiments (top-level --json keys empty)")
+    for note in b.notes:
+        print(f"note: {note}")
+
+
 def _print_budget(b, bm):
+    if getattr(bm, "spinning_only", False):
+        return _print_spinning_budget(b, bm)
     if getattr(bm, "sequence_only", False):
-        return _print_sequence_budget(b, bm)
+        _print_sequence_budget(b, bm)
+        _print_spinning(b)
+        return None
     nt, ft = b.near_term, b.fault_tolerant
     print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
           f"t = {b.time_s:g} s, eps = {b.precision:g} (per kHz)  [model-based estimates]")
@@ -329,6 +367,7 @@ def _print_budget(b, bm):
         if c.get("crossover_spins"):
             print(f"  at this density of couplings, exact classical simulation exceeds a day and 1 TiB from "
                   f"{c['crossover_spins']} spins: the size from which a quantum computer is needed")
+    _print_spinning(b)
     print(f"{len(b.assumptions)} assumptions with sources: qhl budget --json (key 'assumptions')")
 
 

@@ -78,6 +78,27 @@ SEQUENCE_GRADIENT_ASSUMPTION = (
     "(controlled-((-i)^w P), a Clifford gate; counted as 2 w CX, at most 2 w rz and 3 w + 4 layers, the most a "
     "[cx, rz, sx, x] transpile of qhl.circuits.gradient_circuits' gadget shows, w the largest Pauli weight of g_n); "
     "the top-level near_term and fault_tolerant numbers cover the free-evolution experiments")
+SPINNING_ASSUMPTION = (
+    "spinning (magic-angle) FIDs, per experiment under 'spinning' (qhl.circuits.spinning_circuits): the acquisition "
+    "time t cut into r equal steps, each step the product formula of the step-averaged Hamiltonian (exact averages of "
+    "the rotor factors s_n(t); error O(tau^2) for order 2: the Magnus second term and the splitting); r = max(the "
+    "free-evolution budget's steps at the same order, ceil(8 nu_r t)) (8 steps per rotor period, 4 per period of the "
+    "second harmonic); where every experiment spins (no free-evolution steps) and n <= SPINNING_ERROR_MAX_SPINS, r "
+    "doubles until the Richardson signal error below is within the Trotter share of eps; a step has a static step's gates with other angles, so counts per circuit are those of a "
+    "transpiled circuit ([cx, rz, sx, x], level 2, all-to-all; 'transpiled', exact for that transpile) up to "
+    "SPINNING_TRANSPILE_MAX_SLOTS slots and SYNTHESIS_MAX_SPINS spins, else the step-count rule (estimate); T-count "
+    "per circuit = rotations x 3 log2(1/eps_rot) (Ross and Selinger rule) with eps_rot = synthesis share x eps / "
+    "rotations (rotation errors add); signal error on small clusters (n <= SPINNING_ERROR_MAX_SPINS): "
+    "|S_r - S_4r| 16/15 from the compiled circuits' unitaries (Richardson for an order-2 error; estimate); gradient "
+    "circuit = signal circuit + one controlled-Pauli gadget (as for pulse sequences); near-term shots of the worst "
+    "gradient component from the compiled estimator's range R = 2 sum_a |beta_a| kappa unit_hz (R^2/eps^2 and "
+    "Hoeffding, bounds). Not covered for spinning experiments: shots from exact means, fault-tolerant amplitude "
+    "estimation, Hessian/Fisher/learning-run numbers (the "
+    "top-level numbers cover the static experiments only; empty when every experiment spins)")
+# A spinning signal circuit is transpiled for exact counts up to this many product-formula slots.
+SPINNING_TRANSPILE_MAX_SLOTS = 4000
+SPINNING_ERROR_MAX_SPINS = 6
+SPINNING_ERROR_MAX_STEPS = 1024
 HESSIAN_FLOPS_PER_ELEMENT = 5000.0
 # The compiled sequence estimator's exact variance is computed when its circuit has at most this many Trotter
 # steps (acquisition + delays at one step length): each step adds insertion rows of dense unitaries.
@@ -229,10 +250,11 @@ class Budget:
     precision_hz: dict | None = None
     classical: dict | None = None
     sequences: dict | None = None
+    spinning: list | None = None
 
     def to_json(self):
         return {"cluster": self.cluster, "time_s": self.time_s, "precision": self.precision,
-                "sequences": self.sequences,
+                "sequences": self.sequences, "spinning": self.spinning,
                 "near_term": self.near_term, "fault_tolerant": self.fault_tolerant,
                 "error_budget": self.error_budget, "comparison": self.comparison,
                 "surface_code": self.surface_code, "assumptions": self.assumptions,
@@ -416,14 +438,31 @@ class BudgetModel:
             raise QhlInputError(f"every experiment of '{cluster.name}' has finite pulses (duration_s), which the "
                                 "circuits do not compile yet (ideal pulses only): nothing to cost",
                                 key="experiment.step.duration_s")
-        self.sequence_experiments = [ex for ex in cluster.experiments if getattr(ex, "steps", ())
-                                     and ex.name not in finite]
-        self.experiments = [ex for ex in cluster.experiments if not getattr(ex, "steps", ())]
-        self.sequence_only = not self.experiments
+        from ..spins.spinning import is_spinning
+        usable = [ex for ex in cluster.experiments if ex.name not in finite]
+        self.spinning_experiments = [ex for ex in usable if is_spinning(ex)]
+        static = [ex for ex in usable if not is_spinning(ex)]
+        self.sequence_experiments = [ex for ex in static if getattr(ex, "steps", ())]
+        self.experiments = [ex for ex in static if not getattr(ex, "steps", ())]
         self.notes = []
         if finite:
             self.notes.append(f"experiments with finite pulses ({', '.join(finite)}) are left out: the circuits "
                               "compile ideal pulses only (the exact engine covers finite ones)")
+        # spinning experiments are costed per experiment under 'spinning' (SPINNING_ASSUMPTION); a cluster whose
+        # every experiment spins gets those entries only (spinning_only)
+        self.spinning_only = not static
+        self.sequence_only = not self.experiments and not self.spinning_only
+        if self.spinning_experiments:
+            names = ", ".join(ex.name for ex in self.spinning_experiments)
+            self.notes.append(
+                f"spinning experiments ({names}): time-dependent Trotter circuit counts under 'spinning'; "
+                + ("every experiment spins: near_term, fault_tolerant, error_budget, comparison, precision_hz "
+                   "and sweeps are not covered (empty)" if self.spinning_only else
+                   "the top-level near_term, fault_tolerant, comparison and precision numbers cover the static "
+                   f"experiments ({', '.join(ex.name for ex in static)}) only"))
+        if self.spinning_only:
+            self._init_spinning_only(say)
+            return
         if self.sequence_only:
             self.notes.append(
                 f"every experiment of '{cluster.name}' has pulse-sequence steps: the budget is per component of "
@@ -490,7 +529,9 @@ class BudgetModel:
         if self.settings.classical_meter:
             from .classical_cost import classical_cost
             say("classical-cost meter (rates measured on this machine)")
-            self.classical = classical_cost(cluster).to_json()
+            import dataclasses as _dc
+            self.classical = classical_cost(_dc.replace(cluster, experiments=tuple(static))
+                                            if self.spinning_experiments else cluster).to_json()
         say(f"prepared in {_time.perf_counter() - t0:.1f} s")
         self._say = say
 
@@ -503,6 +544,8 @@ class BudgetModel:
     @property
     def default_time_s(self):
         """The shortest experiment window among experiments that see every free parameter."""
+        if self.spinning_only:
+            return float(min(ex.t_max_s for ex in self.spinning_experiments))
         if self.sequence_only:
             return float(min(ex.t_max_s for ex in self.sequence_experiments))
         full = [ex.t_max_s for x, ex in enumerate(self.experiments) if np.all(self.near.scales[x] != 0)]
@@ -556,8 +599,10 @@ class BudgetModel:
         t, eps = float(time_s), float(precision)
         s = self.settings
         its = _iterations(s.iterations if iterations is None else iterations)
+        if self.spinning_only:
+            return self._spinning_only_budget(t, eps)
         if self.sequence_only:
-            return self._sequence_only_budget(t, eps, its)
+            return self._with_spinning(self._sequence_only_budget(t, eps, its), t, eps, NOISY_ORDER, None)
         nt = self.near
         has = nt.has_means
         tier = nt.method if has else "bound"
@@ -743,8 +788,147 @@ class BudgetModel:
             f"{c['preparation']['pulses']} pulses), {c['total']['cx']:,} CX, {c['total']['rotations']:,} rotations; "
             f"the preparation's share {c['preparation_share']['cx']:.0%} of CX, "
             f"{c['preparation_share']['rotations']:.0%} of rotations" for name, c in (sequences or {}).items()]
-        return Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name, methods,
-                      notes, dict(self.tiers), self._precision_hz(t, eps, hb), self.classical, sequences)
+        b = Budget(t, eps, near, ft, err, comparison, sc, assumptions, self.cluster.name, methods,
+                   notes, dict(self.tiers), self._precision_hz(t, eps, hb), self.classical, sequences)
+        return self._with_spinning(b, t, eps, order if order in NOISY_ORDERS else NOISY_ORDER, int(ch["steps"])
+                                   if order in NOISY_ORDERS else None)
+
+    # ------------------------------------------------------------------ spinning experiments
+    def _init_spinning_only(self, say):
+        """State of a cluster whose every experiment spins: no engine, near-term or Trotter models."""
+        self.engine = self.estimator = self.near = self.classical = None
+        self.trotter, self._quad, self._seq_trotter = [], [], {}
+        self.exact_plan = {"use_engine": False, "reason": "every experiment spins"}
+        self.tiers = {"exact": "skipped", "estimated": "not available", "bound": "used"}
+        self._say = say
+
+    def _with_spinning(self, budget, t, eps, order, steps):
+        """`budget` with its 'spinning' entries (SPINNING_ASSUMPTION); `steps` the free-evolution budget's r."""
+        if not self.spinning_experiments:
+            return budget
+        budget.spinning = [self._spinning_entry(ex, t, eps, order, steps) for ex in self.spinning_experiments]
+        budget.assumptions["spinning_circuits"] = SPINNING_ASSUMPTION
+        budget.notes = list(budget.notes) + [
+            f"spinning '{e['name']}' ({e['spinning_hz']:g} Hz at {e['angle_deg']:.4g} deg): {e['trotter_steps']:,} "
+            f"Trotter steps (order {e['trotter_order']}, {e['steps_from']}), signal circuit "
+            f"{e['signal_circuit']['cx']:,} CX, {e['signal_circuit']['rotations']:,} rotations, depth "
+            f"{e['signal_circuit']['depth']:,}, T-count {e['signal_circuit']['t_count']:,} ({e['counts_method']})"
+            for e in budget.spinning]
+        return budget
+
+    def _spinning_only_budget(self, t, eps):
+        """A cluster whose every experiment spins: the 'spinning' entries only; the top-level sections are empty
+        (not covered: SPINNING_ASSUMPTION)."""
+        say = getattr(self, "_say", lambda msg: None)
+        say("spinning budget (every experiment spins)")
+        assumptions = all_assumptions(self.settings)
+        b = Budget(t, eps, {}, {}, {}, {}, None, assumptions, self.cluster.name,
+                   {"near_term": {}, "fault_tolerant": {}, "surface_code": None}, list(self.notes), dict(self.tiers),
+                   None, None, None)
+        return self._with_spinning(b, t, eps, NOISY_ORDER, None)
+
+    def _spinning_entry(self, ex, t, eps, order, steps):
+        """Per spinning experiment at acquisition time t: steps, signal- and gradient-circuit counts, T-count."""
+        from ..circuits.circuit_counts import family_counts
+        from ..circuits.spinning_circuits import (STEPS_RULE_TEXT, spinning_counts_rule, spinning_evolution,
+                                                  spinning_signal_circuit, steps_rule)
+        s = self.settings
+        rotor = steps_rule(ex.spinning_hz, t)
+        r = steps_rule(ex.spinning_hz, t, steps or 1)
+        source = "rotor rule" if r == rotor else "free-evolution budget"
+        small = self.model.n_spins <= SPINNING_ERROR_MAX_SPINS
+        target = float(s.split_dict()["trotter"]) * eps
+        known_error = None
+        if steps is None and small:
+            # no free-evolution budget to follow: double r until the Richardson signal error is within the
+            # Trotter share of eps (the rotor rule alone does not see the couplings' own Trotter error)
+            known_error = self._spinning_signal_error(ex, t, r, order)
+            while known_error > target and 2 * r <= SPINNING_ERROR_MAX_STEPS:
+                r *= 2
+                source = "signal error (Richardson) within the Trotter share"
+                known_error = self._spinning_signal_error(ex, t, r, order)
+        evo = spinning_evolution(self.model, ex, t, r, order)
+        rule = spinning_counts_rule(evo)
+        n_blocks = sum(len(evo.terms.groups[sl.group].blocks) for sl in evo.slots)
+        counts = None
+        if self.model.n_spins <= SYNTHESIS_MAX_SPINS and n_blocks <= SPINNING_TRANSPILE_MAX_SLOTS:
+            fam = spinning_signal_circuit(self.model, ex, t, r, order)
+            counts = family_counts(fam)
+            method = "transpiled ([cx, rz, sx, x], level 2, all-to-all), exact"
+        else:
+            counts = {"qubits": self.model.n_spins, **rule, "steps": r}
+            method = "count rule (qhl.circuits.step_counts; all-to-all), estimate"
+        rot = max(int(counts["rotations"]), 1)
+        eps_rot = min(float(s.split_dict()["synthesis"]) * eps / rot, 0.5)
+        t_rot = synthesis.t_count_per_rotation(eps_rot)
+        signal = {k: int(counts[k]) for k in ("qubits", "cx", "rotations", "depth")}
+        signal["t_count"] = int(math.ceil(int(counts["rotations"]) * t_rot))
+        if "per_step" in counts:
+            signal["per_step"] = counts["per_step"]
+        w = max(len(label.replace("I", "")) for name in self.model.free
+                for label in self.model.parameter(name).generator.paulis.to_labels())
+        gradient = {"qubits": signal["qubits"] + 1, "cx": signal["cx"] + 2 * w,
+                    "rotations": signal["rotations"] + 2 * w, "depth": signal["depth"] + 3 * w + 4,
+                    "t_count": int(math.ceil((signal["rotations"] + 2 * w) * t_rot)),
+                    "method": "signal circuit + one controlled-Pauli gadget (estimate)"}
+        near = self._spinning_near_term(ex, evo, eps)
+        err = None
+        if small and r <= SPINNING_ERROR_MAX_STEPS:
+            value = known_error if known_error is not None else self._spinning_signal_error(ex, t, r, order)
+            err = {"value": value, "at_steps": r, "target": target,
+                   "method": "|S_r - S_4r| 16/15 from the compiled circuits (Richardson, order 2; estimate)"
+                   if order == 2 else "|S_r - S_4r| 4/3 from the compiled circuits (Richardson, order 1; estimate)"}
+        return {"name": ex.name, "spinning_hz": float(ex.spinning_hz), "angle_deg": float(ex.spinning_angle_deg),
+                "time_s": float(t), "rotor_periods": float(t * ex.spinning_hz), "trotter_order": int(order),
+                "trotter_steps": int(r), "step_s": t / r, "steps_rule": STEPS_RULE_TEXT, "steps_rotor_rule": int(rotor),
+                "steps_free_evolution": None if steps is None else int(steps),
+                "steps_from": source,
+                "signal_circuit": signal, "gradient_circuit": gradient, "near_term": near, "count_rule": rule,
+                "counts_method": method, "rotation_error": eps_rot, "t_per_rotation_rule": float(t_rot),
+                "signal_error": err}
+
+    def _spinning_near_term(self, ex, evo, eps):
+        """Worst gradient component of a spinning experiment: single-shot range of its compiled Hadamard estimator,
+        R_n = 2 sum_a |beta_a| kappa unit_hz (beta_a of qhl.circuits.spinning_circuits.spinning_insertion_points:
+        the time-dependent form of 2 t ||c_n||_1 2 pi |s_n| kappa, with t |s_n| -> sum_k tau |sbar_{n,k}|), and
+        the shots R^2 / eps^2 and Hoeffding 2 R^2 ln(2/delta) / eps^2 (bounds)."""
+        from ..circuits.spinning_circuits import spinning_insertion_points
+        s = self.settings
+        kappa = shots.observable_factor(int(sum(bool(o) for o in self.model.observed)))
+        ranges = {name: 2.0 * sum(abs(p.beta) for p in spinning_insertion_points(evo, name)) * kappa * s.unit_hz
+                  for name in self.model.free}
+        name = max(ranges, key=ranges.get)
+        rng = float(ranges[name])
+        out = {"worst_parameter": name, "component_range": rng,
+               "shots_per_component_bound": math.ceil(rng**2 / eps**2 * (1 - 1e-12)),
+               "shots_per_component_hoeffding": shots.hoeffding_shots(rng, eps, s.delta),
+               "shots_per_component_circuit": None,
+               "method": "bound: range of the compiled Hadamard estimator (2 sum |beta_a| kappa unit_hz)"}
+        if evo.steps <= SEQUENCE_VARIANCE_MAX_STEPS and \
+                family_variance.fits_circuit_variance(self.model.n_spins, s.circuit_variance_max_spins):
+            from ..circuits.spinning_circuits import spinning_gradient_circuit
+            from ..emulation.variance import family_moments
+            fam = spinning_gradient_circuit(self.model, ex, name, evo.time, evo.steps, evo.order)
+            mo = family_moments(fam, "re")
+            out["shots_per_component_circuit"] = math.ceil(mo.variance * s.unit_hz**2 / eps**2 * (1 - 1e-12))
+            out["method_circuit"] = "exact variance of the compiled estimator (qhl.emulation.variance), Re part"
+        return out
+
+    def _spinning_signal_error(self, ex, t, r, order):
+        """Richardson estimate of the compiled signal's error at r steps from r and 4r (dense unitaries of the
+        evolution circuits; small clusters)."""
+        from qiskit.quantum_info import Operator
+        from ..circuits.spinning_circuits import spinning_evolution, spinning_evolution_circuit
+        n = self.model.n_spins
+        require_memory("the spinning signal-error estimate", 16.0 * 4 ** n * 6)
+        rho = self.model.initial_operator().to_matrix()
+        det = self.model.detection_operator().to_matrix()
+        vals = []
+        for k in (r, 4 * r):
+            u = Operator(spinning_evolution_circuit(spinning_evolution(self.model, ex, t, k, order))).data
+            vals.append(np.trace(det @ u @ rho @ u.conj().T) / np.trace(det @ rho))
+        fac = 2 ** (2 * order)
+        return float(abs(vals[0] - vals[1]) * fac / (fac - 1))
 
     def _sequence_counts(self, t, order, steps, eps=None):
         """Per pulse-sequence experiment at acquisition time t: its signal-circuit counts (SEQUENCE_ASSUMPTION)
@@ -1056,6 +1240,9 @@ class BudgetModel:
         One engine gradient call per experiment covers every time of the sweep; eps enters as
         1/eps^2 for the near-term counts and through the vectorised fault-tolerant formulas.
         """
+        if self.spinning_only:
+            raise QhlInputError("sweeps (and their --plot) of a cluster whose every experiment spins are not covered "
+                                "yet: give one --time and --precision", key="--sweep-time")
         if self.sequence_only:
             raise QhlInputError("sweeps of a cluster whose every experiment has pulse-sequence steps are not "
                                 "covered yet: give one --time and --precision", key="--sweep-time")

@@ -20,6 +20,8 @@ Hadamard-test families (qhl.circuits.gradient_circuits) are untouched by the evo
   Pulse-sequence gradient: as the gradient above on that flat gate sequence, position p of an
       insertion point = first gate of its segment (delay or acquisition) + its slot's and block's
       place inside the segment (`EvolutionTables.segment_offsets`).
+  Spinning signal and gradient (qhl.circuits.spinning_circuits): the same, with each slot's blocks at
+      that slot's own angles (`spinning_tables`; step averages of the rotor factors).
 followed by the read-out rz(mu), h on every observed spin. U_{<=p} psi_k (the states after
 block p, shared by every setting of input k) come from one forward sweep and the dense suffixes
 U_{>p} from one backward sweep; both are cached per evolution (`EvolutionTables`), so the families of
@@ -73,11 +75,13 @@ def supports_fast_path(family) -> bool:
     """True for signal, Hadamard-gradient and Hessian families with a recorded evolution (Hessians up
     to MAX_FAST_QUBITS spins; signal and gradient beyond it in the streaming mode, memory permitting),
     and for the signal and Hadamard-gradient families of pulse-sequence experiments
-    (qhl.circuits.sequence_circuits) up to MAX_FAST_QUBITS spins."""
+    (qhl.circuits.sequence_circuits) and of spinning experiments (qhl.circuits.spinning_circuits) up to
+    MAX_FAST_QUBITS spins."""
     if family.kind not in FAST_KINDS:
         return False
     if family.evolution is None:
-        return (family.kind in ("signal", "gradient") and getattr(family, "sequence", None) is not None
+        return (family.kind in ("signal", "gradient") and (getattr(family, "sequence", None) is not None
+                                                           or getattr(family, "spinning", None) is not None)
                 and family.inputs.n_qubits <= MAX_FAST_QUBITS)
     return family.inputs.n_qubits <= MAX_FAST_QUBITS or family.kind in STREAM_KINDS
 
@@ -334,8 +338,29 @@ def sequence_tables(family) -> EvolutionTables:
     return tables
 
 
+def spinning_tables(family) -> EvolutionTables:
+    """EvolutionTables of a spinning family (not cached): slot by slot, block by block, the rotations of
+    qhl.circuits.spinning_circuits with the slot's own angles (the same append_block_rotations, so the same
+    matrices as the circuit); `offsets` per slot, so insertion positions are found as for free evolution."""
+    import dataclasses as _dc
+
+    evo = family.spinning["evolution"]
+    n = evo.terms.n_qubits
+    tables = EvolutionTables(evo.terms, [])
+    gates, offsets = [], []
+    for slot in evo.slots:
+        offsets.append(len(gates))
+        for bi, block in enumerate(evo.terms.groups[slot.group].blocks):
+            gates.append(_block_gate(_dc.replace(block, coeffs=slot.thetas[bi]), 1.0, n))
+    tables.gates, tables.offsets, tables.slots = gates, offsets, list(evo.slots)
+    tables.observed = tuple(bool(o) for o in family.inputs.observed)
+    return tables
+
+
 def evolution_tables(family) -> EvolutionTables:
     """The (cached) EvolutionTables of a family's evolution."""
+    if family.evolution is None and getattr(family, "spinning", None) is not None:
+        return spinning_tables(family)
     if family.evolution is None and getattr(family, "sequence", None) is not None:
         return sequence_tables(family)
     ev = family.evolution
@@ -389,6 +414,12 @@ class FastFamily:
         table = family.insertions
         if family.kind == "signal":
             self.rows = [()]
+        elif family.kind == "gradient" and getattr(family, "spinning", None) is not None:   # spinning
+            from ..circuits.spinning_circuits import spinning_insertion_points
+            located = spinning_insertion_points(family.spinning["evolution"], family.parameters[0])
+            pts = [self._insertion(p, 0) for p in located]
+            self._check_rows(pts, len(pts), lambda j: (j,))
+            self.rows = [(pts[j],) for j in range(len(pts))]
         elif family.kind == "gradient" and family.evolution is None:       # pulse sequence
             segments = sequence_segments(terms, family.sequence["plan"], family.time, family.steps, family.order)
             located = sequence_insertion_points(terms, segments, family.parameters[0])

@@ -24,6 +24,10 @@ eps tau_d / sum_d tau_d (so by the triangle inequality the whole propagator is w
 acquisition's eps plus the delays'; common practice). t = 0 is estimated too (after a
 preparation S(0) and dS/dh are not fixed by the normalisation).
 
+Spinning experiments: qhl.circuits.spinning_circuits' families (step averages of the rotor factors);
+r(t) = the rotor rule, at least 8 steps per rotor period (steps_rule), and at least `steps` when fixed
+(no commutator bound or signal search: both are written for a static Hamiltonian).
+
 Calibration (`family_seconds`): the measured time of one signal and one gradient family at a
 given (t, r) with the same estimator (fast path when noiseless), on its own random stream; the
 run-time prediction built from it is qhl.learning.emulated_run's.
@@ -36,6 +40,8 @@ import numpy as np
 from ..base.errors import QhlInputError
 from ..circuits.gradient_circuits import gradient_circuit, signal_circuit
 from ..circuits.sequence_circuits import acquisition_terms, sequence_gradient_circuit, sequence_signal_circuit
+from ..circuits.spinning_circuits import spinning_gradient_circuit, spinning_signal_circuit, steps_rule
+from ..spins.spinning import is_spinning
 from ..exact.provider import GradientProvider
 from ..circuits.trotter_bounds import trotter_steps_for
 from ..spins.cluster import Delay, flat_steps
@@ -96,6 +102,9 @@ class EmulatedGradientProvider(GradientProvider):
     def steps_for(self, experiment, time, values_all) -> int:
         """r at time t (module docstring: fixed, signal or bound); signal counts are cached per (experiment, t)."""
         key = (experiment.name, float(time))
+        if is_spinning(experiment):      # the rotor rule, at least the fixed count (module docstring)
+            self.step_sources[key] = "fixed" if self.steps is not None else "rotor rule"
+            return steps_rule(experiment.spinning_hz, float(time), self.steps or 1)
         if self.steps is not None:
             self.step_sources[key] = "fixed"
             return int(self.steps)
@@ -130,14 +139,22 @@ class EmulatedGradientProvider(GradientProvider):
         return self._delay_cache[experiment.name]
 
     def signal_family(self, experiment, time, steps, values_all=None):
-        """The signal family of (experiment, t, r): the sequence family when the experiment has steps."""
+        """The signal family of (experiment, t, r): the sequence family when the experiment has steps, the
+        spinning family when it spins."""
+        if is_spinning(experiment):
+            return spinning_signal_circuit(self.model, experiment, float(time), int(steps), self.order,
+                                           values_hz=values_all)
         if _has_steps(experiment):
             return sequence_signal_circuit(self.model, experiment, float(time), int(steps), self.order,
                                            delay_steps=self.delay_steps_for(experiment), values_hz=values_all)
         return signal_circuit(self.model, experiment, float(time), int(steps), self.order, values_hz=values_all)
 
     def gradient_family(self, experiment, name, time, steps, values_all=None):
-        """The Hadamard gradient family of h_name at (experiment, t, r) (sequence family with steps)."""
+        """The Hadamard gradient family of h_name at (experiment, t, r) (sequence family with steps, spinning
+        family when it spins)."""
+        if is_spinning(experiment):
+            return spinning_gradient_circuit(self.model, experiment, name, float(time), int(steps), self.order,
+                                             values_hz=values_all)
         if _has_steps(experiment):
             return sequence_gradient_circuit(self.model, experiment, name, float(time), int(steps), self.order,
                                              delay_steps=self.delay_steps_for(experiment), values_hz=values_all)
