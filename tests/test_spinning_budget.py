@@ -77,6 +77,33 @@ def test_budget_json_of_a_spinning_cluster(capsys, tmp_path):
     # the Richardson estimate of the signal error at r = 8 against the measured error against the dense
     # time-ordered reference (2.66e-4, tests/test_spinning_circuits.py): within 20 %
     assert e["signal_error"]["value"] == pytest.approx(2.66e-4, rel=0.2)
+    _check_amplitude_estimation(e, 0.01)
+
+
+def _check_amplitude_estimation(e, eps):
+    """Fault-tolerant amplitude estimation of the worst component against outside references."""
+    ae = e["fault_tolerant"]["amplitude_estimation"]
+    assert e["fault_tolerant"]["parameter"] == e["near_term"]["worst_parameter"]
+    # Brassard, Hoyer, Mosca and Tapp, "Quantum amplitude amplification and estimation" (2002), Thm 12: M
+    # queries give |a~ - a| <= 2 pi sqrt(a(1-a)) / M + pi^2 / M^2 (a = 1/2 the worst case) with probability
+    # >= 8/pi^2; the target is the estimation share (0.70, the budget's stated split) of eps over 2R. M is the
+    # canonical algorithm's power of two: the smallest one meeting the target.
+    target = 0.70 * eps / (2 * e["near_term"]["component_range"])
+    bound = lambda m: math.pi / m + math.pi ** 2 / m ** 2
+    m = ae["queries"]
+    assert m & (m - 1) == 0 and bound(m) <= target < bound(m // 2)
+    # the median of k runs fails with probability <= delta = 0.05 (Hoeffding, common practice)
+    p = 8 / math.pi ** 2
+    assert ae["runs"] == math.ceil(math.log(1 / 0.05) / (2 * (p - 0.5) ** 2))
+    # every call of the gradient circuit carries at least its own rotations plus one per insertion point
+    assert ae["rotations_per_call"] >= e["gradient_circuit"]["rotations"] + e["trotter_steps"] + 1
+    # qiskit.synthesis.gridsynth_rz (Ross and Selinger, Quantum Inf. Comput. 16, 901 (2016)) at the stated
+    # rotation error: its T-count on generic angles within 15 % of the T per rotation used
+    from qiskit.synthesis import gridsynth_rz
+    counts = [gridsynth_rz(a, ae["rotation_error"]).count_ops().get("t", 0) for a in (0.3117, 1.0471, 2.2222)]
+    assert np.median(counts) == pytest.approx(ae["t_per_rotation"], rel=0.15)
+    assert ae["t_count"] >= ae["runs"] * m * ae["rotations_per_call"] * min(counts) * 0.8
+    assert ae["logical_qubits"] >= e["gradient_circuit"]["qubits"] + int(math.log2(m))
 
 
 def test_budget_text_and_refused_sweep(capsys, tmp_path):

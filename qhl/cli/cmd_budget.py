@@ -242,6 +242,11 @@ def _print_spinning(b):
         print(f"  worst gradient component {n['worst_parameter']}: range R = {n['component_range']:.4g}, shots "
               f"R^2/eps^2 {_fmt(n['shots_per_component_bound'])} (Hoeffding {_fmt(n['shots_per_component_hoeffding'])}; "
               f"bounds), compiled estimator's exact variance {_fmt(n['shots_per_component_circuit'])}")
+        ae = (e.get("fault_tolerant") or {}).get("amplitude_estimation")
+        if ae:
+            print(f"  fault-tolerant estimate of {e['fault_tolerant']['parameter']}: {_fmt(ae['queries'])} queries x "
+                  f"{ae['runs']} runs, T-count {_fmt(ae['t_count'])}, T-depth <= {_fmt(ae['t_depth_bound'])}, "
+                  f"{ae['logical_qubits']} logical qubits (estimate)")
         if e.get("signal_error") and e["signal_error"]["value"] is not None:
             print(f"  signal error at {e['trotter_steps']:,} steps: {e['signal_error']['value']:.2g} "
                   f"({e['signal_error']['method']})")
@@ -252,7 +257,7 @@ def _print_spinning_budget(b, bm):
     print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
           f"t = {b.time_s:g} s, eps = {b.precision:g} (per kHz)  [model-based estimates]")
     _print_spinning(b)
-    print("every experiment spins: shots from exact means, fault-tolerant amplitude estimation, Hessian, Fisher "
+    print("every experiment spins: shots from exact means, Hessian, Fisher "
           "and learning-run numbers are not covered for spinning experiments (top-level --json keys empty)")
     for note in b.notes:
         print(f"note: {note}")

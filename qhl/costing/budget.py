@@ -92,8 +92,10 @@ SPINNING_ASSUMPTION = (
     "|S_r - S_4r| 16/15 from the compiled circuits' unitaries (Richardson for an order-2 error; estimate); gradient "
     "circuit = signal circuit + one controlled-Pauli gadget (as for pulse sequences); near-term shots of the worst "
     "gradient component from the compiled estimator's range R = 2 sum_a |beta_a| kappa unit_hz (R^2/eps^2 and "
-    "Hoeffding, bounds). Not covered for spinning experiments: shots from exact means, fault-tolerant amplitude "
-    "estimation, Hessian/Fisher/learning-run numbers (the "
+    "Hoeffding, bounds); fault_tolerant.amplitude_estimation: amplitude estimation of that component on the gradient "
+    "circuit (qhl.costing.fault_tolerant.fixed_circuit_ft_counts: range R as above, r + 1 insertion points in the "
+    "time register weighted by |beta_a|, the pulse-sequence model; T-depth a bound). Not covered for spinning "
+    "experiments: shots from exact means, Hessian/Fisher/learning-run numbers (the "
     "top-level numbers cover the static experiments only; empty when every experiment spins)")
 # A spinning signal circuit is transpiled for exact counts up to this many product-formula slots.
 SPINNING_TRANSPILE_MAX_SLOTS = 4000
@@ -872,6 +874,13 @@ class BudgetModel:
                     "t_count": int(math.ceil((signal["rotations"] + 2 * w) * t_rot)),
                     "method": "signal circuit + one controlled-Pauli gadget (estimate)"}
         near = self._spinning_near_term(ex, evo, eps)
+        worst = near["worst_parameter"]
+        ft = {"amplitude_estimation": fixed_circuit_ft_counts(
+            near["component_range"], eps, int(r), gradient["rotations"], gradient["depth"],
+            len(self.model.parameter(worst).generator), self.model.n_spins, int(sum(self.model.observed)),
+            s.split_dict(), s.delta),
+            "parameter": worst,
+            "method": "estimate (the gradient circuit's counts as above; T-depth a bound, rotations in series)"}
         err = None
         if small and r <= SPINNING_ERROR_MAX_STEPS:
             value = known_error if known_error is not None else self._spinning_signal_error(ex, t, r, order)
@@ -883,7 +892,8 @@ class BudgetModel:
                 "trotter_steps": int(r), "step_s": t / r, "steps_rule": STEPS_RULE_TEXT, "steps_rotor_rule": int(rotor),
                 "steps_free_evolution": None if steps is None else int(steps),
                 "steps_from": source,
-                "signal_circuit": signal, "gradient_circuit": gradient, "near_term": near, "count_rule": rule,
+                "signal_circuit": signal, "gradient_circuit": gradient, "near_term": near, "fault_tolerant": ft,
+                "count_rule": rule,
                 "counts_method": method, "rotation_error": eps_rot, "t_per_rotation_rule": float(t_rot),
                 "signal_error": err}
 
