@@ -148,3 +148,14 @@ def dense_trotter_spinning_signal(cluster, model, experiment, time, steps, order
                 u = sla.expm(-0.5j * tau * h) @ u
     rho, det = initial_and_detection(model)
     return np.trace(det @ u @ rho @ u.conj().T) / np.trace(det @ rho)
+
+
+def dense_period_propagator(cluster, model, experiment, free_values=None, slices_per_period=400):
+    """U(T_R): the time-ordered propagator over one rotor period (midpoint slices), full space."""
+    values = all_values(model, free_values)
+    period = 1.0 / experiment.spinning_hz
+    edges = np.linspace(0.0, period, slices_per_period + 1)
+    u = np.eye(2 ** len(model.labels), dtype=complex)
+    for a, b in zip(edges[:-1], edges[1:]):
+        u = sla.expm(-1j * (b - a) * hamiltonian_at(cluster, model, experiment, values, 0.5 * (a + b))) @ u
+    return u

@@ -3,7 +3,7 @@ the learnability map of one cluster over a control axis (qhl.learning.design, qh
 
 import sys
 
-from .common import (NOISE, POINTS, PRECISION, SCALES, TIME_S, TROTTER_EPS, add_cluster_argument,
+from .common import (AXIS_VALUES, NOISE, POINTS, PRECISION, SCALES, TIME_S, TROTTER_EPS, add_cluster_argument,
                      add_report_argument, check_output_path, cluster_from_args, number_in, print_json,
                      report_if_asked)
 
@@ -49,10 +49,10 @@ def register(sub):
     p.add_argument("--show", type=_TIME_POINTS, default=20, metavar="N", help="candidates shown in the table "
                                                                              "(default 20)")
     m = p.add_argument_group("learnability map (--map)")
-    m.add_argument("--map", choices=("dipolar_scale",), metavar="AXIS",
-                   help="map learnability, ergodicity and costs over this control axis (dipolar_scale)")
-    m.add_argument("--values", type=SCALES, default="0:1:6", metavar="A:B:N",
-                   help="axis values (default 0:1:6)")
+    m.add_argument("--map", choices=("dipolar_scale", "spinning_hz"), metavar="AXIS",
+                   help="map learnability, ergodicity and costs over this control axis (dipolar_scale, or spinning_hz: a magic-angle rotor, 0 = static)")
+    m.add_argument("--values", type=AXIS_VALUES, default=None, metavar="A:B:N",
+                   help="axis values (default 0:1:6 for dipolar_scale, 0:40000:6 Hz for spinning_hz)")
     m.add_argument("--t-max", type=TIME_S, default=5e-4, metavar="SECONDS", help="FID length (default 5e-4 s)")
     m.add_argument("--map-points", type=POINTS, default=64, metavar="N", help="FID points (default 64)")
     m.add_argument("--map-noise", type=NOISE, default=1e-3, metavar="SIGMA", help="FID noise (default 1e-3)")
@@ -81,6 +81,16 @@ def _say(msg):
 def _grid(text):
     from ..survey.scan import parse_scale_range
     return () if text is None else parse_scale_range(text)
+
+
+def _axis_grid(text):
+    """'A:B:N' (checked by AXIS_VALUES) -> N values from A to B; one number -> (A,). Ranges per axis are
+    checked by the experiment (qhl.spins.cluster.check_experiment)."""
+    import numpy as np
+    parts = text.split(":")
+    if len(parts) == 1:
+        return (float(parts[0]),)
+    return tuple(float(x) for x in np.linspace(float(parts[0]), float(parts[1]), int(parts[2])))
 
 
 def run(args):
@@ -156,7 +166,8 @@ def _run_map(args, cluster):
     thresholds = {"max_median_crb_hz": args.max_median_crb, "max_softest_bound_hz": args.max_softest_bound,
                   "hard_seconds": args.hard_seconds, "hard_memory_bytes": args.hard_memory,
                   "max_t_count": args.max_t_count}
-    lmap = learnability_map(cluster, args.map, _grid(args.values), t_max_s=args.t_max, points=args.map_points,
+    values = args.values or ("0:40000:6" if args.map == "spinning_hz" else "0:1:6")
+    lmap = learnability_map(cluster, args.map, _axis_grid(values), t_max_s=args.t_max, points=args.map_points,
                             noise=args.map_noise, free=args.free, precision=args.precision, thresholds=thresholds,
                             progress=_say)
     rc = 130 if lmap.interrupted else 0
@@ -183,6 +194,9 @@ def _run_map(args, cluster):
           f"{th['hard_memory_bytes']:.3g} B; A affordable: T-count <= {th['max_t_count']:.3g}")
     print(f"window (learnable, classically hard, affordable): "
           f"{', '.join(f'{v:g}' for v in lmap.window) if lmap.window else 'none'}")
+    if any(p.level_kind != "eigenvalues of H" for p in lmap.points):
+        print("spinning: <r>, D2 of the Floquet quasi-energies and states of one rotor period (random reference: "
+              "CUE, <r> = 0.600, D2rand = D2_CUE); classical s: the static FID's cost (a lower bound)")
     if lmap.interrupted:
         print(f"interrupted: {len(lmap.points)} values done")
     if args.plot:

@@ -7,7 +7,8 @@ import sys
 
 import numpy as np
 
-from ..spins.cluster import MAX_DIPOLAR_SCALE, MAX_FIELD_TESLA, MAX_POINTS, MAX_SPINS, MAX_T_MAX_S, NOISE_RANGE
+from ..spins.cluster import (MAX_DIPOLAR_SCALE, MAX_FIELD_TESLA, MAX_POINTS, MAX_SPINNING_HZ, MAX_SPINS,
+                             MAX_T_MAX_S, NOISE_RANGE)
 from ..spins.cluster_file import demo_cluster, load_cluster
 from ..base.errors import QhlInputError
 
@@ -211,6 +212,7 @@ RADIUS = number_in(0, 1e3, low_open=True, name="radius")               # angstro
 SHIFT_SPREAD = number_in(0, 1e3, name="shift spread")                  # ppm (chemical shifts span < 1000 ppm)
 START_OFFSET = number_in(-10, 10, name="relative start offset")
 SCALES = range_text(10_000, -MAX_DIPOLAR_SCALE, MAX_DIPOLAR_SCALE)    # dipolar scales as in a cluster file
+AXIS_VALUES = range_text(10_000, -MAX_SPINNING_HZ, MAX_SPINNING_HZ)  # any control axis; checked per axis later
 WORKERS = number_in(0, 1024, integer=True, name="workers")
 TIMEOUT = number_in(0, 86400, low_open=True, name="timeout")           # seconds
 

@@ -64,7 +64,7 @@ from ..spins.cluster import refuse_steps
 from ..spins.spinning import spinning_factors
 from .divided_differences import first_divided_difference
 
-__all__ = ["spinning_signal", "spinning_gradient", "default_slices_per_period", "spinning_memory_bytes",
+__all__ = ["spinning_signal", "period_propagators", "spinning_gradient", "default_slices_per_period", "spinning_memory_bytes",
            "first_moments", "MAX_SLICE_ANGLE", "MIN_SLICES", "MAX_SLICES"]
 
 MAX_SLICE_ANGLE = 1.0        # radians: bound on the largest slice rotation tau ||H||_b (default K)
@@ -389,6 +389,22 @@ def _pair(dm, ca, cb):
 
 def _slices(engine, k):
     return k if k is not None else getattr(engine, "spinning_slices_per_period", None)
+
+
+@blas_limited
+def period_propagators(engine, experiment, free_values_hz=None, slices_per_period=None) -> list:
+    """One rotor period's propagator U_R (the Floquet operator) per magnetisation sector in use.
+
+    The same fourth-order slices as the signal (module docstring): U_R = P_2K, the product of the 2K
+    stage exponentials of one period, so U(q T_R) = U_R^q.
+
+    Returns:
+        list of (basis indices of the sector (int array), U_R (d, d) complex), sectors in the engine's order.
+    """
+    sf = spinning_factors(engine.model, experiment)
+    run = _Spinning(engine, experiment, np.array([sf.period_s]), free_values_hz,
+                    _slices(engine, slices_per_period), 0)
+    return [(engine.sectors[s], run.prop[s][2][0]) for s in run.sectors]
 
 
 @blas_limited

@@ -22,27 +22,42 @@ Ergodicity of H = 2 pi sum_n s_n h_n G_n (qhl.spins.model) at the given dipolar 
     eigenvector) has <IPR> = 3/(N+2), so D2_GOE(N) = ln((N+2)/3)/ln N = 1 - ln 3/ln N + O(1/N)
     (0.748 at N = 70). D2 is therefore reported beside D2_GOE at the same N (`d2_random`); only
     D2 below D2_GOE at the same N points to non-ergodic (multifractal) eigenstates.
+
+Spinning samples (H(t) periodic with the rotor period T_R): the levels are the quasi-energies of
+the Floquet operator U_R = U(T_R) (qhl.exact.spinning_engine.period_propagators), the phases
+phi_a of its eigenvalues exp(-i phi_a), per sector (flip-split as above). Phases live on a circle:
+the spacings are taken cyclically (the last one wraps through 2 pi). The random-matrix reference
+is the circular ensemble of the drive's symmetry class: H(t) real at every t, but the rotor factors
+s_n(t) of different pairs peak at different times, so no time t0 with H(t0 + t) = H(t0 - t) exists
+in general and U_R has no antiunitary symmetry: the circular unitary ensemble, whose <r> equals the
+GUE value 0.5996 at large N (Atas et al. 2013; L. D'Alessio and M. Rigol, Phys. Rev. X 4, 041048
+(2014), for periodically driven systems, from memory). The eigenvectors of U_R are complex: a
+random complex unit vector has <IPR> = 2/(N+1) (the fourth moment of a Haar vector; common
+practice), so D2_CUE(N) = ln((N+1)/2)/ln N is the reference there.
 """
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 import math
 import time
 
 import numpy as np
 from qiskit.quantum_info import SparsePauliOp
 
-from ..spins.cluster import Cluster, Experiment
+from ..spins.cluster import Cluster, Experiment, check_experiment
+from ..spins.spinning import MAGIC_ANGLE_DEG
 from ..exact.engine import ExactEngine
 from ..exact.likelihood import cramer_rao_bounds, fisher_information
 from ..spins.model import DEFAULT_FREE, build_model
 
-__all__ = ["POISSON_MEAN_R", "GOE_MEAN_R", "participation_ratio", "inverse_participation_ratio",
+__all__ = ["POISSON_MEAN_R", "GOE_MEAN_R", "GUE_MEAN_R", "participation_ratio", "circular_spacing_ratios",
+           "floquet_sector_levels", "random_complex_vector_d2", "inverse_participation_ratio",
            "fractal_dimension_d2", "random_vector_d2", "spacing_ratios", "mean_spacing_ratio", "symmetry_sector_levels",
            "Diagnostics", "diagnose"]
 
-# Atas, Bogomolny, Giraud, Roux, PRL 110, 084101 (2013): Poisson 2 ln 2 - 1, GOE 0.5307 (large N).
+# Atas, Bogomolny, Giraud, Roux, PRL 110, 084101 (2013): Poisson 2 ln 2 - 1, GOE 0.5307, GUE 0.5996 (large N).
 POISSON_MEAN_R = 2 * math.log(2) - 1
 GOE_MEAN_R = 0.5307
+GUE_MEAN_R = 0.5996
 
 
 def participation_ratio(vectors) -> np.ndarray:
@@ -83,6 +98,27 @@ def random_vector_d2(dimension) -> np.ndarray:
     return np.log((n + 2) / 3) / np.log(n)
 
 
+def random_complex_vector_d2(dimension) -> np.ndarray:
+    """D2_CUE(N) = ln((N+1)/2)/ln N: D2 of the mean IPR 2/(N+1) of random complex unit vectors (N > 1).
+
+    Example:
+        >>> round(float(random_complex_vector_d2(70)), 3)
+        0.839
+    """
+    n = np.asarray(dimension, float)
+    return np.log((n + 1) / 2) / np.log(n)
+
+
+def circular_spacing_ratios(phases, degeneracy_tol: float = 0.0) -> np.ndarray:
+    """spacing_ratios of phases on the circle: sorted mod 2 pi, the last spacing wrapping through 2 pi
+    (N phases give N ratios; fewer than 3 give none)."""
+    ph = np.sort(np.mod(np.asarray(phases, float).ravel(), 2 * np.pi))
+    if ph.size < 3:
+        return np.zeros(0)
+    ext = np.concatenate([ph, ph[:2] + 2 * np.pi])
+    return spacing_ratios(ext, degeneracy_tol)
+
+
 def spacing_ratios(levels, degeneracy_tol: float = 0.0) -> np.ndarray:
     """Ratios r_k = min(s_k, s_k+1) / max(s_k, s_k+1) of consecutive spacings of sorted `levels`.
 
@@ -113,6 +149,46 @@ def _flip_symmetric(hamiltonian: SparsePauliOp) -> bool:
     return bool(np.all(np.abs(diff.coeffs) <= 1e-12 * scale))
 
 
+def _flip_bases(ix, mask):
+    """The flip-even and flip-odd bases (d, d/2) of a sector mapped onto itself by X...X, else None."""
+    partner = ix ^ mask
+    order = np.argsort(ix)
+    j = order[np.clip(np.searchsorted(ix, partner, sorter=order), 0, len(ix) - 1)]
+    if len(ix) < 2 or not np.array_equal(ix[j], partner):
+        return None
+    lo = np.flatnonzero(np.arange(len(ix)) < j)          # one index of each flip pair
+    out = []
+    for sign in (1.0, -1.0):
+        basis = np.zeros((len(ix), len(lo)))
+        basis[lo, np.arange(len(lo))] = 1 / np.sqrt(2)
+        basis[j[lo], np.arange(len(lo))] += sign / np.sqrt(2)
+        out.append(basis)
+    return out
+
+
+def floquet_sector_levels(engine: ExactEngine, experiment: Experiment, free_values_hz=None) -> list:
+    """Quasi-energy phases and Floquet states of a spinning experiment (module docstring), per sector.
+
+    Returns:
+        list of (phases (d',) in [0, 2 pi), eigenvectors (d, d') in the sector's computational basis),
+        one per resolved sector (flip-split where H(t) commutes with X...X at every time).
+    """
+    from ..exact.spinning_engine import period_propagators
+    model = engine.model if free_values_hz is None else engine.model.with_values(free_values_hz)
+    static = replace(experiment, spinning_hz=0.0)
+    flip = _flip_symmetric(model.hamiltonian(static))      # s_n(t) multiplies flip-even dipolar terms only
+    mask = (1 << engine.model.n_spins) - 1
+    out = []
+    for ix, u in period_propagators(engine, experiment, free_values_hz):
+        bases = _flip_bases(ix, mask) if flip else None
+        for basis in ([None] if bases is None else bases):
+            w = u if basis is None else basis.T @ u @ basis
+            lam, vec = np.linalg.eig(w)
+            vec = vec if basis is None else basis @ vec
+            out.append((np.mod(-np.angle(lam), 2 * np.pi), vec / np.linalg.norm(vec, axis=0)))
+    return out
+
+
 def symmetry_sector_levels(engine: ExactEngine, experiment: Experiment, free_values_hz=None) -> list:
     """Levels (rad/s) per symmetry sector: magnetisation sectors, flip-split where H allows.
 
@@ -125,19 +201,12 @@ def symmetry_sector_levels(engine: ExactEngine, experiment: Experiment, free_val
     mask = (1 << engine.model.n_spins) - 1
     out = []
     for ix, e, v in zip(engine.sectors, spec.energies, spec.vectors):
-        partner = ix ^ mask
-        order = np.argsort(ix)
-        j = order[np.clip(np.searchsorted(ix, partner, sorter=order), 0, len(ix) - 1)]
-        if not flip or len(ix) < 2 or not np.array_equal(ix[j], partner):
+        bases = _flip_bases(ix, mask) if flip else None
+        if bases is None:
             out.append(np.asarray(e))
             continue
         h = (v * e[None, :]) @ v.conj().T                    # the sector block of H
-        lo = np.flatnonzero(np.arange(len(ix)) < j)          # one index of each flip pair
-        d = len(ix)
-        for sign in (1.0, -1.0):
-            basis = np.zeros((d, len(lo)))
-            basis[lo, np.arange(len(lo))] = 1 / np.sqrt(2)
-            basis[j[lo], np.arange(len(lo))] += sign / np.sqrt(2)
+        for basis in bases:
             out.append(np.linalg.eigvalsh(basis.T @ h @ basis))
     return out
 
@@ -154,7 +223,10 @@ class Diagnostics:
         sector_mean_r: <r> per resolved symmetry sector (nan for sectors without a ratio).
         mean_r: <r> over all ratios of all sectors pooled; n_ratios: how many.
         ipr, d2: per eigenstate (states of 1-dimensional sectors are left out of d2).
-        d2_random: D2_GOE of a random real vector at each d2 state's sector dimension.
+        d2_random: D2_GOE of a random real vector at each d2 state's sector dimension (D2_CUE of a random
+            complex vector for Floquet states).
+        spinning_hz: the rotor rate (0: static); level_kind: 'eigenvalues of H' or 'Floquet quasi-energies';
+        mean_r_random: the random-matrix <r> of that kind (GOE 0.5307 or CUE = GUE 0.5996).
     """
 
     cluster: str
@@ -173,6 +245,9 @@ class Diagnostics:
     d2: np.ndarray
     seconds: float
     d2_random: np.ndarray = None
+    spinning_hz: float = 0.0
+    level_kind: str = "eigenvalues of H"
+    mean_r_random: float = GOE_MEAN_R
 
     @property
     def median_crb_hz(self) -> float:
@@ -196,6 +271,8 @@ class Diagnostics:
             "mean_d2": float(np.mean(self.d2)) if self.d2.size else float("nan"),
             "mean_d2_random": float(np.mean(self.d2_random)) if self.d2_random is not None and self.d2_random.size
             else float("nan"),
+            "level_kind": self.level_kind,
+            "mean_r_random": self.mean_r_random,
             "fisher_eigenvalues": tuple(float(x) for x in ev),
             "fisher_participation": tuple(float(x) for x in self.fisher_participation),
             "sector_mean_r": tuple(float(x) for x in self.sector_mean_r),
@@ -203,18 +280,22 @@ class Diagnostics:
 
 
 def diagnose(cluster: Cluster, dipolar_scale: float, *, t_max_s: float = 5e-4, points: int = 64,
-             noise: float = 1e-3, free=DEFAULT_FREE) -> Diagnostics:
+             noise: float = 1e-3, free=DEFAULT_FREE, spinning_hz: float = 0.0,
+             spinning_angle_deg: float = MAGIC_ANGLE_DEG) -> Diagnostics:
     """Fisher spectrum, level statistics and eigenstate spreading of `cluster` at `dipolar_scale`.
 
     The Fisher information is that of one FID, points equally spaced on [0, t_max_s], with
     noise `noise` per Re/Im part (relative to S(0) = 1), at the cluster's own parameter values;
-    the cluster's experiments are not used.
+    the cluster's experiments are not used. With spinning_hz > 0 the sample spins (the exact
+    spinning engine gives the Fisher information) and the levels are the Floquet quasi-energies of
+    one rotor period (module docstring).
 
     Args:
         cluster: the spin cluster.
         dipolar_scale: factor on every dipolar term (0 = fully decoupled).
         t_max_s, points, noise: the FID.
         free: glob patterns of the free parameters.
+        spinning_hz, spinning_angle_deg: the rotor (0: static).
 
     Returns:
         Diagnostics.
@@ -232,9 +313,12 @@ def diagnose(cluster: Cluster, dipolar_scale: float, *, t_max_s: float = 5e-4, p
     model = build_model(cluster).with_free(free)
     engine = ExactEngine(model)
     ex = Experiment(name="scan", t_max_s=float(t_max_s), points=int(points), dipolar_scale=float(dipolar_scale),
-                    noise=float(noise))
+                    noise=float(noise), spinning_hz=float(spinning_hz), spinning_angle_deg=float(spinning_angle_deg))
+    check_experiment(ex, "diagnose")
     fisher = fisher_information(engine, [ex])
     crb, evals, evecs, bad = cramer_rao_bounds(fisher)
+    if ex.spinning_hz > 0:
+        return _floquet_diagnostics(cluster, engine, ex, model, evals, evecs, crb, bad, start)
     spec = engine.spectrum(ex)
     tol = spec.tol
     levels = symmetry_sector_levels(engine, ex)
@@ -255,3 +339,29 @@ def diagnose(cluster: Cluster, dipolar_scale: float, *, t_max_s: float = 5e-4, p
         mean_r=float(np.mean(pooled)) if pooled.size else float("nan"), n_ratios=int(pooled.size),
         ipr=np.concatenate(ipr), d2=np.concatenate(d2) if d2 else np.zeros(0),
         seconds=time.perf_counter() - start, d2_random=np.concatenate(d2_random) if d2_random else np.zeros(0))
+
+
+FLOQUET_DEGENERACY = 1e-10        # rad: phase spacings below this count as degenerate (no ratio)
+
+
+def _floquet_diagnostics(cluster, engine, ex, model, evals, evecs, crb, bad, start):
+    """Diagnostics of a spinning experiment: level statistics of the Floquet quasi-energies."""
+    levels = floquet_sector_levels(engine, ex)
+    ratios = [circular_spacing_ratios(ph, FLOQUET_DEGENERACY) for ph, _ in levels]
+    sector_r = np.array([float(np.mean(r)) if r.size else np.nan for r in ratios])
+    pooled = np.concatenate(ratios) if ratios else np.zeros(0)
+    ipr, d2, d2_random = [], [], []
+    for _, v in levels:
+        q = inverse_participation_ratio(v)
+        ipr.append(q)
+        if v.shape[0] > 1:
+            d2.append(fractal_dimension_d2(q, v.shape[0]))
+            d2_random.append(np.full(q.shape, random_complex_vector_d2(v.shape[0])))
+    return Diagnostics(
+        cluster=cluster.name, n_spins=cluster.n_spins, dipolar_scale=float(ex.dipolar_scale), free=model.free,
+        fisher_eigenvalues=evals, fisher_eigenvectors=evecs, fisher_participation=participation_ratio(evecs),
+        crb_hz=crb, unlearnable=bad, sector_mean_r=sector_r,
+        mean_r=float(np.mean(pooled)) if pooled.size else float("nan"), n_ratios=int(pooled.size),
+        ipr=np.concatenate(ipr), d2=np.concatenate(d2) if d2 else np.zeros(0),
+        seconds=time.perf_counter() - start, d2_random=np.concatenate(d2_random) if d2_random else np.zeros(0),
+        spinning_hz=float(ex.spinning_hz), level_kind="Floquet quasi-energies", mean_r_random=GUE_MEAN_R)

@@ -1,28 +1,34 @@
 """Learnability map: one cluster over a control axis, with learnability, ergodicity and both costs.
 
-At each value of the control axis one experiment is built (`experiment_at`; today the axis
-'dipolar_scale' of a free-induction decay with t_max_s, points and noise), and four things are
-computed for it:
+At each value of the control axis one experiment is built (`experiment_at`: the axis
+'dipolar_scale' of a free-induction decay with t_max_s, points and noise, or 'spinning_hz', the
+same FID of a sample spinning at the magic angle, 0 = static), and four things are computed for it:
     learnability   smallest Fisher eigenvalue (1/Hz^2) and median Cramer-Rao bound (Hz) of the
                    free parameters (qhl.survey.diagnostics.diagnose: the Fisher information of
                    qhl.exact.likelihood);
     ergodicity     mean spacing ratio <r> (Poisson 0.3863, GOE 0.5307) and the mean D2 of the
                    eigenstates beside the random-vector value D2_GOE at the same dimensions
-                   (qhl.survey.diagnostics);
+                   (qhl.survey.diagnostics); for a spinning sample the same of the Floquet
+                   quasi-energies and states of one rotor period, beside the circular unitary
+                   ensemble's values (<r> = GUE 0.5996, D2_CUE) (`mean_r_random`, `level_kind`);
     classical cost the best classical route's time and memory for one signal
                    (qhl.costing.classical_cost: estimates from rates measured on this machine);
+                   for a spinning sample that of the same static FID, a lower bound (the time
+                   dependence only adds work: slices per rotor period);
     quantum cost   the fault-tolerant T-count of estimating the worst gradient component to
                    `precision` (per unit_hz) at t = t_max_s, and the near-term shots of a whole
                    learning run (qhl.costing.budget.BudgetModel; model-based, bound or exact tier
-                   as that module says).
+                   as that module says); for a spinning sample the T-count of the budget's
+                   'spinning' entry (amplitude estimation of its worst gradient component on the
+                   time-dependent Trotter circuit) and no learning-run shots (nan: not covered).
 The window (thresholds are arguments, defaults stated in WINDOW_DEFAULTS):
     learnable        median CRB <= max_median_crb_hz and softest bound 1/sqrt(lambda_min) <= max_softest_bound_hz;
     classically hard best classical route above hard_seconds or hard_memory_bytes
                      (defaults: a day or 1 TiB, as qhl.costing.classical_cost.beyond_reach);
     affordable       fault-tolerant T-count <= max_t_count.
 
-A new control axis (a spinning rate, a sequence cycle time) is one more branch of
-`experiment_at` (and a diagnose that takes the Experiment): nothing else here looks at the axis.
+A new control axis (a sequence cycle time) is one more branch of `experiment_at` (and of the
+diagnose call in `_map_points`).
 """
 
 from dataclasses import dataclass, field, replace
@@ -35,12 +41,12 @@ from ..base.errors import QhlInputError
 from ..costing.budget import BudgetModel, BudgetSettings
 from ..costing.classical_cost import classical_cost
 from ..spins.cluster import Experiment, check_experiment
-from .diagnostics import GOE_MEAN_R, POISSON_MEAN_R, diagnose
+from .diagnostics import GOE_MEAN_R, GUE_MEAN_R, POISSON_MEAN_R, diagnose
 
 __all__ = ["AXES", "WINDOW_DEFAULTS", "MapPoint", "LearnabilityMap", "experiment_at", "learnability_map",
            "plot_learnability_map"]
 
-AXES = ("dipolar_scale",)
+AXES = ("dipolar_scale", "spinning_hz")
 WINDOW_DEFAULTS = {
     "max_median_crb_hz": 10.0,        # a choice: bounds of 10 Hz resolve couplings of a few hundred Hz
     "max_softest_bound_hz": 100.0,    # a choice: no parameter combination worse than 100 Hz
@@ -55,6 +61,11 @@ def experiment_at(axis: str, value: float, t_max_s: float, points: int, noise: f
     if axis == "dipolar_scale":
         ex = Experiment(name=f"map_{axis}_{value:.4g}", t_max_s=float(t_max_s), points=int(points),
                         dipolar_scale=float(value), noise=float(noise))
+        check_experiment(ex, "map")
+        return ex
+    if axis == "spinning_hz":
+        ex = Experiment(name=f"map_{axis}_{value:.4g}", t_max_s=float(t_max_s), points=int(points),
+                        noise=float(noise), spinning_hz=float(value))
         check_experiment(ex, "map")
         return ex
     raise QhlInputError(f"unknown control axis {axis!r}: expected one of {', '.join(AXES)}", key="map")
@@ -79,6 +90,8 @@ class MapPoint:
     learnable: bool
     classically_hard: bool
     affordable: bool
+    mean_r_random: float = GOE_MEAN_R
+    level_kind: str = "eigenvalues of H"
 
     @property
     def window(self) -> bool:
@@ -113,6 +126,7 @@ class LearnabilityMap:
         return {"cluster": self.cluster, "axis": self.axis, "experiment": self.experiment,
                 "thresholds": self.thresholds, "points": [p.to_json() for p in self.points],
                 "window": self.window, "poisson_mean_r": POISSON_MEAN_R, "goe_mean_r": GOE_MEAN_R,
+                "gue_mean_r": GUE_MEAN_R,
                 "seconds": self.seconds, "assumptions": self.assumptions, "interrupted": self.interrupted}
 
 
@@ -164,7 +178,8 @@ def learnability_map(cluster, axis: str = "dipolar_scale", values=(0.0, 0.2, 0.4
     assumptions = {
         "learnability": f"one FID of {points} points over {t_max_s:g} s, noise {noise:g} per Re/Im part "
                         "(qhl.survey.diagnostics.diagnose)",
-        "classical": "qhl.costing.classical_cost: best route's time and memory (estimates from measured rates)",
+        "classical": "qhl.costing.classical_cost: best route's time and memory (estimates from measured rates); "
+                     "a spinning sample: the static FID's cost, a lower bound",
         "quantum": f"qhl.costing.budget: fault-tolerant T-count of the worst gradient component at eps "
                    f"{precision:g} per kHz, t = {t_max_s:g} s; near-term shots of a learning run (model-based)",
     }
@@ -177,22 +192,27 @@ def _map_points(cluster, axis, vals, exps, t_max_s, points, noise, free, precisi
     """Append one MapPoint per value to `out` (so an interrupted map keeps the finished ones)."""
     for i, (v, ex) in enumerate(zip(vals, exps)):
         say(f"{axis} = {v:g} ({i + 1}/{len(vals)}, {_time.perf_counter() - start:.0f} s): Fisher and levels")
-        d = diagnose(cluster, ex.dipolar_scale, t_max_s=t_max_s, points=points, noise=noise, free=free)
+        d = diagnose(cluster, ex.dipolar_scale, t_max_s=t_max_s, points=points, noise=noise, free=free,
+                     spinning_hz=ex.spinning_hz)
         s = d.summary()
         lam = s["fisher_min_eigenvalue"]
         softest = 1.0 / math.sqrt(lam) if lam > 0 else math.inf
         one = replace(cluster, experiments=(ex,))
         say(f"{axis} = {v:g}: classical cost")
-        cc = classical_cost(one)
+        cc = classical_cost(replace(one, experiments=(replace(ex, spinning_hz=0.0),)))   # spinning: a lower bound
         say(f"{axis} = {v:g}: quantum budget")
         b = BudgetModel(one, free=free, settings=settings).budget(ex.t_max_s, precision)
-        t_count = float(b.fault_tolerant["t_count"])
-        shots = float(b.near_term.get("shots_per_learning_run", math.nan))
+        if ex.spinning_hz > 0:
+            t_count = float(b.spinning[0]["fault_tolerant"]["amplitude_estimation"]["t_count"])
+            shots = math.nan                      # learning-run shots: not covered for spinning samples
+        else:
+            t_count = float(b.fault_tolerant["t_count"])
+            shots = float(b.near_term.get("shots_per_learning_run", math.nan))
         learnable = bool(s["median_crb_hz"] <= th["max_median_crb_hz"] and softest <= th["max_softest_bound_hz"])
         hard = bool(cc.seconds > th["hard_seconds"] or cc.memory_bytes > th["hard_memory_bytes"])
         out.append(MapPoint(v, lam, s["median_crb_hz"], softest, s["mean_r"], s["mean_d2"], s["mean_d2_random"],
                             cc.method, float(cc.seconds), float(cc.memory_bytes), t_count, shots, learnable,
-                            hard, bool(t_count <= th["max_t_count"])))
+                            hard, bool(t_count <= th["max_t_count"]), float(s["mean_r_random"]), s["level_kind"]))
 
 
 def plot_learnability_map(lmap: LearnabilityMap, path):
@@ -220,6 +240,8 @@ def plot_learnability_map(lmap: LearnabilityMap, path):
     ax.plot(x, [p.mean_r for p in P], "o-", label="<r>")
     ax.axhline(POISSON_MEAN_R, color="gray", lw=0.8, ls=":", label="Poisson 0.386")
     ax.axhline(GOE_MEAN_R, color="gray", lw=0.8, ls="--", label="GOE 0.531")
+    if any(p.level_kind != "eigenvalues of H" for p in P):
+        ax.axhline(GUE_MEAN_R, color="gray", lw=0.8, ls="-.", label="CUE (GUE) 0.600: Floquet levels")
     ax.plot(x, [p.mean_d2 for p in P], "s-", label="mean D2")
     ax.plot(x, [p.mean_d2_random for p in P], "s:", label="D2 of random vectors")
     ax.set_ylabel("ergodicity")
