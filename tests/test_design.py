@@ -178,3 +178,21 @@ def test_sequence_candidate_costs_its_delays_and_pulses(engine):
     np.testing.assert_allclose(tc.per_time(echo, t), tc.per_time(fid, t + 2 * tau), rtol=1e-12)
     assert np.all(tc.per_time(odd, t) > tc.per_time(echo, t))
     assert tc.per_time(echo, t)[0] > 0
+
+
+def test_spinning_candidate_costs_at_least_the_static_one_and_follows_the_rotor_rule(engine):
+    # common practice (the budget's spinning rule): a spinning circuit takes at least the static circuit's
+    # steps with couplings at their largest |s_n(t)| (>= the static ones) and at least 8 steps per rotor
+    # period; at 1 MHz the rotor rule dominates, so doubling t doubles the rotations (the T per rotation
+    # then grows only by the log of the finer synthesis error: ratio in [2, 2.2])
+    tc = TCostModel(engine.model)
+    fid = demo_cluster().experiments[0]
+    t = np.array([0.0, 1e-5, 2e-5, 5e-5])
+    for rate in (12.5e3, 1e6):
+        spin = dataclasses.replace(fid, name="mas", spinning_hz=rate)
+        got = tc.per_time(spin, t)
+        assert got[0] == 0.0
+        assert np.all(got[1:] >= tc.per_time(fid, t)[1:])
+    short = np.array([1e-6, 2e-6])                  # 8 and 16 rotor-rule steps at 1 MHz
+    fast = tc.per_time(dataclasses.replace(fid, name="mas", spinning_hz=1e6), short)
+    assert 2.0 <= fast[1] / fast[0] <= 2.2

@@ -43,6 +43,7 @@ from ..costing.synthesis import t_count_per_rotation
 from ..costing.trotter_cost import ORDERS, trotter_model
 from ..exact.likelihood import fisher_information
 from ..spins.cluster import Experiment, check_experiment
+from ..spins.spinning import is_spinning, spinning_factors
 
 __all__ = ["Candidate", "KINDS", "MAX_CANDIDATES", "build_candidates", "candidate_fishers", "TCostModel", "COST_ASSUMPTIONS",
            "select_parameters"]
@@ -57,6 +58,11 @@ COST_ASSUMPTIONS = {
     "rotations": "marginal rotations per Trotter step of the transpiled step circuit (qhl.costing.trotter_cost)",
     "synthesis": "each rotation to eps_S / (r x rotations per step), T per rotation by the Ross-Selinger rule "
                  "(qhl.costing.synthesis.t_count_per_rotation)",
+    "spinning": "a spinning candidate: orders 1 and 2 (the circuits qhl.circuits.spinning_circuits builds), "
+                "r = max(the commutator-bound steps of H with each coupling h_n times max(1, s_b,n), s_b,n = "
+                "the sum of |Fourier coefficients| of s_n >= max_t |s_n(t)|, the rotor rule ceil(8 nu_r t)); a "
+                "step has a static step's rotations (other angles); the Magnus error of the time dependence is "
+                "covered by the rotor rule, not bounded",
     "clifford": "input ensemble and measurement are Clifford (no T gates)",
     "shot": "one shot of a candidate = one run of each of its times' circuits",
 }
@@ -227,9 +233,14 @@ class TCostModel:
     def _trotter(self, experiment):
         """(TrotterModel, {order: rotations per step}) of the experiment's Hamiltonian, cached per dipolar
         scale; gates per step are shared by scales with the same Pauli terms (only the angles differ)."""
-        key = float(experiment.dipolar_scale)
+        spin = is_spinning(experiment)
+        key = (float(experiment.dipolar_scale), float(experiment.spinning_angle_deg) if spin else None)
         if key not in self._models:
-            tm = trotter_model(self.model, replace(experiment, steps=()))   # delays: the same Hamiltonian
+            model = self.model
+            if spin:               # every coupling at its largest |s_n(t)| (COST_ASSUMPTIONS["spinning"])
+                bound = np.abs(spinning_factors(model, experiment).fourier).sum(axis=1)
+                model = model.with_values(model.all_values_hz() * np.maximum(bound, 1.0), free_only=False)
+            tm = trotter_model(model, replace(experiment, steps=(), spinning_hz=0.0))   # delays: the same H
             labels = tuple(sorted(tm.hamiltonian.simplify(atol=0).paulis.to_labels()))
             if labels not in self._counts:
                 self._counts[labels] = {p: float(tm.rotations_per_step(p)) for p in ORDERS}
@@ -243,8 +254,14 @@ class TCostModel:
         delays, pulse_rot = self._preparation(experiment)
         evolution = t + delays
         best = np.full(t.shape, np.inf)
-        for p in ORDERS:
-            n_rot = tm.steps(p, np.maximum(evolution, 1e-300), self.trotter_eps) * rotations[p] + pulse_rot
+        orders, rotor = ORDERS, np.zeros(t.shape)
+        if is_spinning(experiment):                  # COST_ASSUMPTIONS["spinning"]
+            from ..circuits.spinning_circuits import STEPS_PER_ROTOR_PERIOD
+            orders = (1, 2)
+            rotor = np.ceil(STEPS_PER_ROTOR_PERIOD * experiment.spinning_hz * evolution * (1 - 1e-12))
+        for p in orders:
+            r = np.maximum(tm.steps(p, np.maximum(evolution, 1e-300), self.trotter_eps), rotor)
+            n_rot = r * rotations[p] + pulse_rot
             best = np.minimum(best, n_rot * t_count_per_rotation(self.synthesis_eps / np.maximum(n_rot, 1)))
         return np.where((evolution > 0) | (pulse_rot > 0), best, 0.0)
 
