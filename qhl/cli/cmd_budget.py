@@ -244,7 +244,8 @@ def _print_spinning(b):
               f"bounds), compiled estimator's exact variance {_fmt(n['shots_per_component_circuit'])}")
         ae = (e.get("fault_tolerant") or {}).get("amplitude_estimation")
         if ae:
-            print(f"  fault-tolerant estimate of {e['fault_tolerant']['parameter']}: {_fmt(ae['queries'])} queries x "
+            print(f"  fault-tolerant estimate of {e['fault_tolerant']['parameter']} ({_fmt(e['fault_tolerant']['trotter_steps'])} "
+                  f"steps: {e['fault_tolerant']['steps_from']}): {_fmt(ae['queries'])} queries x "
                   f"{ae['runs']} runs, T-count {_fmt(ae['t_count'])}, T-depth <= {_fmt(ae['t_depth_bound'])}, "
                   f"{ae['logical_qubits']} logical qubits (estimate)")
         if e.get("signal_error") and e["signal_error"]["value"] is not None:

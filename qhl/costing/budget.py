@@ -44,7 +44,7 @@ from . import coherent_input, family_variance, learning_run, noisy_shots, trotte
 from ..circuits import signal_trotter
 from .fault_tolerant import DEFAULT_SPLIT, choose_order, fixed_circuit_ft_counts, ft_cost_arrays
 from .near_term import near_term_model, sequence_gradient_range, total_delay_s
-from .trotter_cost import ORDERS, empirical_flops, empirical_trotter_steps, trotter_model
+from .trotter_cost import ORDERS, empirical_flops, empirical_trotter_steps, rotor_bound_model, trotter_model
 
 __all__ = ["BudgetSettings", "BudgetModel", "Budget", "BudgetSweep", "all_assumptions", "fit_exponents",
            "EXPECTED_EXPONENTS", "exact_engine_plan", "bound_tier_memory_bytes", "TIERS"]
@@ -92,14 +92,21 @@ SPINNING_ASSUMPTION = (
     "|S_r - S_4r| 16/15 from the compiled circuits' unitaries (Richardson for an order-2 error; estimate); gradient "
     "circuit = signal circuit + one controlled-Pauli gadget (as for pulse sequences); near-term shots of the worst "
     "gradient component from the compiled estimator's range R = 2 sum_a |beta_a| kappa unit_hz (R^2/eps^2 and "
-    "Hoeffding, bounds); fault_tolerant.amplitude_estimation: amplitude estimation of that component on the gradient "
-    "circuit (qhl.costing.fault_tolerant.fixed_circuit_ft_counts: range R as above, r + 1 insertion points in the "
-    "time register weighted by |beta_a|, the pulse-sequence model; T-depth a bound). Not covered for spinning "
+    "Hoeffding, bounds); above SPINNING_ERROR_MAX_SPINS spins without a free-evolution budget, r is at least the "
+    "commutator-bound steps (qhl.costing.trotter_cost.rotor_bound_model: every coupling at its largest rotor factor) "
+    "with ||U_r - U|| <= Trotter share x eps / (2 kappa) (bound); fault_tolerant.amplitude_estimation: amplitude "
+    "estimation of that component on the gradient circuit (qhl.costing.fault_tolerant.fixed_circuit_ft_counts: range "
+    "R as above, r' + 1 insertion points in the time register weighted by |beta_a|, the pulse-sequence model; "
+    "r' = max(r, the rotor-bound model's steps at ||A~ - A|| <= e_T / (8R)), the circuit's rotations and depth "
+    "scaled by r'/r; T-depth a bound). Not covered for spinning "
     "experiments: shots from exact means, Hessian/Fisher/learning-run numbers (the "
     "top-level numbers cover the static experiments only; empty when every experiment spins)")
 # A spinning signal circuit is transpiled for exact counts up to this many product-formula slots.
 SPINNING_TRANSPILE_MAX_SLOTS = 4000
 SPINNING_ERROR_MAX_SPINS = 6
+# The slots of every step (SpinningEvolution) are listed up to this many blocks in all; above, counts by the rule.
+SPINNING_SLOTS_MAX = 200_000
+SPINNING_RANGE_GRID = 2048
 SPINNING_ERROR_MAX_STEPS = 1024
 HESSIAN_FLOPS_PER_ELEMENT = 5000.0
 # The compiled sequence estimator's exact variance is computed when its circuit has at most this many Trotter
@@ -841,6 +848,9 @@ class BudgetModel:
         small = self.model.n_spins <= SPINNING_ERROR_MAX_SPINS
         target = float(s.split_dict()["trotter"]) * eps
         known_error = None
+        kappa = shots.observable_factor(int(sum(bool(o) for o in self.model.observed)))
+        bound_model = rotor_bound_model(self.model, ex)
+        r_bound = int(bound_model.steps(order, t, target / (2 * kappa)))
         if steps is None and small:
             # no free-evolution budget to follow: double r until the Richardson signal error is within the
             # Trotter share of eps (the rotor rule alone does not see the couplings' own Trotter error)
@@ -849,9 +859,22 @@ class BudgetModel:
                 r *= 2
                 source = "signal error (Richardson) within the Trotter share"
                 known_error = self._spinning_signal_error(ex, t, r, order)
-        evo = spinning_evolution(self.model, ex, t, r, order)
-        rule = spinning_counts_rule(evo)
-        n_blocks = sum(len(evo.terms.groups[sl.group].blocks) for sl in evo.slots)
+        elif steps is None and r_bound > r:
+            # larger clusters: no Richardson estimate; the commutator bound of H with every coupling at its
+            # largest rotor factor, ||U_r - U|| <= target / (2 kappa) (a signal of range kappa moves by <= 2 kappa
+            # times the operator error)
+            r = r_bound
+            source = "commutator bound (couplings at their largest rotor factor), signal within the Trotter share"
+        from ..circuits.step_counts import evolution_counts_rule
+        from ..circuits.trotter import trotter_terms
+        terms = trotter_terms(self.model, None)
+        per_step_blocks = sum(len(g.blocks) for g in terms.groups)
+        # the slots of every step are built only where they stay small; above, the count rule needs the terms
+        # alone and the near-term range its integral bound (_spinning_near_term)
+        evo = spinning_evolution(self.model, ex, t, r, order) if r * per_step_blocks <= SPINNING_SLOTS_MAX else None
+        rule = evolution_counts_rule(terms, order, r) if evo is None else spinning_counts_rule(evo)
+        n_blocks = r * per_step_blocks if evo is None else \
+            sum(len(evo.terms.groups[sl.group].blocks) for sl in evo.slots)
         counts = None
         if self.model.n_spins <= SYNTHESIS_MAX_SPINS and n_blocks <= SPINNING_TRANSPILE_MAX_SLOTS:
             fam = spinning_signal_circuit(self.model, ex, t, r, order)
@@ -873,14 +896,24 @@ class BudgetModel:
                     "rotations": signal["rotations"] + 2 * w, "depth": signal["depth"] + 3 * w + 4,
                     "t_count": int(math.ceil((signal["rotations"] + 2 * w) * t_rot)),
                     "method": "signal circuit + one controlled-Pauli gadget (estimate)"}
-        near = self._spinning_near_term(ex, evo, eps)
+        near = self._spinning_near_term(ex, evo, eps, t)
         worst = near["worst_parameter"]
-        ft = {"amplitude_estimation": fixed_circuit_ft_counts(
-            near["component_range"], eps, int(r), gradient["rotations"], gradient["depth"],
-            len(self.model.parameter(worst).generator), self.model.n_spins, int(sum(self.model.observed)),
-            s.split_dict(), s.delta),
-            "parameter": worst,
-            "method": "estimate (the gradient circuit's counts as above; T-depth a bound, rotations in series)"}
+        # amplitude estimation needs ||A~ - A|| <= e_T / (8R) (qhl.costing.fault_tolerant): at least the
+        # commutator-bound steps of the rotor-bound Hamiltonian there; the circuit's counts scale with r
+        r_ft = max(int(r), int(bound_model.steps(order, t, float(s.split_dict()["trotter"]) * eps
+                                                 / (8 * max(near["component_range"], 1e-300)))))
+        grow = r_ft / r
+        ft = {"trotter_steps": r_ft,
+              "steps_from": "commutator bound, ||A~ - A|| <= e_T / (8R) (couplings at their largest rotor factor)"
+              if r_ft > r else "the signal circuit's steps",
+              "amplitude_estimation": fixed_circuit_ft_counts(
+                  near["component_range"], eps, r_ft, int(math.ceil(signal["rotations"] * grow)) + 2 * w,
+                  int(math.ceil(signal["depth"] * grow)) + 3 * w + 4,
+                  len(self.model.parameter(worst).generator), self.model.n_spins, int(sum(self.model.observed)),
+                  s.split_dict(), s.delta),
+              "parameter": worst,
+              "method": "estimate (the gradient circuit's counts scaled to the steps; T-depth a bound, rotations "
+                        "in series)"}
         err = None
         if small and r <= SPINNING_ERROR_MAX_STEPS:
             value = known_error if known_error is not None else self._spinning_signal_error(ex, t, r, order)
@@ -897,24 +930,31 @@ class BudgetModel:
                 "counts_method": method, "rotation_error": eps_rot, "t_per_rotation_rule": float(t_rot),
                 "signal_error": err}
 
-    def _spinning_near_term(self, ex, evo, eps):
+    def _spinning_near_term(self, ex, evo, eps, t):
         """Worst gradient component of a spinning experiment: single-shot range of its compiled Hadamard estimator,
         R_n = 2 sum_a |beta_a| kappa unit_hz (beta_a of qhl.circuits.spinning_circuits.spinning_insertion_points:
         the time-dependent form of 2 t ||c_n||_1 2 pi |s_n| kappa, with t |s_n| -> sum_k tau |sbar_{n,k}|), and
-        the shots R^2 / eps^2 and Hoeffding 2 R^2 ln(2/delta) / eps^2 (bounds)."""
-        from ..circuits.spinning_circuits import spinning_insertion_points
+        the shots R^2 / eps^2 and Hoeffding 2 R^2 ln(2/delta) / eps^2 (bounds). Without the slots (evo None: too
+        many steps to list) sum_k tau |sbar_{n,k}| <= int_0^t |s_n(u)| du (the triangle inequality per step; the
+        limit as r grows) gives R_n <= 2 (2 pi ||g_n||_1) int_0^t |s_n| kappa unit_hz."""
         s = self.settings
         kappa = shots.observable_factor(int(sum(bool(o) for o in self.model.observed)))
-        ranges = {name: 2.0 * sum(abs(p.beta) for p in spinning_insertion_points(evo, name)) * kappa * s.unit_hz
-                  for name in self.model.free}
+        if evo is None:
+            ranges = self._spinning_range_bounds(ex, t, kappa)
+            method = "bound: 2 (2 pi ||g_n||_1) int_0^t |s_n(u)| du kappa unit_hz (>= the compiled estimator's range)"
+        else:
+            from ..circuits.spinning_circuits import spinning_insertion_points
+            ranges = {name: 2.0 * sum(abs(p.beta) for p in spinning_insertion_points(evo, name)) * kappa * s.unit_hz
+                      for name in self.model.free}
+            method = "bound: range of the compiled Hadamard estimator (2 sum |beta_a| kappa unit_hz)"
         name = max(ranges, key=ranges.get)
         rng = float(ranges[name])
         out = {"worst_parameter": name, "component_range": rng,
                "shots_per_component_bound": math.ceil(rng**2 / eps**2 * (1 - 1e-12)),
                "shots_per_component_hoeffding": shots.hoeffding_shots(rng, eps, s.delta),
                "shots_per_component_circuit": None,
-               "method": "bound: range of the compiled Hadamard estimator (2 sum |beta_a| kappa unit_hz)"}
-        if evo.steps <= SEQUENCE_VARIANCE_MAX_STEPS and \
+               "method": method}
+        if evo is not None and evo.steps <= SEQUENCE_VARIANCE_MAX_STEPS and \
                 family_variance.fits_circuit_variance(self.model.n_spins, s.circuit_variance_max_spins):
             from ..circuits.spinning_circuits import spinning_gradient_circuit
             from ..emulation.variance import family_moments
@@ -922,6 +962,25 @@ class BudgetModel:
             mo = family_moments(fam, "re")
             out["shots_per_component_circuit"] = math.ceil(mo.variance * s.unit_hz**2 / eps**2 * (1 - 1e-12))
             out["method_circuit"] = "exact variance of the compiled estimator (qhl.emulation.variance), Re part"
+        return out
+
+    def _spinning_range_bounds(self, ex, t, kappa):
+        """{free name: 2 (2 pi ||g_n||_1) int_0^t |s_n(u)| du kappa unit_hz} (_spinning_near_term); the integral
+        over whole rotor periods plus the remainder, trapezoids on SPINNING_RANGE_GRID points per period (s_n is a
+        trigonometric polynomial of degree 2: |s_n| has kinks only at its <= 4 zeros per period)."""
+        from ..spins.spinning import spinning_factors
+        sf = spinning_factors(self.model, ex)
+        period = sf.period_s
+        q, rem = divmod(float(t), period)
+        grid = np.linspace(0.0, period, SPINNING_RANGE_GRID + 1)
+        whole = np.trapezoid(np.abs(sf.at(grid)), grid, axis=0)                        # (P,)
+        part = np.linspace(0.0, rem, max(2, int(math.ceil(SPINNING_RANGE_GRID * rem / period)) + 1))
+        integral = q * whole + np.trapezoid(np.abs(sf.at(part)), part, axis=0)
+        out = {}
+        for name in self.model.free:
+            k = self.model.names.index(name)
+            g1 = float(np.abs(self.model.parameter(name).generator.coeffs).sum())
+            out[name] = 2.0 * 2 * np.pi * g1 * float(integral[k]) * kappa * self.settings.unit_hz
         return out
 
     def _spinning_signal_error(self, ex, t, r, order):

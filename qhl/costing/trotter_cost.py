@@ -45,7 +45,7 @@ from ..circuits.step_counts import step_counts_rule
 from ..circuits.trotter_bounds import prefactor_and_method
 from .trotter_order4 import SUZUKI4_U, nested_commutator_sum, order4_step_error_constant
 
-__all__ = ["ORDERS", "TrotterModel", "trotter_model", "steps_from_constant", "empirical_trotter_steps", "empirical_flops",
+__all__ = ["ORDERS", "TrotterModel", "trotter_model", "rotor_bound_model", "steps_from_constant", "empirical_trotter_steps", "empirical_flops",
            "product_formula_unitary", "ASSUMPTIONS"]
 
 ORDERS = (1, 2, 4)
@@ -132,6 +132,26 @@ def trotter_model(model, experiment=None) -> TrotterModel:
         if nested <= c4:
             c4, m4 = nested, "nested commutators"
     return TrotterModel(terms, {1: float(c1), 2: float(c2), 4: float(c4)}, {1: m1, 2: m2, 4: m4})
+
+
+def rotor_bound_model(model, experiment) -> TrotterModel:
+    """TrotterModel of a spinning experiment's Hamiltonian with every coupling at its largest rotor factor.
+
+    H(t) = 2 pi sum_n s_n(t) h_n G_n (qhl.spins.spinning); each |s_n(t)| <= s_b,n = the sum of the absolute
+    values of its five Fourier coefficients. The model is that of the static Hamiltonian with h_n replaced by
+    h_n max(1, s_b,n): every term's coefficient bounds the term at all times, so its commutator constants
+    bound those of any step-averaged Hamiltonian of the time-dependent product formula (commutator bounds
+    grow with each coefficient's magnitude; Childs et al., PRX 11, 011020 (2021)). The Magnus error of the
+    time dependence within a step is not in these constants (the rotor rule of
+    qhl.circuits.spinning_circuits covers it; not a bound). A static experiment gives trotter_model's.
+    """
+    from dataclasses import replace as _replace
+    from ..spins.spinning import is_spinning, spinning_factors
+    if not is_spinning(experiment):
+        return trotter_model(model, experiment)
+    bound = np.abs(spinning_factors(model, experiment).fourier).sum(axis=1)
+    stretched = model.with_values(model.all_values_hz() * np.maximum(bound, 1.0), free_only=False)
+    return trotter_model(stretched, _replace(experiment, steps=(), spinning_hz=0.0))
 
 
 def _order4_locality_constant(ops):

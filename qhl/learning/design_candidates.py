@@ -40,10 +40,10 @@ import numpy as np
 from ..base.errors import QhlInputError
 from ..base.memory import require_memory
 from ..costing.synthesis import t_count_per_rotation
-from ..costing.trotter_cost import ORDERS, trotter_model
+from ..costing.trotter_cost import ORDERS, rotor_bound_model, trotter_model
 from ..exact.likelihood import fisher_information
 from ..spins.cluster import Experiment, check_experiment
-from ..spins.spinning import is_spinning, spinning_factors
+from ..spins.spinning import is_spinning
 
 __all__ = ["Candidate", "KINDS", "MAX_CANDIDATES", "build_candidates", "candidate_fishers", "TCostModel", "COST_ASSUMPTIONS",
            "select_parameters"]
@@ -236,11 +236,9 @@ class TCostModel:
         spin = is_spinning(experiment)
         key = (float(experiment.dipolar_scale), float(experiment.spinning_angle_deg) if spin else None)
         if key not in self._models:
-            model = self.model
-            if spin:               # every coupling at its largest |s_n(t)| (COST_ASSUMPTIONS["spinning"])
-                bound = np.abs(spinning_factors(model, experiment).fourier).sum(axis=1)
-                model = model.with_values(model.all_values_hz() * np.maximum(bound, 1.0), free_only=False)
-            tm = trotter_model(model, replace(experiment, steps=(), spinning_hz=0.0))   # delays: the same H
+            bare = replace(experiment, steps=())               # delays: the same H
+            # spinning: every coupling at its largest |s_n(t)| (COST_ASSUMPTIONS["spinning"])
+            tm = rotor_bound_model(self.model, bare) if spin else trotter_model(self.model, bare)
             labels = tuple(sorted(tm.hamiltonian.simplify(atol=0).paulis.to_labels()))
             if labels not in self._counts:
                 self._counts[labels] = {p: float(tm.rotations_per_step(p)) for p in ORDERS}
