@@ -12,7 +12,10 @@ A step's counts are marginal, like TrotterModel's transpiled counts: counts of t
 one step over the slots of qhl.circuits.trotter.product_formula_slots (merged exponentials
 between steps counted once). Depth: blocks scheduled as soon as their qubits are free
 (as-soon-as-possible layering, block by block). Rotations: an upper bound on the transpiled count
-(the transpiler can merge an offset rz into a neighbouring block's single-qubit gates); CX: equal.
+(the transpiler can merge an offset rz into a neighbouring block's single-qubit gates); CX: equal at
+order 1; at order 2 an upper bound by at most one pair block (3 CX) per step, where the transpiler merges
+the two first-group blocks around a step boundary (measured: 224 rule against 203 transpiled for 8
+second-order steps of 4 spins, 10 %; the share falls as 3 / (CX per step), e.g. under 1 % above 12 spins).
 tests/test_step_counts.py checks the rule against transpiled circuits for n <= 12.
 """
 
