@@ -17,7 +17,7 @@ Columns (one random proton cluster, offsets + all dipolar couplings free, 256 po
 --scale adds n = 12 gradients (double, single) and n = 14 signals (qhl, peer) in fresh processes,
 with peak memory. --crossover prints BLAS one- against two-thread times of square products.
 --signal-at N [--against DIR]: the N-spin signal alone (256 points), one BLAS thread, fresh
-processes, interleaved with the eigh floor, the qhl tree in DIR (for example `git archive <commit>
+processes, interleaved with the eigh floor, the same signal with precision="fast" (float32 eigh), the qhl tree in DIR (for example `git archive <commit>
 qhl | tar -x -C DIR`) and the peer: medians of --repeats rounds, CPU and wall seconds.
 --weighted [--n N]: the likelihood gradient at n = 10 and 12 (or N): signal, full gradient
 (Jacobian, all P rows), the weighted gradient sum_t c_t dS/dh (ExactEngine.gradient_weighted,
@@ -143,7 +143,8 @@ def scale_case(n, kind):
         return
     c0 = time.process_time()
     t0 = time.perf_counter()
-    eng = ExactEngine(build_model(c), precision="single" if kind == "gradient-single" else "double")
+    prec = "single" if kind == "gradient-single" else "fast" if kind.endswith("-fast") else "double"
+    eng = ExactEngine(build_model(c), precision=prec)
     ex = c.experiments[0]
     if kind.startswith("gradient"):
         eng.gradient(ex, method="full")
@@ -171,7 +172,8 @@ def signal_at(n, against, quspin, repeats):
     here = os.environ.get("PYTHONPATH", "").split(os.pathsep)[0] or os.path.dirname(HERE)
     c = bench_cluster(n)
     model = build_model(c)
-    res = {"eigh floor (all sectors, H assembled beforehand)": [], "qhl signal (this tree)": []}
+    res = {"eigh floor (all sectors, H assembled beforehand)": [], "qhl signal (this tree)": [],
+           "qhl signal, precision='fast' (float32 eigh)": []}
     if against:
         res[f"qhl signal ({against})"] = []
     if quspin:
@@ -179,6 +181,7 @@ def signal_at(n, against, quspin, repeats):
     for _ in range(repeats):
         res["eigh floor (all sectors, H assembled beforehand)"].append(fresh(here, n, "eigh"))
         res["qhl signal (this tree)"].append(fresh(here, n, "signal"))
+        res["qhl signal, precision='fast' (float32 eigh)"].append(fresh(here, n, "signal-fast"))
         if against:
             res[f"qhl signal ({against})"].append(fresh(against, n, "signal"))
         if quspin:
