@@ -52,3 +52,18 @@ def test_unwritable_plot_path_is_exit_2(tmp_path):
 def test_unknown_free_pattern_is_exit_2(capsys):
     assert main(["signal", "--free", "nothing:*"]) == 2
     assert "no parameter matches 'nothing:*'" in capsys.readouterr().err
+
+
+def test_engine_precision_fast_stays_within_its_stated_tolerance(capsys):
+    # --engine-precision fast (float32 eigendecompositions) against the double engine on the demo: within
+    # FAST_RTOL of the largest |S| (measured 1e-7 here) and not identical (float32 really used)
+    from qhl.exact.engine import FAST_RTOL
+    out = {}
+    for prec in ("double", "fast"):
+        assert main(["signal", "--json", "--engine-precision", prec]) == 0
+        d = json.loads(capsys.readouterr().out)
+        assert d["engine_precision"] == prec
+        e = d["experiments"][0]
+        out[prec] = np.array(e["signal_real"]) + 1j * np.array(e["signal_imag"])
+    err = np.abs(out["fast"] - out["double"]).max() / np.abs(out["double"]).max()
+    assert 1e-12 < err < FAST_RTOL

@@ -16,6 +16,10 @@ def add_method_arguments(p):
     p.add_argument("--replicas", type=integer_at_least(2), default=4, metavar="R",
                    help="random states per sector pair for --method typical (default 4)")
     p.add_argument("--seed", type=int, default=0, help="seed of the random states (default 0)")
+    p.add_argument("--engine-precision", choices=("double", "single", "fast"), default="double",
+                   help="double (default, the reference); single: gradient products in float32; fast: also "
+                        "float32 eigendecompositions (stated tolerance 1e-3 of the largest entry; the typical "
+                        "engine runs float32 for both)")
 
 
 def register(sub):
@@ -51,7 +55,8 @@ def run(args):
         check_output_path(args.plot, "--plot")
     progress = FractionProgress("typical engine")
     engine, method, note = make_engine(build_model(cluster, free=args.free), args.method,
-                                       replicas=args.replicas, seed=args.seed, progress=progress)
+                                       replicas=args.replicas, seed=args.seed, progress=progress,
+                                       precision=args.engine_precision)
     if method == "typical":
         announce_typical(cluster, note, args.replicas, len(engine.model.free) if args.gradient else 0)
     try:
@@ -64,7 +69,7 @@ def run(args):
         from ..exact.signal_plots import plot_signals
         plot_signals(report, args.plot)
     if args.json:
-        print_json(report.to_json())
+        print_json({**report.to_json(), "engine_precision": args.engine_precision})
         return 0
     m = report.model
     print(f"cluster {cluster.name}: {cluster.n_spins} spins, {cluster.field_tesla:g} T, observe {cluster.observe}")

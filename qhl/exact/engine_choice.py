@@ -30,11 +30,14 @@ def exact_engine_fits(model, fraction: float = 0.8):
     return True, need, ""
 
 
-def make_engine(model, method: str = "auto", replicas: int = 4, seed: int = 0, progress=None):
+def make_engine(model, method: str = "auto", replicas: int = 4, seed: int = 0, progress=None,
+                precision: str = "double"):
     """(engine, method used, note) for `method` in METHODS.
 
     The typical engine's answers carry standard errors (qhl.exact.typicality); `note` says why
-    'auto' chose it (empty when it chose the exact engine).
+    'auto' chose it (empty when it chose the exact engine). `precision`: the exact engine's
+    ("double", "single" or "fast": qhl.exact.engine); the typical engine runs "single" for both
+    reduced precisions.
     """
     if method not in METHODS:
         raise QhlInputError(f"expected one of {', '.join(METHODS)}, got {method!r}", key="method")
@@ -46,6 +49,7 @@ def make_engine(model, method: str = "auto", replicas: int = 4, seed: int = 0, p
             note = f"{reason}: using the typical (pure-state) engine, with error bars"
     if method == "exact":
         from .engine import ExactEngine
-        return ExactEngine(model), "exact", note
+        return ExactEngine(model, precision=precision), "exact", note
     from .typicality import TypicalEngine
-    return TypicalEngine(model, replicas=replicas, seed=seed, progress=progress), "typical", note
+    return TypicalEngine(model, replicas=replicas, seed=seed, progress=progress,
+                         precision="double" if precision == "double" else "single"), "typical", note
