@@ -92,7 +92,7 @@ SPINNING_ASSUMPTION = (
     "|S_r - S_4r| 16/15 from the compiled circuits' unitaries (Richardson for an order-2 error; estimate); gradient "
     "circuit = signal circuit + one controlled-Pauli gadget (as for pulse sequences); near-term shots of the worst "
     "gradient component from the compiled estimator's range R = 2 sum_a |beta_a| kappa unit_hz (R^2/eps^2 and "
-    "Hoeffding, bounds); above SPINNING_ERROR_MAX_SPINS spins without a free-evolution budget, r is at least the "
+    "Hoeffding, bounds); above SPINNING_ERROR_MAX_SPINS spins (mixed clusters too), r is at least the "
     "commutator-bound steps (qhl.costing.trotter_cost.rotor_bound_model: every coupling at its largest rotor factor) "
     "with ||U_r - U|| <= Trotter share x eps / (2 kappa) (bound); fault_tolerant.amplitude_estimation: amplitude "
     "estimation of that component on the gradient circuit (qhl.costing.fault_tolerant.fixed_circuit_ft_counts: range "
@@ -859,10 +859,11 @@ class BudgetModel:
                 r *= 2
                 source = "signal error (Richardson) within the Trotter share"
                 known_error = self._spinning_signal_error(ex, t, r, order)
-        elif steps is None and r_bound > r:
+        elif not small and r_bound > r:
             # larger clusters: no Richardson estimate; the commutator bound of H with every coupling at its
             # largest rotor factor, ||U_r - U|| <= target / (2 kappa) (a signal of range kappa moves by <= 2 kappa
-            # times the operator error)
+            # times the operator error). The free-evolution budget's steps (mixed clusters) are for the static
+            # couplings, which the rotor factors exceed, so they do not replace this bound.
             r = r_bound
             source = "commutator bound (couplings at their largest rotor factor), signal within the Trotter share"
         from ..circuits.step_counts import evolution_counts_rule
