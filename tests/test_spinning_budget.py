@@ -78,6 +78,18 @@ def test_budget_json_of_a_spinning_cluster(capsys, tmp_path):
     # time-ordered reference (2.66e-4, tests/test_spinning_circuits.py): within 20 %
     assert e["signal_error"]["value"] == pytest.approx(2.66e-4, rel=0.2)
     _check_amplitude_estimation(e, 0.01)
+    # the exact mean of the worst component: central differences of the dense time-ordered reference
+    # (tests/reference_spinning.py, 400 slices per period: O(slice^2) ~1e-5 of the signal), per kHz; the
+    # variance bound R^2 - mu^2 (Bhatia and Davis, Amer. Math. Monthly 107, 353 (2000): variance of values
+    # in [-R, R] with mean mu) lies above the compiled estimator's exact variance
+    from reference_spinning import dense_spinning_gradient
+    k = list(m.free).index(n["worst_parameter"])
+    ref = dense_spinning_gradient(c, m, c.experiments[0], [spin.T], step_hz=1e-2)[k, 0].real * 1e3
+    assert n["mean"] == pytest.approx(ref, abs=1e-4 * n["component_range"])
+    assert n["shots_per_component"] == math.ceil((n["component_range"] ** 2 - n["mean"] ** 2) / 0.01 ** 2
+                                                  * (1 - 1e-12))
+    assert n["shots_per_component_circuit"] <= n["shots_per_component"]
+    assert "lower bound" in d["classical"]["covers"] and d["classical"]["memory_bytes"] > 0
 
 
 def _check_amplitude_estimation(e, eps):

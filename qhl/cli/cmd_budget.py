@@ -241,7 +241,9 @@ def _print_spinning(b):
         n = e["near_term"]
         print(f"  worst gradient component {n['worst_parameter']}: range R = {n['component_range']:.4g}, shots "
               f"R^2/eps^2 {_fmt(n['shots_per_component_bound'])} (Hoeffding {_fmt(n['shots_per_component_hoeffding'])}; "
-              f"bounds), compiled estimator's exact variance {_fmt(n['shots_per_component_circuit'])}")
+              f"bounds), compiled estimator's exact variance {_fmt(n['shots_per_component_circuit'])}"
+              + (f", from the exact mean {n['mean']:.3g}: {_fmt(n['shots_per_component'])}" if n.get("mean") is not None
+                 else ""))
         ae = (e.get("fault_tolerant") or {}).get("amplitude_estimation")
         if ae:
             print(f"  fault-tolerant estimate of {e['fault_tolerant']['parameter']} ({_fmt(e['fault_tolerant']['trotter_steps'])} "
@@ -258,7 +260,8 @@ def _print_spinning_budget(b, bm):
     print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
           f"t = {b.time_s:g} s, eps = {b.precision:g} (per kHz)  [model-based estimates]")
     _print_spinning(b)
-    print("every experiment spins: shots from exact means, Hessian, Fisher "
+    _print_classical(b)
+    print("every experiment spins: Hessian, Fisher "
           "and learning-run numbers are not covered for spinning experiments (top-level --json keys empty)")
     for note in b.notes:
         print(f"note: {note}")
@@ -366,15 +369,22 @@ def _print_budget(b, bm):
     print("tiers: " + ", ".join(f"{k} {v}" for k, v in b.tiers.items()))
     for note in b.notes:
         print(f"note: {note}")
-    if b.classical:
-        c = b.classical
-        print(f"classical simulation (estimate, {c['method']}): {c['memory_bytes'] / 2**30:.3g} GiB, "
-              f"{_duration(c['seconds'])} on this machine: {'feasible here' if c['feasible_here'] else 'not feasible here'}")
-        if c.get("crossover_spins"):
-            print(f"  at this density of couplings, exact classical simulation exceeds a day and 1 TiB from "
-                  f"{c['crossover_spins']} spins: the size from which a quantum computer is needed")
+    _print_classical(b)
     _print_spinning(b)
     print(f"{len(b.assumptions)} assumptions with sources: qhl budget --json (key 'assumptions')")
+
+
+def _print_classical(b):
+    """The classical-cost meter's lines (the 'classical' entry), where the budget has one."""
+    if not b.classical:
+        return
+    c = b.classical
+    print(f"classical simulation (estimate, {c['method']}): {c['memory_bytes'] / 2**30:.3g} GiB, "
+          f"{_duration(c['seconds'])} on this machine: {'feasible here' if c['feasible_here'] else 'not feasible here'}"
+          + (f" ({c['covers']})" if c.get("covers") else ""))
+    if c.get("crossover_spins"):
+        print(f"  at this density of couplings, exact classical simulation exceeds a day and 1 TiB from "
+              f"{c['crossover_spins']} spins: the size from which a quantum computer is needed")
 
 
 def _duration(seconds):

@@ -99,13 +99,15 @@ SPINNING_ASSUMPTION = (
     "R as above, r' + 1 insertion points in the time register weighted by |beta_a|, the pulse-sequence model; "
     "r' = max(r, the rotor-bound model's steps at ||A~ - A|| <= e_T / (8R)), the circuit's rotations and depth "
     "scaled by r'/r; T-depth a bound). Not covered for spinning "
-    "experiments: shots from exact means, Hessian/Fisher/learning-run numbers (the "
+    "experiments: Hessian/Fisher/learning-run numbers (the "
     "top-level numbers cover the static experiments only; empty when every experiment spins)")
 # A spinning signal circuit is transpiled for exact counts up to this many product-formula slots.
 SPINNING_TRANSPILE_MAX_SLOTS = 4000
 SPINNING_ERROR_MAX_SPINS = 6
 # The slots of every step (SpinningEvolution) are listed up to this many blocks in all; above, counts by the rule.
 SPINNING_SLOTS_MAX = 200_000
+# Exact means of spinning gradient components (the exact spinning engine) up to this many spins.
+SPINNING_EXACT_MAX_SPINS = 10
 SPINNING_RANGE_GRID = 2048
 SPINNING_ERROR_MAX_STEPS = 1024
 HESSIAN_FLOPS_PER_ELEMENT = 5000.0
@@ -541,6 +543,8 @@ class BudgetModel:
             import dataclasses as _dc
             self.classical = classical_cost(_dc.replace(cluster, experiments=tuple(static))
                                             if self.spinning_experiments else cluster).to_json()
+            if self.spinning_experiments:
+                self.classical["covers"] = "the static experiments only (the spinning ones cost at least as much)"
         say(f"prepared in {_time.perf_counter() - t0:.1f} s")
         self._say = say
 
@@ -804,11 +808,27 @@ class BudgetModel:
 
     # ------------------------------------------------------------------ spinning experiments
     def _init_spinning_only(self, say):
-        """State of a cluster whose every experiment spins: no engine, near-term or Trotter models."""
+        """State of a cluster whose every experiment spins: no near-term or Trotter models; the exact engine (for
+        the exact means of the worst components) up to SPINNING_EXACT_MAX_SPINS; the classical meter on the same
+        FIDs without spinning (a lower bound: the time dependence only adds work)."""
+        import dataclasses as _dc
         self.engine = self.estimator = self.near = self.classical = None
         self.trotter, self._quad, self._seq_trotter = [], [], {}
-        self.exact_plan = {"use_engine": False, "reason": "every experiment spins"}
-        self.tiers = {"exact": "skipped", "estimated": "not available", "bound": "used"}
+        small = self.model.n_spins <= SPINNING_EXACT_MAX_SPINS
+        self.exact_plan = {"use_engine": small, "reason": "every experiment spins" + (
+            "" if small else f"; exact means only up to {SPINNING_EXACT_MAX_SPINS} spins")}
+        self.tiers = {"exact": "used (exact means of the spinning components)" if small else "skipped",
+                      "estimated": "not available", "bound": "used"}
+        if small:
+            from ..exact.engine import ExactEngine
+            self.engine = ExactEngine(self.model)
+        if self.settings.classical_meter:
+            from .classical_cost import classical_cost
+            say("classical-cost meter (rates measured on this machine)")
+            static = tuple(_dc.replace(ex, spinning_hz=0.0) for ex in self.spinning_experiments)
+            self.classical = {**classical_cost(_dc.replace(self.cluster, experiments=static)).to_json(),
+                              "covers": "the same FIDs without spinning: a lower bound for the spinning ones "
+                                        "(the time dependence adds slices per rotor period)"}
         self._say = say
 
     def _with_spinning(self, budget, t, eps, order, steps):
@@ -833,7 +853,7 @@ class BudgetModel:
         assumptions = all_assumptions(self.settings)
         b = Budget(t, eps, {}, {}, {}, {}, None, assumptions, self.cluster.name,
                    {"near_term": {}, "fault_tolerant": {}, "surface_code": None}, list(self.notes), dict(self.tiers),
-                   None, None, None)
+                   None, self.classical, None)
         return self._with_spinning(b, t, eps, NOISY_ORDER, None)
 
     def _spinning_entry(self, ex, t, eps, order, steps):
@@ -954,7 +974,21 @@ class BudgetModel:
                "shots_per_component_bound": math.ceil(rng**2 / eps**2 * (1 - 1e-12)),
                "shots_per_component_hoeffding": shots.hoeffding_shots(rng, eps, s.delta),
                "shots_per_component_circuit": None,
-               "method": method}
+               "method": method, "mean": None, "shots_per_component": None}
+        if self.engine is not None and self.model.n_spins <= SPINNING_EXACT_MAX_SPINS:
+            # the exact mean mu of the component (the exact spinning engine): shots lie in [-R, R], so the
+            # variance is at most R^2 - mu^2 (Bhatia-Davis; qhl.costing.shots.two_valued_variance, reached by a
+            # +-R estimator)
+            try:
+                _, g = self.engine.gradient(ex, times=[t], parameters=[name])
+                mu = float(np.real(g[0, 0])) * s.unit_hz
+                out["mean"] = mu
+                out["shots_per_component"] = math.ceil(float(shots.two_valued_variance(rng, mu)) / eps**2
+                                                       * (1 - 1e-12))
+                out["method_mean"] = ("bound: variance <= R^2 - mu^2 with the exact mean mu (qhl.exact.spinning_engine; "
+                                      "Bhatia-Davis for shots in [-R, R])")
+            except MemoryBudgetError as e:
+                self._note(f"spinning '{ex.name}': exact mean skipped: {e}")
         if evo is not None and evo.steps <= SEQUENCE_VARIANCE_MAX_STEPS and \
                 family_variance.fits_circuit_variance(self.model.n_spins, s.circuit_variance_max_spins):
             from ..circuits.spinning_circuits import spinning_gradient_circuit
