@@ -175,6 +175,20 @@ def _ancilla_phase(point) -> float:
     return (point.weight - 1) * np.pi / 2
 
 
+def _hadamard_head(n, name, points):
+    """The Hadamard test's opening on n system qubits + ancilla n: (circuit, ancilla, preparation, insertion
+    angles, {(slot, group, block): [gadget]}) for the located insertion points."""
+    anc = n
+    qc = QuantumCircuit(n + 1, name=name)
+    prep = _prepare(qc, n)
+    qc.h(anc)
+    phi = ParameterVector("ins", len(points))
+    gadgets = {}
+    for a, pt in enumerate(points):
+        gadgets.setdefault((pt.slot, pt.group, pt.block), []).append(_controlled_pauli(anc, pt, phi[a]))
+    return qc, anc, prep, phi, gadgets
+
+
 def _require_points(points, name, experiment):
     if not points:
         where = f" in experiment '{experiment.name}'" if experiment is not None else ""
@@ -265,14 +279,7 @@ def gradient_circuit(model, experiment=None, parameter: str = "", time: float = 
     if method == "shift":
         return _shift_family(model, terms, slots, points, parameter, scheme, time, steps, order,
                              _evolution(model, experiment, values_hz, grouping, ordering))
-    anc = n
-    qc = QuantumCircuit(n + 1, name="gradient")
-    prep = _prepare(qc, n)
-    qc.h(anc)
-    phi = ParameterVector("ins", len(points))
-    gadgets = {}
-    for a, pt in enumerate(points):
-        gadgets.setdefault((pt.slot, pt.group, pt.block), []).append(_controlled_pauli(anc, pt, phi[a]))
+    qc, anc, prep, phi, gadgets = _hadamard_head(n, "gradient", points)
     _evolve(qc, terms, slots, gadgets=gadgets)
     lam = Parameter("anc_phase")
     qc.p(lam, anc)

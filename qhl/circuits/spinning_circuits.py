@@ -53,13 +53,13 @@ import math
 
 import numpy as np
 from qiskit import QuantumCircuit
-from qiskit.circuit import Parameter, ParameterVector
+from qiskit.circuit import Parameter
 
 from ..base.errors import QhlInputError
 from ..spins.cluster import refuse_steps
 from ..spins.spinning import is_spinning, spinning_factors
 from .circuit_family import CircuitFamily, InsertionTable, count_build
-from .gradient_circuits import (InsertionPoint, _ancilla_phase, _controlled_pauli, _positive_time, _prepare,
+from .gradient_circuits import (InsertionPoint, _ancilla_phase, _hadamard_head, _positive_time, _prepare,
                                 _read_out, _require_points, _system_observable)
 from .state_prep import input_ensemble
 from .trotter import append_block_rotations, check_evolution_arguments, product_formula_slots, trotter_terms
@@ -255,14 +255,7 @@ def spinning_gradient_circuit(model, experiment, parameter: str = "", time: floa
     points = spinning_insertion_points(evo, parameter)
     _require_points(points, parameter, experiment)
     n = model.n_spins
-    anc = n
-    qc = QuantumCircuit(n + 1, name="spinning-gradient")
-    prep = _prepare(qc, n)
-    qc.h(anc)
-    phi = ParameterVector("ins", len(points))
-    gadgets = {}
-    for a, pt in enumerate(points):
-        gadgets.setdefault((pt.slot, pt.group, pt.block), []).append(_controlled_pauli(anc, pt, phi[a]))
+    qc, anc, prep, phi, gadgets = _hadamard_head(n, "spinning-gradient", points)
     qubits = list(range(n))
     for s, slot in enumerate(evo.slots):
         _append_slot(qc, evo, s, slot, qubits, gadgets)

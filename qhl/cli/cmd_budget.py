@@ -205,7 +205,7 @@ def _print_noisy(nt):
 
 def _print_sequence_budget(b, bm):
     """Text of a budget whose every experiment has pulse-sequence steps (per component, worst experiment)."""
-    nt, ft = b.near_term, b.fault_tolerant
+    nt = b.near_term
     print(f"budget for {b.cluster}: {bm.model.n_spins} spins, {len(bm.model.free)} free parameters, "
           f"t = {b.time_s:g} s after the sequence, eps = {b.precision:g} (per kHz)  [model-based estimates]")
     for name, blk in b.sequences.items():
