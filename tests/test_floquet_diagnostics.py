@@ -110,3 +110,15 @@ def test_learnability_map_over_the_spinning_rate(capsys, tmp_path):
     assert [p["level_kind"] for p in d["points"]] == ["eigenvalues of H", "Floquet quasi-energies"]
     with pytest.raises(SystemExit):
         main(["design", str(path), "--map", "spinning_hz", "--values", "0:2e6:2"])
+
+
+def test_map_refuses_a_spinning_axis_without_pair_directions_before_any_work():
+    # a pair given by dipolar_hz alone has no direction, so its rotor modulation is unknown: one error, up front
+    from qhl.base.errors import QhlInputError
+    from qhl.spins.cluster import Cluster, Experiment, Pair, Spin
+    c = Cluster(9.4, "1H", (Spin("A", "1H", None, 100.0), Spin("B", "1H", None, -200.0)),
+                (Pair(("A", "B"), dipolar_hz=3000.0),), (Experiment("x", 1e-4, 8),))
+    calls = []
+    with pytest.raises(QhlInputError, match="no positions"):
+        learnability_map(c, "spinning_hz", (0.0, 1e4), progress=calls.append)
+    assert calls == []

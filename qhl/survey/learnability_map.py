@@ -164,6 +164,11 @@ def learnability_map(cluster, axis: str = "dipolar_scale", values=(0.0, 0.2, 0.4
     if not vals:
         raise QhlInputError("no values of the control axis", key="map")
     exps = [experiment_at(axis, v, t_max_s, points, noise) for v in vals]
+    spinning = [ex for ex in exps if ex.spinning_hz > 0]
+    if spinning:                  # refuse up front what a spinning value cannot do (no pair direction, ...)
+        from ..spins.model import build_model
+        from ..spins.spinning import spinning_factors
+        spinning_factors(build_model(cluster), spinning[0])
     settings = BudgetSettings(empirical_trotter=False, hessian_exact=False, circuit_variance_max_spins=0,
                               classical_meter=False)
     out = []
