@@ -158,7 +158,7 @@ def test_signal_command_runs_the_exact_spinning_engine(capsys, tmp_path):
 
 
 @pytest.mark.parametrize("argv", [["circuits", "--time", "8e-5"],
-                                  ["check", "--time", "8e-5", "--steps", "4", "--shots", "100"]])
+                                  ["check", "--time", "8e-5", "--steps", "4", "--shots", "100", "--hessian"]])
 def test_other_commands_give_one_line_errors(capsys, tmp_path, argv):
     path = tmp_path / "rotor.toml"
     path.write_text(spin._text(3))

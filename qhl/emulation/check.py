@@ -8,6 +8,12 @@ For each parameter (and part Re / Im) at one time t with r Trotter steps:
     trotter_bias   trotter_exact - exact
 With `hessian`, rows for every entry (m, n), m <= n, of d2S/dh_m dh_n are added.
 
+Spinning experiments (spinning_hz > 0): exact is the exact spinning engine's derivative
+(qhl.exact.spinning_engine), trotter_exact the compiled time-dependent family's exact mean
+(qhl.circuits.spinning_circuits; circuit_family.exact_expectation, method 'density', up to
+SPINNING_CHECK_MAX_SPINS spins), emulated its shot estimate; gradients only, one family at a time
+(no Hessian rows, device or routing for them yet: refused with one line).
+
 Device mode (`device=NAME`, an offline fake backend; qhl.emulation.sampler_path): each family is
 transpiled for the device and run through SamplerV2 on its noise model. The reference is then
     predicted      trotter_exact * attenuation, attenuation = F R of the transpiled circuit from
@@ -57,6 +63,7 @@ import numpy as np
 from ..exact.engine import ExactEngine
 from ..base.errors import QhlInputError
 from ..spins.model import build_model
+from ..spins.spinning import is_spinning
 from .derivatives import as_generator, check_shots, emulate_gradient, emulate_hessian
 from .noise import NoiseSpec
 from ..circuits.circuit_fidelity import MODEL
@@ -66,6 +73,7 @@ __all__ = ["CheckReport", "check_derivatives", "ATTENUATION_MODEL", "DEVICE_RULE
            "annotate_row", "BATCH"]
 
 Z_LIMIT = 4.0
+SPINNING_CHECK_MAX_SPINS = 8     # the dense (density-operator) exact mean of a spinning family
 BATCH = 8            # families per Aer batch (benchmarks/bench_emulator.py part 7)
 POWER_RATIO = 3.0
 POWER_RULE = (f"power: stderr <= |value|/{POWER_RATIO:g} with |value| = max(|exact|, |trotter_exact|), so an "
@@ -343,6 +351,17 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
     if int(steps) != steps or steps < 1:
         raise QhlInputError(f"expected steps >= 1, got {steps!r}", key="--steps")
     ex = _experiment(cluster, experiment)
+    spinning = is_spinning(ex)
+    if spinning:
+        for bad, what in ((hessian, "Hessian rows"), (device is not None, "--device"),
+                          (routing_target is not None, "--target")):
+            if bad:
+                raise QhlInputError(f"experiment '{ex.name}' spins: {what} are not available for spinning "
+                                    "experiments (gradient rows are)", key="experiment.spinning_hz")
+        if len(cluster.spins) > SPINNING_CHECK_MAX_SPINS:
+            raise QhlInputError(f"experiment '{ex.name}' spins: the exact mean of its circuits is dense, up to "
+                                f"{SPINNING_CHECK_MAX_SPINS} spins (this cluster has {len(cluster.spins)})",
+                                key="experiment.spinning_hz")
     base = build_model(cluster)
     names = list(base.free) if not parameters else list(dict.fromkeys(parameters))
     for nm in names:
@@ -360,12 +379,18 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
     start = _time.perf_counter()
     try:
         _, grad_exact = engine.gradient(ex, [t])
-        _, grad_trot = trotter_gradient_exact(model, ex, t, steps, order, names, progress=reference_progress)
+        if spinning:
+            from ..circuits.circuit_family import exact_expectation
+            from ..circuits.spinning_circuits import spinning_gradient_circuit
+            grad_trot = np.array([exact_expectation(spinning_gradient_circuit(model, ex, nm, t, steps, order),
+                                                    method="density") for nm in names])
+        else:
+            _, grad_trot = trotter_gradient_exact(model, ex, t, steps, order, names, progress=reference_progress)
         if hessian:
             _, _, hess_exact = engine.hessian(ex, [t])
             hess_trot = trotter_hessian_exact(model, ex, t, steps, order, names)
         k = 0
-        batched = bool(batch) and (device is not None or (noise is not None and not noise.is_noiseless))
+        batched = bool(batch) and not spinning and (device is not None or (noise is not None and not noise.is_noiseless))
         for group in _groups(tasks, batch if batched else 0):
             if batched and device is not None:
                 ests, n_jobs, n_pubs = _device_batch(model, ex, group, t, steps, order, shots, rng, device,

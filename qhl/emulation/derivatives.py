@@ -25,6 +25,7 @@ from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit, sign
 from .estimate import ComplexEstimate
 from .noise import NoiseSpec
 from .runner import FamilyRunner, run_batch
+from ..spins.spinning import is_spinning
 
 __all__ = ["as_generator", "estimate_family", "emulate_signal", "emulate_gradient", "emulate_hessian",
            "emulate_gradients"]
@@ -88,7 +89,8 @@ def emulate_signal(model, experiment, time, steps, shots, seed=0, order=1, noise
 
 def emulate_gradient(model, experiment, parameter, time, steps, shots, seed=0, order=1, noise=None, *,
                      method="auto", sampling="stratified", audit=0, sampler_options=None, **compile_options):
-    """dS_trot/dh_n (1/Hz) with `shots` shots per part (Hadamard-test family by default).
+    """dS_trot/dh_n (1/Hz) with `shots` shots per part (Hadamard-test family by default; a spinning
+    experiment's time-dependent family, qhl.circuits.spinning_circuits, where it spins).
 
     Example:
         >>> from qhl import demo_cluster, build_model
@@ -97,7 +99,11 @@ def emulate_gradient(model, experiment, parameter, time, steps, shots, seed=0, o
         >>> e.shots, e.value == emulate_gradient(m, c.experiments[0], "offset:H1", 1e-4, 2, 200, seed=1).value
         (400, True)
     """
-    family = gradient_circuit(model, experiment, parameter, time, steps, order, **compile_options)
+    if is_spinning(experiment):       # the time-dependent family (qhl.circuits.spinning_circuits)
+        from ..circuits.spinning_circuits import spinning_gradient_circuit
+        family = spinning_gradient_circuit(model, experiment, parameter, time, steps, order, **compile_options)
+    else:
+        family = gradient_circuit(model, experiment, parameter, time, steps, order, **compile_options)
     return estimate_family(family, shots, seed, noise, method=method, sampling=sampling, audit=audit,
                            sampler_options=sampler_options)
 
