@@ -28,7 +28,7 @@ def test_check_rows_of_a_spinning_cluster():
     exact = np.array([r["exact"] for r in rows])
     trot = np.array([r["trotter_exact"] for r in rows])
     # the compiled second-order formula at 16 steps per rotor period against the exact derivative: the
-    # Trotter bias is a small share of the largest component (measured 1.6e-3 of it at r = 16)
+    # Trotter bias is a small share of the largest component (measured 1.3e-3 of it at r = 16)
     assert np.abs(trot - exact).max() < 5e-3 * np.abs(exact).max()
 
 
