@@ -157,7 +157,8 @@ def test_signal_command_runs_the_exact_spinning_engine(capsys, tmp_path):
     assert len(e["signal_real"]) == len(e["times_s"]) > 2
 
 
-@pytest.mark.parametrize("argv", [["circuits", "--time", "8e-5"],
+@pytest.mark.parametrize("argv", [["circuits", "--time", "8e-5", "--steps", "8", "--kind", "hessian", "--param",
+                                   "offset:A"],
                                   ["check", "--time", "8e-5", "--steps", "4", "--shots", "100", "--hessian"]])
 def test_other_commands_give_one_line_errors(capsys, tmp_path, argv):
     path = tmp_path / "rotor.toml"
@@ -191,3 +192,25 @@ def test_slow_rotor_takes_more_steps_than_the_rotor_rule(capsys, tmp_path):
     # and at half the steps the error is above the target (the doubling stopped at the first r that fits)
     half = spin._operator_signal(m, spin.spinning_evolution(m, ex, 5e-4, e["trotter_steps"] // 2, 2))
     assert abs(half - ref) > 0.5 * e["signal_error"]["target"]
+
+
+def test_circuits_command_counts_the_spinning_circuits(capsys, tmp_path):
+    # qhl circuits on a spinning experiment: the counts of the compiled time-dependent circuit, transpiled and
+    # counted here (qiskit.transpile), equal to the budget's signal circuit; --eps takes at least the rotor rule
+    path = tmp_path / "rotor.toml"
+    path.write_text(spin._text(4))
+    rc, out, err = _run(capsys, "circuits", str(path), "--time", str(spin.T), "--steps", "8", "--order", "2",
+                        "--json")
+    assert rc == 0, err
+    d = json.loads(out)
+    c = spin._cluster(4)
+    m = spin.build_model(c)
+    fam = spinning_signal_circuit(m, c.experiments[0], spin.T, 8, 2)
+    want = _transpiled_counts(fam.with_measurements(fam.representative()))
+    assert {k: d[k] for k in want} == want
+    assert any("spinning" in note for note in d["notes"])
+    rc, out, err = _run(capsys, "circuits", str(path), "--time", str(spin.T), "--eps", "0.5", "--order", "2",
+                        "--json")
+    assert rc == 0, err
+    d = json.loads(out)
+    assert d["steps"] >= 8 and d["trotter_error_bound"] <= 0.5

@@ -70,7 +70,16 @@ def bound_notes(bound: float) -> list:
 def build_family(model, experiment, kind, params, time, steps, order, method, grouping, ordering):
     """The CircuitFamily the command counts (a thin switch over qhl.circuits.gradient_circuits)."""
     from ..circuits.gradient_circuits import gradient_circuit, hessian_circuit, signal_circuit
+    from ..spins.spinning import is_spinning
     common = dict(grouping=grouping, ordering=ordering)
+    if experiment is not None and is_spinning(experiment):      # time-dependent circuits (spinning_circuits)
+        from ..circuits.spinning_circuits import spinning_gradient_circuit, spinning_signal_circuit
+        if kind == "hessian" or method == "shift":
+            raise QhlInputError(f"experiment '{experiment.name}' spins: its circuits are the signal and the "
+                                "Hadamard-test gradient (no --kind hessian, no --method shift)", key="--kind")
+        if kind == "signal":
+            return spinning_signal_circuit(model, experiment, time, steps, order, **common)
+        return spinning_gradient_circuit(model, experiment, params[0], time, steps, order, **common)
     if kind == "signal":
         return signal_circuit(model, experiment, time, steps, order, **common)
     if kind == "gradient":
@@ -100,6 +109,7 @@ def run(args):
     from ..circuits.trotter_bounds import trotter_error_bound, trotter_steps_for
 
     from ..circuits.targets import resolve_target
+    from ..spins.spinning import is_spinning
 
     if args.qasm:
         check_output_path(args.qasm, "--qasm")
@@ -111,11 +121,21 @@ def run(args):
     params = _parameters(args.kind, args.param)
     for name in params:
         model.parameter(name)
-    terms = trotter_terms(model, experiment, grouping=args.grouping, ordering=args.ordering)
+    spinning = experiment is not None and is_spinning(experiment)
+    if spinning:
+        # the bound of H with every coupling at its largest rotor factor (qhl.costing.trotter_cost.rotor_bound_model;
+        # the Magnus error of the time dependence is not in it); r at least the rotor rule
+        from ..circuits.spinning_circuits import steps_rule
+        from ..costing.trotter_cost import rotor_bound_model
+        terms = rotor_bound_model(model, experiment).terms
+    else:
+        terms = trotter_terms(model, experiment, grouping=args.grouping, ordering=args.ordering)
     if args.steps is None:
         if args.eps is None:
             raise QhlInputError("give --steps R or --eps EPS", key="--steps")
         steps = trotter_steps_for(terms, args.time, args.eps, args.order)
+        if spinning:
+            steps = steps_rule(experiment.spinning_hz, args.time, steps)
         check_steps(steps, "--eps")
     else:
         steps = args.steps
@@ -136,6 +156,10 @@ def run(args):
         routed = routed_family_counts(family, target)
     bound = trotter_error_bound(terms, args.time, steps, args.order)
     notes = bound_notes(bound)
+    if spinning:
+        notes.append(f"spinning at {experiment.spinning_hz:g} Hz: time-dependent Trotter circuits (step-averaged "
+                     "couplings); the bound is that of every coupling at its largest rotor factor and leaves out the "
+                     "Magnus error of the time dependence (rotor rule: 8 steps per period)")
     for note in notes:
         print(f"qhl: note: {note}", file=sys.stderr)
     if args.qasm:
