@@ -103,7 +103,7 @@ def random_complex_vector_d2(dimension) -> np.ndarray:
 
     Example:
         >>> round(float(random_complex_vector_d2(70)), 3)
-        0.839
+        0.84
     """
     n = np.asarray(dimension, float)
     return np.log((n + 1) / 2) / np.log(n)
