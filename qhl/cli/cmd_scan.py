@@ -1,7 +1,8 @@
 """`qhl scan`: learnability and ergodicity diagnostics over clusters x dipolar scales, on Dask."""
 
 from ..survey.scan_settings import ScanSettings
-from .common import NOISE, POINTS, SCALES, TIMEOUT, TIME_S, WORKERS, add_report_argument, print_json, report_if_asked
+from .common import (NOISE, POINTS, SCALES, SPINNING, TIMEOUT, TIME_S, WORKERS, add_report_argument, print_json,
+                     report_if_asked)
 
 
 def register(sub):
@@ -21,6 +22,9 @@ def register(sub):
                    help="noise per Re/Im part relative to S(0) (default 1e-3)")
     p.add_argument("--free", nargs="+", default=list(ScanSettings.free), metavar="PATTERN",
                    help="free parameters as glob patterns (default: offsets and dipolar couplings)")
+    p.add_argument("--spinning-hz", type=SPINNING, default=0.0, metavar="HZ",
+                   help="spin every sample at the magic angle at this rate (default 0: static; the levels are then "
+                        "Floquet quasi-energies of one rotor period)")
     p.add_argument("--timeout", type=TIMEOUT, default=10.0, metavar="SECONDS",
                    help="how long to wait for --scheduler (default 10 s)")
     p.add_argument("--json", action="store_true", help="print one JSON object")
@@ -49,7 +53,8 @@ def run(args):
     from ..survey.scan import define_scan, parse_scale_range, read_results, run_scan
     if args.plot:
         _check_plot_folder(args.plot)
-    settings = ScanSettings(t_max_s=args.t_max, points=args.points, noise=args.noise, free=tuple(args.free))
+    settings = ScanSettings(t_max_s=args.t_max, points=args.points, noise=args.noise, free=tuple(args.free),
+                            spinning_hz=args.spinning_hz)
     definition = define_scan(args.clusters, parse_scale_range(args.dipolar_scale), settings)
     summary = run_scan(definition, args.out, scheduler=args.scheduler, workers=args.workers,
                        connect_timeout=args.timeout)

@@ -76,8 +76,10 @@ def _sha(text: str) -> str:
 
 
 def _task_id(cluster_toml: str, scale: float, settings: ScanSettings) -> str:
-    key = {"cluster": _sha(cluster_toml), "dipolar_scale": repr(float(scale)),
-           "settings": {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(settings).items()},
+    shared = {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(settings).items()}
+    if not settings.spinning_hz:
+        del shared["spinning_hz"]           # static scans keep the task ids they had before the rotor setting
+    key = {"cluster": _sha(cluster_toml), "dipolar_scale": repr(float(scale)), "settings": shared,
            "version": RESULTS_VERSION}
     return _sha(json.dumps(key, sort_keys=True))[:20]
 
@@ -99,7 +101,8 @@ class ScanDefinition:
         s = self.settings
         return (f"tasks={len(self.tasks)} clusters={len(self.clusters)} "
                 f"dipolar_scales={','.join(repr(x) for x in self.dipolar_scales)} "
-                f"t_max_s={s.t_max_s!r} points={s.points} noise={s.noise!r} free={','.join(s.free)}")
+                f"t_max_s={s.t_max_s!r} points={s.points} noise={s.noise!r} free={','.join(s.free)}"
+                + (f" spinning_hz={s.spinning_hz!r}" if s.spinning_hz else ""))
 
 
 def parse_scale_range(text: str) -> tuple:
@@ -182,7 +185,8 @@ def run_task(task: ScanTask) -> dict:
     """Compute one task's results row (a dict over COLUMNS). Runs on a worker."""
     cluster = parse_cluster_toml(task.cluster_toml, source=f"<{task.cluster}>")
     s = task.settings
-    d = diagnose(cluster, task.dipolar_scale, t_max_s=s.t_max_s, points=s.points, noise=s.noise, free=s.free)
+    d = diagnose(cluster, task.dipolar_scale, t_max_s=s.t_max_s, points=s.points, noise=s.noise, free=s.free,
+                 spinning_hz=s.spinning_hz)
     row = {"task_id": task.task_id, "cluster": task.cluster, "n_spins": d.n_spins,
            "dipolar_scale": task.dipolar_scale, "seconds": d.seconds}
     row.update(d.summary())

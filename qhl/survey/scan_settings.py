@@ -12,12 +12,15 @@ __all__ = ["ScanSettings"]
 
 @dataclass(frozen=True)
 class ScanSettings:
-    """What every task of a scan shares: one FID (t_max_s, points, noise) and the free parameters."""
+    """What every task of a scan shares: one FID (t_max_s, points, noise), the free parameters and the rotor
+    (spinning_hz > 0: the FID of a sample spinning at the magic angle; its levels are Floquet quasi-energies,
+    qhl.survey.diagnostics)."""
 
     t_max_s: float = 5e-4
     points: int = 64
     noise: float = 1e-3
     free: tuple = DEFAULT_FREE
+    spinning_hz: float = 0.0
 
     def __post_init__(self):
         object.__setattr__(self, "free", tuple(self.free))
@@ -25,6 +28,10 @@ class ScanSettings:
             v = getattr(self, key)
             if not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
                 raise QhlInputError(f"expected a positive number, got {v!r}", key=key)
+        from ..spins.cluster import MAX_SPINNING_HZ
+        v = self.spinning_hz
+        if isinstance(v, bool) or not (isinstance(v, (int, float)) and math.isfinite(v) and 0 <= v <= MAX_SPINNING_HZ):
+            raise QhlInputError(f"expected a rate in [0, {MAX_SPINNING_HZ:g}] Hz, got {v!r}", key="spinning_hz")
         if not self.free:
             raise QhlInputError("expected at least one free-parameter pattern", key="free")
         if not isinstance(self.points, numbers.Integral) and not isinstance(self.points, bool) or self.points < 2:
