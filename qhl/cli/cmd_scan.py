@@ -61,7 +61,7 @@ def run(args):
     plots = []
     if args.plot:
         from ..survey.scan_plots import plot_scan
-        plots = [str(p) for p in plot_scan(read_results(args.out)[1], args.plot)]
+        plots = [str(p) for p in plot_scan(read_results(args.out)[1], args.plot, spinning_hz=args.spinning_hz)]
     report = {"results": summary.path, "scan_id": summary.scan_id, "tasks": summary.total,
               "skipped": summary.skipped, "computed": summary.computed, "seconds": summary.seconds,
               "workers": summary.workers, "plots": plots}

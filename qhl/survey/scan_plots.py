@@ -15,7 +15,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-from .diagnostics import GOE_MEAN_R, POISSON_MEAN_R  # noqa: E402
+from .diagnostics import GOE_MEAN_R, GUE_MEAN_R, POISSON_MEAN_R  # noqa: E402
 
 __all__ = ["aggregate", "plot_scan"]
 
@@ -53,8 +53,11 @@ def _positive(y):
     return np.where(y > 0, y, np.nan)
 
 
-def plot_scan(rows, out_dir) -> list:
+def plot_scan(rows, out_dir, spinning_hz: float = 0.0) -> list:
     """Write learnability_vs_scale.png, learnability_vs_size.png and ergodicity_vs_scale.png.
+
+    spinning_hz > 0 (a scan of spinning samples): <r> is that of Floquet quasi-energies, drawn beside the
+    circular unitary ensemble's 0.5996 instead of the GOE value.
 
     Returns:
         list of the written paths.
@@ -98,7 +101,10 @@ def plot_scan(rows, out_dir) -> list:
     for n, (x, y) in aggregate(rows, "mean_r").items():
         axes[0].plot(x, y, "o-", label=f"{n} spins")
     axes[0].axhline(POISSON_MEAN_R, color="k", ls="--", lw=1, label=f"Poisson {POISSON_MEAN_R:.4f}")
-    axes[0].axhline(GOE_MEAN_R, color="k", ls=":", lw=1, label=f"GOE {GOE_MEAN_R:.4f}")
+    if spinning_hz:
+        axes[0].axhline(GUE_MEAN_R, color="k", ls=":", lw=1, label=f"CUE (GUE) {GUE_MEAN_R:.4f}, Floquet levels")
+    else:
+        axes[0].axhline(GOE_MEAN_R, color="k", ls=":", lw=1, label=f"GOE {GOE_MEAN_R:.4f}")
     axes[0].set_ylabel("<r>")
     for n, (x, y) in aggregate(rows, "mean_d2").items():
         axes[1].plot(x, y, "o-", label=f"{n} spins")
