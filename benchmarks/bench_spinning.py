@@ -15,26 +15,14 @@ Run: python benchmarks/bench_spinning.py [RATE_HZ ...]   (default 20000)
 """
 
 import dataclasses
-import statistics
 import sys
-import time
 
 import numpy as np
-from timing import median_time
+from timing import median_cpu, median_time
 
 from qhl import ExactEngine, build_model, demo_cluster
 from qhl.exact.spinning_engine import default_slices_per_period, spinning_signal
 
-
-
-def median_cpu(fun, repeats):
-    """Median CPU seconds of this process (less sensitive than wall time to a shared machine)."""
-    out = []
-    for _ in range(repeats):
-        t0 = time.process_time()
-        fun()
-        out.append(time.process_time() - t0)
-    return statistics.median(out)
 
 
 cluster = demo_cluster()

@@ -859,8 +859,8 @@ class BudgetModel:
     def _spinning_entry(self, ex, t, eps, order, steps):
         """Per spinning experiment at acquisition time t: steps, signal- and gradient-circuit counts, T-count."""
         from ..circuits.circuit_counts import family_counts
-        from ..circuits.spinning_circuits import (STEPS_RULE_TEXT, spinning_counts_rule, spinning_evolution,
-                                                  spinning_signal_circuit, steps_rule)
+        from ..circuits.spinning_circuits import (STEPS_RULE_TEXT, spinning_evolution, spinning_signal_circuit,
+                                                  steps_rule)
         s = self.settings
         rotor = steps_rule(ex.spinning_hz, t)
         r = steps_rule(ex.spinning_hz, t, steps or 1)
@@ -893,7 +893,7 @@ class BudgetModel:
         # the slots of every step are built only where they stay small; above, the count rule needs the terms
         # alone and the near-term range its integral bound (_spinning_near_term)
         evo = spinning_evolution(self.model, ex, t, r, order) if r * per_step_blocks <= SPINNING_SLOTS_MAX else None
-        rule = evolution_counts_rule(terms, order, r) if evo is None else spinning_counts_rule(evo)
+        rule = evolution_counts_rule(terms, order, r)        # the spinning circuits' terms (s_n = 1), their slots
         n_blocks = r * per_step_blocks if evo is None else \
             sum(len(evo.terms.groups[sl.group].blocks) for sl in evo.slots)
         counts = None
