@@ -24,10 +24,17 @@ Each exponential is a "stage" exp(-i tau 2 pi sum_n e_n h_n G_n) with e = sbar/2
     divided difference of exp(-i E tau); R. Bhatia, "Matrix Analysis", 1997, ch. V), in the
     interaction form dU(t) = U(t) Xi:
         Xi = (P Q)^dag Omega (P Q) + Q^dag Delta_2j Q + Gamma_q,
-        Delta_i = sum_(i' <= i) Y^dag ((V^dag dH V) o F') Y, Y = V^dag P_(i'-1) (stages, batched over
-        stages and parameters), Gamma_q = sum_(l < q) U_R^-l Delta_2K U_R^l,
+        Delta_i = sum_(i' <= i) Y^dag ((V^dag dH V) o F') Y, Y = V^dag P_(i'-1),
+        Gamma_q = sum_(l < q) U_R^-l Delta_2K U_R^l,
     Omega the partial slice's part, contracted per time point without a parameter axis (adjoint
-    form: the result is a sum over the generators' entries). The trace with O and rho0 is taken
+    form: the result is a sum over the generators' entries). Delta is never formed stage by stage:
+    the stages run as one recursion on M_i = V_i^dag P_i Delta_i P_i^dag V_i (the derivative seen
+    from the end of stage i, in that stage's eigenbasis),
+        M_i = Phi_i o (O_i M_(i-1) O_i^dag + F'_i o V_i^dag dH_i V_i),  O_i = V_i^dag V_(i-1),
+    Phi_i = exp(-i (E_a - E_b) tau): with real eigenvectors (real H) every product is real, two
+    per stage for all parameters at once (M is anti-Hermitian, so O M O^dag needs only left
+    products), where Y^dag X Y needed two complex products per stage and parameter; each
+    sampling time's contraction matrices are carried into the eigenbasis of its mark instead. The trace with O and rho0 is taken
     per sector: dS = sum_k sum_ab [C_k o dU_k + C'_k o conj(dU_k)], C_k = sum over blocks
     (rho U_p^dag O)^T, C'_k = sum over blocks O U_s rho.
 
@@ -47,8 +54,8 @@ ExactEngine.spinning_slices_per_period).
 
 Memory (spinning_memory_bytes, checked with qhl.base.memory.require_memory before any work): per
 sector the stage eigendecompositions and the sampling-time propagators; in the gradient, for the
-largest sector d, 16 d^2 R (3 Kc + J + Q) bytes (R parameters, Kc stages per chunk, J and Q distinct
-slice and period indices of the sampling times) plus 16 d^2 T (8 + R) for the time tables.
+largest sector d, 16 d^2 R (3 Kc + 4) bytes (R parameters, Kc stages per chunk: the chunk's
+generator products and the recursion's matrices) plus 16 d^2 T 10 for the time tables.
 """
 
 from fractions import Fraction
@@ -162,17 +169,17 @@ def _stage_chunk(n_stages, n_rows, d):
 
 
 def spinning_memory_bytes(dims, k_slices, n_rows, n_times, n_j=None, n_q=None) -> float:
-    """Peak-memory model (bytes) of the module docstring; dims: the sector dimensions in use."""
+    """Peak-memory model (bytes) of the module docstring; dims: the sector dimensions in use (n_j, n_q:
+    distinct slice and period indices of the sampling times, accepted for callers; the recursion's
+    memory does not grow with them)."""
     dims = np.asarray(dims, float)
     d = float(dims.max())
-    n_j = n_times if n_j is None else n_j
-    n_q = n_times if n_q is None else n_q
     cache = 16.0 * (2 * k_slices + 2 * n_times) * 2 * np.sum(dims**2)
     per_time = 16.0 * 4 * n_times * np.sum(dims**2)
     grad = 0.0
     if n_rows:
         kc = _stage_chunk(2 * k_slices, n_rows, d)
-        grad = 16.0 * d * d * (n_rows * (3 * kc + n_j + n_q + n_times) + 8 * n_times)
+        grad = 16.0 * d * d * (n_rows * (3 * kc + 4) + 10 * n_times)
     return float(cache + per_time + grad)
 
 
@@ -296,66 +303,115 @@ class _Spinning:
             out[s] = (u.swapaxes(1, 2) @ ca, _h(u) @ cb)
         return out
 
+    def _generators(self, s, idx):
+        """(stacked CSR (R d, d), dense (R, d, d)) generator blocks of sector s for parameters idx (cached)."""
+        cache = self.engine.__dict__.setdefault("_spinning_generators", {})
+        key = (s, tuple(idx))
+        if key not in cache:
+            if len(cache) > 64:
+                cache.clear()
+            gst = sp.vstack([self.engine._gen_blocks[n][s] for n in idx]).tocsr()
+            d = gst.shape[1]
+            cache[key] = (gst, gst.toarray().reshape(len(idx), d, d))
+        return cache[key]
+
     def sector_gradient(self, s, rows, ab):
         """(R, T) contribution of sector s to the unnormalised gradient (module docstring)."""
         e, v, parts, w1, pref, pw = self.spec[s]
         pj, pq, _ = self.prop[s]
         a, b = ab
-        d = e.shape[-1]
         idx = [n for n, _ in rows]
-        gens = np.stack([self.engine._gen_blocks[n][s].toarray() for n in idx])          # (R, d, d)
-        n_st = self.n_st
-        # Delta_i at the ends of the needed whole slices (stage index 2j) and of the period
-        marks = {2 * j for j in self.need_j} | {n_st}
-        delta = {0: np.zeros((len(rows), d, d), complex)}
-        run = delta[0]
-        chunk = _stage_chunk(n_st, len(rows), d)
-        for c0 in range(0, n_st, chunk):
-            sl = slice(c0, min(n_st, c0 + chunk))
-            y = _h(v[sl]) @ pref[sl]                                                    # V^dag P_(i-1)
-            scale = (2 * np.pi * self.stage_factors[sl][:, idx])[:, :, None, None]
-            fp = self._f_prime(e[sl], self.tau)
-            vh = np.ascontiguousarray(_h(v[sl]))
-            gt = vh[:, None] @ (gens[None] @ v[sl][:, None]) * scale                    # (c, R, d, d)
-            gt = gt * fp[:, None]
-            term = np.ascontiguousarray(_h(y))[:, None] @ gt @ y[:, None]
-            # running sum, read off only at the marks inside this chunk (segment sums)
-            ends = [i + 1 - c0 for i in range(sl.start, sl.stop) if i + 1 in marks]
-            start = 0
-            for end in ends:
-                run = run + term[start:end].sum(axis=0)
-                delta[c0 + end] = run
-                start = end
-            if start < term.shape[0]:
-                run = run + term[start:].sum(axis=0)
-        # Gamma_q = sum_(l < q) U_R^-l Delta_R U_R^l
-        gam = {0: np.zeros_like(run)}
-        g = gam[0]
-        for q in range(1, self.need_q[-1] + 1):
-            g = g + _h(pw[q - 1]) @ delta[n_st] @ pw[q - 1]
-            if q in self.need_q:
-                gam[q] = g
+        gst, gens = self._generators(s, idx)
+        real = not (np.iscomplexobj(v) or np.iscomplexobj(gens))
         grad = np.zeros((len(rows), self.t.size), complex)
-        for q in self.need_q:
-            m = np.nonzero(self.q == q)[0]
-            grad[:, m] += _pair(gam[q], a[m], b[m])
-        a2 = pq.conj() @ a @ pq.swapaxes(1, 2)                                          # conj(Q) A Q^T
-        b2 = pq @ b @ _h(pq)                                                            # Q B Q^dag
-        for j in self.need_j:
-            m = np.nonzero(self.j == j)[0]
-            grad[:, m] += _pair(delta[2 * j], a2[m], b2[m])
-        # partial slice: Omega = W1^dag Omega_2 W1 + Omega_1, contracted with conj(X) A X^T, X = P Q
+        # per sampling time: X = P_2j U_R^q and the contraction matrices conj(X) A X^T, X B X^dag
         x = pj @ pq
         a3 = x.conj() @ a @ x.swapaxes(1, 2)
         b3 = x @ b @ _h(x)
+        delta_r = self._stage_recursion(s, idx, gst, real, a3, b3, grad)
+        if delta_r is not None:
+            # Gamma_q = sum_(l < q) U_R^-l Delta_R U_R^l
+            g = np.zeros_like(delta_r)
+            for q in range(1, self.need_q[-1] + 1):
+                g = g + _h(pw[q - 1]) @ delta_r @ pw[q - 1]
+                if q in self.need_q:
+                    sel = np.nonzero(self.q == q)[0]
+                    grad[:, sel] += _pair(g, a[sel], b[sel])
+        # partial slice: Omega = W1^dag Omega_2 W1 + Omega_1, contracted with conj(X) A X^T
         (e1, v1), (e2, v2) = parts
-        m, w1 = self.inside, w1[self.inside]
-        if m.size:
-            a3, b3 = a3[m], b3[m]
-            grad[:, m] += self._adjoint_stage(e1, v1, gens, idx, 0, a3, b3)
-            grad[:, m] += self._adjoint_stage(e2, v2, gens, idx, 1, w1.conj() @ a3 @ w1.swapaxes(1, 2),
-                                              w1 @ b3 @ _h(w1))
+        sel, w1 = self.inside, w1[self.inside]
+        if sel.size:
+            a3, b3 = a3[sel], b3[sel]
+            grad[:, sel] += self._adjoint_stage(e1, v1, gens, idx, 0, a3, b3, real)
+            grad[:, sel] += self._adjoint_stage(e2, v2, gens, idx, 1, w1.conj() @ a3 @ w1.swapaxes(1, 2),
+                                                w1 @ b3 @ _h(w1), real)
         return grad
+
+    def _stage_recursion(self, s, idx, gst, real, a3, b3, grad):
+        """The Lambda recursion over the stages (module docstring), all parameters at once.
+
+        M_i = V_i^dag P_i Delta_i P_i^dag V_i obeys M_i = Phi_i o (O_i M_(i-1) O_i^dag + F'_i o B_i),
+        O_i = V_i^dag V_(i-1), B_i = V_i^dag (2 pi e_in G_n) V_i, Phi_i = exp(-i (E_a - E_b) tau). M is
+        held as (d, R, d) [a, parameter, b], so each product with O is one matrix product over all
+        parameters (real products on the (re, im) pairs where V is real). M is anti-Hermitian in
+        (a, b), so M O^dag = -conj(transpose(O M)) and O M O^dag = -conj(O^* transpose(O M)): two
+        left products. At a mark 2j the contraction sum_ab Delta o A + conj(Delta) o B equals
+        sum_ab M o (V^T A3 V^*) + conj(M) o (V^dag B3 V), A3 = conj(X) A X^T, B3 = X B X^dag,
+        X = P_2j U_R^q, V = V_(2j-1). Adds the marks' terms to grad; returns Delta_R (R, d, d), or
+        None when no sampling time lies beyond the first period."""
+        e, v, pref = self.spec[s][0], self.spec[s][1], self.spec[s][4]
+        n_st, d, n_r = self.n_st, e.shape[-1], len(idx)
+        need_r = self.need_q[-1] >= 1
+        # the marks' contraction matrices in the eigenbasis of the stage ending there, all at once
+        at = np.nonzero(self.j > 0)[0]
+        mark_of = np.full(self.t.size, -1)
+        mark_of[at] = 2 * self.j[at]
+        vm = v[2 * self.j[at] - 1]
+        a_t = _sandwich(vm.swapaxes(1, 2), a3[at], vm.conj(), real)
+        b_t = _sandwich(_h(vm), b3[at], vm, real)
+        pos = np.full(self.t.size, -1)
+        pos[at] = np.arange(at.size)
+        marks = set(mark_of[at].tolist())
+        ph = np.exp(-1j * e * self.tau)
+        m = None
+        delta_r = None
+        chunk = _stage_chunk(n_st, n_r, d)
+        for c0 in range(0, n_st, chunk):
+            c1 = min(n_st, c0 + chunk)
+            vs = v[c0:c1]
+            c = c1 - c0
+            # S_i = [G_1 V_i | ... | G_R V_i] as (d, R d); B_i = V_i^dag S_i, scaled per parameter
+            gv = gst @ vs.transpose(1, 0, 2).reshape(d, c * d)                              # (R d, c d)
+            gv = np.ascontiguousarray(gv.reshape(n_r, d, c, d).transpose(2, 1, 0, 3)).reshape(c, d, n_r * d)
+            bt = (_h(vs) @ gv).reshape(c, d, n_r, d)
+            bt *= (2 * np.pi * self.stage_factors[c0:c1][:, idx])[:, None, :, None]
+            del gv
+            # Phi o F' = exp(i E_b tau) f[E_a, E_b]
+            pf = np.exp(1j * e[c0:c1, None, :] * self.tau) * first_divided_difference(
+                e[c0:c1, :, None], e[c0:c1, None, :], self.tau)
+            negphase = -(ph[c0:c1, :, None] * ph[c0:c1, None, :].conj())
+            prev = v[c0 - 1:c1 - 1] if c0 > 0 else np.concatenate([vs[:1], vs[:-1]])
+            o_all = _h(vs) @ prev                                                          # O_i = V_i^dag V_(i-1)
+            for ii in range(c):
+                i = c0 + ii
+                if m is None:
+                    m = bt[ii] * pf[ii][:, None, :]
+                else:
+                    o = o_all[ii]
+                    m = _left(o if real else o.conj(),
+                              np.ascontiguousarray(_left(o, m, real).transpose(2, 1, 0)), real)
+                    np.conjugate(m, out=m)                             # O M O^dag = -conj(O^* T(O M))
+                    m *= negphase[ii][:, None, :]
+                    m += bt[ii] * pf[ii][:, None, :]
+                if i + 1 in marks or (need_r and i + 1 == n_st):
+                    mc = np.ascontiguousarray(m.transpose(1, 0, 2))                            # (R, d, d)
+                    sel = np.nonzero(mark_of == i + 1)[0]
+                    if sel.size:
+                        grad[:, sel] += _pair(mc, a_t[pos[sel]], b_t[pos[sel]])
+                    if need_r and i + 1 == n_st:
+                        z = _h(v[i]) @ pref[i + 1]                                         # Z = V_i^dag P_(i+1)
+                        delta_r = _h(z) @ mc @ z                                           # Delta_R = Z^dag M Z
+        return delta_r
 
     @staticmethod
     def _f_prime(e, dt):
@@ -363,22 +419,38 @@ class _Spinning:
         dt = np.broadcast_to(np.asarray(dt, float), e.shape[:1])[:, None, None]
         return np.exp(1j * e[:, :, None] * dt) * first_divided_difference(e[:, :, None], e[:, None, :], dt)
 
-    def _adjoint_stage(self, e, v, gens, idx, which, a, b):
+    def _adjoint_stage(self, e, v, gens, idx, which, a, b, real):
         """sum_ab [A o Omega + B o conj(Omega)] of one partial-slice stage, per parameter and time:
         Omega = V (F' o V^dag dH V) V^dag, so sum A o Omega = sum_ef dH_ef (V^* (F' o V^T A V^*) V^T)_ef."""
         fp = self._f_prime(e, self.delta[self.inside])
         vt, vc = v.swapaxes(1, 2), v.conj()
         flat = gens.reshape(len(idx), -1)
         factor = (2 * np.pi * self.part_factors[which][:, idx]).T
-        if self.engine.real:
+        if real:
             # real V and G: sum G o conj(zb) = sum G o V (conj(F') o V^T B V) V^T, one back-transform
-            z = v @ (fp * (vt @ a @ v) + fp.conj() * (vt @ b @ v)) @ vt
-            return factor * (flat @ z.reshape(len(z), -1).T)
+            z = _sandwich(v, fp * _sandwich(vt, a, v, True) + fp.conj() * _sandwich(vt, b, v, True), vt, True)
+            z = z.reshape(len(z), -1)
+            return factor * (flat @ z.real.T + 1j * (flat @ z.imag.T))
         za = vc @ (fp * (vt @ a @ vc)) @ vt
         zb = vc @ (fp * (vt @ b.conj() @ vc)) @ vt
         ga = flat @ za.reshape(len(za), -1).T
         gb = (flat @ zb.reshape(len(zb), -1).T).conj()
         return factor * (ga + gb)
+
+
+def _left(o, m, real):
+    """o @ m over the first axis of a complex stack m (d, ...): one real product where o is real."""
+    if not real:
+        return (o @ m.reshape(m.shape[0], -1)).reshape(m.shape)
+    return (o @ m.view(np.float64).reshape(m.shape[0], -1)).view(complex).reshape(m.shape)
+
+
+def _sandwich(left, x, right, real):
+    """left @ x @ right for a complex stack x and matrices left, right (real products when real)."""
+    if not real:
+        return left @ x @ right
+    y = (left @ x.real) + 1j * (left @ x.imag)
+    return (y.real @ right) + 1j * (y.imag @ right)
 
 
 def _pair(dm, ca, cb):
