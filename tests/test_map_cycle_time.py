@@ -255,3 +255,27 @@ def test_api_refuses_bad_cycle_input():
         cycle_train(6e-4, 5e-4)
     train = cycle_train(1e-4, 5e-4, "wahuha")       # 5 cycles exactly fill the window
     assert (train.cycles, train.tau_s) == (5, pytest.approx(1e-4 / 6))
+
+
+def test_floquet_levels_split_by_the_unpulsed_isotope():
+    # A cycle that pulses 1H only keeps the total Iz of 13C: the secular H commutes with each isotope's total
+    # Iz and the pulses do not touch 13C (common practice), so U_c has no element between different 13C
+    # magnetisations and its levels split into those sectors (qhl.survey.diagnostics.cycle_floquet_levels).
+    from made_up_clusters import random_cluster
+    from qhl.exact.engine import ExactEngine
+    from qhl.exact.stroboscopic import cycle_propagator
+    from qhl.spins.model import build_model
+    from qhl.spins.sequences import named_block
+    from qhl.survey.diagnostics import cycle_floquet_levels
+
+    cluster = random_cluster(np.random.default_rng(3), 4, hetero=True)      # S2 is 13C
+    engine = ExactEngine(build_model(cluster))
+    block = named_block("wahuha", 2e-6)
+    u = cycle_propagator(engine, block)
+    up = (np.arange(16) >> 2) & 1                                         # 13C spin S2 is qubit 2
+    assert np.max(np.abs(u[np.ix_(up == 0, up == 1)])) < 1e-12
+    assert np.max(np.abs(u[np.ix_(up == 0, up == 0)] - np.eye(8))) > 1e-3     # the 1H block does evolve
+    levels = cycle_floquet_levels(engine, block)
+    assert sorted(len(ph) for ph, _ in levels) == [8, 8]
+    ref = np.sort(np.mod(-np.angle(np.linalg.eigvals(u)), 2 * np.pi))
+    assert np.allclose(np.sort(np.concatenate([ph for ph, _ in levels])), ref, atol=1e-10)
