@@ -61,7 +61,7 @@ def test_map_plot(lmap, tmp_path):
 
 def test_bad_axis_and_thresholds_are_refused(cluster):
     with pytest.raises(QhlInputError, match="control axis"):
-        learnability_map(cluster, axis="cycle_time_s", values=(1.0,))
+        learnability_map(cluster, axis="rf_nutation_hz", values=(1.0,))
     with pytest.raises(QhlInputError, match="unknown threshold"):
         learnability_map(cluster, values=(1.0,), thresholds={"max_crb": 1.0})
     with pytest.raises(QhlInputError, match="dipolar_scale"):

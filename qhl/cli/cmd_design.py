@@ -3,6 +3,7 @@ the learnability map of one cluster over a control axis (qhl.learning.design, qh
 
 import sys
 
+from ..spins.sequences import NAMED_SEQUENCES
 from .common import (AXIS_VALUES, NOISE, POINTS, PRECISION, SCALES, TIME_S, TROTTER_EPS, add_cluster_argument,
                      add_report_argument, check_output_path, cluster_from_args, number_in, print_json,
                      report_if_asked)
@@ -12,6 +13,8 @@ _BUDGET = number_in(0, 1e30, low_open=True, name="budget")
 _TIME_POINTS = number_in(1, 10_000, integer=True, name="time points")
 _NONNEG = number_in(0, 1e300, name="threshold")
 _WINDOWS = "A:B:N"
+_AXES = ("dipolar_scale", "spinning_hz", "cycle_time_s")
+_DEFAULT_VALUES = {"dipolar_scale": "0:1:6", "spinning_hz": "0:40000:6", "cycle_time_s": "1e-5:2e-4:5"}
 
 
 def register(sub):
@@ -49,11 +52,17 @@ def register(sub):
     p.add_argument("--show", type=_TIME_POINTS, default=20, metavar="N", help="candidates shown in the table "
                                                                              "(default 20)")
     m = p.add_argument_group("learnability map (--map)")
-    m.add_argument("--map", choices=("dipolar_scale", "spinning_hz"), metavar="AXIS",
-                   help="map learnability, ergodicity and costs over this control axis (dipolar_scale, or spinning_hz: a magic-angle rotor, 0 = static)")
+    m.add_argument("--map", choices=_AXES, metavar="AXIS",
+                   help="map learnability, ergodicity and costs over this control axis (dipolar_scale; spinning_hz: "
+                        "a magic-angle rotor, 0 = static; cycle_time_s: the cycle time of --sequence, sampled once "
+                        "per cycle)")
     m.add_argument("--values", type=AXIS_VALUES, default=None, metavar="A:B:N",
-                   help="axis values (default 0:1:6 for dipolar_scale, 0:40000:6 Hz for spinning_hz)")
-    m.add_argument("--t-max", type=TIME_S, default=5e-4, metavar="SECONDS", help="FID length (default 5e-4 s)")
+                   help="axis values (default 0:1:6 for dipolar_scale, 0:40000:6 Hz for spinning_hz, "
+                        "1e-5:2e-4:5 s for cycle_time_s)")
+    m.add_argument("--sequence", choices=sorted(NAMED_SEQUENCES), default="wahuha", metavar="NAME",
+                   help=f"the cycle of --map cycle_time_s: {', '.join(sorted(NAMED_SEQUENCES))} (default wahuha)")
+    m.add_argument("--t-max", type=TIME_S, default=5e-4, metavar="SECONDS",
+                   help="FID length, or the window the cycles fill (default 5e-4 s)")
     m.add_argument("--map-points", type=POINTS, default=64, metavar="N", help="FID points (default 64)")
     m.add_argument("--map-noise", type=NOISE, default=1e-3, metavar="SIGMA", help="FID noise (default 1e-3)")
     m.add_argument("--precision", type=PRECISION, default=0.01, metavar="EPS",
@@ -166,10 +175,11 @@ def _run_map(args, cluster):
     thresholds = {"max_median_crb_hz": args.max_median_crb, "max_softest_bound_hz": args.max_softest_bound,
                   "hard_seconds": args.hard_seconds, "hard_memory_bytes": args.hard_memory,
                   "max_t_count": args.max_t_count}
-    values = args.values or ("0:40000:6" if args.map == "spinning_hz" else "0:1:6")
+    values = args.values or _DEFAULT_VALUES[args.map]
     lmap = learnability_map(cluster, args.map, _axis_grid(values), t_max_s=args.t_max, points=args.map_points,
                             noise=args.map_noise, free=args.free, precision=args.precision, thresholds=thresholds,
-                            progress=_say)
+                            progress=_say, sequence=args.sequence)
+    cyc = lmap.axis == "cycle_time_s"
     rc = 130 if lmap.interrupted else 0
     if args.plot:
         plot_learnability_map(lmap, args.plot)
@@ -179,13 +189,13 @@ def _run_map(args, cluster):
     if args.json:
         print_json({**lmap.to_json(), "plot": args.plot})
         return rc
-    print(f"cluster {lmap.cluster}: learnability map over {lmap.axis} ({len(lmap.points)} values, "
-          f"{lmap.seconds:.1f} s)")
-    print(f"{lmap.axis:>13}{'lam_min':>10}{'medCRB Hz':>10}{'<r>':>7}{'D2':>6}{'D2rand':>7}{'classical s':>12}"
+    print(f"cluster {lmap.cluster}: learnability map over {lmap.axis}"
+          f"{' of ' + lmap.experiment['sequence'] if cyc else ''} ({len(lmap.points)} values, {lmap.seconds:.1f} s)")
+    print(f"{lmap.axis:>13}{'cycles' if cyc else '':>7}{'lam_min':>10}{'medCRB Hz':>10}{'<r>':>7}{'D2':>6}{'D2rand':>7}{'classical s':>12}"
           f"{'T-count':>10}{'  L H A'}")
     for p in lmap.points:
         flags = " ".join("y" if f else "." for f in (p.learnable, p.classically_hard, p.affordable))
-        print(f"{p.value:>13.4g}{p.fisher_min_eigenvalue:>10.3g}{p.median_crb_hz:>10.3g}{p.mean_r:>7.3f}"
+        print(f"{p.value:>13.4g}{p.cycles if cyc else '':>7}{p.fisher_min_eigenvalue:>10.3g}{p.median_crb_hz:>10.3g}{p.mean_r:>7.3f}"
               f"{p.mean_d2:>6.3f}{p.mean_d2_random:>7.3f}{p.classical_seconds:>12.3g}{p.t_count:>10.3g}  {flags}"
               f"{'  <- window' if p.window else ''}")
     th = lmap.thresholds
@@ -194,7 +204,11 @@ def _run_map(args, cluster):
           f"{th['hard_memory_bytes']:.3g} B; A affordable: T-count <= {th['max_t_count']:.3g}")
     print(f"window (learnable, classically hard, affordable): "
           f"{', '.join(f'{v:g}' for v in lmap.window) if lmap.window else 'none'}")
-    if any(p.level_kind != "eigenvalues of H" for p in lmap.points):
+    if cyc:
+        print(f"cycle_time_s: {lmap.experiment['sequence']} cycles fill {lmap.experiment['t_max_s']:g} s, one sample "
+              "at the end of each cycle; <r>, D2 of the cycle propagator's quasi-energies and states (random "
+              "reference: CUE, <r> = 0.600, D2rand = D2_CUE); classical s: the dense pulse-sequence route (estimate)")
+    elif any(p.level_kind != "eigenvalues of H" for p in lmap.points):
         print("spinning: <r>, D2 of the Floquet quasi-energies and states of one rotor period (random reference: "
               "CUE, <r> = 0.600, D2rand = D2_CUE); classical s: the static FID's cost (a lower bound)")
     if lmap.interrupted:

@@ -34,6 +34,15 @@ GUE value 0.5996 at large N (Atas et al. 2013; L. D'Alessio and M. Rigol, Phys. 
 (2014), for periodically driven systems, from memory). The eigenvectors of U_R are complex: a
 random complex unit vector has <IPR> = 2/(N+1) (the fourth moment of a Haar vector; common
 practice), so D2_CUE(N) = ln((N+1)/2)/ln N is the reference there.
+
+Multiple-pulse cycles (`diagnose_cycle`): the levels are the quasi-energy phases of the cycle
+propagator U_c (qhl.exact.stroboscopic.cycle_propagator), the Fisher information that of the
+signal sampled once per cycle (qhl.exact.stroboscopic.stroboscopic_gradient). The pulses mix the
+pulsed isotope's magnetisation sectors, so the levels are resolved only by the total Iz of each
+isotope that no pulse touches (conserved by the secular H and by the pulses); other symmetries are
+not resolved. Reference: the circular unitary ensemble (<r> = GUE 0.5996, D2_CUE): the toggling-frame
+Hamiltonians of a cycle contain Iy terms (complex in the Zeeman basis), so no antiunitary symmetry is
+assumed (an assumption; a cycle with one would follow the circular orthogonal ensemble instead).
 """
 
 from dataclasses import dataclass, replace
@@ -52,7 +61,7 @@ from ..spins.model import DEFAULT_FREE, build_model
 __all__ = ["POISSON_MEAN_R", "GOE_MEAN_R", "GUE_MEAN_R", "participation_ratio", "circular_spacing_ratios",
            "floquet_sector_levels", "random_complex_vector_d2", "inverse_participation_ratio",
            "fractal_dimension_d2", "random_vector_d2", "spacing_ratios", "mean_spacing_ratio", "symmetry_sector_levels",
-           "Diagnostics", "diagnose"]
+           "Diagnostics", "diagnose", "cycle_floquet_levels", "diagnose_cycle"]
 
 # Atas, Bogomolny, Giraud, Roux, PRL 110, 084101 (2013): Poisson 2 ln 2 - 1, GOE 0.5307, GUE 0.5996 (large N).
 POISSON_MEAN_R = 2 * math.log(2) - 1
@@ -365,3 +374,89 @@ def _floquet_diagnostics(cluster, engine, ex, model, evals, evecs, crb, bad, sta
         ipr=np.concatenate(ipr), d2=np.concatenate(d2) if d2 else np.zeros(0),
         seconds=time.perf_counter() - start, d2_random=np.concatenate(d2_random) if d2_random else np.zeros(0),
         spinning_hz=float(ex.spinning_hz), level_kind="Floquet quasi-energies", mean_r_random=GUE_MEAN_R)
+
+
+def _unpulsed_sector_labels(model, cycle) -> np.ndarray:
+    """Per computational basis index: the tuple (as one integer) of total Iz of each isotope no pulse of
+    `cycle` touches (isotope None: the observed spins)."""
+    from ..spins.cluster import Block, Pulse, flat_steps
+    n = model.n_spins
+    steps = flat_steps(cycle.steps if isinstance(cycle, Block) else tuple(cycle))
+    pulsed = set()
+    for st in steps:
+        if isinstance(st, Pulse):
+            pulsed |= ({i for i, o in enumerate(model.observed) if o} if st.isotope is None else
+                       {i for i, iso in enumerate(model.isotopes) if iso == st.isotope})
+    idx = np.arange(2**n)
+    label = np.zeros(2**n, np.int64)
+    for iso in sorted(set(model.isotopes)):
+        qubits = [i for i, s in enumerate(model.isotopes) if s == iso]
+        if any(q in pulsed for q in qubits):
+            continue
+        count = sum((idx >> q) & 1 for q in qubits)
+        label = label * (n + 1) + count
+    return label
+
+
+def cycle_floquet_levels(engine: ExactEngine, cycle, dipolar_scale: float = 1.0, free_values_hz=None) -> list:
+    """Quasi-energy phases and Floquet states of one multiple-pulse cycle, per resolved sector (module docstring).
+
+    Returns:
+        list of (phases (d,) in [0, 2 pi), eigenvectors (d, d) in the sector's computational basis).
+    """
+    from ..exact.stroboscopic import cycle_propagator
+    u = cycle_propagator(engine, cycle, dipolar_scale, free_values_hz)
+    label = _unpulsed_sector_labels(engine.model, cycle)
+    out = []
+    for lab in np.unique(label):
+        ix = np.flatnonzero(label == lab)
+        lam, vec = np.linalg.eig(u[np.ix_(ix, ix)])
+        out.append((np.mod(-np.angle(lam), 2 * np.pi), vec / np.linalg.norm(vec, axis=0)))
+    return out
+
+
+def diagnose_cycle(cluster: Cluster, cycle, cycles: int, *, dipolar_scale: float = 1.0, noise: float = 1e-3,
+                   free=DEFAULT_FREE) -> Diagnostics:
+    """Fisher spectrum of the signal sampled at the ends of cycles 1 ... `cycles` of `cycle` (noise `noise` per
+    Re/Im part of each sample, relative to S(0) = 1), and the level statistics and state spreading of the cycle
+    propagator's quasi-energies (module docstring).
+
+    Args:
+        cluster: the spin cluster (its experiments are not used).
+        cycle: one cycle (qhl.spins.cluster.Block or tuple of steps; ideal pulses), e.g.
+            qhl.spins.sequences.named_block.
+        cycles: samples K >= 1, one per cycle.
+        dipolar_scale, noise, free: as diagnose.
+
+    Returns:
+        Diagnostics with level_kind 'Floquet quasi-energies of one cycle' (mean_r_random GUE 0.5996).
+    """
+    from ..exact.stroboscopic import stroboscopic_gradient
+    start = time.perf_counter()
+    checked = Experiment(name="cycle", t_max_s=1.0, points=2, noise=float(noise), dipolar_scale=float(dipolar_scale))
+    check_experiment(checked, "diagnose")
+    model = build_model(cluster).with_free(free)
+    engine = ExactEngine(model)
+    _, g = stroboscopic_gradient(engine, cycle, cycles, dipolar_scale)
+    fisher = np.real(np.conj(g) @ g.T) / float(noise) ** 2
+    fisher = 0.5 * (fisher + fisher.T)
+    crb, evals, evecs, bad = cramer_rao_bounds(fisher)
+    levels = cycle_floquet_levels(engine, cycle, dipolar_scale)
+    ratios = [circular_spacing_ratios(ph, FLOQUET_DEGENERACY) for ph, _ in levels]
+    sector_r = np.array([float(np.mean(r)) if r.size else np.nan for r in ratios])
+    pooled = np.concatenate(ratios) if ratios else np.zeros(0)
+    ipr, d2, d2_random = [], [], []
+    for _, v in levels:
+        q = inverse_participation_ratio(v)
+        ipr.append(q)
+        if v.shape[0] > 1:
+            d2.append(fractal_dimension_d2(q, v.shape[0]))
+            d2_random.append(np.full(q.shape, random_complex_vector_d2(v.shape[0])))
+    return Diagnostics(
+        cluster=cluster.name, n_spins=cluster.n_spins, dipolar_scale=float(dipolar_scale), free=model.free,
+        fisher_eigenvalues=evals, fisher_eigenvectors=evecs, fisher_participation=participation_ratio(evecs),
+        crb_hz=crb, unlearnable=bad, sector_mean_r=sector_r,
+        mean_r=float(np.mean(pooled)) if pooled.size else float("nan"), n_ratios=int(pooled.size),
+        ipr=np.concatenate(ipr), d2=np.concatenate(d2) if d2 else np.zeros(0),
+        seconds=time.perf_counter() - start, d2_random=np.concatenate(d2_random) if d2_random else np.zeros(0),
+        level_kind="Floquet quasi-energies of one cycle", mean_r_random=GUE_MEAN_R)
