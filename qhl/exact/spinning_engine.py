@@ -34,7 +34,9 @@ Each exponential is a "stage" exp(-i tau 2 pi sum_n e_n h_n G_n) with e = sbar/2
     Phi_i = exp(-i (E_a - E_b) tau): with real eigenvectors (real H) every product is real, two
     per stage for all parameters at once (M is anti-Hermitian, so O M O^dag needs only left
     products), where Y^dag X Y needed two complex products per stage and parameter; each
-    sampling time's contraction matrices are carried into the eigenbasis of its mark instead. The trace with O and rho0 is taken
+    sampling time's contraction matrices are carried into the eigenbasis of its mark instead.
+    Gamma_q is read in the Floquet basis of U_R (complex Schur form U_R = W diag(lam) W^dag):
+    W^dag Gamma_q W = (W^dag Delta_2K W) o Geo_q, Geo_q[e, f] = sum_(l < q) (conj(lam_e) lam_f)^l. The trace with O and rho0 is taken
     per sector: dS = sum_k sum_ab [C_k o dU_k + C'_k o conj(dU_k)], C_k = sum over blocks
     (rho U_p^dag O)^T, C'_k = sum over blocks O U_s rho.
 
@@ -61,6 +63,7 @@ generator products and the recursion's matrices) plus 16 d^2 T 10 for the time t
 from fractions import Fraction
 
 import numpy as np
+import scipy.linalg as sla
 import scipy.sparse as sp
 
 from ..base.blas import blas_limited
@@ -330,21 +333,32 @@ class _Spinning:
         b3 = x @ b @ _h(x)
         delta_r = self._stage_recursion(s, idx, gst, real, a3, b3, grad)
         if delta_r is not None:
-            # Gamma_q = sum_(l < q) U_R^-l Delta_R U_R^l
-            g = np.zeros_like(delta_r)
-            for q in range(1, self.need_q[-1] + 1):
-                g = g + _h(pw[q - 1]) @ delta_r @ pw[q - 1]
-                if q in self.need_q:
-                    sel = np.nonzero(self.q == q)[0]
-                    grad[:, sel] += _pair(g, a[sel], b[sel])
-        # partial slice: Omega = W1^dag Omega_2 W1 + Omega_1, contracted with conj(X) A X^T
+            # Gamma_q = sum_(l < q) U_R^-l Delta_R U_R^l in the Floquet basis U_R = W diag(lam) W^dag
+            # (complex Schur form; U_R is normal, so the triangular factor is diagonal to rounding):
+            # W^dag Gamma_q W = (W^dag Delta_R W) o Geo_q, Geo_q[e, f] = sum_(l < q) (conj(lam_e) lam_f)^l,
+            # and sum_ab Gamma_q o A = sum_ef (W^dag Gamma_q W) o (W^T A W^*).
+            tri, wf = sla.schur(pw[1], output="complex")
+            lam = np.diag(tri)
+            ratio = lam.conj()[:, None] * lam[None, :]
+            geo = np.empty((self.need_q[-1] + 1, len(lam), len(lam)), complex)
+            geo[0] = 0.0
+            power = np.ones_like(ratio)
+            for q in range(1, len(geo)):
+                geo[q] = geo[q - 1] + power
+                power = power * ratio
+            sel = np.nonzero(self.q > 0)[0]
+            dt = _h(wf) @ delta_r @ wf
+            g = geo[self.q[sel]]
+            grad[:, sel] += _pair(dt, (wf.T @ a[sel] @ wf.conj()) * g, (_h(wf) @ b[sel] @ wf) * g.conj())
+        # partial slice: Omega = W1^dag Omega_2 W1 + Omega_1, contracted with conj(X) A X^T; both
+        # stages in one batch
         (e1, v1), (e2, v2) = parts
         sel, w1 = self.inside, w1[self.inside]
         if sel.size:
             a3, b3 = a3[sel], b3[sel]
-            grad[:, sel] += self._adjoint_stage(e1, v1, gens, idx, 0, a3, b3, real)
-            grad[:, sel] += self._adjoint_stage(e2, v2, gens, idx, 1, w1.conj() @ a3 @ w1.swapaxes(1, 2),
-                                                w1 @ b3 @ _h(w1), real)
+            grad[:, sel] += self._adjoint_stages(np.concatenate([e1, e2]), np.concatenate([v1, v2]), gens, idx,
+                                                 np.concatenate([a3, w1.conj() @ a3 @ w1.swapaxes(1, 2)]),
+                                                 np.concatenate([b3, w1 @ b3 @ _h(w1)]), real)
         return grad
 
     def _stage_recursion(self, s, idx, gst, real, a3, b3, grad):
@@ -419,23 +433,25 @@ class _Spinning:
         dt = np.broadcast_to(np.asarray(dt, float), e.shape[:1])[:, None, None]
         return np.exp(1j * e[:, :, None] * dt) * first_divided_difference(e[:, :, None], e[:, None, :], dt)
 
-    def _adjoint_stage(self, e, v, gens, idx, which, a, b, real):
-        """sum_ab [A o Omega + B o conj(Omega)] of one partial-slice stage, per parameter and time:
+    def _adjoint_stages(self, e, v, gens, idx, a, b, real):
+        """sum_ab [A o Omega + B o conj(Omega)] of the two partial-slice stages, per parameter and time
+        (stacks of 2M: the first stage's M times, then the second's):
         Omega = V (F' o V^dag dH V) V^dag, so sum A o Omega = sum_ef dH_ef (V^* (F' o V^T A V^*) V^T)_ef."""
-        fp = self._f_prime(e, self.delta[self.inside])
+        n = len(self.inside)
+        fp = self._f_prime(e, np.concatenate([self.delta[self.inside]] * 2))
         vt, vc = v.swapaxes(1, 2), v.conj()
         flat = gens.reshape(len(idx), -1)
-        factor = (2 * np.pi * self.part_factors[which][:, idx]).T
+        factor = (2 * np.pi * self.part_factors[:, :, idx]).transpose(0, 2, 1)          # (2, R, M)
         if real:
             # real V and G: sum G o conj(zb) = sum G o V (conj(F') o V^T B V) V^T, one back-transform
             z = _sandwich(v, fp * _sandwich(vt, a, v, True) + fp.conj() * _sandwich(vt, b, v, True), vt, True)
             z = z.reshape(len(z), -1)
-            return factor * (flat @ z.real.T + 1j * (flat @ z.imag.T))
-        za = vc @ (fp * (vt @ a @ vc)) @ vt
-        zb = vc @ (fp * (vt @ b.conj() @ vc)) @ vt
-        ga = flat @ za.reshape(len(za), -1).T
-        gb = (flat @ zb.reshape(len(zb), -1).T).conj()
-        return factor * (ga + gb)
+            out = flat @ z.real.T + 1j * (flat @ z.imag.T)
+        else:
+            za = vc @ (fp * (vt @ a @ vc)) @ vt
+            zb = vc @ (fp * (vt @ b.conj() @ vc)) @ vt
+            out = flat @ za.reshape(len(za), -1).T + (flat @ zb.reshape(len(zb), -1).T).conj()
+        return factor[0] * out[:, :n] + factor[1] * out[:, n:]
 
 
 def _left(o, m, real):
