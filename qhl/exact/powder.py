@@ -198,7 +198,7 @@ def _spinning_powder_signal(cluster, experiment, order, times, gamma_points, sli
 
 def powder_lines(cluster, experiment=None, order: int = 17):
     """Line list of the powder average: (frequencies Hz, amplitudes weighted by the grid)."""
-    refuse_spinning(experiment, "powder averages")
+    refuse_spinning(experiment, "powder line lists")
     eng = _engine_all_free(cluster)
     dirs, weights = lebedev_orientations(order)
     freqs, amps = [], []
