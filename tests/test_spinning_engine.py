@@ -22,7 +22,7 @@ from scipy.spatial.transform import Rotation
 from qhl.base.errors import QhlInputError
 from qhl.exact.engine import ExactEngine
 from qhl.exact.likelihood import fisher_information
-from qhl.exact.powder import powder_signal
+from qhl.exact.powder import powder_lines
 from qhl.exact.spinning_engine import default_slices_per_period, spinning_signal
 from qhl.spins.cluster import Delay
 from qhl.spins.cluster_file import parse_cluster_toml
@@ -243,7 +243,7 @@ def test_fisher_information_runs_on_spinning():
 def test_static_only_paths_refuse_spinning():
     c, m, eng, ex = _setup(THREE)
     for call in (lambda: eng.transitions(ex), lambda: eng.spectrum(ex),
-                 lambda: powder_signal(c, ex, order=3)):
+                 lambda: powder_lines(c, ex, order=3)):
         with pytest.raises(QhlInputError, match="spins"):
             call()
     with pytest.raises(QhlInputError, match="pulse-sequence steps"):

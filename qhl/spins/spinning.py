@@ -6,7 +6,9 @@ Convention (one crystallite; secular dipolar coupling, high field):
     spinning sample starts in the static experiment's orientation.
   * The rotor axis R lies at `spinning_angle_deg` theta_R from f, in the plane of f and the
     cluster x axis (the y axis when f is along x): R = cos(theta_R) f + sin(theta_R) e,
-    e = the unit part of x perpendicular to f.
+    e = the unit part of x perpendicular to f. A crystallite of a powder may turn that plane about
+    f by its rotor azimuth psi (the model's optional `rotor_azimuth_deg`, right-handed about f):
+    e -> cos(psi) e + sin(psi) (f x e). psi = 0 (every model build_model makes) is the rule above.
   * The sample turns about R at `spinning_hz` nu_r (right-handed, phi = 2 pi nu_r t), so a
     pair's unit vector r turns to Rot(R, phi) r (Rodrigues' formula) and the angle Theta(t)
     between it and the field obeys
@@ -21,6 +23,13 @@ Convention (one crystallite; secular dipolar coupling, high field):
     carry its spinning dependence through h_ij and is refused; so is a pair without positions
     (its direction is unknown). Offsets (isotropic shifts; no shielding anisotropy in the model),
     J couplings and RF terms do not depend on orientation: s_n = 1.
+  * Crystallites of a powder (qhl.exact.powder.CrystalliteModel, optional model attribute
+    `dipolar_constants` true) take the other parametrisation: dipolar:i-j is the pair's dipolar
+    constant b_ij (Hz, qhl.spins.dipolar), orientation free, and
+        s_n(t) = dipolar_scale * P2(cos Theta(t)),
+    so h_n s_n(t) is the same coupling with no division: a pair at the magic angle at t = 0 is
+    an ordinary crystallite (P2 = 0 there), not a refusal. A dipolar parameter without a
+    direction (an explicit dipolar_hz) is orientation independent there: s_n = dipolar_scale.
 Expanding P2 of the cosine above gives five Fourier coefficients per term,
     s_n(t) = c0 + c1 cos(phi) + d1 sin(phi) + c2 cos(2 phi) + d2 sin(2 phi),
     c0 = [3 (a0^2 + (a1^2 + b1^2)/2) - 1]/2,  c1 = 3 a0 a1,  d1 = 3 a0 b1,
@@ -49,13 +58,17 @@ def is_spinning(experiment) -> bool:
     return experiment is not None and float(getattr(experiment, "spinning_hz", 0.0) or 0.0) > 0.0
 
 
-def rotor_axis(field_direction, angle_deg: float) -> np.ndarray:
-    """Unit rotor axis R at `angle_deg` from the unit field direction f (module convention)."""
+def rotor_axis(field_direction, angle_deg: float, azimuth_deg: float = 0.0) -> np.ndarray:
+    """Unit rotor axis R at `angle_deg` from the unit field direction f, turned by `azimuth_deg` psi
+    about f (module convention; psi = 0: in the plane of f and the cluster x axis)."""
     f = np.asarray(field_direction, float)
     f = f / np.linalg.norm(f)
     x = np.array([1.0, 0.0, 0.0]) if abs(f[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
     e = x - (x @ f) * f
     e /= np.linalg.norm(e)
+    if azimuth_deg:
+        psi = np.radians(azimuth_deg)
+        e = np.cos(psi) * e + np.sin(psi) * np.cross(f, e)
     th = np.radians(angle_deg)
     return np.cos(th) * f + np.sin(th) * e
 
@@ -112,20 +125,28 @@ class SpinningFactors:
 def spinning_factors(model, experiment) -> SpinningFactors:
     """The SpinningFactors of `model` in the spinning `experiment` (module convention).
 
+    The model's optional attributes `rotor_azimuth_deg` (default 0) and `dipolar_constants` (default
+    false) pose a crystallite of a powder (module convention; qhl.exact.powder).
+
     Raises:
         QhlInputError: the experiment does not spin; a dipolar pair without a direction (no
-            positions) or at the magic angle to the static field (|P2(r.f)| < STATIC_FACTOR_FLOOR).
+            positions) or at the magic angle to the static field (|P2(r.f)| < STATIC_FACTOR_FLOOR),
+            both only for static-coupling parameters (not dipolar_constants).
     """
     if not is_spinning(experiment):
         raise QhlInputError(f"experiment '{getattr(experiment, 'name', None)}' does not spin (spinning_hz = 0)",
                             key="experiment.spinning_hz")
     f = np.asarray(model.field_direction, float)
     f = f / np.linalg.norm(f)
-    axis = rotor_axis(f, experiment.spinning_angle_deg)
+    axis = rotor_axis(f, experiment.spinning_angle_deg, float(getattr(model, "rotor_azimuth_deg", 0.0)))
+    constants = bool(getattr(model, "dipolar_constants", False))
     fourier = np.zeros((len(model.parameters), 5))
     fourier[:, 0] = 1.0
     for k, prm in enumerate(model.parameters):
         if prm.kind != "dipolar":
+            continue
+        if constants and prm.direction is None:      # explicit dipolar_hz in a crystallite: no orientation
+            fourier[k, 0] = experiment.dipolar_scale
             continue
         if prm.direction is None:
             raise QhlInputError(f"experiment '{experiment.name}' spins, but the pair {'-'.join(prm.spins)} has no "
@@ -134,7 +155,7 @@ def spinning_factors(model, experiment) -> SpinningFactors:
         r = np.asarray(prm.direction, float)
         r = r / np.linalg.norm(r)
         c = float(r @ f)
-        static = 0.5 * (3 * c * c - 1)
+        static = 1.0 if constants else 0.5 * (3 * c * c - 1)     # h_n = b_n P2(r.f), or b_n (crystallite)
         if abs(static) < STATIC_FACTOR_FLOOR:
             raise QhlInputError(f"experiment '{experiment.name}' spins, but the pair {'-'.join(prm.spins)} lies at "
                                 f"the magic angle to field_direction (P2 = {static:.2g}): its static coupling cannot "
