@@ -279,3 +279,12 @@ def test_floquet_levels_split_by_the_unpulsed_isotope():
     assert sorted(len(ph) for ph, _ in levels) == [8, 8]
     ref = np.sort(np.mod(-np.angle(np.linalg.eigvals(u)), 2 * np.pi))
     assert np.allclose(np.sort(np.concatenate([ph for ph, _ in levels])), ref, atol=1e-10)
+
+
+def test_cli_refuses_a_sequence_on_another_axis(capsys):
+    # common practice: an option that the chosen map would ignore is refused in one line, not dropped
+    from qhl.cli import main
+    rc = main(["design", "--map", "spinning_hz", "--values", "0", "--sequence", "wahuha"])
+    err = capsys.readouterr().err.strip()
+    assert rc == 2
+    assert len(err.splitlines()) == 1 and "cycle_time_s only" in err and "Traceback" not in err

@@ -59,7 +59,7 @@ def register(sub):
     m.add_argument("--values", type=AXIS_VALUES, default=None, metavar="A:B:N",
                    help="axis values (default 0:1:6 for dipolar_scale, 0:40000:6 Hz for spinning_hz, "
                         "1e-5:2e-4:5 s for cycle_time_s)")
-    m.add_argument("--sequence", choices=sorted(NAMED_SEQUENCES), default="wahuha", metavar="NAME",
+    m.add_argument("--sequence", choices=sorted(NAMED_SEQUENCES), default=None, metavar="NAME",
                    help=f"the cycle of --map cycle_time_s: {', '.join(sorted(NAMED_SEQUENCES))} (default wahuha)")
     m.add_argument("--t-max", type=TIME_S, default=5e-4, metavar="SECONDS",
                    help="FID length, or the window the cycles fill (default 5e-4 s)")
@@ -175,10 +175,14 @@ def _run_map(args, cluster):
     thresholds = {"max_median_crb_hz": args.max_median_crb, "max_softest_bound_hz": args.max_softest_bound,
                   "hard_seconds": args.hard_seconds, "hard_memory_bytes": args.hard_memory,
                   "max_t_count": args.max_t_count}
+    if args.sequence is not None and args.map != "cycle_time_s":
+        from ..base.errors import QhlInputError
+        raise QhlInputError(f"{args.sequence} is a cycle for --map cycle_time_s only (this map: {args.map})",
+                            key="--sequence")
     values = args.values or _DEFAULT_VALUES[args.map]
     lmap = learnability_map(cluster, args.map, _axis_grid(values), t_max_s=args.t_max, points=args.map_points,
                             noise=args.map_noise, free=args.free, precision=args.precision, thresholds=thresholds,
-                            progress=_say, sequence=args.sequence)
+                            progress=_say, sequence=args.sequence or "wahuha")
     cyc = lmap.axis == "cycle_time_s"
     rc = 130 if lmap.interrupted else 0
     if args.plot:
