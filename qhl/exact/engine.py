@@ -389,6 +389,9 @@ class ExactEngine:
         then count from the end of its last step)."""
         t = self._times(experiment, times)
         self._require_times(t)
+        if is_spinning(experiment) and _has_steps(experiment):
+            from .spinning_sequence import spinning_sequence_signal
+            return spinning_sequence_signal(self, experiment, t, free_values_hz)
         if is_spinning(experiment):
             from .spinning_engine import spinning_signal
             return spinning_signal(self, experiment, t, free_values_hz)
@@ -486,6 +489,9 @@ class ExactEngine:
         self._require_times(t, 1 + len(rows))
         if method not in ("auto", "full", "adjoint", "general"):
             raise QhlInputError(f"method {method!r}: expected auto, full or adjoint", key="method")
+        if is_spinning(experiment) and _has_steps(experiment):
+            from .spinning_sequence import spinning_sequence_gradient
+            return spinning_sequence_gradient(self, experiment, t, free_values_hz, rows)
         if is_spinning(experiment):
             from .spinning_engine import spinning_gradient
             return spinning_gradient(self, experiment, t, free_values_hz, rows)
