@@ -173,6 +173,7 @@ class ExactEngine:
             (default: automatic, when all eigenvectors would exceed LEAN_ABOVE_BYTES).
 
     Spinning experiments (spinning_hz > 0) go to qhl.exact.spinning_engine for signal and gradient
+    (with rotor-synchronised pulse-sequence steps: qhl.exact.spinning_sequence)
     (so Fisher information, the gradient provider and fits work on them); the attribute
     `spinning_slices_per_period` (default None: the rule in that module) sets its slices per rotor
     period. spectrum, transitions and hessian refuse them.

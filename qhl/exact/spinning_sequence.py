@@ -37,7 +37,10 @@ Q_sp(t) = U_p(t)^dag O_ps U_s(t), one matrix product for all parameters of a chu
 Cost and memory: the spinning engine's work for the acquisition (its own memory check) and one
 period of stages over every sector (U_R and, in the gradient, Delta_R), plus dense 2^n x 2^n
 matrices as in the pulse-sequence engine (sequence_memory_bytes, parameters in chunks) and the
-Q tables (16 T sum d_s d_p bytes), checked with qhl.base.memory.require_memory before the work.
+Q tables (16 T sum d_s d_p bytes) and one chunk's Delta_R and W^dag Delta_R W (2 x 16 c sum_k d_k^2),
+checked with qhl.base.memory.require_memory before the work. Measured on the built-in six-proton demo
+(21 parameters) at 20 kHz, 64 points over 10 periods, after a Hahn echo of 4 + 4 periods: signal 0.056 s,
+full gradient 0.19 s, against 0.041 s and 0.13 s for the free spinning experiment (median of 3).
 """
 
 import types
@@ -93,8 +96,10 @@ def _runs(model, experiment, period):
 
 def _require(engine, n_rows, n_times):
     n = engine.model.n_spins
-    need = sequence_memory_bytes(n, n_rows, n_times) + 16.0 * n_times * sum(
+    chunk = _chunk(n, n_rows) if n_rows else 0
+    need = (sequence_memory_bytes(n, n_rows, n_times) + 16.0 * n_times * sum(
         engine._dims[b.s] * engine._dims[b.p] for b in engine._blocks)
+        + 2 * 16.0 * chunk * sum(d * d for d in engine._dims))
     if n > MAX_SEQUENCE_SPINS:
         raise QhlInputError(f"{n} spins: spinning experiments with steps hold dense 2^n x 2^n density matrices "
                             f"(about {need / 2**30:.3g} GiB here); expected at most {MAX_SEQUENCE_SPINS} spins",
@@ -222,12 +227,13 @@ def spinning_sequence_gradient(engine, experiment, t, free_values_hz, rows):
         # Tr[O U(t) dX U(t)^dag] = sum_ab dX_sp[a, b] Q_sp(t)[b, a], Q_sp = U_p^dag O_ps U_s
         tables = [(_h(acq.prop[p][2]) @ o @ acq.prop[s][2]).swapaxes(1, 2).reshape(t.size, -1)
                   for s, p, o in prep.pairs]
-        delta = prep.period.period_derivatives(rows)
         vec = prep.basis.vectors
         chunk = _chunk(prep.n, len(rows))
         for c0 in range(0, len(rows), chunk):
             c1 = min(len(rows), c0 + chunk)
-            gt = [_h(vec[k]) @ delta[k][c0:c1] @ vec[k] for k in range(len(vec))]
+            delta = prep.period.period_derivatives(rows[c0:c1])
+            gt = [_h(vec[k]) @ delta[k] @ vec[k] for k in range(len(vec))]
+            del delta
             _, dy = prep.propagate(prep.y0, np.zeros((c1 - c0,) + prep.y0.shape, complex), gt)
             for (_, _, dx, _), q in zip(prep.blocks(dy), tables):
                 grad[c0:c1] += dx.reshape(c1 - c0, -1) @ q.T
