@@ -173,6 +173,7 @@ class ExactEngine:
             (default: automatic, when all eigenvectors would exceed LEAN_ABOVE_BYTES).
 
     Spinning experiments (spinning_hz > 0) go to qhl.exact.spinning_engine for signal and gradient
+    (with rotor-synchronised pulse-sequence steps: qhl.exact.spinning_sequence)
     (so Fisher information, the gradient provider and fits work on them); the attribute
     `spinning_slices_per_period` (default None: the rule in that module) sets its slices per rotor
     period. spectrum, transitions and hessian refuse them.
@@ -389,6 +390,9 @@ class ExactEngine:
         then count from the end of its last step)."""
         t = self._times(experiment, times)
         self._require_times(t)
+        if is_spinning(experiment) and _has_steps(experiment):
+            from .spinning_sequence import spinning_sequence_signal
+            return spinning_sequence_signal(self, experiment, t, free_values_hz)
         if is_spinning(experiment):
             from .spinning_engine import spinning_signal
             return spinning_signal(self, experiment, t, free_values_hz)
@@ -486,6 +490,9 @@ class ExactEngine:
         self._require_times(t, 1 + len(rows))
         if method not in ("auto", "full", "adjoint", "general"):
             raise QhlInputError(f"method {method!r}: expected auto, full or adjoint", key="method")
+        if is_spinning(experiment) and _has_steps(experiment):
+            from .spinning_sequence import spinning_sequence_gradient
+            return spinning_sequence_gradient(self, experiment, t, free_values_hz, rows)
         if is_spinning(experiment):
             from .spinning_engine import spinning_gradient
             return spinning_gradient(self, experiment, t, free_values_hz, rows)

@@ -214,8 +214,11 @@ def _h(a):
 class _Spinning:
     """One spinning experiment at one parameter point: stage spectra and the sampling-time propagators."""
 
-    def __init__(self, engine, experiment, t, free_values_hz, k_slices, n_rows):
-        refuse_steps(experiment, "spinning experiments (the spinning engine covers free evolution only)")
+    def __init__(self, engine, experiment, t, free_values_hz, k_slices, n_rows, steps_ok=False, all_sectors=False):
+        # steps_ok: the caller handles the experiment's steps itself (qhl.exact.spinning_sequence);
+        # all_sectors: every magnetisation sector, not only those of rho0's and O's blocks
+        if not steps_ok:
+            refuse_steps(experiment, "spinning experiments (the spinning engine covers free evolution only)")
         self.engine = engine
         model = engine.model
         self.sf = spinning_factors(model, experiment)
@@ -227,7 +230,8 @@ class _Spinning:
         self.k = int(k_slices)
         self.t = t
         self.q, self.j, self.delta, self.tau = _time_plan(t, self.sf.period_s, self.k)
-        self.sectors = sorted({b.s for b in engine._blocks} | {b.p for b in engine._blocks})
+        self.sectors = (list(range(len(engine.sectors))) if all_sectors else
+                        sorted({b.s for b in engine._blocks} | {b.p for b in engine._blocks}))
         self.need_j = sorted(set(self.j.tolist()))
         self.need_q = sorted(set(self.q.tolist()))
         dims = [engine._dims[s] for s in self.sectors]
@@ -279,24 +283,31 @@ class _Spinning:
         self.spec[s] = (e, v, parts, w1, pref, pw)
         self.prop[s] = (pj, pq, w @ pj @ pq)                                           # U(t) = W P_2j U_R^q
 
-    def signal(self):
+    def _block_list(self, blocks):
+        """(s, p, rho_sp, O_ps) dense, by default rho0's and O's blocks (the engine's _Block list)."""
+        if blocks is None:
+            return [(b.s, b.p, b.rho.toarray(), b.obs.toarray()) for b in self.engine._blocks]
+        return blocks
+
+    def signal(self, blocks=None):
+        """S(t) = Tr[O U(t) rho U(t)^dag] / N; blocks: (s, p, rho_sp, O_ps) of another rho (default rho0)."""
         out = np.zeros(self.t.size, complex)
-        for b in self.engine._blocks:
-            us, up = self.prop[b.s][2], self.prop[b.p][2]
-            y = us @ b.rho.toarray() @ _h(up)
-            out += np.einsum("mab,ba->m", y, b.obs.toarray())
+        for s, p, rho, obs in self._block_list(blocks):
+            us, up = self.prop[s][2], self.prop[p][2]
+            y = us @ rho @ _h(up)
+            out += np.einsum("mab,ba->m", y, obs)
         return out / self.engine.norm
 
-    def contraction_matrices(self):
-        """Per sector: (A, B) = (U^T C, U^dag C') with dS = sum_ab A o Xi + B o conj(Xi), dU = U Xi."""
+    def contraction_matrices(self, blocks=None):
+        """Per sector: (A, B) = (U^T C, U^dag C') with dS = sum_ab A o Xi + B o conj(Xi), dU = U Xi
+        (blocks as in signal: rho held fixed, default rho0)."""
         cm = {s: [None, None] for s in self.sectors}
-        for b in self.engine._blocks:
-            us, up = self.prop[b.s][2], self.prop[b.p][2]
-            rho, obs = b.rho.toarray(), b.obs.toarray()
+        for s_, p_, rho, obs in self._block_list(blocks):
+            us, up = self.prop[s_][2], self.prop[p_][2]
             ca = (rho @ _h(up) @ obs).swapaxes(1, 2)
             cb = obs @ us @ rho
-            cm[b.s][0] = ca if cm[b.s][0] is None else cm[b.s][0] + ca
-            cm[b.p][1] = cb if cm[b.p][1] is None else cm[b.p][1] + cb
+            cm[s_][0] = ca if cm[s_][0] is None else cm[s_][0] + ca
+            cm[p_][1] = cb if cm[p_][1] is None else cm[p_][1] + cb
         out = {}
         for s, (ca, cb) in cm.items():
             u = self.prop[s][2]
@@ -361,7 +372,21 @@ class _Spinning:
                                                  np.concatenate([b3, w1 @ b3 @ _h(w1)]), real)
         return grad
 
-    def _stage_recursion(self, s, idx, gst, real, a3, b3, grad):
+    def period_derivatives(self, rows):
+        """Per sector: Delta_R = U_R^dag dU_R/dh (R, d, d) for the parameters of `rows` (the recursion of
+        sector_gradient without sampling marks); the instance must reach one full period (q >= 1)."""
+        idx = [n for n, _ in rows]
+        out = {}
+        for s in self.sectors:
+            gst, gens = self._generators(s, idx)
+            real = not (np.iscomplexobj(self.spec[s][1]) or np.iscomplexobj(gens))
+            d = self.spec[s][0].shape[-1]
+            zero = np.zeros((self.t.size, d, d), complex)
+            out[s] = self._stage_recursion(s, idx, gst, real, zero, zero, np.zeros((len(idx), self.t.size), complex),
+                                           marks_ok=False)
+        return out
+
+    def _stage_recursion(self, s, idx, gst, real, a3, b3, grad, marks_ok=True):
         """The Lambda recursion over the stages (module docstring), all parameters at once.
 
         M_i = V_i^dag P_i Delta_i P_i^dag V_i obeys M_i = Phi_i o (O_i M_(i-1) O_i^dag + F'_i o B_i),
@@ -377,7 +402,7 @@ class _Spinning:
         n_st, d, n_r = self.n_st, e.shape[-1], len(idx)
         need_r = self.need_q[-1] >= 1
         # the marks' contraction matrices in the eigenbasis of the stage ending there, all at once
-        at = np.nonzero(self.j > 0)[0]
+        at = np.nonzero(self.j > 0)[0] if marks_ok else np.zeros(0, np.int64)
         mark_of = np.full(self.t.size, -1)
         mark_of[at] = 2 * self.j[at]
         vm = v[2 * self.j[at] - 1]
