@@ -176,7 +176,8 @@ class ExactEngine:
     (with rotor-synchronised pulse-sequence steps: qhl.exact.spinning_sequence)
     (so Fisher information, the gradient provider and fits work on them); the attribute
     `spinning_slices_per_period` (default None: the rule in that module) sets its slices per rotor
-    period. spectrum, transitions and hessian refuse them.
+    period. hessian takes Richardson differences of these exact gradients (as for pulse sequences,
+    qhl.exact.gradient_differences); spectrum and transitions refuse them.
 
     Example:
         >>> from qhl import demo_cluster, build_model, ExactEngine
