@@ -353,11 +353,10 @@ def diagnose(cluster: Cluster, dipolar_scale: float, *, t_max_s: float = 5e-4, p
 FLOQUET_DEGENERACY = 1e-10        # rad: phase spacings below this count as degenerate (no ratio)
 
 
-def _floquet_diagnostics(cluster, engine, ex, model, evals, evecs, crb, bad, start):
-    """Diagnostics of a spinning experiment: level statistics of the Floquet quasi-energies."""
-    levels = floquet_sector_levels(engine, ex)
+def _unitary_level_statistics(levels) -> dict:
+    """Diagnostics fields from (eigenphases, eigenvectors) per sector of a unitary: cyclic spacing
+    ratios per sector and pooled, IPR and D2 of the eigenvectors beside the random-vector D2."""
     ratios = [circular_spacing_ratios(ph, FLOQUET_DEGENERACY) for ph, _ in levels]
-    sector_r = np.array([float(np.mean(r)) if r.size else np.nan for r in ratios])
     pooled = np.concatenate(ratios) if ratios else np.zeros(0)
     ipr, d2, d2_random = [], [], []
     for _, v in levels:
@@ -366,13 +365,20 @@ def _floquet_diagnostics(cluster, engine, ex, model, evals, evecs, crb, bad, sta
         if v.shape[0] > 1:
             d2.append(fractal_dimension_d2(q, v.shape[0]))
             d2_random.append(np.full(q.shape, random_complex_vector_d2(v.shape[0])))
+    return dict(sector_mean_r=np.array([float(np.mean(r)) if r.size else np.nan for r in ratios]),
+                mean_r=float(np.mean(pooled)) if pooled.size else float("nan"), n_ratios=int(pooled.size),
+                ipr=np.concatenate(ipr), d2=np.concatenate(d2) if d2 else np.zeros(0),
+                d2_random=np.concatenate(d2_random) if d2_random else np.zeros(0))
+
+
+def _floquet_diagnostics(cluster, engine, ex, model, evals, evecs, crb, bad, start):
+    """Diagnostics of a spinning experiment: level statistics of the Floquet quasi-energies."""
+    levels = floquet_sector_levels(engine, ex)
+    stats = _unitary_level_statistics(levels)
     return Diagnostics(
         cluster=cluster.name, n_spins=cluster.n_spins, dipolar_scale=float(ex.dipolar_scale), free=model.free,
         fisher_eigenvalues=evals, fisher_eigenvectors=evecs, fisher_participation=participation_ratio(evecs),
-        crb_hz=crb, unlearnable=bad, sector_mean_r=sector_r,
-        mean_r=float(np.mean(pooled)) if pooled.size else float("nan"), n_ratios=int(pooled.size),
-        ipr=np.concatenate(ipr), d2=np.concatenate(d2) if d2 else np.zeros(0),
-        seconds=time.perf_counter() - start, d2_random=np.concatenate(d2_random) if d2_random else np.zeros(0),
+        crb_hz=crb, unlearnable=bad, seconds=time.perf_counter() - start, **stats,
         spinning_hz=float(ex.spinning_hz), level_kind="Floquet quasi-energies", mean_r_random=GUE_MEAN_R)
 
 
@@ -442,21 +448,9 @@ def diagnose_cycle(cluster: Cluster, cycle, cycles: int, *, dipolar_scale: float
     fisher = 0.5 * (fisher + fisher.T)
     crb, evals, evecs, bad = cramer_rao_bounds(fisher)
     levels = cycle_floquet_levels(engine, cycle, dipolar_scale)
-    ratios = [circular_spacing_ratios(ph, FLOQUET_DEGENERACY) for ph, _ in levels]
-    sector_r = np.array([float(np.mean(r)) if r.size else np.nan for r in ratios])
-    pooled = np.concatenate(ratios) if ratios else np.zeros(0)
-    ipr, d2, d2_random = [], [], []
-    for _, v in levels:
-        q = inverse_participation_ratio(v)
-        ipr.append(q)
-        if v.shape[0] > 1:
-            d2.append(fractal_dimension_d2(q, v.shape[0]))
-            d2_random.append(np.full(q.shape, random_complex_vector_d2(v.shape[0])))
+    stats = _unitary_level_statistics(levels)
     return Diagnostics(
         cluster=cluster.name, n_spins=cluster.n_spins, dipolar_scale=float(dipolar_scale), free=model.free,
         fisher_eigenvalues=evals, fisher_eigenvectors=evecs, fisher_participation=participation_ratio(evecs),
-        crb_hz=crb, unlearnable=bad, sector_mean_r=sector_r,
-        mean_r=float(np.mean(pooled)) if pooled.size else float("nan"), n_ratios=int(pooled.size),
-        ipr=np.concatenate(ipr), d2=np.concatenate(d2) if d2 else np.zeros(0),
-        seconds=time.perf_counter() - start, d2_random=np.concatenate(d2_random) if d2_random else np.zeros(0),
+        crb_hz=crb, unlearnable=bad, seconds=time.perf_counter() - start, **stats,
         level_kind="Floquet quasi-energies of one cycle", mean_r_random=GUE_MEAN_R)
