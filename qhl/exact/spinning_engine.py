@@ -72,7 +72,7 @@ from ..base.memory import require_memory
 from ..base.progress import FractionProgress
 from ..spins.cluster import refuse_steps
 from ..spins.spinning import spinning_factors
-from .divided_differences import first_divided_difference
+from .divided_differences import phase_sinc_tables
 
 __all__ = ["spinning_signal", "period_propagators", "spinning_gradient", "default_slices_per_period", "spinning_memory_bytes",
            "first_moments", "MAX_SLICE_ANGLE", "MIN_SLICES", "MAX_SLICES"]
@@ -81,7 +81,8 @@ MAX_SLICE_ANGLE = 1.0        # radians: bound on the largest slice rotation tau 
 MIN_SLICES = 8
 SYNC_GROWTH = 1.5            # rotor-synchronised sampling: K raised to a multiple of the grid up to this factor
 MAX_SLICES = 4096
-CHUNK_BYTES = 128 << 20      # stage derivatives of one chunk (3 complex arrays of Kc R d^2)
+PART_BYTES = 1 << 17         # partial-slice stages per time chunk: 2 complex d x d matrices per time
+CHUNK_BYTES = 2 << 20        # stage derivatives of one chunk (3 complex arrays of Kc R d^2; small: cache-resident)
 _GAUSS_BELOW = 0.05          # phase width below which first moments use Gauss-Legendre quadrature
 
 
@@ -195,7 +196,14 @@ def _two_stage(sf, t0, t1):
 def _expm(e, v, dt):
     """V exp(-i E dt) V^dag for stacks (M, d), (M, d, d), dt (M,) or scalar."""
     dt = np.broadcast_to(np.asarray(dt, float), e.shape[:1])
-    return (v * np.exp(-1j * e * dt[:, None])[:, None, :]) @ v.conj().transpose(0, 2, 1)
+    ang = e * dt[:, None]
+    if np.iscomplexobj(v):
+        return (v * np.exp(-1j * ang)[:, None, :]) @ v.conj().transpose(0, 2, 1)
+    vt = v.transpose(0, 2, 1)                                  # real V: two real products
+    out = np.empty(v.shape, complex)
+    out.real = (v * np.cos(ang)[:, None, :]) @ vt
+    out.imag = (v * -np.sin(ang)[:, None, :]) @ vt
+    return out
 
 
 def _linear_map(engine, s):
@@ -362,14 +370,21 @@ class _Spinning:
             g = geo[self.q[sel]]
             grad[:, sel] += _pair(dt, (wf.T @ a[sel] @ wf.conj()) * g, (_h(wf) @ b[sel] @ wf) * g.conj())
         # partial slice: Omega = W1^dag Omega_2 W1 + Omega_1, contracted with conj(X) A X^T; both
-        # stages in one batch
+        # stages in one batch, the times in chunks (small arrays: cache-resident, reused memory)
         (e1, v1), (e2, v2) = parts
-        sel, w1 = self.inside, w1[self.inside]
-        if sel.size:
-            a3, b3 = a3[sel], b3[sel]
-            grad[:, sel] += self._adjoint_stages(np.concatenate([e1, e2]), np.concatenate([v1, v2]), gens, idx,
-                                                 np.concatenate([a3, w1.conj() @ a3 @ w1.swapaxes(1, 2)]),
-                                                 np.concatenate([b3, w1 @ b3 @ _h(w1)]), real)
+        sel = self.inside
+        d = e.shape[-1]
+        step = max(1, PART_BYTES // (32 * d * d))
+        pos = np.full(self.t.size, -1)
+        pos[sel] = np.arange(sel.size)
+        for k0 in range(0, sel.size, step):
+            ts = sel[k0:k0 + step]
+            ks = pos[ts]
+            w, a3k, b3k = w1[ts], a3[ts], b3[ts]
+            grad[:, ts] += self._adjoint_stages(np.concatenate([e1[ks], e2[ks]]), np.concatenate([v1[ks], v2[ks]]),
+                                                gens, idx, np.concatenate([a3k, w.conj() @ a3k @ w.swapaxes(1, 2)]),
+                                                np.concatenate([b3k, w @ b3k @ _h(w)]), real,
+                                                self.delta[ts], self.part_factors[:, ks])
         return grad
 
     def period_derivatives(self, rows):
@@ -408,9 +423,11 @@ class _Spinning:
         vm = v[2 * self.j[at] - 1]
         a_t = _sandwich(vm.swapaxes(1, 2), a3[at], vm.conj(), real)
         b_t = _sandwich(_h(vm), b3[at], vm, real)
-        pos = np.full(self.t.size, -1)
-        pos[at] = np.arange(at.size)
-        marks = set(mark_of[at].tolist())
+        # per mark 2j: the sampling times there and their rows of a_t, b_t flattened (R d^2 contractions)
+        a_t, b_t = a_t.reshape(at.size, d * d), b_t.reshape(at.size, d * d)
+        order = np.argsort(mark_of[at], kind="stable")
+        bounds = np.flatnonzero(np.diff(mark_of[at][order])) + 1
+        at_mark = {int(mark_of[at[g[0]]]): (at[g], a_t[g].T, b_t[g].T) for g in np.split(order, bounds) if g.size}
         ph = np.exp(-1j * e * self.tau)
         m = None
         delta_r = None
@@ -425,53 +442,84 @@ class _Spinning:
             bt = (_h(vs) @ gv).reshape(c, d, n_r, d)
             bt *= (2 * np.pi * self.stage_factors[c0:c1][:, idx])[:, None, :, None]
             del gv
-            # Phi o F' = exp(i E_b tau) f[E_a, E_b]
-            pf = np.exp(1j * e[c0:c1, None, :] * self.tau) * first_divided_difference(
-                e[c0:c1, :, None], e[c0:c1, None, :], self.tau)
-            negphase = -(ph[c0:c1, :, None] * ph[c0:c1, None, :].conj())
+            # Phi o F' = exp(i E_b tau) f[E_a, E_b]; the source term Phi o F' o B_i of each stage
+            ptab, stab = phase_sinc_tables(e[c0:c1], self.tau)
+            ptab *= stab
+            ptab *= -1j * self.tau
+            bt = bt * ptab[:, :, None, :]
+            if d == 1:
+                # one level: O_i M O_i^dag = |O_i|^2 M = M and Phi = 1, so M_i is a running sum
+                ms = np.cumsum(bt, axis=0)
+                if m is not None:
+                    ms += m
+                m = ms[-1].copy()
+                for i in range(c0, c1):
+                    if i + 1 in at_mark or (need_r and i + 1 == n_st):
+                        delta_r = self._at_mark(i, ms[i - c0], at_mark, grad, need_r, delta_r, v, pref)
+                continue
+            negphase = -(ph[c0:c1, :, None] * ph[c0:c1, None, :].conj())[:, :, None, :]
             prev = v[c0 - 1:c1 - 1] if c0 > 0 else np.concatenate([vs[:1], vs[:-1]])
             o_all = _h(vs) @ prev                                                          # O_i = V_i^dag V_(i-1)
+            if not real:
+                o_all = np.stack([o_all, o_all.conj()])
             for ii in range(c):
                 i = c0 + ii
                 if m is None:
-                    m = bt[ii] * pf[ii][:, None, :]
+                    m = bt[ii].copy()
                 else:
-                    o = o_all[ii]
-                    m = _left(o if real else o.conj(),
-                              np.ascontiguousarray(_left(o, m, real).transpose(2, 1, 0)), real)
+                    o = o_all[ii] if real else o_all[:, ii]
+                    m = _left(o if real else o[1],
+                              np.ascontiguousarray(_left(o if real else o[0], m, real).transpose(2, 1, 0)), real)
                     np.conjugate(m, out=m)                             # O M O^dag = -conj(O^* T(O M))
-                    m *= negphase[ii][:, None, :]
-                    m += bt[ii] * pf[ii][:, None, :]
-                if i + 1 in marks or (need_r and i + 1 == n_st):
-                    mc = np.ascontiguousarray(m.transpose(1, 0, 2))                            # (R, d, d)
-                    sel = np.nonzero(mark_of == i + 1)[0]
-                    if sel.size:
-                        grad[:, sel] += _pair(mc, a_t[pos[sel]], b_t[pos[sel]])
-                    if need_r and i + 1 == n_st:
-                        z = _h(v[i]) @ pref[i + 1]                                         # Z = V_i^dag P_(i+1)
-                        delta_r = _h(z) @ mc @ z                                           # Delta_R = Z^dag M Z
+                    m *= negphase[ii]
+                    m += bt[ii]
+                if i + 1 in at_mark or (need_r and i + 1 == n_st):
+                    delta_r = self._at_mark(i, m, at_mark, grad, need_r, delta_r, v, pref)
+        return delta_r
+
+    def _at_mark(self, i, m, at_mark, grad, need_r, delta_r, v, pref):
+        """At the end of stage i: the sampling times marked there (sum_ab M o A_t + conj(M) o B_t, with M
+        (d, R, d) flattened to (R, d^2)) and, after the last stage of a period, Delta_R = Z^dag M Z."""
+        n_r, d = m.shape[1], m.shape[0]
+        mc = m.transpose(1, 0, 2).reshape(n_r, d * d)                                   # (R, d^2), a copy
+        hit = at_mark.get(i + 1)
+        if hit is not None:
+            sel, ca, cb = hit
+            grad[:, sel] += mc @ ca + mc.conj() @ cb
+        if need_r and i + 1 == self.n_st:
+            z = _h(v[i]) @ pref[i + 1]                                                     # Z = V_i^dag P_(i+1)
+            delta_r = _h(z) @ mc.reshape(n_r, d, d) @ z                                    # Delta_R = Z^dag M Z
         return delta_r
 
     @staticmethod
     def _f_prime(e, dt):
-        """F'_ab = exp(i E_a dt) f[E_a, E_b] for stacks e (M, d), dt scalar or (M,)."""
-        dt = np.broadcast_to(np.asarray(dt, float), e.shape[:1])[:, None, None]
-        return np.exp(1j * e[:, :, None] * dt) * first_divided_difference(e[:, :, None], e[:, None, :], dt)
+        """F'_ab = exp(i E_a dt) f[E_a, E_b] = -i dt conj(P) S (phase_sinc_tables) for stacks e (M, d), dt (M,)."""
+        p, s = phase_sinc_tables(e, dt)
+        out = p.conj()
+        out *= s
+        out *= -1j * dt[:, None, None]
+        return out
 
-    def _adjoint_stages(self, e, v, gens, idx, a, b, real):
+    @staticmethod
+    def _adjoint_stages(e, v, gens, idx, a, b, real, delta, part_factors):
         """sum_ab [A o Omega + B o conj(Omega)] of the two partial-slice stages, per parameter and time
-        (stacks of 2M: the first stage's M times, then the second's):
+        (stacks of 2M: the first stage's M times, then the second's; delta (M,) the partial-slice lengths,
+        part_factors (2, M, P) their stage factors):
         Omega = V (F' o V^dag dH V) V^dag, so sum A o Omega = sum_ef dH_ef (V^* (F' o V^T A V^*) V^T)_ef."""
-        n = len(self.inside)
-        fp = self._f_prime(e, np.concatenate([self.delta[self.inside]] * 2))
+        n = len(delta)
+        fp = _Spinning._f_prime(e, np.concatenate([delta, delta]))
         vt, vc = v.swapaxes(1, 2), v.conj()
         flat = gens.reshape(len(idx), -1)
-        factor = (2 * np.pi * self.part_factors[:, :, idx]).transpose(0, 2, 1)          # (2, R, M)
+        factor = (2 * np.pi * part_factors[:, :, idx]).transpose(0, 2, 1)               # (2, R, M)
         if real:
-            # real V and G: sum G o conj(zb) = sum G o V (conj(F') o V^T B V) V^T, one back-transform
-            z = _sandwich(v, fp * _sandwich(vt, a, v, True) + fp.conj() * _sandwich(vt, b, v, True), vt, True)
-            z = z.reshape(len(z), -1)
-            out = flat @ z.real.T + 1j * (flat @ z.imag.T)
+            # real V and G: sum G o conj(zb) = sum G o V (conj(F') o V^T B V) V^T, one back-transform:
+            # z = V (Re F' o V^T (A + B) V + i Im F' o V^T (A - B) V) V^T, all in real products
+            x = np.stack([a.real + b.real, a.imag + b.imag, a.real - b.real, a.imag - b.imag])
+            x = np.matmul(np.matmul(vt, x), v)
+            y = np.stack([fp.real * x[0] - fp.imag * x[3], fp.real * x[1] + fp.imag * x[2]])
+            z = np.matmul(np.matmul(v, y), vt).reshape(2 * len(e), -1)
+            out = flat @ z.T
+            out = out[:, :len(e)] + 1j * out[:, len(e):]
         else:
             za = vc @ (fp * (vt @ a @ vc)) @ vt
             zb = vc @ (fp * (vt @ b.conj() @ vc)) @ vt
