@@ -427,8 +427,15 @@ class _Spinning:
         a_t, b_t = a_t.reshape(at.size, d * d), b_t.reshape(at.size, d * d)
         order = np.argsort(mark_of[at], kind="stable")
         bounds = np.flatnonzero(np.diff(mark_of[at][order])) + 1
-        at_mark = {int(mark_of[at[g[0]]]): (at[g], a_t[g].T, b_t[g].T) for g in np.split(order, bounds) if g.size}
+        # sum_ab M o A + conj(M) o B = (M A^T)_t + conj(M conj(B)^T)_t: one product with [A | conj(B)]^T
+        at_mark = {int(mark_of[at[g[0]]]): (at[g], np.concatenate([a_t[g], b_t[g].conj()]).T)
+                   for g in np.split(order, bounds) if g.size}
         ph = np.exp(-1j * e * self.tau)
+        # Phi o F' = exp(i E_b tau) f[E_a, E_b] = -i tau P S for all stages
+        pf, stab = phase_sinc_tables(e, self.tau)
+        pf *= stab
+        pf *= -1j * self.tau
+        del stab
         m = None
         delta_r = None
         chunk = _stage_chunk(n_st, n_r, d)
@@ -442,11 +449,7 @@ class _Spinning:
             bt = (_h(vs) @ gv).reshape(c, d, n_r, d)
             bt *= (2 * np.pi * self.stage_factors[c0:c1][:, idx])[:, None, :, None]
             del gv
-            # Phi o F' = exp(i E_b tau) f[E_a, E_b]; the source term Phi o F' o B_i of each stage
-            ptab, stab = phase_sinc_tables(e[c0:c1], self.tau)
-            ptab *= stab
-            ptab *= -1j * self.tau
-            bt = bt * ptab[:, :, None, :]
+            bt = bt * pf[c0:c1, :, None, :]                          # the source term Phi o F' o B_i of each stage
             if d == 1:
                 # one level: O_i M O_i^dag = |O_i|^2 M = M and Phi = 1, so M_i is a running sum
                 ms = np.cumsum(bt, axis=0)
@@ -484,8 +487,9 @@ class _Spinning:
         mc = m.transpose(1, 0, 2).reshape(n_r, d * d)                                   # (R, d^2), a copy
         hit = at_mark.get(i + 1)
         if hit is not None:
-            sel, ca, cb = hit
-            grad[:, sel] += mc @ ca + mc.conj() @ cb
+            sel, cab = hit
+            both = mc @ cab
+            grad[:, sel] += both[:, :sel.size] + both[:, sel.size:].conj()
         if need_r and i + 1 == self.n_st:
             z = _h(v[i]) @ pref[i + 1]                                                     # Z = V_i^dag P_(i+1)
             delta_r = _h(z) @ mc.reshape(n_r, d, d) @ z                                    # Delta_R = Z^dag M Z
