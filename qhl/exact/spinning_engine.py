@@ -377,6 +377,9 @@ class _Spinning:
         step = max(1, PART_BYTES // (32 * d * d))
         pos = np.full(self.t.size, -1)
         pos[sel] = np.arange(sel.size)
+        if sel.size:
+            dl = self.delta[sel]
+            fp_all = self._f_prime(np.concatenate([e1, e2]), np.concatenate([dl, dl])).reshape(2, sel.size, d, d)
         for k0 in range(0, sel.size, step):
             ts = sel[k0:k0 + step]
             ks = pos[ts]
@@ -384,7 +387,8 @@ class _Spinning:
             grad[:, ts] += self._adjoint_stages(np.concatenate([e1[ks], e2[ks]]), np.concatenate([v1[ks], v2[ks]]),
                                                 gens, idx, np.concatenate([a3k, w.conj() @ a3k @ w.swapaxes(1, 2)]),
                                                 np.concatenate([b3k, w @ b3k @ _h(w)]), real,
-                                                self.delta[ts], self.part_factors[:, ks])
+                                                self.delta[ts], self.part_factors[:, ks],
+                                                fp_all[:, ks].reshape(2 * ks.size, d, d))
         return grad
 
     def period_derivatives(self, rows):
@@ -425,11 +429,13 @@ class _Spinning:
         b_t = _sandwich(_h(vm), b3[at], vm, real)
         # per mark 2j: the sampling times there and their rows of a_t, b_t flattened (R d^2 contractions)
         a_t, b_t = a_t.reshape(at.size, d * d), b_t.reshape(at.size, d * d)
-        order = np.argsort(mark_of[at], kind="stable")
-        bounds = np.flatnonzero(np.diff(mark_of[at][order])) + 1
-        # sum_ab M o A + conj(M) o B = (M A^T)_t + conj(M conj(B)^T)_t: one product with [A | conj(B)]^T
-        at_mark = {int(mark_of[at[g[0]]]): (at[g], np.concatenate([a_t[g], b_t[g].conj()]).T)
-                   for g in np.split(order, bounds) if g.size}
+        # sum_ab M o A + conj(M) o B = (M A^T)_t + conj(M conj(B)^T)_t: one product with the columns of
+        # [A | conj(B)]^T of the times marked there
+        tab = np.concatenate([a_t, b_t.conj()]).T                                        # (d^2, 2 n_at)
+        at_mark = {}
+        for k, mk in enumerate(mark_of[at].tolist()):
+            at_mark.setdefault(mk, []).append(k)
+        at_mark = {mk: (at[ks], tab[:, ks + [at.size + k for k in ks]]) for mk, ks in at_mark.items()}
         ph = np.exp(-1j * e * self.tau)
         # Phi o F' = exp(i E_b tau) f[E_a, E_b] = -i tau P S for all stages
         pf, stab = phase_sinc_tables(e, self.tau)
@@ -505,13 +511,14 @@ class _Spinning:
         return out
 
     @staticmethod
-    def _adjoint_stages(e, v, gens, idx, a, b, real, delta, part_factors):
+    def _adjoint_stages(e, v, gens, idx, a, b, real, delta, part_factors, fp=None):
         """sum_ab [A o Omega + B o conj(Omega)] of the two partial-slice stages, per parameter and time
         (stacks of 2M: the first stage's M times, then the second's; delta (M,) the partial-slice lengths,
-        part_factors (2, M, P) their stage factors):
+        part_factors (2, M, P) their stage factors; fp their F' when already at hand):
         Omega = V (F' o V^dag dH V) V^dag, so sum A o Omega = sum_ef dH_ef (V^* (F' o V^T A V^*) V^T)_ef."""
         n = len(delta)
-        fp = _Spinning._f_prime(e, np.concatenate([delta, delta]))
+        if fp is None:
+            fp = _Spinning._f_prime(e, np.concatenate([delta, delta]))
         vt, vc = v.swapaxes(1, 2), v.conj()
         flat = gens.reshape(len(idx), -1)
         factor = (2 * np.pi * part_factors[:, :, idx]).transpose(0, 2, 1)               # (2, R, M)
