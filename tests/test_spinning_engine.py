@@ -267,7 +267,7 @@ def test_fit_recovers_parameters_from_a_spinning_experiment():
 
 def test_memory_model_covers_the_measured_peak():
     # common practice: the stated peak-memory model (spinning_memory_bytes) against tracemalloc's peak
-    # of a full gradient; measured 25 MiB peak against a 35 MiB estimate on the six-proton demo.
+    # of a full gradient; measured 14.6 MiB peak against a 16.5 MiB estimate on the six-proton demo.
     import tracemalloc
 
     from qhl import demo_cluster

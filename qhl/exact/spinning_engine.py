@@ -55,9 +55,11 @@ needs no partial slice (no eigendecomposition per time). Override with `slices_p
 ExactEngine.spinning_slices_per_period).
 
 Memory (spinning_memory_bytes, checked with qhl.base.memory.require_memory before any work): per
-sector the stage eigendecompositions and the sampling-time propagators; in the gradient, for the
-largest sector d, 16 d^2 R (3 Kc + 4) bytes (R parameters, Kc stages per chunk: the chunk's
-generator products and the recursion's matrices) plus 16 d^2 T 10 for the time tables.
+sector the stage eigendecompositions and the sampling-time propagators; in the gradient, where the
+sectors of one dimension d run through the recursion together (G of them, the group with the largest
+G d^2), 16 G d^2 R (3 Kc + 4) bytes (R parameters, Kc stages per chunk of CHUNK_BYTES: the chunk's
+generator products and the recursion's matrices) plus 16 max(d_max^2, G d^2) T 12 for the time tables
+(the group's) and the partial slices' F' (their other work runs in chunks of times, PART_BYTES each).
 """
 
 from fractions import Fraction
@@ -182,8 +184,12 @@ def spinning_memory_bytes(dims, k_slices, n_rows, n_times, n_j=None, n_q=None) -
     per_time = 16.0 * 4 * n_times * np.sum(dims**2)
     grad = 0.0
     if n_rows:
-        kc = _stage_chunk(2 * k_slices, n_rows, d)
-        grad = 16.0 * d * d * (n_rows * (3 * kc + 4) + 10 * n_times)
+        # the recursion runs the sectors of one dimension together: G sectors of dimension dg
+        vals, counts = np.unique(dims, return_counts=True)
+        k = int(np.argmax(counts * vals**2))
+        g, dg = int(counts[k]), float(vals[k])
+        kc = _stage_chunk(2 * k_slices, n_rows * g, dg)
+        grad = 16.0 * (g * dg * dg * n_rows * (3 * kc + 4) + max(d * d, g * dg * dg) * 12 * n_times)
     return float(cache + per_time + grad)
 
 
@@ -339,18 +345,30 @@ class _Spinning:
 
     def sector_gradient(self, s, rows, ab):
         """(R, T) contribution of sector s to the unnormalised gradient (module docstring)."""
-        e, v, parts, w1, pref, pw = self.spec[s]
-        pj, pq, _ = self.prop[s]
-        a, b = ab
+        return self.group_gradient([s], rows, [ab])
+
+    def group_gradient(self, group, rows, abs_):
+        """(R, T) contribution of the sectors `group` (all of one dimension; abs_ their contraction
+        matrices) to the unnormalised gradient: one stage recursion for the group, the rest per sector."""
         idx = [n for n, _ in rows]
-        gst, gens = self._generators(s, idx)
-        real = not (np.iscomplexobj(v) or np.iscomplexobj(gens))
+        gens = [self._generators(s, idx) for s in group]
+        real = not any(np.iscomplexobj(self.spec[s][1]) or np.iscomplexobj(g[1]) for s, g in zip(group, gens))
         grad = np.zeros((len(rows), self.t.size), complex)
         # per sampling time: X = P_2j U_R^q and the contraction matrices conj(X) A X^T, X B X^dag
-        x = pj @ pq
-        a3 = x.conj() @ a @ x.swapaxes(1, 2)
-        b3 = x @ b @ _h(x)
-        delta_r = self._stage_recursion(s, idx, gst, real, a3, b3, grad)
+        a3s, b3s = [], []
+        for s, (a, b) in zip(group, abs_):
+            pj, pq, _ = self.prop[s]
+            x = pj @ pq
+            a3s.append(x.conj() @ a @ x.swapaxes(1, 2))
+            b3s.append(x @ b @ _h(x))
+        deltas = self._stage_recursion(group, idx, [g[0] for g in gens], real, a3s, b3s, grad)
+        for s, (a, b), (gst, gens_s), a3, b3, delta_r in zip(group, abs_, gens, a3s, b3s, deltas):
+            self._sector_rest(s, idx, gens_s, real, a, b, a3, b3, delta_r, grad)
+        return grad
+
+    def _sector_rest(self, s, idx, gens, real, a, b, a3, b3, delta_r, grad):
+        """The period sum Gamma_q and the partial slices of sector s, added to grad."""
+        e, v, parts, w1, pref, pw = self.spec[s]
         if delta_r is not None:
             # Gamma_q = sum_(l < q) U_R^-l Delta_R U_R^l in the Floquet basis U_R = W diag(lam) W^dag
             # (complex Schur form; U_R is normal, so the triangular factor is diagonal to rounding):
@@ -389,73 +407,90 @@ class _Spinning:
                                                 np.concatenate([b3k, w @ b3k @ _h(w)]), real,
                                                 self.delta[ts], self.part_factors[:, ks],
                                                 fp_all[:, ks].reshape(2 * ks.size, d, d))
-        return grad
 
     def period_derivatives(self, rows):
         """Per sector: Delta_R = U_R^dag dU_R/dh (R, d, d) for the parameters of `rows` (the recursion of
         sector_gradient without sampling marks); the instance must reach one full period (q >= 1)."""
         idx = [n for n, _ in rows]
         out = {}
-        for s in self.sectors:
-            gst, gens = self._generators(s, idx)
-            real = not (np.iscomplexobj(self.spec[s][1]) or np.iscomplexobj(gens))
-            d = self.spec[s][0].shape[-1]
-            zero = np.zeros((self.t.size, d, d), complex)
-            out[s] = self._stage_recursion(s, idx, gst, real, zero, zero, np.zeros((len(idx), self.t.size), complex),
-                                           marks_ok=False)
+        for group in self._groups():
+            gst = [self._generators(s, idx)[0] for s in group]
+            real = not any(np.iscomplexobj(self.spec[s][1]) or np.iscomplexobj(self._generators(s, idx)[1])
+                           for s in group)
+            d = self.spec[group[0]][0].shape[-1]
+            zero = [np.zeros((self.t.size, d, d), complex)] * len(group)
+            deltas = self._stage_recursion(group, idx, gst, real, zero, zero,
+                                           np.zeros((len(idx), self.t.size), complex), marks_ok=False)
+            out.update(zip(group, deltas))
         return out
 
-    def _stage_recursion(self, s, idx, gst, real, a3, b3, grad, marks_ok=True):
-        """The Lambda recursion over the stages (module docstring), all parameters at once.
+    def _groups(self):
+        """The sectors in use grouped by dimension (in order of first appearance)."""
+        groups = {}
+        for s in self.sectors:
+            groups.setdefault(self.engine._dims[s], []).append(s)
+        return list(groups.values())
+
+    def _stage_recursion(self, group, idx, gsts, real, a3s, b3s, grad, marks_ok=True):
+        """The Lambda recursion over the stages (module docstring), all parameters and the sectors of
+        `group` (one dimension d) at once.
 
         M_i = V_i^dag P_i Delta_i P_i^dag V_i obeys M_i = Phi_i o (O_i M_(i-1) O_i^dag + F'_i o B_i),
         O_i = V_i^dag V_(i-1), B_i = V_i^dag (2 pi e_in G_n) V_i, Phi_i = exp(-i (E_a - E_b) tau). M is
-        held as (d, R, d) [a, parameter, b], so each product with O is one matrix product over all
-        parameters (real products on the (re, im) pairs where V is real). M is anti-Hermitian in
-        (a, b), so M O^dag = -conj(transpose(O M)) and O M O^dag = -conj(O^* transpose(O M)): two
-        left products. At a mark 2j the contraction sum_ab Delta o A + conj(Delta) o B equals
+        held as (G, d, R, d) [sector, a, parameter, b], so each product with O is one matrix product
+        over all parameters per sector (real products on the (re, im) pairs where V is real). M is
+        anti-Hermitian in (a, b), so M O^dag = -conj(transpose(O M)) and O M O^dag = -conj(O^* transpose(O M)):
+        two left products. At a mark 2j the contraction sum_ab Delta o A + conj(Delta) o B equals
         sum_ab M o (V^T A3 V^*) + conj(M) o (V^dag B3 V), A3 = conj(X) A X^T, B3 = X B X^dag,
-        X = P_2j U_R^q, V = V_(2j-1). Adds the marks' terms to grad; returns Delta_R (R, d, d), or
-        None when no sampling time lies beyond the first period."""
-        e, v, pref = self.spec[s][0], self.spec[s][1], self.spec[s][4]
+        X = P_2j U_R^q, V = V_(2j-1), summed over the group's sectors. Adds the marks' terms to grad;
+        returns per sector Delta_R (R, d, d), or None when no sampling time lies beyond the first period."""
+        n_g = len(group)
+        e = np.stack([self.spec[s][0] for s in group])                                      # (G, n_st, d)
+        v = np.stack([self.spec[s][1] for s in group])                                      # (G, n_st, d, d)
+        prefs = [self.spec[s][4] for s in group]
         n_st, d, n_r = self.n_st, e.shape[-1], len(idx)
         need_r = self.need_q[-1] >= 1
         # the marks' contraction matrices in the eigenbasis of the stage ending there, all at once
         at = np.nonzero(self.j > 0)[0] if marks_ok else np.zeros(0, np.int64)
         mark_of = np.full(self.t.size, -1)
         mark_of[at] = 2 * self.j[at]
-        vm = v[2 * self.j[at] - 1]
-        a_t = _sandwich(vm.swapaxes(1, 2), a3[at], vm.conj(), real)
-        b_t = _sandwich(_h(vm), b3[at], vm, real)
-        # per mark 2j: the sampling times there and their rows of a_t, b_t flattened (R d^2 contractions)
-        a_t, b_t = a_t.reshape(at.size, d * d), b_t.reshape(at.size, d * d)
-        # sum_ab M o A + conj(M) o B = (M A^T)_t + conj(M conj(B)^T)_t: one product with the columns of
-        # [A | conj(B)]^T of the times marked there
-        tab = np.concatenate([a_t, b_t.conj()]).T                                        # (d^2, 2 n_at)
+        tabs = []
+        for g in range(n_g):
+            vm = v[g, 2 * self.j[at] - 1]
+            a_t = _sandwich(vm.swapaxes(1, 2), a3s[g][at], vm.conj(), real).reshape(at.size, d * d)
+            b_t = _sandwich(_h(vm), b3s[g][at], vm, real).reshape(at.size, d * d)
+            tabs.append(np.concatenate([a_t, b_t.conj()]).T)                            # (d^2, 2 n_at)
+        # sum_ab M o A + conj(M) o B = (M A^T)_t + conj(M conj(B)^T)_t, summed over the sectors: one
+        # product of M (R, G d^2) with the columns [A | conj(B)]^T (G d^2, 2 n) of the times marked there
+        tab = np.concatenate(tabs)
         at_mark = {}
         for k, mk in enumerate(mark_of[at].tolist()):
             at_mark.setdefault(mk, []).append(k)
         at_mark = {mk: (at[ks], tab[:, ks + [at.size + k for k in ks]]) for mk, ks in at_mark.items()}
         ph = np.exp(-1j * e * self.tau)
         # Phi o F' = exp(i E_b tau) f[E_a, E_b] = -i tau P S for all stages
-        pf, stab = phase_sinc_tables(e, self.tau)
+        pf, stab = phase_sinc_tables(e.reshape(-1, d), self.tau)
         pf *= stab
         pf *= -1j * self.tau
+        pf = pf.reshape(n_g, n_st, d, d)
         del stab
+        scale = 2 * np.pi * self.stage_factors[:, idx]                                     # (n_st, R)
         m = None
-        delta_r = None
-        chunk = _stage_chunk(n_st, n_r, d)
+        deltas = [None] * n_g
+        chunk = _stage_chunk(n_st, n_r * n_g, d)
         for c0 in range(0, n_st, chunk):
             c1 = min(n_st, c0 + chunk)
-            vs = v[c0:c1]
+            vs = v[:, c0:c1]
             c = c1 - c0
             # S_i = [G_1 V_i | ... | G_R V_i] as (d, R d); B_i = V_i^dag S_i, scaled per parameter
-            gv = gst @ vs.transpose(1, 0, 2).reshape(d, c * d)                              # (R d, c d)
-            gv = np.ascontiguousarray(gv.reshape(n_r, d, c, d).transpose(2, 1, 0, 3)).reshape(c, d, n_r * d)
-            bt = (_h(vs) @ gv).reshape(c, d, n_r, d)
-            bt *= (2 * np.pi * self.stage_factors[c0:c1][:, idx])[:, None, :, None]
-            del gv
-            bt = bt * pf[c0:c1, :, None, :]                          # the source term Phi o F' o B_i of each stage
+            bt = np.empty((c, n_g, d, n_r, d), complex if not real else float)
+            for g in range(n_g):
+                gv = gsts[g] @ vs[g].transpose(1, 0, 2).reshape(d, c * d)                  # (R d, c d)
+                gv = np.ascontiguousarray(gv.reshape(n_r, d, c, d).transpose(2, 1, 0, 3)).reshape(c, d, n_r * d)
+                bt[:, g] = (_h(vs[g]) @ gv).reshape(c, d, n_r, d)
+            bt *= scale[c0:c1, None, None, :, None]
+            # the source term Phi o F' o B_i of each stage
+            bt = bt * pf[:, c0:c1].transpose(1, 0, 2, 3)[:, :, :, None, :]
             if d == 1:
                 # one level: O_i M O_i^dag = |O_i|^2 M = M and Phi = 1, so M_i is a running sum
                 ms = np.cumsum(bt, axis=0)
@@ -464,42 +499,41 @@ class _Spinning:
                 m = ms[-1].copy()
                 for i in range(c0, c1):
                     if i + 1 in at_mark or (need_r and i + 1 == n_st):
-                        delta_r = self._at_mark(i, ms[i - c0], at_mark, grad, need_r, delta_r, v, pref)
+                        self._at_mark(i, ms[i - c0], at_mark, grad, need_r, deltas, v, prefs)
                 continue
-            negphase = -(ph[c0:c1, :, None] * ph[c0:c1, None, :].conj())[:, :, None, :]
-            prev = v[c0 - 1:c1 - 1] if c0 > 0 else np.concatenate([vs[:1], vs[:-1]])
-            o_all = _h(vs) @ prev                                                          # O_i = V_i^dag V_(i-1)
-            if not real:
-                o_all = np.stack([o_all, o_all.conj()])
+            negphase = -(ph[:, c0:c1, :, None] * ph[:, c0:c1, None, :].conj()).transpose(1, 0, 2, 3)[:, :, :, None, :]
+            prev = v[:, c0 - 1:c1 - 1] if c0 > 0 else np.concatenate([vs[:, :1], vs[:, :-1]], axis=1)
+            o_all = (_h(vs) @ prev).transpose(1, 0, 2, 3)                                  # O_i = V_i^dag V_(i-1)
+            o_sec = o_all if real else o_all.conj()
             for ii in range(c):
                 i = c0 + ii
                 if m is None:
                     m = bt[ii].copy()
                 else:
-                    o = o_all[ii] if real else o_all[:, ii]
-                    m = _left(o if real else o[1],
-                              np.ascontiguousarray(_left(o if real else o[0], m, real).transpose(2, 1, 0)), real)
+                    m = _left(o_sec[ii], np.ascontiguousarray(_left(o_all[ii], m, real).transpose(0, 3, 2, 1)), real)
                     np.conjugate(m, out=m)                             # O M O^dag = -conj(O^* T(O M))
                     m *= negphase[ii]
                     m += bt[ii]
                 if i + 1 in at_mark or (need_r and i + 1 == n_st):
-                    delta_r = self._at_mark(i, m, at_mark, grad, need_r, delta_r, v, pref)
-        return delta_r
+                    self._at_mark(i, m, at_mark, grad, need_r, deltas, v, prefs)
+        return deltas
 
-    def _at_mark(self, i, m, at_mark, grad, need_r, delta_r, v, pref):
-        """At the end of stage i: the sampling times marked there (sum_ab M o A_t + conj(M) o B_t, with M
-        (d, R, d) flattened to (R, d^2)) and, after the last stage of a period, Delta_R = Z^dag M Z."""
-        n_r, d = m.shape[1], m.shape[0]
-        mc = m.transpose(1, 0, 2).reshape(n_r, d * d)                                   # (R, d^2), a copy
+    def _at_mark(self, i, m, at_mark, grad, need_r, deltas, v, prefs):
+        """At the end of stage i: the sampling times marked there (sum_ab M o A_t + conj(M) o B_t over the
+        group, with M (G, d, R, d) flattened to (R, G d^2)) and, after the last stage of a period,
+        Delta_R = Z^dag M Z per sector (into deltas)."""
+        n_g, d, n_r = m.shape[0], m.shape[1], m.shape[2]
+        mc = m.transpose(2, 0, 1, 3).reshape(n_r, n_g * d * d)                         # (R, G d^2), a copy
         hit = at_mark.get(i + 1)
         if hit is not None:
             sel, cab = hit
             both = mc @ cab
             grad[:, sel] += both[:, :sel.size] + both[:, sel.size:].conj()
         if need_r and i + 1 == self.n_st:
-            z = _h(v[i]) @ pref[i + 1]                                                     # Z = V_i^dag P_(i+1)
-            delta_r = _h(z) @ mc.reshape(n_r, d, d) @ z                                    # Delta_R = Z^dag M Z
-        return delta_r
+            mc = mc.reshape(n_r, n_g, d, d)
+            for g in range(n_g):
+                z = _h(v[g, i]) @ prefs[g][i + 1]                                          # Z = V_i^dag P_(i+1)
+                deltas[g] = _h(z) @ mc[:, g] @ z                                           # Delta_R = Z^dag M Z
 
     @staticmethod
     def _f_prime(e, dt):
@@ -539,10 +573,12 @@ class _Spinning:
 
 
 def _left(o, m, real):
-    """o @ m over the first axis of a complex stack m (d, ...): one real product where o is real."""
+    """o @ m over the axis after the sector axis of a complex stack m (G, d, ...), o (G, d, d): one real
+    product per sector where o is real."""
+    g, d = m.shape[0], m.shape[1]
     if not real:
-        return (o @ m.reshape(m.shape[0], -1)).reshape(m.shape)
-    return (o @ m.view(np.float64).reshape(m.shape[0], -1)).view(complex).reshape(m.shape)
+        return (o @ m.reshape(g, d, -1)).reshape(m.shape)
+    return (o @ m.view(np.float64).reshape(g, d, -1)).view(complex).reshape(m.shape)
 
 
 def _sandwich(left, x, right, real):
@@ -595,8 +631,10 @@ def spinning_gradient(engine, experiment, t, free_values_hz, rows, slices_per_pe
     if rows:
         cm = run.contraction_matrices()
         bar = FractionProgress(f"spinning gradient '{experiment.name}', sectors")
-        for i, s in enumerate(run.sectors):
-            grad += run.sector_gradient(s, rows, cm[s])
-            bar((i + 1) / len(run.sectors))
+        done = 0
+        for group in run._groups():
+            grad += run.group_gradient(group, rows, [cm[s] for s in group])
+            done += len(group)
+            bar(done / len(run.sectors))
         bar.close()
     return run.signal(), grad / engine.norm
