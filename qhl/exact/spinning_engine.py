@@ -454,19 +454,30 @@ class _Spinning:
         at = np.nonzero(self.j > 0)[0] if marks_ok else np.zeros(0, np.int64)
         mark_of = np.full(self.t.size, -1)
         mark_of[at] = 2 * self.j[at]
-        tabs = []
-        for g in range(n_g):
-            vm = v[g, 2 * self.j[at] - 1]
-            a_t = _sandwich(vm.swapaxes(1, 2), a3s[g][at], vm.conj(), real).reshape(at.size, d * d)
-            b_t = _sandwich(_h(vm), b3s[g][at], vm, real).reshape(at.size, d * d)
-            tabs.append(np.concatenate([a_t, b_t.conj()]).T)                            # (d^2, 2 n_at)
         # sum_ab M o A + conj(M) o B = (M A^T)_t + conj(M conj(B)^T)_t, summed over the sectors: one
         # product of M (R, G d^2) with the columns [A | conj(B)]^T (G d^2, 2 n) of the times marked there
-        tab = np.concatenate(tabs)
-        at_mark = {}
+        # (columns ordered mark by mark: a slice per mark)
+        by_mark = {}
         for k, mk in enumerate(mark_of[at].tolist()):
-            at_mark.setdefault(mk, []).append(k)
-        at_mark = {mk: (at[ks], tab[:, ks + [at.size + k for k in ks]]) for mk, ks in at_mark.items()}
+            by_mark.setdefault(mk, []).append(k)
+        n_at = at.size
+        full = np.empty((2 * n_at, n_g, d, d), complex)
+        for g in range(n_g):
+            vm = v[g, 2 * self.j[at] - 1]
+            if real:
+                x = np.stack([a3s[g][at].real, a3s[g][at].imag, b3s[g][at].real, b3s[g][at].imag])
+                x = np.matmul(np.matmul(vm.swapaxes(1, 2), x), vm)
+                full[:n_at, g].real, full[:n_at, g].imag = x[0], x[1]
+                full[n_at:, g].real, full[n_at:, g].imag = x[2], -x[3]
+            else:
+                full[:n_at, g] = vm.swapaxes(1, 2) @ a3s[g][at] @ vm.conj()
+                full[n_at:, g] = (_h(vm) @ b3s[g][at] @ vm).conj()
+        perm, at_mark, col = [], {}, 0
+        for mk, ks in by_mark.items():
+            perm += ks + [n_at + k for k in ks]
+            at_mark[mk] = (at[ks], col, col + 2 * len(ks))
+            col += 2 * len(ks)
+        tab = full.reshape(2 * n_at, n_g * d * d)[perm].T                                 # (G d^2, 2 n_at)
         ph = np.exp(-1j * e * self.tau)
         # Phi o F' = exp(i E_b tau) f[E_a, E_b] = -i tau P S for all stages
         pf, stab = phase_sinc_tables(e.reshape(-1, d), self.tau)
@@ -499,7 +510,7 @@ class _Spinning:
                 m = ms[-1].copy()
                 for i in range(c0, c1):
                     if i + 1 in at_mark or (need_r and i + 1 == n_st):
-                        self._at_mark(i, ms[i - c0], at_mark, grad, need_r, deltas, v, prefs)
+                        self._at_mark(i, ms[i - c0], at_mark, tab, grad, need_r, deltas, v, prefs)
                 continue
             negphase = -(ph[:, c0:c1, :, None] * ph[:, c0:c1, None, :].conj()).transpose(1, 0, 2, 3)[:, :, :, None, :]
             prev = v[:, c0 - 1:c1 - 1] if c0 > 0 else np.concatenate([vs[:, :1], vs[:, :-1]], axis=1)
@@ -515,10 +526,10 @@ class _Spinning:
                     m *= negphase[ii]
                     m += bt[ii]
                 if i + 1 in at_mark or (need_r and i + 1 == n_st):
-                    self._at_mark(i, m, at_mark, grad, need_r, deltas, v, prefs)
+                    self._at_mark(i, m, at_mark, tab, grad, need_r, deltas, v, prefs)
         return deltas
 
-    def _at_mark(self, i, m, at_mark, grad, need_r, deltas, v, prefs):
+    def _at_mark(self, i, m, at_mark, tab, grad, need_r, deltas, v, prefs):
         """At the end of stage i: the sampling times marked there (sum_ab M o A_t + conj(M) o B_t over the
         group, with M (G, d, R, d) flattened to (R, G d^2)) and, after the last stage of a period,
         Delta_R = Z^dag M Z per sector (into deltas)."""
@@ -526,8 +537,8 @@ class _Spinning:
         mc = m.transpose(2, 0, 1, 3).reshape(n_r, n_g * d * d)                         # (R, G d^2), a copy
         hit = at_mark.get(i + 1)
         if hit is not None:
-            sel, cab = hit
-            both = mc @ cab
+            sel, lo, hi = hit
+            both = mc @ tab[:, lo:hi]
             grad[:, sel] += both[:, :sel.size] + both[:, sel.size:].conj()
         if need_r and i + 1 == self.n_st:
             mc = mc.reshape(n_r, n_g, d, d)
@@ -579,14 +590,6 @@ def _left(o, m, real):
     if not real:
         return (o @ m.reshape(g, d, -1)).reshape(m.shape)
     return (o @ m.view(np.float64).reshape(g, d, -1)).view(complex).reshape(m.shape)
-
-
-def _sandwich(left, x, right, real):
-    """left @ x @ right for a complex stack x and matrices left, right (real products when real)."""
-    if not real:
-        return left @ x @ right
-    y = (left @ x.real) + 1j * (left @ x.imag)
-    return (y.real @ right) + 1j * (y.imag @ right)
 
 
 def _pair(dm, ca, cb):
