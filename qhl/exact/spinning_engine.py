@@ -312,13 +312,16 @@ class _Spinning:
             out += np.einsum("mab,ba->m", y, obs)
         return out / self.engine.norm
 
-    def contraction_matrices(self, blocks=None):
+    def contraction_matrices(self, blocks=None, trace_out=None):
         """Per sector: (A, B) = (U^T C, U^dag C') with dS = sum_ab A o Xi + B o conj(Xi), dU = U Xi
-        (blocks as in signal: rho held fixed, default rho0)."""
+        (blocks as in signal: rho held fixed, default rho0). trace_out (T,): adds the unnormalised
+        signal sum over blocks Tr[O U_s rho U_p^dag] = sum_ab U_s o C (the product C is at hand)."""
         cm = {s: [None, None] for s in self.sectors}
         for s_, p_, rho, obs in self._block_list(blocks):
             us, up = self.prop[s_][2], self.prop[p_][2]
             ca = (rho @ _h(up) @ obs).swapaxes(1, 2)
+            if trace_out is not None:
+                trace_out += np.einsum("mab,mab->m", us, ca)
             cb = obs @ us @ rho
             cm[s_][0] = ca if cm[s_][0] is None else cm[s_][0] + ca
             cm[p_][1] = cb if cm[p_][1] is None else cm[p_][1] + cb
@@ -631,13 +634,15 @@ def spinning_gradient(engine, experiment, t, free_values_hz, rows, slices_per_pe
     t = np.asarray(t, float)
     run = _Spinning(engine, experiment, t, free_values_hz, _slices(engine, slices_per_period), len(rows))
     grad = np.zeros((len(rows), t.size), complex)
-    if rows:
-        cm = run.contraction_matrices()
-        bar = FractionProgress(f"spinning gradient '{experiment.name}', sectors")
-        done = 0
-        for group in run._groups():
-            grad += run.group_gradient(group, rows, [cm[s] for s in group])
-            done += len(group)
-            bar(done / len(run.sectors))
-        bar.close()
-    return run.signal(), grad / engine.norm
+    if not rows:
+        return run.signal(), grad
+    signal = np.zeros(t.size, complex)
+    cm = run.contraction_matrices(trace_out=signal)
+    bar = FractionProgress(f"spinning gradient '{experiment.name}', sectors")
+    done = 0
+    for group in run._groups():
+        grad += run.group_gradient(group, rows, [cm[s] for s in group])
+        done += len(group)
+        bar(done / len(run.sectors))
+    bar.close()
+    return signal / engine.norm, grad / engine.norm
