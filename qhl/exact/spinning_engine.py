@@ -84,7 +84,7 @@ MIN_SLICES = 8
 SYNC_GROWTH = 1.5            # rotor-synchronised sampling: K raised to a multiple of the grid up to this factor
 MAX_SLICES = 4096
 PART_BYTES = 1 << 17         # partial-slice stages per time chunk: 2 complex d x d matrices per time
-CHUNK_BYTES = 2 << 20        # stage derivatives of one chunk (3 complex arrays of Kc R d^2; small: cache-resident)
+CHUNK_BYTES = 2 << 20        # stage derivatives of one chunk (3 complex arrays of Kc R G d^2; small: cache-resident)
 _GAUSS_BELOW = 0.05          # phase width below which first moments use Gauss-Legendre quadrature
 
 
