@@ -238,6 +238,7 @@ class ExactEngine:
         self.mirrored = self.real and all(
             (b.rho - 0.5 * b.obs.T).count_nonzero() == 0 for b in self._blocks)
         self._cache = {}
+        self._pair_cache = {}
         self.spinning_slices_per_period = None
 
     @property
@@ -569,19 +570,35 @@ class ExactEngine:
         kk = np.zeros((len(rows), d, d), dtype)
         diag = np.zeros((len(rows), d))
         dd = np.zeros((len(rows), d, d)) if offdeg else None
-        vx = v.astype(dtype, copy=False)
+        invx = inv.astype(dtype, copy=False)
+        vx = None
         for r, (n, scale) in enumerate(rows):
             g = self._gen_blocks[n][k]
             if scale == 0 or g.nnz == 0:
                 continue
-            gv = g @ v
-            diag[r] = (2 * np.pi * scale) * np.einsum("ia,ia->a", v, gv)
-            gt = vx.T @ gv.astype(dtype, copy=False)
-            gt *= 2 * np.pi * scale
+            f = 2 * np.pi * scale
+            pairs = self._pair_form(n, k)
+            if pairs is not None:
+                gt, diag[r] = _pair_transform(pairs, v, f, dtype)
+            else:
+                vx = v.astype(dtype, copy=False) if vx is None else vx
+                gv = g @ v
+                diag[r] = f * np.einsum("ia,ia->a", v, gv)
+                gt = vx.T @ gv.astype(dtype, copy=False)
+                gt *= f
             if offdeg:
                 dd[r] = gt * deg
-            np.multiply(gt, inv.astype(dtype, copy=False), out=kk[r])
+                np.fill_diagonal(dd[r], diag[r])
+            np.multiply(gt, invx, out=kk[r])
         return kk, diag, dd
+
+    def _pair_form(self, n, k):
+        """The sector block of generator n in pair form (_pair_decomposition), cached; None where
+        some row has more than one off-diagonal entry (then the dense transform is used)."""
+        cache = self._pair_cache
+        if (n, k) not in cache:
+            cache[(n, k)] = _pair_decomposition(self._gen_blocks[n][k]) if self.real else None
+        return cache[(n, k)]
 
     def _gradient_fast(self, coeffs, t, rows):
         """Gradient on the identities of the module docstring (real H, mirrored blocks)."""
@@ -972,6 +989,69 @@ def _chunk_size(n_rows, dims, ds, dp, n_t, item):
     per = item * (ds**2 + dp**2 + 3 * ds * dp + 2 * ds * n_t)
     budget = min(_CHUNK_BYTES, max(4 << 20, 32 * sum(d * d for d in dims)))
     return int(max(1, min(n_rows, budget // per)))
+
+
+def _pair_decomposition(g):
+    """A real symmetric sector block G with at most one off-diagonal entry per row as
+        G = c I + sum_m lam_m y_m y_m^T,  y_m = w1_m e_(x1_m) + w2_m e_(x2_m)  (orthonormal y_m),
+    from the 2 x 2 blocks [[G_xx, G_xy], [G_xy, G_yy]] of the paired rows and the diagonal of the
+    unpaired ones (spectral decomposition of each block, numpy.linalg.eigh). c is the most
+    frequent eigenvalue, so its terms drop out. Offsets (diagonal), Ising terms and flip-flop terms
+    (I+ I- + I- I+) of spin pairs have this form. Returns (x1, x2, w1, w2, lam, c) or None.
+    """
+    g = sp.csr_matrix(g)
+    d = g.shape[0]
+    coo = g.tocoo()
+    off = (coo.row != coo.col) & (coo.data != 0)
+    r, cidx, val = coo.row[off], coo.col[off], coo.data[off]
+    if np.bincount(r, minlength=d).max(initial=0) > 1:
+        return None
+    diag = g.diagonal().astype(float)
+    up = r < cidx
+    x, y, gxy = r[up], cidx[up], val[up].astype(float)
+    if x.size * 2 != r.size:
+        return None
+    paired = np.zeros(d, bool)
+    paired[x] = paired[y] = True
+    single = np.flatnonzero(~paired)
+    blocks = np.zeros((x.size, 2, 2))
+    blocks[:, 0, 0], blocks[:, 1, 1] = diag[x], diag[y]
+    blocks[:, 0, 1] = blocks[:, 1, 0] = gxy
+    lam2, vec2 = np.linalg.eigh(blocks) if x.size else (np.zeros((0, 2)), np.zeros((0, 2, 2)))
+    x1 = np.concatenate([single, x, x])
+    x2 = np.concatenate([single, y, y])
+    w1 = np.concatenate([np.ones(single.size), vec2[:, 0, 0], vec2[:, 0, 1]])
+    w2 = np.concatenate([np.zeros(single.size), vec2[:, 1, 0], vec2[:, 1, 1]])
+    lam = np.concatenate([diag[single], lam2[:, 0], lam2[:, 1]])
+    scale = float(np.max(np.abs(lam), initial=0.0))
+    if scale == 0:
+        return x1[:0], x2[:0], w1[:0], w2[:0], lam[:0], 0.0
+    near = 1e-14 * scale
+    keys, counts = np.unique(np.round(lam / (64 * near)), return_counts=True)
+    c = float(np.median(lam[np.round(lam / (64 * near)) == keys[np.argmax(counts)]]))
+    keep = np.abs(lam - c) > near
+    return x1[keep], x2[keep], w1[keep], w2[keep], lam[keep] - c, c
+
+
+def _pair_transform(pairs, v, f, dtype):
+    """(f V^T G V - f c I in dtype, diag(f V^T G V) in float64) from G's pair form.
+
+    V^T G V = c I + Y_+^T Y_+ - Y_-^T Y_- with the rows sqrt(|lam_m|) y_m^T V split by the sign of
+    lam_m (V orthogonal): two symmetric rank-k products over the rows that differ from c, about
+    (rows / d) d^3 / 2 multiply-adds against d^3 for V^T (G V). The c I term is left out of the
+    matrix (only its off-diagonal part enters K) and kept in the diagonal."""
+    x1, x2, w1, w2, lam, c = pairs
+    lam = f * lam
+    y = w1[:, None] * v[x1] + w2[:, None] * v[x2]
+    diag = f * c + np.einsum("m,ma,ma->a", lam, y, y)
+    y *= np.sqrt(np.abs(lam))[:, None]
+    pos = lam > 0
+    yp = np.ascontiguousarray(y[pos], dtype=dtype)
+    ym = np.ascontiguousarray(y[~pos], dtype=dtype)
+    gt = yp.T @ yp
+    if ym.shape[0]:
+        gt -= ym.T @ ym
+    return gt, diag
 
 
 def _contract(x, table):
