@@ -93,6 +93,7 @@ FAST_RTOL = 1e-3            # stated tolerance of precision="fast" (signal and g
 LEAN_ABOVE_BYTES = 1 << 30  # eigenvectors of all sectors above this: memory-lean sweep
 _CHUNK_BYTES = 256 << 20    # work arrays of one parameter chunk
 _KCACHE_BYTES = 768 << 20   # eigen-generators kept for the next sector pair
+_BASIS_RTOL = {"float32": 1e-7, "float64": 1e-13}   # time-basis truncation (qhl.exact.time_basis)
 _MAX_SPINS = 20
 # gradient_weighted: pairs with |E_a - E_a'| max|t| below this take the Taylor series of the divided
 # difference (K terms); truncation x^K / (K+1)! and cancellation eps / x both near 1e-13 at x = 2e-3
@@ -133,7 +134,9 @@ def estimate_memory_bytes(n_spins: int, sector_dims, n_times: int, gradient: boo
         memory-lean mode (sum d^2 above LEAN_ABOVE_BYTES) the eigenvectors of three sectors and the
         transformed rho0 and weights of one pair; the eigensolver's work (3 d^2 of the largest sector);
       * gradient: one parameter chunk (_chunk_size: K_s, K_p, products and time tables) and the
-        eigen-generators kept for the next sector pair (P d^2, below _KCACHE_BYTES, not when lean);
+        eigen-generators of one sector for every parameter (P d^2, below _KCACHE_BYTES, not when
+        lean), with the time-basis path's products R diag(u) R^T (P d^2 / 2) and contractions
+        (d P^2 / 2);
       * time tables, 64 d T.
     Checked against the tracemalloc peak at 10-12 spins in tests/test_engine_memory.py; measured
     once at 14 spins in the lean mode (one-parameter gradient, 256 points): peak 983 MiB, estimate
@@ -157,7 +160,11 @@ def estimate_memory_bytes(n_spins: int, sector_dims, n_times: int, gradient: boo
         per = 8.0 * (big**2 + second**2 + 3 * big * second + 2 * big * n_t)
         chunk = _chunk_size(n_par, [int(d) for d in dims], int(big), int(second), n_t, 8)
         kcache = 8.0 * n_par * big**2
-        total += chunk * per + (0.0 if lean or kcache > _KCACHE_BYTES else kcache)
+        if not (lean or kcache > _KCACHE_BYTES):
+            # K of every parameter for one sector (cache of the table path, or the time-basis path's K),
+            # and the time-basis path's products R diag(u) R^T (half as much) and contractions
+            total += 1.5 * kcache + 4.0 * big * n_par**2
+        total += chunk * per
     return float(total)
 
 
@@ -562,12 +569,13 @@ class ExactEngine:
                 grad[row] += np.einsum("bt,bt->t", eb, x + 1j * t[None, :] * y)
         return grad
 
-    def _sector_chunk(self, k, e, v, tol, rows, dtype):
-        """Eigen-generator data of sector k for parameter rows: (K (c,d,d) dtype, diag (c,d), D or None)."""
+    def _sector_chunk(self, k, e, v, tol, rows, dtype, out=None):
+        """Eigen-generator data of sector k for parameter rows: (K (c,d,d) dtype, diag (c,d), D or None);
+        K is written into `out` when given (a (c, d, d) array of dtype)."""
         d = len(e)
         inv, deg = _inverse_gaps(e, tol)
         offdeg = bool(np.count_nonzero(deg) > d)
-        kk = np.zeros((len(rows), d, d), dtype)
+        kk = np.empty((len(rows), d, d), dtype) if out is None else out
         diag = np.zeros((len(rows), d))
         dd = np.zeros((len(rows), d, d)) if offdeg else None
         invx = inv.astype(dtype, copy=False)
@@ -575,11 +583,12 @@ class ExactEngine:
         for r, (n, scale) in enumerate(rows):
             g = self._gen_blocks[n][k]
             if scale == 0 or g.nnz == 0:
+                kk[r] = 0
                 continue
             f = 2 * np.pi * scale
             pairs = self._pair_form(n, k)
             if pairs is not None:
-                gt, diag[r] = _pair_transform(pairs, v, f, dtype)
+                gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=kk[r])
             else:
                 vx = v.astype(dtype, copy=False) if vx is None else vx
                 gv = g @ v
@@ -604,6 +613,15 @@ class ExactEngine:
         """Gradient on the identities of the module docstring (real H, mirrored blocks)."""
         dtype = np.float32 if self.precision in ("single", "fast") else np.float64
         item = np.dtype(dtype).itemsize
+        if self._basis_path_fits(coeffs, len(rows), item):
+            from .time_basis import time_basis
+            spec = self._spectrum(coeffs)
+            rtol = _BASIS_RTOL[np.dtype(dtype).name]
+            used = sorted({b.s for b in self._blocks} | {b.p for b in self._blocks})
+            bases = {k: time_basis(spec.energies[k], t, rtol, len(rows)) for k in used}
+            basis_cost, table_cost = self._path_costs(bases, len(rows), t.size, item)
+            if basis_cost < table_cost:
+                return self._gradient_basis(coeffs, t, rows, dtype, bases)
         n_t = t.size
         tol = self._sweep_tolerance(coeffs)
         grad = np.zeros((len(rows), n_t), complex)
@@ -659,6 +677,101 @@ class ExactEngine:
                     del m, x
             for key in [key for key in kcache if nxt is None or key[0] not in (nxt.s, nxt.p)]:
                 del kcache[key]
+        return grad
+
+    def _basis_path_fits(self, coeffs, n_rows, item):
+        """The time-basis path holds all sectors and one sector's K for every parameter; it needs a
+        non-degenerate spectrum (B from the diagonals only)."""
+        if self.lean or n_rows * self.largest_sector**2 * item > _KCACHE_BYTES:
+            return False
+        spec = self._spectrum(coeffs)
+        return not any(np.count_nonzero(np.abs(np.diff(e)) <= spec.tol) for e in spec.energies)
+
+    def _path_costs(self, bases, n_rows, n_t, item):
+        """Modelled costs in seconds (flops over the measured one-core float32 rates of time_basis,
+        halved for float64, plus CALL_SECONDS per product R diag(u) R^T) of the time-basis path and
+        of the table path, for the products that differ between them."""
+        from .time_basis import CALL_SECONDS, CONTRACT_RATE, GEMM_RATE, PRODUCT_RATE
+        basis = table = 0.0
+        slow = item / 4.0
+        for b in self._blocks:
+            ds, dp = self._dims[b.s], self._dims[b.p]
+            bs, bp = bases[b.s], bases[b.p]
+            basis += slow * (ds * ds * bp.nnz + dp * dp * bs.nnz) / PRODUCT_RATE
+            basis += slow * 2.0 * n_rows * (ds * ds * bp.size + dp * dp * bs.size) / CONTRACT_RATE
+            basis += CALL_SECONDS * (bs.size + bp.size)
+            table += slow * 2.0 * n_rows * ds * dp * (ds + dp + 2 * n_t) / GEMM_RATE
+        return basis, table
+
+    def _gradient_basis(self, coeffs, t, rows, dtype, bases):
+        """The fast contraction with windowed low-rank time bases (qhl.exact.time_basis).
+
+        With phi_a(t) = exp(-i E_a t) = sum_i U_s[a, i] conj(w_i(t)), psi_b(t) = exp(i E_b t) =
+        sum_j U_p[b, j] w_j(t) (w_j(t) = B[j, :T] + i B[j, T:]), the amplitude part
+        sum_ab A_ab phi_a psi_b of A = 4 R o (K_s R - R K_p) is sum_ij C_ij conj(w_i) w_j with
+            C = 4 (U_s^T N + N'^T U_p),  N[a, j] = sum_c K_s[a, c] M_j[a, c],  M_j = R diag(U_p[:, j]) R^T,
+                                         N'[b, i] = sum_c K_p[b, c] M'_i[b, c], M'_i = R^T diag(U_s[:, i]) R
+        (K antisymmetric, M symmetric). M and M' do not depend on the parameter: each costs one
+        symmetric product over the rows of its window, and every parameter then needs only the
+        contractions N (d^2 J instead of the d_s d_p (d_s + d_p) of K_s R and R K_p). The degenerate
+        part B is that of _gradient_fast (diagonals only: this path requires a non-degenerate spectrum).
+        """
+        spec = self._spectrum(coeffs)
+        n_t, n_rows = t.size, len(rows)
+        grad = np.zeros((n_rows, n_t), complex)
+        used = sorted(bases)
+        coef = [np.zeros((n_rows, bases[b.s].size, bases[b.p].size)) for b in self._blocks]
+        diags = {}
+        budget = n_rows * max(len(spec.energies[k]) for k in used) ** 2 * np.dtype(dtype).itemsize // 2
+        buf = np.empty(n_rows * max(len(spec.energies[k]) for k in used) ** 2, dtype)   # K, reused
+        for k in used:
+            d = len(spec.energies[k])
+            with blas_threads(d):
+                kk, diags[k], _ = self._sector_chunk(k, spec.energies[k], spec.vectors[k], spec.tol, rows, dtype,
+                                                     out=buf[:n_rows * d * d].reshape(n_rows, d, d))
+                kt = kk.transpose(1, 0, 2)                            # (a, parameter, c)
+                for i, b in enumerate(self._blocks):
+                    for side in ("s", "p"):
+                        if getattr(b, side) != k:
+                            continue
+                        r = spec.rho_t[i] if side == "s" else spec.rho_t[i].T     # (d, d_other)
+                        other = bases[b.p] if side == "s" else bases[b.s]
+                        own = bases[k]
+                        rx = r.astype(dtype)
+                        group = max(1, min(other.size, budget // (d * d * rx.itemsize)))
+                        for j0 in range(0, other.size, group):
+                            js = range(j0, min(j0 + group, other.size))
+                            m = np.empty((len(js), d, d), dtype)
+                            for q, j in enumerate(js):
+                                lo, hi = other.lo[j], other.hi[j]
+                                _weighted_gram(rx[:, lo:hi], other.u[lo:hi, j], m[q])
+                            nn = np.matmul(kt, m.transpose(1, 2, 0))          # (a, parameter, j)
+                            del m
+                            part = np.empty((own.size,) + nn.shape[1:])          # (i_own, parameter, j)
+                            for lo, hi, c0, c1 in own.windows():
+                                part[c0:c1] = np.tensordot(4 * own.u[lo:hi, c0:c1], nn[lo:hi], axes=([0], [0]))
+                            del nn
+                            if side == "s":
+                                coef[i][:, :, j0:j0 + len(js)] += part.transpose(1, 0, 2)
+                            else:
+                                coef[i][:, j0:j0 + len(js), :] += part.transpose(1, 2, 0)
+                del kk, kt
+        for i, b in enumerate(self._blocks):
+            es, ep, rt = spec.energies[b.s], spec.energies[b.p], spec.rho_t[i]
+            bs, bp = bases[b.s], bases[b.p]
+            z = (coef[i].reshape(-1, bp.size) @ bp.b).reshape(n_rows, bs.size, 2 * n_t)
+            zc = z[:, :, :n_t] + 1j * z[:, :, n_t:]                   # sum_j C_ij w_j(t)
+            grad += np.einsum("nit,it->nt", zc, bs.b[:, :n_t] - 1j * bs.b[:, n_t:])
+            del z, zc
+            ea = np.exp(-1j * np.outer(es, t))
+            eb = np.exp(1j * np.outer(ep, t))
+            w = 2 * rt * rt
+            pb = (w.T @ bs.u) @ bs.b                                  # sum_a w_ab exp(-i E_a t), conj below
+            pb = pb[:, :n_t] - 1j * pb[:, n_t:]
+            pa = (w @ bp.u) @ bp.b                                    # sum_b w_ab exp(+i E_b t)
+            pa = pa[:, :n_t] + 1j * pa[:, n_t:]
+            deg = diags[b.p] @ (eb * pb) - diags[b.s] @ (ea * pa)
+            grad += 1j * t[None, :] * deg
         return grad
 
     def _gradient_adjoint(self, coeffs, t, rows):
@@ -1033,7 +1146,7 @@ def _pair_decomposition(g):
     return x1[keep], x2[keep], w1[keep], w2[keep], lam[keep] - c, c
 
 
-def _pair_transform(pairs, v, f, dtype):
+def _pair_transform(pairs, v, f, dtype, out=None):
     """(f V^T G V - f c I in dtype, diag(f V^T G V) in float64) from G's pair form.
 
     V^T G V = c I + Y_+^T Y_+ - Y_-^T Y_- with the rows sqrt(|lam_m|) y_m^T V split by the sign of
@@ -1048,10 +1161,21 @@ def _pair_transform(pairs, v, f, dtype):
     pos = lam > 0
     yp = np.ascontiguousarray(y[pos], dtype=dtype)
     ym = np.ascontiguousarray(y[~pos], dtype=dtype)
-    gt = yp.T @ yp
+    gt = np.matmul(yp.T, yp, out=out)
     if ym.shape[0]:
         gt -= ym.T @ ym
     return gt, diag
+
+
+def _weighted_gram(r, u, out):
+    """out = r diag(u) r^T as two symmetric rank-k products (columns split by the sign of u)."""
+    pos = u > 0
+    a = r[:, pos] * np.sqrt(u[pos]).astype(r.dtype)
+    np.matmul(a, a.T, out=out)
+    neg = u < 0
+    if np.any(neg):
+        c = r[:, neg] * np.sqrt(-u[neg]).astype(r.dtype)
+        out -= c @ c.T
 
 
 def _contract(x, table):
