@@ -606,7 +606,11 @@ class ExactEngine:
         some row has more than one off-diagonal entry (then the dense transform is used)."""
         cache = self._pair_cache
         if (n, k) not in cache:
-            cache[(n, k)] = _pair_decomposition(self._gen_blocks[n][k]) if self.real else None
+            g = self._gen_blocks[n][k]
+            cache[(n, k)] = None
+            if self.real:
+                coo = g.tocoo()
+                cache[(n, k)] = _pair_arrays(coo.row, coo.col, coo.data, g.shape[0])
         return cache[(n, k)]
 
     def _gradient_fast(self, coeffs, t, rows):
@@ -614,13 +618,14 @@ class ExactEngine:
         dtype = np.float32 if self.precision in ("single", "fast") else np.float64
         item = np.dtype(dtype).itemsize
         if self._basis_path_fits(coeffs, len(rows), item):
-            from .time_basis import time_basis
+            from .time_basis import plan_basis, time_basis
             spec = self._spectrum(coeffs)
             rtol = _BASIS_RTOL[np.dtype(dtype).name]
             used = sorted({b.s for b in self._blocks} | {b.p for b in self._blocks})
-            bases = {k: time_basis(spec.energies[k], t, rtol, len(rows)) for k in used}
-            basis_cost, table_cost = self._path_costs(bases, len(rows), t.size, item)
+            plans = {k: plan_basis(spec.energies[k], t, rtol, len(rows)) for k in used}
+            basis_cost, table_cost = self._path_costs(plans, len(rows), t.size, item)
             if basis_cost < table_cost:
+                bases = {k: time_basis(spec.energies[k], t, rtol, windows=plans[k].windows) for k in used}
                 return self._gradient_basis(coeffs, t, rows, dtype, bases)
         n_t = t.size
         tol = self._sweep_tolerance(coeffs)
@@ -687,7 +692,7 @@ class ExactEngine:
         spec = self._spectrum(coeffs)
         return not any(np.count_nonzero(np.abs(np.diff(e)) <= spec.tol) for e in spec.energies)
 
-    def _path_costs(self, bases, n_rows, n_t, item):
+    def _path_costs(self, plans, n_rows, n_t, item):
         """Modelled costs in seconds (flops over the measured one-core float32 rates of time_basis,
         halved for float64, plus CALL_SECONDS per product R diag(u) R^T) of the time-basis path and
         of the table path, for the products that differ between them."""
@@ -696,7 +701,7 @@ class ExactEngine:
         slow = item / 4.0
         for b in self._blocks:
             ds, dp = self._dims[b.s], self._dims[b.p]
-            bs, bp = bases[b.s], bases[b.p]
+            bs, bp = plans[b.s], plans[b.p]          # estimated nnz(U) and columns (time_basis.plan_basis)
             basis += slow * (ds * ds * bp.nnz + dp * dp * bs.nnz) / PRODUCT_RATE
             basis += slow * 2.0 * n_rows * (ds * ds * bp.size + dp * dp * bs.size) / CONTRACT_RATE
             basis += CALL_SECONDS * (bs.size + bp.size)
@@ -1107,43 +1112,51 @@ def _chunk_size(n_rows, dims, ds, dp, n_t, item):
 def _pair_decomposition(g):
     """A real symmetric sector block G with at most one off-diagonal entry per row as
         G = c I + sum_m lam_m y_m y_m^T,  y_m = w1_m e_(x1_m) + w2_m e_(x2_m)  (orthonormal y_m),
-    from the 2 x 2 blocks [[G_xx, G_xy], [G_xy, G_yy]] of the paired rows and the diagonal of the
-    unpaired ones (spectral decomposition of each block, numpy.linalg.eigh). c is the most
-    frequent eigenvalue, so its terms drop out. Offsets (diagonal), Ising terms and flip-flop terms
-    (I+ I- + I- I+) of spin pairs have this form. Returns (x1, x2, w1, w2, lam, c) or None.
-    """
-    g = sp.csr_matrix(g)
-    d = g.shape[0]
-    coo = g.tocoo()
-    off = (coo.row != coo.col) & (coo.data != 0)
-    r, cidx, val = coo.row[off], coo.col[off], coo.data[off]
-    if np.bincount(r, minlength=d).max(initial=0) > 1:
+    from the 2 x 2 blocks [[G_xx, G_xy], [G_xy, G_yy]] of the paired rows (their spectral
+    decomposition in closed form: G = mean I + rad [[cos 2th, sin 2th], [sin 2th, -cos 2th]] has the
+    eigenvectors (cos th, sin th) and (-sin th, cos th) for mean + rad and mean - rad) and the
+    diagonal of the unpaired ones. c is the most frequent eigenvalue, so its terms drop out.
+    Offsets (diagonal), Ising terms and flip-flop terms (I+ I- + I- I+) of spin pairs have this
+    form. Returns (x1, x2, w1, w2, lam, c) or None."""
+    g = sp.coo_matrix(g)
+    return _pair_arrays(g.row, g.col, g.data, g.shape[0])
+
+
+def _pair_arrays(r, c, v, d):
+    """_pair_decomposition from the entries (rows r, columns c, values v, no duplicates) of a d x d block."""
+    v = np.asarray(v).real.astype(float)
+    dg = r == c
+    off = ~dg & (v != 0)
+    ro, co, vo = r[off], c[off], v[off]
+    if ro.size and np.bincount(ro, minlength=d).max() > 1:
         return None
-    diag = g.diagonal().astype(float)
-    up = r < cidx
-    x, y, gxy = r[up], cidx[up], val[up].astype(float)
-    if x.size * 2 != r.size:
+    diag = np.bincount(r[dg], weights=v[dg], minlength=d)
+    up = ro < co
+    x, y, gxy = ro[up], co[up], vo[up]
+    if x.size * 2 != ro.size:
         return None
     paired = np.zeros(d, bool)
     paired[x] = paired[y] = True
     single = np.flatnonzero(~paired)
-    blocks = np.zeros((x.size, 2, 2))
-    blocks[:, 0, 0], blocks[:, 1, 1] = diag[x], diag[y]
-    blocks[:, 0, 1] = blocks[:, 1, 0] = gxy
-    lam2, vec2 = np.linalg.eigh(blocks) if x.size else (np.zeros((0, 2)), np.zeros((0, 2, 2)))
+    a, b = diag[x], diag[y]
+    mean, half = (a + b) / 2, (a - b) / 2
+    rad = np.hypot(half, gxy)
+    th = 0.5 * np.arctan2(gxy, half)
+    cos, sin = np.cos(th), np.sin(th)
     x1 = np.concatenate([single, x, x])
     x2 = np.concatenate([single, y, y])
-    w1 = np.concatenate([np.ones(single.size), vec2[:, 0, 0], vec2[:, 0, 1]])
-    w2 = np.concatenate([np.zeros(single.size), vec2[:, 1, 0], vec2[:, 1, 1]])
-    lam = np.concatenate([diag[single], lam2[:, 0], lam2[:, 1]])
+    w1 = np.concatenate([np.ones(single.size), -sin, cos])
+    w2 = np.concatenate([np.zeros(single.size), cos, sin])
+    lam = np.concatenate([diag[single], mean - rad, mean + rad])
     scale = float(np.max(np.abs(lam), initial=0.0))
     if scale == 0:
         return x1[:0], x2[:0], w1[:0], w2[:0], lam[:0], 0.0
     near = 1e-14 * scale
-    keys, counts = np.unique(np.round(lam / (64 * near)), return_counts=True)
-    c = float(np.median(lam[np.round(lam / (64 * near)) == keys[np.argmax(counts)]]))
-    keep = np.abs(lam - c) > near
-    return x1[keep], x2[keep], w1[keep], w2[keep], lam[keep] - c, c
+    keys = np.round(lam / (64 * near))
+    uniq, first, counts = np.unique(keys, return_index=True, return_counts=True)
+    c0 = float(lam[first[np.argmax(counts)]])
+    keep = np.abs(lam - c0) > near
+    return x1[keep], x2[keep], w1[keep], w2[keep], lam[keep] - c0, c0
 
 
 def _pair_transform(pairs, v, f, dtype, out=None):

@@ -13,15 +13,15 @@ is entire in E), so narrow windows need few terms each, while the total count gr
 
 The gradient (qhl.exact.engine, ExactEngine._gradient_basis) pays for a basis of sector p in two
 ways: products R_w diag(u_j) R_w^T over the window's columns (cost ~ d_s^2 nnz(U) / 2) and
-contractions of every parameter's eigen-generator with them (cost ~ P d_s^2 J). choose_windows
-picks W from WINDOW_CHOICES by that model, the ranks taken from the eigenvalues of each
-window's Gram matrix (cheaper than the SVD; only for the choice).
+contractions of every parameter's eigen-generator with them (cost ~ P d_s^2 J). plan_basis
+picks W from WINDOW_CHOICES by that model, the ranks estimated from the eigenvalues of each
+window's Gram matrix at a subsample of the times (cheaper than the SVD; only for the choice).
 """
 
 import numpy as np
 import scipy.linalg as sla
 
-__all__ = ["TimeBasis", "time_basis", "WINDOW_CHOICES", "PRODUCT_RATE", "CONTRACT_RATE", "GEMM_RATE",
+__all__ = ["TimeBasis", "BasisPlan", "plan_basis", "time_basis", "WINDOW_CHOICES", "PRODUCT_RATE", "CONTRACT_RATE", "GEMM_RATE",
            "CALL_SECONDS"]
 
 WINDOW_CHOICES = (1, 2, 4, 8, 16)
@@ -31,7 +31,7 @@ WINDOW_CHOICES = (1, 2, 4, 8, 16)
 PRODUCT_RATE, CONTRACT_RATE, GEMM_RATE = 75e9, 50e9, 100e9
 _NOISE = 8 * np.finfo(float).eps      # singular values below this times the largest are rounding noise
 CALL_SECONDS = 2e-4         # fixed cost of one product R diag(u) R^T (measured at d = 252: 0.27 ms)
-_ESTIMATE_POINTS = 96       # time points (a subsample) for the rank estimates of choose_windows
+_ESTIMATE_POINTS = 96       # time points (a subsample) for the rank estimates of plan_basis
 
 
 class TimeBasis:
@@ -73,30 +73,38 @@ def _rank_estimate(x, cut2):
     return int(np.count_nonzero(ev > max(cut2, 1e-13 * ev[-1]))) if ev.size else 0
 
 
-def choose_windows(e, t, rtol, n_params):
-    """The window count W (of WINDOW_CHOICES, at most d) with the lowest modelled gradient cost."""
+class BasisPlan:
+    """The chosen window count and the estimated nnz(U) and column count of a sector's basis."""
+
+    def __init__(self, windows, nnz, size):
+        self.windows, self.nnz, self.size = windows, nnz, size
+
+
+def plan_basis(e, t, rtol, n_params):
+    """BasisPlan with the window count W (of WINDOW_CHOICES, at most d) of lowest modelled cost."""
     d = len(e)
     ts = t[::max(1, t.size // _ESTIMATE_POINTS)]      # the ranks depend on E t_max, not on T
     x = _table(e, ts)
     cut2 = (rtol**2) * ts.size
-    best, best_cost = 1, np.inf
+    best, best_cost = None, np.inf
     for w in WINDOW_CHOICES:
         if w > d:
             break
         edges = _edges(d, w)
-        ranks = [min(_rank_estimate(x[a:b], cut2), b - a) for a, b in zip(edges[:-1], edges[1:])]
+        ranks = [max(1, min(_rank_estimate(x[a:b], cut2), b - a)) for a, b in zip(edges[:-1], edges[1:])]
         nnz = sum(r * (b - a) for r, a, b in zip(ranks, edges[:-1], edges[1:]))
         cost = nnz / PRODUCT_RATE + 2 * n_params * sum(ranks) / CONTRACT_RATE + CALL_SECONDS * sum(ranks) / (d * d)
         if cost < best_cost:
-            best, best_cost = w, cost
+            best, best_cost = BasisPlan(w, nnz, sum(ranks)), cost
     return best
 
 
-def time_basis(e, t, rtol, n_params):
-    """TimeBasis of the levels e (ascending) at times t (module docstring)."""
+def time_basis(e, t, rtol, n_params=None, windows=None):
+    """TimeBasis of the levels e (ascending) at times t (module docstring), with `windows` windows
+    (default: plan_basis's choice for n_params parameters)."""
     d = len(e)
     x = _table(e, t)
-    w = choose_windows(e, t, rtol, n_params)
+    w = windows if windows is not None else plan_basis(e, t, rtol, n_params).windows
     edges = _edges(d, w)
     us, bs, lo, hi = [], [], [], []
     cut = rtol * np.sqrt(t.size)
