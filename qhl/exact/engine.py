@@ -765,12 +765,13 @@ class ExactEngine:
                         own = bases[k]
                         rx = r.astype(dtype)
                         group = max(1, min(other.size, budget // (d * d * rx.itemsize)))
+                        tmp = np.empty((d, d), dtype)
                         for j0 in range(0, other.size, group):
                             js = range(j0, min(j0 + group, other.size))
                             m = np.empty((len(js), d, d), dtype)
                             for q, j in enumerate(js):
                                 lo, hi = other.lo[j], other.hi[j]
-                                _weighted_gram(rx[:, lo:hi], other.u[lo:hi, j], m[q])
+                                _weighted_gram(rx[:, lo:hi], other.u[lo:hi, j], m[q], tmp)
                             nn = np.matmul(kt, m.transpose(1, 2, 0))          # (a, parameter, j)
                             del m
                             part = np.empty((own.size,) + nn.shape[1:])          # (i_own, parameter, j)
@@ -1201,15 +1202,17 @@ def _pair_transform(pairs, v, f, dtype, out=None):
     return gt, diag
 
 
-def _weighted_gram(r, u, out):
-    """out = r diag(u) r^T as two symmetric rank-k products (columns split by the sign of u)."""
+def _weighted_gram(r, u, out, tmp):
+    """out = r diag(u) r^T as two symmetric rank-k products (columns split by the sign of u); tmp
+    is a work array of out's shape (reused: no fresh pages per call)."""
     pos = u > 0
     a = r[:, pos] * np.sqrt(u[pos]).astype(r.dtype)
     np.matmul(a, a.T, out=out)
     neg = u < 0
     if np.any(neg):
         c = r[:, neg] * np.sqrt(-u[neg]).astype(r.dtype)
-        out -= c @ c.T
+        np.matmul(c, c.T, out=tmp)
+        np.subtract(out, tmp, out=out)
 
 
 def _contract(x, table):
