@@ -754,7 +754,7 @@ class ExactEngine:
             d = len(spec.energies[k])
             with blas_threads(d):
                 kk, diags[k], _ = self._sector_chunk(k, spec.energies[k], spec.vectors[k], spec.tol, rows, dtype,
-                                                     out=buf[:n_rows * d * d].reshape(n_rows, d, d))
+                                                     out=buf[:n_rows * d * d].reshape(d, n_rows, d).transpose(1, 0, 2))
                 kt = kk.transpose(1, 0, 2)                            # (a, parameter, c)
                 for i, b in enumerate(self._blocks):
                     for side in ("s", "p"):
