@@ -11,6 +11,7 @@ References:
 import numpy as np
 import pytest
 
+import qhl.exact.engine as engine_module
 from qhl import ExactEngine, build_model
 from qhl.exact.engine import FAST_RTOL, SINGLE_RTOL
 from qhl.exact.time_basis import time_basis
@@ -53,6 +54,8 @@ def _force(monkeypatch, path):
         return original(self, *args)
 
     monkeypatch.setattr(ExactEngine, "_gradient_basis", counted)
+    monkeypatch.setattr(engine_module, "BASIS_MIN_SECONDS", -1.0)      # small clusters too
+    monkeypatch.setattr(engine_module, "PAIR_FORM_MIN_LEVELS", 0)      # pair forms in every sector
     monkeypatch.setattr(ExactEngine, "_path_costs",
                         (lambda self, *a: (0.0, 1.0)) if path == "basis" else (lambda self, *a: (1.0, 0.0)))
     return calls

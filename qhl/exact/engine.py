@@ -114,6 +114,8 @@ FAST_RTOL = 1e-3            # stated tolerance of precision="fast" (signal and g
 LEAN_ABOVE_BYTES = 1 << 30  # eigenvectors of all sectors above this: memory-lean sweep
 _CHUNK_BYTES = 256 << 20    # work arrays of one parameter chunk
 _KCACHE_BYTES = 768 << 20   # eigen-generators kept for the next sector pair
+PAIR_FORM_MIN_LEVELS = 300  # smaller sectors: V^T (G V) directly (building the pair form costs more there)
+BASIS_MIN_SECONDS = 0.5     # time-basis path considered only where the table path's model exceeds this
 _BASIS_RTOL = {"float32": 1e-7, "float64": 1e-13}   # time-basis truncation (qhl.exact.time_basis)
 _MAX_SPINS = 20
 # gradient_weighted: pairs with |E_a - E_a'| max|t| below this take the Taylor series of the divided
@@ -607,7 +609,7 @@ class ExactEngine:
                 kk[r] = 0
                 continue
             f = 2 * np.pi * scale
-            pairs = self._pair_form(n, k)
+            pairs = self._pair_form(n, k) if d >= PAIR_FORM_MIN_LEVELS else None
             if pairs is not None:
                 gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=kk[r])
             else:
@@ -638,7 +640,8 @@ class ExactEngine:
         """Gradient on the identities of the module docstring (real H, mirrored blocks)."""
         dtype = np.float32 if self.precision in ("single", "fast") else np.float64
         item = np.dtype(dtype).itemsize
-        if self._basis_path_fits(coeffs, len(rows), item):
+        if self._basis_path_fits(coeffs, len(rows), item) and \
+                self._table_cost(len(rows), t.size, item) > BASIS_MIN_SECONDS:
             from .time_basis import plan_basis, time_basis
             spec = self._spectrum(coeffs)
             rtol = _BASIS_RTOL[np.dtype(dtype).name]
@@ -712,6 +715,12 @@ class ExactEngine:
             return False
         spec = self._spectrum(coeffs)
         return not any(np.count_nonzero(np.abs(np.diff(e)) <= spec.tol) for e in spec.energies)
+
+    def _table_cost(self, n_rows, n_t, item):
+        """The table path's term of _path_costs alone (no bases needed)."""
+        from .time_basis import GEMM_RATE
+        return sum(2.0 * (item / 4.0) * n_rows * self._dims[b.s] * self._dims[b.p]
+                   * (self._dims[b.s] + self._dims[b.p] + 2 * n_t) for b in self._blocks) / GEMM_RATE
 
     def _path_costs(self, plans, n_rows, n_t, item):
         """Modelled costs in seconds (flops over the measured one-core float32 rates of time_basis,
