@@ -602,7 +602,7 @@ class ExactEngine:
         diag = np.zeros((len(rows), d))
         dd = np.zeros((len(rows), d, d)) if offdeg else None
         invx = inv.astype(dtype, copy=False)
-        vx = None
+        vx = scratch = None
         for r, (n, scale) in enumerate(rows):
             g = self._gen_blocks[n][k]
             if scale == 0 or g.nnz == 0:
@@ -611,7 +611,8 @@ class ExactEngine:
             f = 2 * np.pi * scale
             pairs = self._pair_form(n, k) if d >= PAIR_FORM_MIN_LEVELS else None
             if pairs is not None:
-                gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=kk[r])
+                scratch = np.empty((d, d), dtype) if scratch is None else scratch   # contiguous: syrk
+                gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=scratch)
             else:
                 vx = v.astype(dtype, copy=False) if vx is None else vx
                 gv = g @ v
@@ -763,7 +764,7 @@ class ExactEngine:
             d = len(spec.energies[k])
             with blas_threads(d):
                 kk, diags[k], _ = self._sector_chunk(k, spec.energies[k], spec.vectors[k], spec.tol, rows, dtype,
-                                                     out=buf[:n_rows * d * d].reshape(d, n_rows, d).transpose(1, 0, 2))
+                                                     out=buf[:n_rows * d * d].reshape(n_rows, d, d))
                 kt = kk.transpose(1, 0, 2)                            # (a, parameter, c)
                 for i, b in enumerate(self._blocks):
                     for side in ("s", "p"):
