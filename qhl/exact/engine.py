@@ -44,9 +44,13 @@ With R = V_s^T rho0_sp V_p, G~ = V^T (2 pi s_n G_n) V per sector and K = G~ / (E
     symmetric products), and each parameter costs d_s^2 J (the batched contraction) instead of
     d_s d_p (d_s + d_p + 2T) for K_s R, R K_p and the table product. It needs a non-degenerate
     spectrum, holds K of one sector for every parameter (P d^2) and runs outside the lean mode.
-    Measured (12 random protons, 78 parameters, 256 points, one thread, engine built beforehand):
-    "single" 15.0 s -> 7.0 s (pair forms 12.0 s, then the time-basis path), double 25.1 s -> 12.9 s,
-    largest difference from the previous engine 3e-15 (double) of the largest entry.
+    Measured (benchmarks/bench_engine.py --gradient-at 12 --against <previous tree> --double: 12
+    random protons, 78 parameters, 256 points, one BLAS thread, fresh processes with the engine's
+    construction, medians of 3, this 2-core machine at load ~1): "fast" 14.6 s -> 7.9 s, "single"
+    15.4 s -> 7.7 s (the pair forms alone: 12.0 s), double 27.6 s -> 15.8 s; peak memory 610 ->
+    690 MiB (float32), 880 -> 1110 MiB (double). Largest difference from the previous engine 3e-15
+    (double) of the largest entry; "single" 3.6e-7 from it in double. At 10 protons (largest sector
+    252) neither cut is taken (smaller sectors: PAIR_FORM_MIN_LEVELS, BASIS_MIN_SECONDS).
 
 precision="single" runs the O(d^3) products (eigen-generators, K R, R K and the time-table
 product) in float32, with the eigendecomposition, the degenerate term and all sums over blocks and
