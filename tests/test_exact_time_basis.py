@@ -106,3 +106,17 @@ def test_degenerate_levels_take_the_table_path(monkeypatch):
     assert not calls
     _, g0 = eng.gradient(c.experiments[0], method="general")
     assert _rel(g, g0) < 1e-12
+
+
+def test_basis_path_with_a_parameter_subset(monkeypatch):
+    c = random_cluster(np.random.default_rng(14), 6, experiments=(Experiment("c", 2e-4, 128),))
+    model = build_model(c, free=FREE)
+    ex = c.experiments[0]
+    _force(monkeypatch, "table")
+    _, g0 = ExactEngine(model).gradient(ex, method="full")
+    calls = _force(monkeypatch, "basis")
+    names = [model.free[3], model.free[0], model.free[-1]]
+    _, g1 = ExactEngine(model).gradient(ex, parameters=names, method="full")
+    assert calls
+    ref = g0[[3, 0, len(model.free) - 1]]
+    assert _rel(g1, ref) < 1e-12
