@@ -19,6 +19,10 @@ with peak memory. --crossover prints BLAS one- against two-thread times of squar
 --signal-at N [--against DIR]: the N-spin signal alone (256 points), one BLAS thread, fresh
 processes, interleaved with the eigh floor, the same signal with precision="fast" (float32 eigh), the qhl tree in DIR (for example `git archive <commit>
 qhl | tar -x -C DIR`) and the peer: medians of --repeats rounds, CPU and wall seconds.
+--gradient-at N [--against DIR] [--double]: the N-spin full gradient (all P rows, 256 points) in
+precisions fast and single (and double), one BLAS thread, fresh processes, this tree interleaved
+with the tree in DIR: medians of --repeats rounds, wall and CPU seconds, peak memory; with the
+peer, its central differences (2P signals) over each.
 --weighted [--n N]: the likelihood gradient at n = 10 and 12 (or N): signal, full gradient
 (Jacobian, all P rows), the weighted gradient sum_t c_t dS/dh (ExactEngine.gradient_weighted,
 complex and real part) with random complex weights, on an engine built beforehand (spectrum cache
@@ -197,6 +201,43 @@ def signal_at(n, against, quspin, repeats):
         print(f"  {k:<52} {w:10.2f} {cpu:10.2f} {w / ref[0]:12.2f} {cpu / ref[1]:11.2f}")
 
 
+def gradient_at(n, against, quspin, repeats, double):
+    """The n-spin full gradient side by side in fresh processes, interleaved rounds: this tree and
+    `against` in precisions fast and single (and double with `double`); with the peer, its central
+    differences as 2P signals (one signal measured, times 2P)."""
+    here = os.environ.get("PYTHONPATH", "").split(os.pathsep)[0] or os.path.dirname(HERE)
+    kinds = ["gradient-fast", "gradient-single"] + (["gradient"] if double else [])
+    trees = [("this tree", here)] + ([(against, against)] if against else [])
+    res = {}
+    for _ in range(repeats):
+        for label, tree in trees:
+            for kind in kinds:
+                res.setdefault((kind, label), []).append(fresh(tree, n, kind))
+    c = bench_cluster(n)
+    P = n * (n + 1) // 2
+    peer = None
+    if quspin:
+        t, _ = peer_signal(quspin, build_model(c), c.experiments[0], repeats)
+        peer = 2 * P * t
+    print(f"{n} spins, 256 points, {P} parameters, one BLAS thread, load average {os.getloadavg()[0]:.1f} on "
+          f"{os.cpu_count()} cores; medians of {repeats} fresh processes (engine construction included)")
+    print(f"  {'what':<58} {'wall (s)':>9} {'CPU (s)':>9} {'peak MiB':>9} {'vs this':>8}"
+          + (f" {'peer / it':>10}" if peer else ""))
+    for kind in kinds:
+        ref = statistics.median(r["seconds"] for r in res[(kind, "this tree")])
+        for label, _ in trees:
+            v = res[(kind, label)]
+            w = statistics.median(r["seconds"] for r in v)
+            cpu = statistics.median(r["cpu"] for r in v)
+            mem = max(r["peak_mib"] for r in v)
+            line = f"  {kind + ' (' + label + ')':<58} {w:9.2f} {cpu:9.2f} {mem:9.0f} {w / ref:8.2f}"
+            print(line + (f" {peer / w:10.1f}" if peer else ""))
+    if peer:
+        print(f"  peer (QuSpin) central differences, {2 * P} signals: {peer:.1f} s")
+    else:
+        print("  peer column skipped: give --quspin-python (a Python with QuSpin installed)")
+
+
 def weighted(sizes, quspin, reps):
     """Signal, full gradient and weighted gradient side by side (medians of `reps`)."""
     print(f"weighted gradient: 256 points, offsets + all dipolar couplings free; load average "
@@ -269,6 +310,8 @@ def main():
     ap.add_argument("--crossover", action="store_true")
     ap.add_argument("--scale-case", nargs=2, metavar=("N", "KIND"), help=argparse.SUPPRESS)
     ap.add_argument("--signal-at", type=int, default=None, metavar="N")
+    ap.add_argument("--gradient-at", type=int, default=None, metavar="N")
+    ap.add_argument("--double", action="store_true", help="with --gradient-at: also precision double")
     ap.add_argument("--against", default=None, metavar="DIR")
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--weighted", action="store_true")
@@ -278,6 +321,9 @@ def main():
         return
     if args.signal_at:
         signal_at(args.signal_at, args.against, args.quspin_python, args.repeats)
+        return
+    if args.gradient_at:
+        gradient_at(args.gradient_at, args.against, args.quspin_python, args.repeats, args.double)
         return
     if args.scale_case:
         scale_case(int(args.scale_case[0]), args.scale_case[1])

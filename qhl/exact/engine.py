@@ -26,6 +26,31 @@ With R = V_s^T rho0_sp V_p, G~ = V^T (2 pi s_n G_n) V per sector and K = G~ / (E
     B_ab = 2 R_ab^2 (g_p,b - g_s,a) needs no matrix product.
   * The time sum uses real tables [cos(E t) | sin(E t)], and parameters are taken in chunks so
     that each product is one large BLAS-3 call.
+  * Eigen-generators from the pair form of each generator block (_pair_decomposition): offsets,
+    Ising and flip-flop terms have at most one off-diagonal entry per row, so G = c I +
+    sum_m lam_m y_m y_m^T with y_m on one row or a pair of rows, and V^T G V - c I = Y_+^T Y_+ -
+    Y_-^T Y_- (rows sqrt|lam_m| y_m^T V split by sign; V orthogonal): two symmetric rank-k products
+    over the rows whose eigenvalue differs from the most frequent one c, about 0.27 d^3
+    multiply-adds for a dipolar term and 0.25 d^3 for an offset in the middle sector, against d^3
+    for V^T (G V). c I only moves the diagonal, which K ignores (the diagonal g is summed in float64).
+  * Time-basis path (_gradient_basis, chosen by the cost model _path_costs where it is cheaper:
+    from about 11 protons at 256 points). The time tables of each sector are replaced by windowed
+    low-rank bases (qhl.exact.time_basis; truncated SVD per window of consecutive levels, rows kept
+    to _BASIS_RTOL: 1e-7 in float32, 1e-13 in float64): exp(i E_b t) = sum_j U[b, j] w_j(t) with
+    J columns, J ~ 90 (float32) and ~120 (float64) at d = 924 against 2T = 512 table columns, for
+    the random 12-proton clusters and 0.2 ms. Then the amplitude part is sum_ij C_ij conj(w_i) w_j
+    with C = 4 (U_s^T N + N'^T U_p), N[a, j] = sum_c K_s[a, c] M_j[a, c], M_j = R diag(U_p[:, j]) R^T
+    (and N' likewise with R^T): the M_j do not depend on the parameter (d_s^2 nnz(U_p) / 2 in all,
+    symmetric products), and each parameter costs d_s^2 J (the batched contraction) instead of
+    d_s d_p (d_s + d_p + 2T) for K_s R, R K_p and the table product. It needs a non-degenerate
+    spectrum, holds K of one sector for every parameter (P d^2) and runs outside the lean mode.
+    Measured (benchmarks/bench_engine.py --gradient-at 12 --against <previous tree> --double: 12
+    random protons, 78 parameters, 256 points, one BLAS thread, fresh processes with the engine's
+    construction, medians of 3, this 2-core machine at load ~1): "fast" 14.6 s -> 7.9 s, "single"
+    15.4 s -> 7.7 s (the pair forms alone: 12.0 s), double 27.6 s -> 15.8 s; peak memory 610 ->
+    690 MiB (float32), 880 -> 1110 MiB (double). Largest difference from the previous engine 3e-15
+    (double) of the largest entry; "single" 3.6e-7 from it in double. At 10 protons (largest sector
+    252) neither cut is taken (smaller sectors: PAIR_FORM_MIN_LEVELS, BASIS_MIN_SECONDS).
 
 precision="single" runs the O(d^3) products (eigen-generators, K R, R K and the time-table
 product) in float32, with the eigendecomposition, the degenerate term and all sums over blocks and
@@ -93,6 +118,9 @@ FAST_RTOL = 1e-3            # stated tolerance of precision="fast" (signal and g
 LEAN_ABOVE_BYTES = 1 << 30  # eigenvectors of all sectors above this: memory-lean sweep
 _CHUNK_BYTES = 256 << 20    # work arrays of one parameter chunk
 _KCACHE_BYTES = 768 << 20   # eigen-generators kept for the next sector pair
+PAIR_FORM_MIN_LEVELS = 300  # smaller sectors: V^T (G V) directly (building the pair form costs more there)
+BASIS_MIN_SECONDS = 0.5     # time-basis path considered only where the table path's model exceeds this
+_BASIS_RTOL = {"float32": 1e-7, "float64": 1e-13}   # time-basis truncation (qhl.exact.time_basis)
 _MAX_SPINS = 20
 # gradient_weighted: pairs with |E_a - E_a'| max|t| below this take the Taylor series of the divided
 # difference (K terms); truncation x^K / (K+1)! and cancellation eps / x both near 1e-13 at x = 2e-3
@@ -133,7 +161,9 @@ def estimate_memory_bytes(n_spins: int, sector_dims, n_times: int, gradient: boo
         memory-lean mode (sum d^2 above LEAN_ABOVE_BYTES) the eigenvectors of three sectors and the
         transformed rho0 and weights of one pair; the eigensolver's work (3 d^2 of the largest sector);
       * gradient: one parameter chunk (_chunk_size: K_s, K_p, products and time tables) and the
-        eigen-generators kept for the next sector pair (P d^2, below _KCACHE_BYTES, not when lean);
+        eigen-generators of one sector for every parameter (P d^2, below _KCACHE_BYTES, not when
+        lean), with the time-basis path's products R diag(u) R^T (P d^2 / 2) and contractions
+        (d P^2 / 2);
       * time tables, 64 d T.
     Checked against the tracemalloc peak at 10-12 spins in tests/test_engine_memory.py; measured
     once at 14 spins in the lean mode (one-parameter gradient, 256 points): peak 983 MiB, estimate
@@ -157,7 +187,11 @@ def estimate_memory_bytes(n_spins: int, sector_dims, n_times: int, gradient: boo
         per = 8.0 * (big**2 + second**2 + 3 * big * second + 2 * big * n_t)
         chunk = _chunk_size(n_par, [int(d) for d in dims], int(big), int(second), n_t, 8)
         kcache = 8.0 * n_par * big**2
-        total += chunk * per + (0.0 if lean or kcache > _KCACHE_BYTES else kcache)
+        if not (lean or kcache > _KCACHE_BYTES):
+            # K of every parameter for one sector (cache of the table path, or the time-basis path's K),
+            # and the time-basis path's products R diag(u) R^T (half as much) and contractions
+            total += 1.5 * kcache + 4.0 * big * n_par**2
+        total += chunk * per
     return float(total)
 
 
@@ -238,6 +272,7 @@ class ExactEngine:
         self.mirrored = self.real and all(
             (b.rho - 0.5 * b.obs.T).count_nonzero() == 0 for b in self._blocks)
         self._cache = {}
+        self._pair_cache = {}
         self.spinning_slices_per_period = None
 
     @property
@@ -561,32 +596,66 @@ class ExactEngine:
                 grad[row] += np.einsum("bt,bt->t", eb, x + 1j * t[None, :] * y)
         return grad
 
-    def _sector_chunk(self, k, e, v, tol, rows, dtype):
-        """Eigen-generator data of sector k for parameter rows: (K (c,d,d) dtype, diag (c,d), D or None)."""
+    def _sector_chunk(self, k, e, v, tol, rows, dtype, out=None):
+        """Eigen-generator data of sector k for parameter rows: (K (c,d,d) dtype, diag (c,d), D or None);
+        K is written into `out` when given (a (c, d, d) array of dtype)."""
         d = len(e)
         inv, deg = _inverse_gaps(e, tol)
         offdeg = bool(np.count_nonzero(deg) > d)
-        kk = np.zeros((len(rows), d, d), dtype)
+        kk = np.empty((len(rows), d, d), dtype) if out is None else out
         diag = np.zeros((len(rows), d))
         dd = np.zeros((len(rows), d, d)) if offdeg else None
-        vx = v.astype(dtype, copy=False)
+        invx = inv.astype(dtype, copy=False)
+        vx = scratch = None
         for r, (n, scale) in enumerate(rows):
             g = self._gen_blocks[n][k]
             if scale == 0 or g.nnz == 0:
+                kk[r] = 0
                 continue
-            gv = g @ v
-            diag[r] = (2 * np.pi * scale) * np.einsum("ia,ia->a", v, gv)
-            gt = vx.T @ gv.astype(dtype, copy=False)
-            gt *= 2 * np.pi * scale
+            f = 2 * np.pi * scale
+            pairs = self._pair_form(n, k) if d >= PAIR_FORM_MIN_LEVELS else None
+            if pairs is not None:
+                scratch = np.empty((d, d), dtype) if scratch is None else scratch   # contiguous: syrk
+                gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=scratch)
+            else:
+                vx = v.astype(dtype, copy=False) if vx is None else vx
+                gv = g @ v
+                diag[r] = f * np.einsum("ia,ia->a", v, gv)
+                gt = vx.T @ gv.astype(dtype, copy=False)
+                gt *= f
             if offdeg:
                 dd[r] = gt * deg
-            np.multiply(gt, inv.astype(dtype, copy=False), out=kk[r])
+                np.fill_diagonal(dd[r], diag[r])
+            np.multiply(gt, invx, out=kk[r])
         return kk, diag, dd
+
+    def _pair_form(self, n, k):
+        """The sector block of generator n in pair form (_pair_decomposition), cached; None where
+        some row has more than one off-diagonal entry (then the dense transform is used)."""
+        cache = self._pair_cache
+        if (n, k) not in cache:
+            g = self._gen_blocks[n][k]
+            cache[(n, k)] = None
+            if self.real:
+                coo = g.tocoo()
+                cache[(n, k)] = _pair_arrays(coo.row, coo.col, coo.data, g.shape[0])
+        return cache[(n, k)]
 
     def _gradient_fast(self, coeffs, t, rows):
         """Gradient on the identities of the module docstring (real H, mirrored blocks)."""
         dtype = np.float32 if self.precision in ("single", "fast") else np.float64
         item = np.dtype(dtype).itemsize
+        if self._basis_path_fits(coeffs, len(rows), item) and \
+                self._table_cost(len(rows), t.size, item) > BASIS_MIN_SECONDS:
+            from .time_basis import plan_basis, time_basis
+            spec = self._spectrum(coeffs)
+            rtol = _BASIS_RTOL[np.dtype(dtype).name]
+            used = sorted({b.s for b in self._blocks} | {b.p for b in self._blocks})
+            plans = {k: plan_basis(spec.energies[k], t, rtol, len(rows)) for k in used}
+            basis_cost, table_cost = self._path_costs(plans, len(rows), t.size, item)
+            if basis_cost < table_cost:
+                bases = {k: time_basis(spec.energies[k], t, rtol, windows=plans[k].windows) for k in used}
+                return self._gradient_basis(coeffs, t, rows, dtype, bases)
         n_t = t.size
         tol = self._sweep_tolerance(coeffs)
         grad = np.zeros((len(rows), n_t), complex)
@@ -642,6 +711,108 @@ class ExactEngine:
                     del m, x
             for key in [key for key in kcache if nxt is None or key[0] not in (nxt.s, nxt.p)]:
                 del kcache[key]
+        return grad
+
+    def _basis_path_fits(self, coeffs, n_rows, item):
+        """The time-basis path holds all sectors and one sector's K for every parameter; it needs a
+        non-degenerate spectrum (B from the diagonals only)."""
+        if self.lean or n_rows * self.largest_sector**2 * item > _KCACHE_BYTES:
+            return False
+        spec = self._spectrum(coeffs)
+        return not any(np.count_nonzero(np.abs(np.diff(e)) <= spec.tol) for e in spec.energies)
+
+    def _table_cost(self, n_rows, n_t, item):
+        """The table path's term of _path_costs alone (no bases needed)."""
+        from .time_basis import GEMM_RATE
+        return sum(2.0 * (item / 4.0) * n_rows * self._dims[b.s] * self._dims[b.p]
+                   * (self._dims[b.s] + self._dims[b.p] + 2 * n_t) for b in self._blocks) / GEMM_RATE
+
+    def _path_costs(self, plans, n_rows, n_t, item):
+        """Modelled costs in seconds (flops over the measured one-core float32 rates of time_basis,
+        halved for float64, plus CALL_SECONDS per product R diag(u) R^T) of the time-basis path and
+        of the table path, for the products that differ between them."""
+        from .time_basis import CALL_SECONDS, CONTRACT_RATE, GEMM_RATE, PRODUCT_RATE
+        basis = table = 0.0
+        slow = item / 4.0
+        for b in self._blocks:
+            ds, dp = self._dims[b.s], self._dims[b.p]
+            bs, bp = plans[b.s], plans[b.p]          # estimated nnz(U) and columns (time_basis.plan_basis)
+            basis += slow * (ds * ds * bp.nnz + dp * dp * bs.nnz) / PRODUCT_RATE
+            basis += slow * 2.0 * n_rows * (ds * ds * bp.size + dp * dp * bs.size) / CONTRACT_RATE
+            basis += CALL_SECONDS * (bs.size + bp.size)
+            table += slow * 2.0 * n_rows * ds * dp * (ds + dp + 2 * n_t) / GEMM_RATE
+        return basis, table
+
+    def _gradient_basis(self, coeffs, t, rows, dtype, bases):
+        """The fast contraction with windowed low-rank time bases (qhl.exact.time_basis).
+
+        With phi_a(t) = exp(-i E_a t) = sum_i U_s[a, i] conj(w_i(t)), psi_b(t) = exp(i E_b t) =
+        sum_j U_p[b, j] w_j(t) (w_j(t) = B[j, :T] + i B[j, T:]), the amplitude part
+        sum_ab A_ab phi_a psi_b of A = 4 R o (K_s R - R K_p) is sum_ij C_ij conj(w_i) w_j with
+            C = 4 (U_s^T N + N'^T U_p),  N[a, j] = sum_c K_s[a, c] M_j[a, c],  M_j = R diag(U_p[:, j]) R^T,
+                                         N'[b, i] = sum_c K_p[b, c] M'_i[b, c], M'_i = R^T diag(U_s[:, i]) R
+        (K antisymmetric, M symmetric). M and M' do not depend on the parameter: each costs one
+        symmetric product over the rows of its window, and every parameter then needs only the
+        contractions N (d^2 J instead of the d_s d_p (d_s + d_p) of K_s R and R K_p). The degenerate
+        part B is that of _gradient_fast (diagonals only: this path requires a non-degenerate spectrum).
+        """
+        spec = self._spectrum(coeffs)
+        n_t, n_rows = t.size, len(rows)
+        grad = np.zeros((n_rows, n_t), complex)
+        used = sorted(bases)
+        coef = [np.zeros((n_rows, bases[b.s].size, bases[b.p].size)) for b in self._blocks]
+        diags = {}
+        budget = n_rows * max(len(spec.energies[k]) for k in used) ** 2 * np.dtype(dtype).itemsize // 2
+        buf = np.empty(n_rows * max(len(spec.energies[k]) for k in used) ** 2, dtype)   # K, reused
+        for k in used:
+            d = len(spec.energies[k])
+            with blas_threads(d):
+                kk, diags[k], _ = self._sector_chunk(k, spec.energies[k], spec.vectors[k], spec.tol, rows, dtype,
+                                                     out=buf[:n_rows * d * d].reshape(n_rows, d, d))
+                kt = kk.transpose(1, 0, 2)                            # (a, parameter, c)
+                for i, b in enumerate(self._blocks):
+                    for side in ("s", "p"):
+                        if getattr(b, side) != k:
+                            continue
+                        r = spec.rho_t[i] if side == "s" else spec.rho_t[i].T     # (d, d_other)
+                        other = bases[b.p] if side == "s" else bases[b.s]
+                        own = bases[k]
+                        rx = r.astype(dtype)
+                        group = max(1, min(other.size, budget // (d * d * rx.itemsize)))
+                        tmp = np.empty((d, d), dtype)
+                        for j0 in range(0, other.size, group):
+                            js = range(j0, min(j0 + group, other.size))
+                            m = np.empty((len(js), d, d), dtype)
+                            for q, j in enumerate(js):
+                                lo, hi = other.lo[j], other.hi[j]
+                                _weighted_gram(rx[:, lo:hi], other.u[lo:hi, j], m[q], tmp)
+                            nn = np.matmul(kt, m.transpose(1, 2, 0))          # (a, parameter, j)
+                            del m
+                            part = np.empty((own.size,) + nn.shape[1:])          # (i_own, parameter, j)
+                            for lo, hi, c0, c1 in own.windows():
+                                part[c0:c1] = np.tensordot(4 * own.u[lo:hi, c0:c1], nn[lo:hi], axes=([0], [0]))
+                            del nn
+                            if side == "s":
+                                coef[i][:, :, j0:j0 + len(js)] += part.transpose(1, 0, 2)
+                            else:
+                                coef[i][:, j0:j0 + len(js), :] += part.transpose(1, 2, 0)
+                del kk, kt
+        for i, b in enumerate(self._blocks):
+            es, ep, rt = spec.energies[b.s], spec.energies[b.p], spec.rho_t[i]
+            bs, bp = bases[b.s], bases[b.p]
+            z = (coef[i].reshape(-1, bp.size) @ bp.b).reshape(n_rows, bs.size, 2 * n_t)
+            zc = z[:, :, :n_t] + 1j * z[:, :, n_t:]                   # sum_j C_ij w_j(t)
+            grad += np.einsum("nit,it->nt", zc, bs.b[:, :n_t] - 1j * bs.b[:, n_t:])
+            del z, zc
+            ea = np.exp(-1j * np.outer(es, t))
+            eb = np.exp(1j * np.outer(ep, t))
+            w = 2 * rt * rt
+            pb = (w.T @ bs.u) @ bs.b                                  # sum_a w_ab exp(-i E_a t), conj below
+            pb = pb[:, :n_t] - 1j * pb[:, n_t:]
+            pa = (w @ bp.u) @ bp.b                                    # sum_b w_ab exp(+i E_b t)
+            pa = pa[:, :n_t] + 1j * pa[:, n_t:]
+            deg = diags[b.p] @ (eb * pb) - diags[b.s] @ (ea * pa)
+            grad += 1j * t[None, :] * deg
         return grad
 
     def _gradient_adjoint(self, coeffs, t, rows):
@@ -972,6 +1143,90 @@ def _chunk_size(n_rows, dims, ds, dp, n_t, item):
     per = item * (ds**2 + dp**2 + 3 * ds * dp + 2 * ds * n_t)
     budget = min(_CHUNK_BYTES, max(4 << 20, 32 * sum(d * d for d in dims)))
     return int(max(1, min(n_rows, budget // per)))
+
+
+def _pair_decomposition(g):
+    """A real symmetric sector block G with at most one off-diagonal entry per row as
+        G = c I + sum_m lam_m y_m y_m^T,  y_m = w1_m e_(x1_m) + w2_m e_(x2_m)  (orthonormal y_m),
+    from the 2 x 2 blocks [[G_xx, G_xy], [G_xy, G_yy]] of the paired rows (their spectral
+    decomposition in closed form: G = mean I + rad [[cos 2th, sin 2th], [sin 2th, -cos 2th]] has the
+    eigenvectors (cos th, sin th) and (-sin th, cos th) for mean + rad and mean - rad) and the
+    diagonal of the unpaired ones. c is the most frequent eigenvalue, so its terms drop out.
+    Offsets (diagonal), Ising terms and flip-flop terms (I+ I- + I- I+) of spin pairs have this
+    form. Returns (x1, x2, w1, w2, lam, c) or None."""
+    g = sp.coo_matrix(g)
+    return _pair_arrays(g.row, g.col, g.data, g.shape[0])
+
+
+def _pair_arrays(r, c, v, d):
+    """_pair_decomposition from the entries (rows r, columns c, values v, no duplicates) of a d x d block."""
+    v = np.asarray(v).real.astype(float)
+    dg = r == c
+    off = ~dg & (v != 0)
+    ro, co, vo = r[off], c[off], v[off]
+    if ro.size and np.bincount(ro, minlength=d).max() > 1:
+        return None
+    diag = np.bincount(r[dg], weights=v[dg], minlength=d)
+    up = ro < co
+    x, y, gxy = ro[up], co[up], vo[up]
+    if x.size * 2 != ro.size:
+        return None
+    paired = np.zeros(d, bool)
+    paired[x] = paired[y] = True
+    single = np.flatnonzero(~paired)
+    a, b = diag[x], diag[y]
+    mean, half = (a + b) / 2, (a - b) / 2
+    rad = np.hypot(half, gxy)
+    th = 0.5 * np.arctan2(gxy, half)
+    cos, sin = np.cos(th), np.sin(th)
+    x1 = np.concatenate([single, x, x])
+    x2 = np.concatenate([single, y, y])
+    w1 = np.concatenate([np.ones(single.size), -sin, cos])
+    w2 = np.concatenate([np.zeros(single.size), cos, sin])
+    lam = np.concatenate([diag[single], mean - rad, mean + rad])
+    scale = float(np.max(np.abs(lam), initial=0.0))
+    if scale == 0:
+        return x1[:0], x2[:0], w1[:0], w2[:0], lam[:0], 0.0
+    near = 1e-14 * scale
+    keys = np.round(lam / (64 * near))
+    uniq, first, counts = np.unique(keys, return_index=True, return_counts=True)
+    c0 = float(lam[first[np.argmax(counts)]])
+    keep = np.abs(lam - c0) > near
+    return x1[keep], x2[keep], w1[keep], w2[keep], lam[keep] - c0, c0
+
+
+def _pair_transform(pairs, v, f, dtype, out=None):
+    """(f V^T G V - f c I in dtype, diag(f V^T G V) in float64) from G's pair form.
+
+    V^T G V = c I + Y_+^T Y_+ - Y_-^T Y_- with the rows sqrt(|lam_m|) y_m^T V split by the sign of
+    lam_m (V orthogonal): two symmetric rank-k products over the rows that differ from c, about
+    (rows / d) d^3 / 2 multiply-adds against d^3 for V^T (G V). The c I term is left out of the
+    matrix (only its off-diagonal part enters K) and kept in the diagonal."""
+    x1, x2, w1, w2, lam, c = pairs
+    lam = f * lam
+    y = w1[:, None] * v[x1] + w2[:, None] * v[x2]
+    diag = f * c + np.einsum("m,ma,ma->a", lam, y, y)
+    y *= np.sqrt(np.abs(lam))[:, None]
+    pos = lam > 0
+    yp = np.ascontiguousarray(y[pos], dtype=dtype)
+    ym = np.ascontiguousarray(y[~pos], dtype=dtype)
+    gt = np.matmul(yp.T, yp, out=out)
+    if ym.shape[0]:
+        gt -= ym.T @ ym
+    return gt, diag
+
+
+def _weighted_gram(r, u, out, tmp):
+    """out = r diag(u) r^T as two symmetric rank-k products (columns split by the sign of u); tmp
+    is a work array of out's shape (reused: no fresh pages per call)."""
+    pos = u > 0
+    a = r[:, pos] * np.sqrt(u[pos]).astype(r.dtype)
+    np.matmul(a, a.T, out=out)
+    neg = u < 0
+    if np.any(neg):
+        c = r[:, neg] * np.sqrt(-u[neg]).astype(r.dtype)
+        np.matmul(c, c.T, out=tmp)
+        np.subtract(out, tmp, out=out)
 
 
 def _contract(x, table):
