@@ -204,25 +204,25 @@ def signal_at(n, against, quspin, repeats):
 def gradient_at(n, against, quspin, repeats, double):
     """The n-spin full gradient side by side in fresh processes, interleaved rounds: this tree and
     `against` in precisions fast and single (and double with `double`); with the peer, its central
-    differences as 2P signals (one signal measured, times 2P)."""
+    differences as 2P signals (one signal timed in each round, times 2P; the per-round column is the median of the rounds' ratios)."""
     here = os.environ.get("PYTHONPATH", "").split(os.pathsep)[0] or os.path.dirname(HERE)
     kinds = ["gradient-fast", "gradient-single"] + (["gradient"] if double else [])
     trees = [("this tree", here)] + ([(against, against)] if against else [])
     res = {}
-    for _ in range(repeats):
+    c = bench_cluster(n)
+    P = n * (n + 1) // 2
+    peer_laps = []
+    for _ in range(repeats):                 # interleaved rounds: the peer runs inside each round too
         for label, tree in trees:
             for kind in kinds:
                 res.setdefault((kind, label), []).append(fresh(tree, n, kind))
-    c = bench_cluster(n)
-    P = n * (n + 1) // 2
-    peer = None
-    if quspin:
-        t, _ = peer_signal(quspin, build_model(c), c.experiments[0], repeats)
-        peer = 2 * P * t
+        if quspin:
+            peer_laps.append(2 * P * peer_signal(quspin, build_model(c), c.experiments[0], 1)[0])
+    peer = statistics.median(peer_laps) if peer_laps else None
     print(f"{n} spins, 256 points, {P} parameters, one BLAS thread, load average {os.getloadavg()[0]:.1f} on "
           f"{os.cpu_count()} cores; medians of {repeats} fresh processes (engine construction included)")
     print(f"  {'what':<58} {'wall (s)':>9} {'CPU (s)':>9} {'peak MiB':>9} {'vs this':>8}"
-          + (f" {'peer / it':>10}" if peer else ""))
+          + (f" {'peer / it':>10} {'per round':>10}" if peer else ""))
     for kind in kinds:
         ref = statistics.median(r["seconds"] for r in res[(kind, "this tree")])
         for label, _ in trees:
@@ -231,9 +231,14 @@ def gradient_at(n, against, quspin, repeats, double):
             cpu = statistics.median(r["cpu"] for r in v)
             mem = max(r["peak_mib"] for r in v)
             line = f"  {kind + ' (' + label + ')':<58} {w:9.2f} {cpu:9.2f} {mem:9.0f} {w / ref:8.2f}"
-            print(line + (f" {peer / w:10.1f}" if peer else ""))
+            if peer:
+                # the median of the per-round ratios: each round's peer and qhl runs saw the same load
+                per_round = statistics.median(q / r["seconds"] for q, r in zip(peer_laps, v))
+                line += f" {peer / w:10.1f} {per_round:10.1f}"
+            print(line)
     if peer:
-        print(f"  peer (QuSpin) central differences, {2 * P} signals: {peer:.1f} s")
+        print(f"  peer (QuSpin) central differences, {2 * P} signals (one signal timed per round, "
+              f"times {2 * P}): median {peer:.1f} s, rounds " + ", ".join(f"{x:.0f}" for x in peer_laps))
     else:
         print("  peer column skipped: give --quspin-python (a Python with QuSpin installed)")
 
