@@ -722,7 +722,8 @@ class ExactEngine:
         return not any(np.count_nonzero(np.abs(np.diff(e)) <= spec.tol) for e in spec.energies)
 
     def _table_cost(self, n_rows, n_t, item):
-        """The table path's term of _path_costs alone (no bases needed)."""
+        """Modelled seconds of the table path's products K_s R, R K_p and the table product (the rate of
+        _path_costs; needs no bases, so it also decides whether bases are planned at all)."""
         from .time_basis import GEMM_RATE
         return sum(2.0 * (item / 4.0) * n_rows * self._dims[b.s] * self._dims[b.p]
                    * (self._dims[b.s] + self._dims[b.p] + 2 * n_t) for b in self._blocks) / GEMM_RATE
@@ -731,8 +732,8 @@ class ExactEngine:
         """Modelled costs in seconds (flops over the measured one-core float32 rates of time_basis,
         halved for float64, plus CALL_SECONDS per product R diag(u) R^T) of the time-basis path and
         of the table path, for the products that differ between them."""
-        from .time_basis import CALL_SECONDS, CONTRACT_RATE, GEMM_RATE, PRODUCT_RATE
-        basis = table = 0.0
+        from .time_basis import CALL_SECONDS, CONTRACT_RATE, PRODUCT_RATE
+        basis = 0.0
         slow = item / 4.0
         for b in self._blocks:
             ds, dp = self._dims[b.s], self._dims[b.p]
@@ -740,8 +741,7 @@ class ExactEngine:
             basis += slow * (ds * ds * bp.nnz + dp * dp * bs.nnz) / PRODUCT_RATE
             basis += slow * 2.0 * n_rows * (ds * ds * bp.size + dp * dp * bs.size) / CONTRACT_RATE
             basis += CALL_SECONDS * (bs.size + bp.size)
-            table += slow * 2.0 * n_rows * ds * dp * (ds + dp + 2 * n_t) / GEMM_RATE
-        return basis, table
+        return basis, self._table_cost(n_rows, n_t, item)
 
     def _gradient_basis(self, coeffs, t, rows, dtype, bases):
         """The fast contraction with windowed low-rank time bases (qhl.exact.time_basis).

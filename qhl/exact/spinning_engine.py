@@ -354,8 +354,7 @@ class _Spinning:
         """(R, T) contribution of the sectors `group` (all of one dimension; abs_ their contraction
         matrices) to the unnormalised gradient: one stage recursion for the group, the rest per sector."""
         idx = [n for n, _ in rows]
-        gens = [self._generators(s, idx) for s in group]
-        real = not any(np.iscomplexobj(self.spec[s][1]) or np.iscomplexobj(g[1]) for s, g in zip(group, gens))
+        gens, real = self._group_generators(group, idx)
         grad = np.zeros((len(rows), self.t.size), complex)
         # per sampling time: X = P_2j U_R^q and the contraction matrices conj(X) A X^T, X B X^dag
         a3s, b3s = [], []
@@ -417,15 +416,19 @@ class _Spinning:
         idx = [n for n, _ in rows]
         out = {}
         for group in self._groups():
-            gst = [self._generators(s, idx)[0] for s in group]
-            real = not any(np.iscomplexobj(self.spec[s][1]) or np.iscomplexobj(self._generators(s, idx)[1])
-                           for s in group)
+            gens, real = self._group_generators(group, idx)
             d = self.spec[group[0]][0].shape[-1]
             zero = [np.zeros((self.t.size, d, d), complex)] * len(group)
-            deltas = self._stage_recursion(group, idx, gst, real, zero, zero,
+            deltas = self._stage_recursion(group, idx, [g[0] for g in gens], real, zero, zero,
                                            np.zeros((len(idx), self.t.size), complex), marks_ok=False)
             out.update(zip(group, deltas))
         return out
+
+    def _group_generators(self, group, idx):
+        """(per sector of `group` the _generators pair, whether every eigenvector and generator is real)."""
+        gens = [self._generators(s, idx) for s in group]
+        real = not any(np.iscomplexobj(self.spec[s][1]) or np.iscomplexobj(g[1]) for s, g in zip(group, gens))
+        return gens, real
 
     def _groups(self):
         """The sectors in use grouped by dimension (in order of first appearance)."""
