@@ -120,3 +120,18 @@ def test_basis_path_with_a_parameter_subset(monkeypatch):
     assert calls
     ref = g0[[3, 0, len(model.free) - 1]]
     assert _rel(g1, ref) < 1e-12
+
+
+def test_basis_path_one_parameter_row(monkeypatch):
+    """One gradient row: the reused product buffer must still hold one full d x d product (its
+    size is set by half the K buffer, which for one row is smaller than d^2)."""
+    c = random_cluster(np.random.default_rng(21), 6, experiments=(Experiment("c", 2e-4, 32),))
+    model = build_model(c, free=FREE)
+    ex = c.experiments[0]
+    name = model.free[3]
+    _force(monkeypatch, "table")
+    _, g0 = ExactEngine(model).gradient(ex, method="full", parameters=[name])
+    calls = _force(monkeypatch, "basis")
+    _, g1 = ExactEngine(model).gradient(ex, method="full", parameters=[name])
+    assert calls and g1.shape == g0.shape == (1, ex.points)
+    assert _rel(g1, g0) < 1e-12

@@ -20,6 +20,8 @@ from contextlib import contextmanager, nullcontext
 import functools
 import os
 
+from .pages import small_pages
+
 __all__ = ["SMALL_BLOCK", "LARGE_BLOCK_THREADS", "blas_threads", "single_thread_blas", "blas_limited"]
 
 SMALL_BLOCK = 4000
@@ -69,9 +71,10 @@ def single_thread_blas(largest_block: int):
 
 
 def blas_limited(method):
-    """Decorator for engine methods: BLAS threads chosen by the engine's largest sector."""
+    """Decorator for engine methods: BLAS threads chosen by the engine's largest sector, and no
+    huge pages for numpy's temporaries during the call (qhl.base.pages)."""
     @functools.wraps(method)
     def wrapper(self, *args, **kwargs):
-        with blas_threads(self.largest_sector):
+        with blas_threads(self.largest_sector), small_pages():
             return method(self, *args, **kwargs)
     return wrapper

@@ -764,6 +764,9 @@ class ExactEngine:
         diags = {}
         budget = n_rows * max(len(spec.energies[k]) for k in used) ** 2 * np.dtype(dtype).itemsize // 2
         buf = np.empty(n_rows * max(len(spec.energies[k]) for k in used) ** 2, dtype)   # K, reused
+        # the products M_j of a group, reused: a fresh array this size is mapped and faulted in anew
+        # on every group (above malloc's mmap threshold), which cost ~1 ms per 2.5 MB matrix here
+        mbuf = np.empty(max(budget // np.dtype(dtype).itemsize, buf.size // max(n_rows, 1)), dtype)
         for k in used:
             d = len(spec.energies[k])
             with blas_threads(d):
@@ -782,7 +785,7 @@ class ExactEngine:
                         tmp = np.empty((d, d), dtype)
                         for j0 in range(0, other.size, group):
                             js = range(j0, min(j0 + group, other.size))
-                            m = np.empty((len(js), d, d), dtype)
+                            m = mbuf[:len(js) * d * d].reshape(len(js), d, d)
                             for q, j in enumerate(js):
                                 lo, hi = other.lo[j], other.hi[j]
                                 _weighted_gram(rx[:, lo:hi], other.u[lo:hi, j], m[q], tmp)
@@ -797,6 +800,7 @@ class ExactEngine:
                             else:
                                 coef[i][:, j0:j0 + len(js), :] += part.transpose(1, 2, 0)
                 del kk, kt
+        del buf, mbuf
         for i, b in enumerate(self._blocks):
             es, ep, rt = spec.energies[b.s], spec.energies[b.p], spec.rho_t[i]
             bs, bp = bases[b.s], bases[b.p]

@@ -53,6 +53,7 @@ import os
 import numpy as np
 
 from ..base.blas import single_thread_blas
+from ..base.pages import small_pages
 from ..base.errors import QhlInputError
 from ..base.memory import available_memory_bytes, require_memory
 from ..spins.cluster import refuse_spinning, refuse_steps
@@ -365,7 +366,7 @@ class TypicalEngine:
             MemoryBudgetError: the estimate would not fit (the message gives the estimate).
         """
         threads = self.threads or idle_cores()
-        with single_thread_blas(0), ThreadPoolExecutor(threads) as pool:
+        with single_thread_blas(0), small_pages(), ThreadPoolExecutor(threads) as pool:
             return self._estimate(experiment, times, free_values_hz, gradient, parameters, pool, threads)
 
     def _estimate(self, experiment, times, free_values_hz, gradient, parameters, pool, threads):
