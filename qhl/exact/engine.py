@@ -762,11 +762,13 @@ class ExactEngine:
         used = sorted(bases)
         coef = [np.zeros((n_rows, bases[b.s].size, bases[b.p].size)) for b in self._blocks]
         diags = {}
-        budget = n_rows * max(len(spec.energies[k]) for k in used) ** 2 * np.dtype(dtype).itemsize // 2
-        buf = np.empty(n_rows * max(len(spec.energies[k]) for k in used) ** 2, dtype)   # K, reused
-        # the products M_j of a group, reused: a fresh array this size is mapped and faulted in anew
-        # on every group (above malloc's mmap threshold), which cost ~1 ms per 2.5 MB matrix here
-        mbuf = np.empty(max(budget // np.dtype(dtype).itemsize, buf.size // max(n_rows, 1)), dtype)
+        dmax = max(len(spec.energies[k]) for k in used)
+        budget = n_rows * dmax**2 * np.dtype(dtype).itemsize // 2
+        buf = np.empty(n_rows * dmax**2, dtype)                               # K, reused
+        # the products M_j of a group (at least one d x d product), reused: a fresh array this size is
+        # mapped and faulted in anew on every group (above malloc's mmap threshold), which cost ~1 ms
+        # per 2.5 MB matrix here
+        mbuf = np.empty(max(budget // np.dtype(dtype).itemsize, dmax**2), dtype)
         for k in used:
             d = len(spec.energies[k])
             with blas_threads(d):
