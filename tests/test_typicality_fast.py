@@ -145,3 +145,26 @@ def test_row_parts_share_the_matrix_and_multiply_like_it():
     for i, (r0, r1) in enumerate(ra.parts):
         assert np.shares_memory(ra.mats[i].data, a.data) and np.shares_memory(ra.mats[i].indices, a.indices)
         assert np.array_equal(ra(np.asfortranarray(x), i), (a @ x)[r0:r1])
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_in_place_products_equal_scipy_and_reuse_their_buffer(dtype):
+    # scipy's own `a @ x` is the reference: the in-place kernel call must give the same numbers
+    # (same kernel, same order of sums), write into the given buffer and reuse it per part
+    import scipy.sparse as sps
+    a = sps.random(2000, 2000, 0.02, format="csr", dtype=dtype, random_state=3)
+    rng = np.random.default_rng(4)
+    ra = cheb.RowApply(a, cheb.row_parts(2000, 2, min_rows=10))
+    first = None
+    for step in range(3):
+        x = np.asfortranarray(rng.standard_normal((2000, 3)).astype(dtype))
+        y = ra(x, 1)
+        r0, r1 = ra.parts[1]
+        assert np.array_equal(y, (a @ x)[r0:r1])
+        first = y if first is None else first
+        assert y is first                       # the part's buffer, reused
+    out = np.full((2000, 2), 7.0, dtype, order="F")
+    x = np.asfortranarray(rng.standard_normal((2000, 2)).astype(dtype))
+    assert cheb.sparse_times(a, x, out) is out and np.array_equal(out, a @ x)
+    # a mismatched buffer or a float64 vector against float32 data still gives scipy's product
+    assert np.allclose(cheb.sparse_times(a, x.astype(np.float64), out), a @ x.astype(np.float64))

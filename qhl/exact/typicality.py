@@ -516,9 +516,11 @@ class _Augmented:
         self.h = [csr_rows(h, a, b) for a, b in parts]
         self.g = [[csr_rows(g, a, b) for g in gens] for a, b in parts]
         self.r, self.halves = r, ((0,) if real else (0, m))
+        self._out = [None] * len(parts)
 
     def __call__(self, y, i):
-        z = sparse_times(self.h[i], y)
+        # the part's result buffer is reused from call to call (qhl.exact.chebyshev.RowApply)
+        z = self._out[i] = sparse_times(self.h[i], y, self._out[i])
         r = self.r
         for q, g in enumerate(self.g[i]):
             for half in self.halves:
