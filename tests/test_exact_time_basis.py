@@ -135,3 +135,20 @@ def test_basis_path_one_parameter_row(monkeypatch):
     _, g1 = ExactEngine(model).gradient(ex, method="full", parameters=[name])
     assert calls and g1.shape == g0.shape == (1, ex.points)
     assert _rel(g1, g0) < 1e-12
+
+
+@pytest.mark.parametrize("signs", ["mixed", "positive", "negative"])
+def test_weighted_gram_equals_dense_product(signs):
+    # r diag(u) r^T through one rank-k product and the shift c = max(0, -min u) (engine._weighted_gram)
+    # against the plain numpy product in float64 (common practice)
+    rng = np.random.default_rng({"mixed": 1, "positive": 2, "negative": 3}[signs])
+    r = rng.normal(size=(30, 12))
+    u = rng.normal(size=12)
+    u = {"mixed": u, "positive": np.abs(u), "negative": -np.abs(u)}[signs]
+    ref = (r * u) @ r.T
+    for dtype, tol in ((np.float64, 1e-13), (np.float32, 1e-5)):
+        rx = r.astype(dtype)
+        out = np.full((30, 30), np.nan, dtype)           # every entry must be written
+        engine_module._weighted_gram(rx, u, out, engine_module._gram(rx))
+        assert out.dtype == dtype
+        assert np.abs(out - ref).max() < tol * np.abs(ref).max()
