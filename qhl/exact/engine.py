@@ -809,10 +809,14 @@ class ExactEngine:
         for i, b in enumerate(self._blocks):
             es, ep, rt = spec.energies[b.s], spec.energies[b.p], spec.rho_t[i]
             bs, bp = bases[b.s], bases[b.p]
-            z = (coef[i].reshape(-1, bp.size) @ bp.b).reshape(n_rows, bs.size, 2 * n_t)
-            zc = z[:, :, :n_t] + 1j * z[:, :, n_t:]                   # sum_j C_ij w_j(t)
-            grad += np.einsum("nit,it->nt", zc, bs.b[:, :n_t] - 1j * bs.b[:, n_t:])
-            del z, zc
+            # z = sum_j C_ij w_j(t) as [Re | Im] (the time-table product: in dtype, as in the table path),
+            # then sum_i z_i conj(w_i) in real arithmetic summed in float64
+            z = (coef[i].reshape(-1, bp.size).astype(dtype) @ bp.b.astype(dtype, copy=False))
+            z = z.reshape(n_rows, bs.size, 2 * n_t)
+            zr, zi = z[:, :, :n_t], z[:, :, n_t:]
+            wr, wi = bs.b[:, :n_t].astype(dtype), bs.b[:, n_t:].astype(dtype)
+            grad += (_contract(zr, wr) + _contract(zi, wi)) + 1j * (_contract(zi, wr) - _contract(zr, wi))
+            del z, zr, zi
             ea = np.exp(-1j * np.outer(es, t))
             eb = np.exp(1j * np.outer(ep, t))
             w = 2 * rt * rt
