@@ -41,7 +41,8 @@ With R = V_s^T rho0_sp V_p, G~ = V^T (2 pi s_n G_n) V per sector and K = G~ / (E
     the random 12-proton clusters and 0.2 ms. Then the amplitude part is sum_ij C_ij conj(w_i) w_j
     with C = 4 (U_s^T N + N'^T U_p), N[a, j] = sum_c K_s[a, c] M_j[a, c], M_j = R diag(U_p[:, j]) R^T
     (and N' likewise with R^T): the M_j do not depend on the parameter (d_s^2 nnz(U_p) / 2 in all,
-    symmetric products), and each parameter costs d_s^2 J (the batched contraction) instead of
+    symmetric products; each M_j is one rank-k product over its whole window, shifted by the window's
+    R R^T where U_p[:, j] changes sign: _weighted_gram), and each parameter costs d_s^2 J (the batched contraction) instead of
     d_s d_p (d_s + d_p + 2T) for K_s R, R K_p and the table product. It needs a non-degenerate
     spectrum, holds K of one sector for every parameter (P d^2) and runs outside the lean mode.
     Measured (benchmarks/bench_engine.py --gradient-at 12 --against <previous tree> --double: 12
