@@ -32,7 +32,8 @@ With R = V_s^T rho0_sp V_p, G~ = V^T (2 pi s_n G_n) V per sector and K = G~ / (E
     Y_-^T Y_- (rows sqrt|lam_m| y_m^T V split by sign; V orthogonal): two symmetric rank-k products
     over the rows whose eigenvalue differs from the most frequent one c, about 0.27 d^3
     multiply-adds for a dipolar term and 0.25 d^3 for an offset in the middle sector, against d^3
-    for V^T (G V). c I only moves the diagonal, which K ignores (the diagonal g is summed in float64).
+    for V^T (G V). c I only moves the diagonal, which K ignores (the diagonal g is read off the
+    product, in its precision).
   * Time-basis path (_gradient_basis, chosen by the cost model _path_costs where it is cheaper:
     from about 11 protons at 256 points). The time tables of each sector are replaced by windowed
     low-rank bases (qhl.exact.time_basis; truncated SVD per window of consecutive levels, rows kept
@@ -55,7 +56,8 @@ With R = V_s^T rho0_sp V_p, G~ = V^T (2 pi s_n G_n) V per sector and K = G~ / (E
 
 precision="single" runs the O(d^3) products (eigen-generators, K R, R K and the time-table
 product) in float32, with the eigendecomposition, the degenerate term and all sums over blocks and
-parameters in float64 (float32 BLAS sums its own products in float32). Measured: largest
+parameters in float64 (float32 BLAS sums its own products in float32; the diagonals g of the pair-form
+eigen-generators are read off those float32 products). Measured: largest
 gradient error relative to the largest gradient entry 2.4e-6 at n = 10 (55 parameters, 256
 points) and 4.5e-7 at n = 12 (78 parameters) on benchmarks/bench_engine.py's random proton
 clusters, 1e-8 to 4e-7 at n = 3-7 (tests/test_engine_fast.py). SINGLE_RTOL = 1e-4 is the stated
@@ -618,7 +620,8 @@ class ExactEngine:
             pairs = self._pair_form(n, k) if d >= PAIR_FORM_MIN_LEVELS else None
             if pairs is not None:
                 scratch = np.empty((d, d), dtype) if scratch is None else scratch   # contiguous: syrk
-                gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=scratch)
+                vx = v.astype(dtype, copy=False) if vx is None else vx
+                gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=scratch, vx=vx)
             else:
                 vx = v.astype(dtype, copy=False) if vx is None else vx
                 gv = g @ v
@@ -1209,24 +1212,36 @@ def _pair_arrays(r, c, v, d):
     return x1[keep], x2[keep], w1[keep], w2[keep], lam[keep] - c0, c0
 
 
-def _pair_transform(pairs, v, f, dtype, out=None):
-    """(f V^T G V - f c I in dtype, diag(f V^T G V) in float64) from G's pair form.
+def _pair_transform(pairs, v, f, dtype, out=None, vx=None):
+    """(f V^T G V - f c I in dtype, diag(f V^T G V) as float64) from G's pair form.
 
     V^T G V = c I + Y_+^T Y_+ - Y_-^T Y_- with the rows sqrt(|lam_m|) y_m^T V split by the sign of
     lam_m (V orthogonal): two symmetric rank-k products over the rows that differ from c, about
-    (rows / d) d^3 / 2 multiply-adds against d^3 for V^T (G V). The c I term is left out of the
-    matrix (only its off-diagonal part enters K) and kept in the diagonal."""
+    (rows / d) d^3 / 2 multiply-adds against d^3 for V^T (G V) (one product where every lam_m has
+    the sign of the others: offsets and dipolar terms). The c I term is left out of the matrix (only
+    its off-diagonal part enters K) and added to the diagonal, which is read off the product: exact
+    to rounding in float64, float32 rounding (~1e-7 relative) in float32. The rows are gathered from
+    `vx`, V already cast to dtype (the caller casts once per sector), default V.astype(dtype)."""
     x1, x2, w1, w2, lam, c = pairs
+    vx = v.astype(dtype, copy=False) if vx is None else vx
     lam = f * lam
-    y = w1[:, None] * v[x1] + w2[:, None] * v[x2]
-    diag = f * c + np.einsum("m,ma,ma->a", lam, y, y)
-    y *= np.sqrt(np.abs(lam))[:, None]
+    root = np.sqrt(np.abs(lam))
+    y = np.take(vx, x1, axis=0)
+    y *= (w1 * root).astype(dtype)[:, None]
+    two = np.flatnonzero(w2)                 # rows on a pair of basis states (the others: w2 = 0)
+    if two.size:
+        y[two] += (w2[two] * root[two]).astype(dtype)[:, None] * vx[x2[two]]
     pos = lam > 0
-    yp = np.ascontiguousarray(y[pos], dtype=dtype)
-    ym = np.ascontiguousarray(y[~pos], dtype=dtype)
-    gt = np.matmul(yp.T, yp, out=out)
-    if ym.shape[0]:
+    n_pos = int(np.count_nonzero(pos))
+    if n_pos in (0, lam.size):
+        gt = np.matmul(y.T, y, out=out)
+        if n_pos == 0:
+            np.negative(gt, out=gt)
+    else:
+        yp, ym = y[pos], y[~pos]
+        gt = np.matmul(yp.T, yp, out=out)
         gt -= ym.T @ ym
+    diag = f * c + np.diagonal(gt).astype(np.float64)
     return gt, diag
 
 
