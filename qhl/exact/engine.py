@@ -610,7 +610,7 @@ class ExactEngine:
         diag = np.zeros((len(rows), d))
         dd = np.zeros((len(rows), d, d)) if offdeg else None
         invx = inv.astype(dtype, copy=False)
-        vx = scratch = None
+        vx = None
         for r, (n, scale) in enumerate(rows):
             g = self._gen_blocks[n][k]
             if scale == 0 or g.nnz == 0:
@@ -619,9 +619,9 @@ class ExactEngine:
             f = 2 * np.pi * scale
             pairs = self._pair_form(n, k) if d >= PAIR_FORM_MIN_LEVELS else None
             if pairs is not None:
-                scratch = np.empty((d, d), dtype) if scratch is None else scratch   # contiguous: syrk
                 vx = v.astype(dtype, copy=False) if vx is None else vx
-                gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=scratch, vx=vx)
+                # the rank-k product straight into K's slot (contiguous), then scaled there in place
+                gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=kk[r], vx=vx)
             else:
                 vx = v.astype(dtype, copy=False) if vx is None else vx
                 gv = g @ v
@@ -631,7 +631,10 @@ class ExactEngine:
             if offdeg:
                 dd[r] = gt * deg
                 np.fill_diagonal(dd[r], diag[r])
-            np.multiply(gt, invx, out=kk[r])
+            if pairs is not None:
+                kk[r] *= invx
+            else:
+                np.multiply(gt, invx, out=kk[r])
         return kk, diag, dd
 
     def _pair_form(self, n, k):
