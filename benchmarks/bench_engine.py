@@ -109,6 +109,9 @@ def signal_engine_built(model, ex, repeats):
     return median_time(run, repeats)
 
 
+PEER_VERSION = ["?"]     # the peer's library versions, as its last run reported them
+
+
 def peer_signal(python, model, ex, repeats):
     """(median seconds of one QuSpin signal, its signal) from benchmarks/quspin_peer.py."""
     coeffs = 2 * np.pi * model.values_hz * model.scale_factors(ex)
@@ -126,7 +129,9 @@ def peer_signal(python, model, ex, repeats):
                            capture_output=True, text=True, env=env, cwd=tmp)
         if r.returncode:
             raise RuntimeError(r.stderr.strip().splitlines()[-1] if r.stderr.strip() else "peer failed")
-        laps = json.loads(r.stdout.strip().splitlines()[-1])["laps"][1:]   # first call compiles
+        res = json.loads(r.stdout.strip().splitlines()[-1])
+        laps = res["laps"][1:]                                            # first call compiles
+        PEER_VERSION[0] = res.get("version", "?")
         return statistics.median(laps), np.load(out)
 
 
@@ -238,7 +243,8 @@ def gradient_at(n, against, quspin, repeats, double):
             print(line)
     if peer:
         print(f"  peer (QuSpin) central differences, {2 * P} signals (one signal timed per round, "
-              f"times {2 * P}): median {peer:.1f} s, rounds " + ", ".join(f"{x:.0f}" for x in peer_laps))
+              f"times {2 * P}): median {peer:.1f} s, rounds " + ", ".join(f"{x:.0f}" for x in peer_laps)
+              + f"; peer: {PEER_VERSION[0]}")
     else:
         print("  peer column skipped: give --quspin-python (a Python with QuSpin installed)")
 

@@ -18,6 +18,7 @@ import sys
 import time
 
 import numpy as np
+import quspin
 from quspin.basis import spin_basis_general
 from quspin.operators import hamiltonian
 
@@ -94,7 +95,8 @@ def main():
         s = signal(case["n"], terms, times)
         laps.append(time.perf_counter() - t0)
     np.save(case["out"], s)
-    print(json.dumps({"signal_s": statistics.median(laps), "laps": laps}))
+    print(json.dumps({"signal_s": statistics.median(laps), "laps": laps,
+                      "version": f"QuSpin {getattr(quspin, '__version__', '?')}, numpy {np.__version__}"}))
 
 
 if __name__ == "__main__":
