@@ -29,8 +29,9 @@ With R = V_s^T rho0_sp V_p, G~ = V^T (2 pi s_n G_n) V per sector and K = G~ / (E
   * Eigen-generators from the pair form of each generator block (_pair_decomposition): offsets,
     Ising and flip-flop terms have at most one off-diagonal entry per row, so G = c I +
     sum_m lam_m y_m y_m^T with y_m on one row or a pair of rows, and V^T G V - c I = Y_+^T Y_+ -
-    Y_-^T Y_- (rows sqrt|lam_m| y_m^T V split by sign; V orthogonal): two symmetric rank-k products
-    over the rows whose eigenvalue differs from the most frequent one c, about 0.27 d^3
+    Y_-^T Y_- (rows sqrt|lam_m| y_m^T V split by sign; V orthogonal): symmetric rank-k products
+    over the rows whose eigenvalue differs from the most frequent one c (one product where those
+    share a sign, as for offsets and dipolar terms; two otherwise), about 0.27 d^3
     multiply-adds for a dipolar term and 0.25 d^3 for an offset in the middle sector, against d^3
     for V^T (G V). c I only moves the diagonal, which K ignores (the diagonal g is read off the
     product, in its precision).
