@@ -62,6 +62,7 @@ def test_rotor_bound_coefficients_bound_the_time_dependent_hamiltonian():
         assert got >= abs(static.coeffs[list(static.paulis.to_labels()).index(label)]) * (1 - 1e-12)
 
 
+@pytest.mark.slow        # ~25 s on two cores: runs in CI's slow pass
 def test_seven_spin_spinning_budget_steps_keep_the_signal_error_within_the_share(capsys, tmp_path):
     # seven spins: above the Richardson tier (6), so the steps come from the rotor-bound commutator bound with
     # ||U_r - U|| <= 0.25 eps / (2 kappa); the compiled circuit's signal at those steps (233 at eps = 0.2),

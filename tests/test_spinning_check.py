@@ -19,6 +19,7 @@ from qhl.emulation.check import check_derivatives
 import test_spinning_circuits as spin
 
 
+@pytest.mark.slow        # ~45 s on two cores: runs in CI's slow pass
 def test_check_rows_of_a_spinning_cluster():
     c = spin._cluster(3)
     rep = check_derivatives(c, spin.T, 16, 20000, seed=3, order=2)
