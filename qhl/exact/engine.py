@@ -611,7 +611,7 @@ class ExactEngine:
         diag = np.zeros((len(rows), d))
         dd = np.zeros((len(rows), d, d)) if offdeg else None
         invx = inv.astype(dtype, copy=False)
-        vx = None
+        vx = v.astype(dtype, copy=False)                 # V in the products' precision, cast once
         for r, (n, scale) in enumerate(rows):
             g = self._gen_blocks[n][k]
             if scale == 0 or g.nnz == 0:
@@ -620,11 +620,9 @@ class ExactEngine:
             f = 2 * np.pi * scale
             pairs = self._pair_form(n, k) if d >= PAIR_FORM_MIN_LEVELS else None
             if pairs is not None:
-                vx = v.astype(dtype, copy=False) if vx is None else vx
                 # the rank-k product straight into K's slot (contiguous), then scaled there in place
                 gt, diag[r] = _pair_transform(pairs, v, f, dtype, out=kk[r], vx=vx)
             else:
-                vx = v.astype(dtype, copy=False) if vx is None else vx
                 gv = g @ v
                 diag[r] = f * np.einsum("ia,ia->a", v, gv)
                 gt = vx.T @ gv.astype(dtype, copy=False)
