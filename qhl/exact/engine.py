@@ -630,10 +630,7 @@ class ExactEngine:
             if offdeg:
                 dd[r] = gt * deg
                 np.fill_diagonal(dd[r], diag[r])
-            if pairs is not None:
-                kk[r] *= invx
-            else:
-                np.multiply(gt, invx, out=kk[r])
+            np.multiply(gt, invx, out=kk[r])             # in place where gt is K's slot (pair form)
         return kk, diag, dd
 
     def _pair_form(self, n, k):
