@@ -23,6 +23,7 @@ def test_typical_json_has_error_bars(capsys):
         np.testing.assert_allclose(row["signal_stderr_real"], est.signal_stderr_real, atol=1e-12)
         np.testing.assert_allclose(row["signal_stderr_imag"], est.signal_stderr_imag, atol=1e-12)
         assert min(row["signal_stderr_real"][1:]) > 0
+        assert row["typical_scheme"] == est.scheme == "positive"    # the demo's H conserves magnetisation
 
 
 def test_auto_is_exact_when_it_fits(capsys):

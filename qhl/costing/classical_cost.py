@@ -8,8 +8,8 @@ calls, cached) and the known scaling of the method:
       seconds = c_eigh * sum_s d_s^3 + c_gemm * sum_(s,p) 2 d_s d_p (d_s + d_p),
   memory = qhl.exact.engine.estimate_memory_bytes (the engine's own model; sum d^2 scaling).
 * 'pure-state' (the typical engine, qhl.exact.typicality): sparse Chebyshev propagation of
-  random states, sector pair by sector pair,
-      seconds = sum_windows (c_fixed + c_term * C_w) * K_w * sum_(s,p) (nnz_s + nnz_p)
+  random states, each sector once (the engine's one-propagation scheme, psi = sqrt(rho0+) r),
+      seconds = sum_windows (c_fixed + c_term * C_w) * K_w * sum_s nnz_s
                 + c_build * sum_s nnz_s,
   with M = replicas vectors: C_w = M real columns in the first window (real +-1 start vectors
   stay real until the first restart) and 2M in later ones (complex states), K_w Chebyshev terms
@@ -18,7 +18,8 @@ calls, cached) and the known scaling of the method:
   half-width w = rho * sum_P |c_P|, rho measured by Lanczos on a sub-cluster of at most 12
   spins of this cluster), nnz per sector from the fraction of rows on which each flip-flop pair
   stays in the sector; memory = qhl.exact.typicality.pair_memory_bytes of the largest sector
-  pair. The engine's defaults are modelled: double precision, one core (precision="single" was
+  pair plus the start states (2^n x M doubles) and, with several windows, every sector's restart
+  state (2^n x 2M doubles). The engine's defaults are modelled: double precision, one core (precision="single" was
   measured 1.3-1.5x faster at 18-20 spins; threads help on idle cores only).
   This route gives estimates with a statistical error (about 2^(-n/2) / sqrt(replicas)).
 
@@ -198,14 +199,15 @@ def route_costs(n, flip_pairs, half_width, t_max, n_times, n_obs=None, replicas=
     def pure_memory(wb):
         out = max(pair_memory_bytes(dims[s], dims[p], nnz[s], nnz[p], n_obs, replicas, n_times, window_bytes=wb)
                   for s, p in pairs) + 8.0 * 2**n
-        return max(out, 32.0 * 2**n)
+        store = 16.0 * m * 2**n if window_points(dmax, m, n_times, wb) < n_times else 0.0
+        return max(out + 8.0 * m * 2**n + store, 32.0 * 2**n)
 
     # the engine's window_bytes="auto" rule: the first candidate that fits half the free memory
     wb = next((b for b in window_candidates(dmax, m, n_times) if pure_memory(b) <= 0.5 * avail / 0.8),
               WINDOW_BYTES)
     w = window_points(dmax, m, n_times, wb)
     t = np.linspace(0.0, t_max, n_times)
-    work = sum(nnz[s] + nnz[p] for s, p in pairs)
+    work = sum(nnz)                                # each sector propagated once
     ps_s, tc = cal.c_build * sum(nnz), 0.0
     for start in range(0, n_times, w):
         seg = t[start:start + w]

@@ -22,7 +22,9 @@ class SignalReport:
     """Signals per experiment; gradients (P, T) when asked for (1/Hz).
 
     With method 'typical', `stderr` holds {experiment: (stderr of Re S, stderr of Im S)} and
-    `gradient_stderr` the same for the gradients; `replicas` is the number of random states.
+    `gradient_stderr` the same for the gradients; `replicas` is the number of random states and
+    `schemes` {experiment: "positive" | "pairs"} the typical engine's scheme (--json key
+    `typical_scheme` per experiment; qhl.exact.typicality).
     """
 
     cluster: object
@@ -35,6 +37,7 @@ class SignalReport:
     gradient_stderr: dict = field(default_factory=dict)
     replicas: int = 0
     note: str = ""
+    schemes: dict = field(default_factory=dict)
 
     def to_json(self) -> dict:
         params = [{"name": p.name, "kind": p.kind, "spins": list(p.spins), "value_hz": p.value_hz,
@@ -49,6 +52,8 @@ class SignalReport:
                 row["steps"] = step_tables(ex.steps)     # the preparation; times count from its end
             if ex.name in self.stderr:
                 row["signal_stderr_real"], row["signal_stderr_imag"] = self.stderr[ex.name]
+            if ex.name in self.schemes:
+                row["typical_scheme"] = self.schemes[ex.name]
             if ex.name in self.gradients:
                 g = self.gradients[ex.name]
                 row["gradient_parameters"] = list(self.model.free)
@@ -83,7 +88,7 @@ def compute_signals(cluster, free=DEFAULT_FREE, gradient: bool = False, engine=N
     else:
         model = engine.model
         method = "typical" if hasattr(engine, "estimate") else "exact"
-    signals, grads, errs, gerrs = {}, {}, {}, {}
+    signals, grads, errs, gerrs, schemes = {}, {}, {}, {}, {}
     done = []
     try:
         for ex in cluster.experiments:
@@ -91,6 +96,7 @@ def compute_signals(cluster, free=DEFAULT_FREE, gradient: bool = False, engine=N
                 est = engine.estimate(ex, gradient=gradient)
                 signals[ex.name] = est.signal
                 errs[ex.name] = (est.signal_stderr_real, est.signal_stderr_imag)
+                schemes[ex.name] = est.scheme
                 if gradient:
                     grads[ex.name] = est.gradient
                     gerrs[ex.name] = (est.gradient_stderr_real, est.gradient_stderr_imag)
@@ -105,7 +111,7 @@ def compute_signals(cluster, free=DEFAULT_FREE, gradient: bool = False, engine=N
         note = (note + "; " if note else "") + (f"interrupted: {len(done)} of {len(cluster.experiments)} "
                                                 "experiments computed, the rest left out")
     return SignalReport(cluster, model, done, signals, grads, method, errs, gerrs,
-                        getattr(engine, "replicas", 0), note)
+                        getattr(engine, "replicas", 0), note, schemes)
 
 
 def spectrum_of(times_s, signal, zero_fill: int = 4):
