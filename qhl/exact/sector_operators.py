@@ -7,7 +7,11 @@ little-endian order); bit value 0 is spin up. A Pauli string with X-or-Y bits `x
 (from X|b> = |1-b>, Z|b> = (-1)^b |b>, Y = iXZ; Nielsen & Chuang, "Quantum Computation and
 Quantum Information", 2000, sec. 2.1.3). Terms with the same `xm` fill the same matrix entries,
 so an operator is held as groups {xm: [(zm, coefficient * i^nY)]} and a sector block is built
-row by row without ever forming a 2^n x 2^n matrix.
+over blocks of rows without ever forming a 2^n x 2^n matrix. A group's value on row y depends
+only on y's bits in S = xm | (its zm's), so for |S| <= TABLE_BITS it is a lookup in a table of
+2^|S| values; the diagonal (Z strings of at most two qubits) is c0 + z.h + z^T C z with
+z_i = (-1)^bit_i (measured: the 20-spin central sector, 18.7 M entries, built 1.3-1.7x faster
+than group by group with popcounts, the 18-spin one 1.7x).
 
 Sectors here are lean: a sector is the list of basis indices with the same number of down spins
 (bits set) per isotope (the same sectors as qhl.exact.sectors, found with popcounts instead of a 2^n x n
@@ -132,6 +136,151 @@ def _group_values(states, xm, terms):
     return cols, val
 
 
+TABLE_BITS = 4          # groups whose values depend on at most this many bits use a lookup table
+
+
+def _group_table(xm, terms):
+    """(bit positions S, values over the 2^|S| patterns of those bits) when every term's Z bits
+    lie in S = xm | zm...: then <y ^ xm| terms |y> depends on y's bits in S only (the sign
+    (-1)^popcount((y ^ xm) & zm) does). None when |S| > TABLE_BITS."""
+    smask = xm
+    for zm, _ in terms:
+        smask |= zm
+    bits = [b for b in range(smask.bit_length()) if smask >> b & 1]
+    if len(bits) > TABLE_BITS:
+        return None
+    table = np.zeros(1 << len(bits), complex)
+    for p in range(table.size):
+        y = sum(((p >> i) & 1) << b for i, b in enumerate(bits))
+        table[p] = sum(c * (1 - 2 * (bin((y ^ xm) & zm).count("1") & 1)) for zm, c in terms)
+    return bits, table
+
+
+def _diagonal_form(terms, n):
+    """(c0, h (n,), C (n, n)) with <y| sum_terms |y> = c0 + z.h + z^T C z, z_i = (-1)^bit_i(y), for
+    real Z terms of at most two qubits (C symmetric, zero diagonal), or None otherwise."""
+    c0, h1, cc = 0.0, np.zeros(n), np.zeros((n, n))
+    for zm, c in terms:
+        q = [b for b in range(n) if zm >> b & 1]
+        if c.imag != 0 or len(q) > 2:
+            return None
+        if not q:
+            c0 += c.real
+        elif len(q) == 1:
+            h1[q[0]] += c.real
+        else:
+            cc[q[0], q[1]] += 0.5 * c.real
+            cc[q[1], q[0]] += 0.5 * c.real
+    return c0, h1, cc
+
+
+def _diagonal_values(states, form, n):
+    """The diagonal c0 + z.h + z^T C z of the rows `states` (dense products; _diagonal_form)."""
+    c0, h1, cc = form
+    z = 1.0 - 2.0 * ((states[:, None] >> np.arange(n, dtype=states.dtype)) & 1)
+    return c0 + z @ h1 + np.einsum("ri,ri->r", z @ cc, z)
+
+
+def _real_values(val):
+    if np.iscomplexobj(val):
+        if np.any(np.abs(val.imag) > 1e-12 * max(1.0, float(np.max(np.abs(val), initial=0.0)))):
+            raise QhlInputError("the typical engine needs a real Hamiltonian (no y-axis terms)",
+                                key="hamiltonian")
+        val = val.real
+    return val
+
+
+def _flip_leaves(space, bits, xm, p):
+    """True when flipping xm on pattern p (bits S) changes some isotope's down count."""
+    y = sum(((p >> i) & 1) << b for i, b in enumerate(bits))
+    return any(bin((y ^ xm) & m).count("1") != bin(y & m).count("1") for m in space.masks)
+
+
+class _BuildPlan:
+    """How sector_matrix evaluates the groups of one operator on blocks of rows.
+
+    Column 0 (when present) is the diagonal: a quadratic form in z_i = +-1 (Z strings of at most
+    two qubits). Groups whose values depend on at most TABLE_BITS bits (_group_table: offsets,
+    Ising, flip-flop and the other NMR terms) are looked up in one flat table per block of rows,
+    at offset(group) + sum_i bit_(S_i)(y) 2^i (bits shifted out of y for all groups at once;
+    unused slots of S point at bit 62, always 0). Any other group is evaluated term by term with
+    popcounts (_group_values). Tables are real-checked once, when the plan is made."""
+
+    def __init__(self, space, groups, tol):
+        n = space.n
+        self.space, self.tol, self.n = space, tol, n
+        self.diag_form = None
+        self.generic = []                       # [(xm, terms)]
+        tabled = []                             # [(xm, bits, table)]
+        for xm, terms in groups.items():
+            if xm == 0:
+                self.diag_form = _diagonal_form(terms, n)
+                if self.diag_form is not None:
+                    continue
+            tab = None if xm == 0 else _group_table(xm, terms)
+            if tab is None:
+                self.generic.append((xm, terms))
+            else:
+                tabled.append((xm, tab[0], _real_values(tab[1])))
+        self.width = max([len(b) for _, b, _ in tabled], default=0)
+        g = len(tabled)
+        self.sel = np.full((max(self.width, 1), g), 62, np.int64)       # bit 62: always zero
+        flat, leave = [], []
+        self.offset = np.zeros(g, np.int64)
+        for j, (xm, bits, table) in enumerate(tabled):
+            self.sel[:len(bits), j] = bits
+            self.offset[j] = sum(t.size for t in flat)
+            full = np.zeros(1 << self.width)
+            full[:table.size] = table
+            flat.append(full)
+            leave.append([bool(space.masks) and abs(full[p]) > tol and p < table.size
+                          and _flip_leaves(space, bits, xm, p) for p in range(full.size)])
+        self.table = np.concatenate(flat) if flat else np.zeros(0)
+        self.leave_table = np.array(sum(leave, []), bool) if leave else np.zeros(0, bool)
+        self.any_leave = bool(self.leave_table.any())
+        n_diag = 1 if self.diag_form is not None else 0
+        self.xm = np.array([0] * n_diag + [xm for xm, _ in self.generic] + [xm for xm, _, _ in tabled], np.int64)
+        self.first_table = n_diag + len(self.generic)
+        self.n_diag = n_diag
+
+    def rows_per_block(self):
+        # blocks of about 2^17 values (1 MiB arrays): larger temporaries cost page faults on
+        # every fresh allocation (measured 6 ns per value at 2^17 against 36 ns at 2^19, 18 spins)
+        return int(max(64, (1 << 17) // max(self.xm.size, 1)))
+
+    def evaluate(self, y, key):
+        """(values (B, G), kept (B, G)) for the rows y (basis indices) of one block."""
+        g0 = self.first_table
+        vals = np.empty((y.size, self.xm.size))
+        if self.n_diag:
+            vals[:, 0] = _diagonal_values(y, self.diag_form, self.n)
+        for j, (xm, terms) in enumerate(self.generic):
+            cols, val = _group_values(y, xm, terms)
+            val = _real_values(val)
+            vals[:, self.n_diag + j] = val
+            if self.space.masks and xm:
+                keep = np.abs(val) > self.tol
+                if not np.all(self.space.key_of(cols[keep]) == key):
+                    raise QhlInputError("a term connects different magnetisation sectors", key="hamiltonian")
+        if self.xm.size > g0:
+            yc = y[:, None]
+            idx = np.right_shift(yc, self.sel[0])
+            idx &= 1
+            tmp = np.empty_like(idx)
+            for i in range(1, self.width):
+                np.right_shift(yc, self.sel[i], out=tmp)
+                tmp &= 1
+                tmp <<= i
+                idx |= tmp
+            del tmp
+            idx += self.offset
+            vals[:, g0:] = self.table.take(idx)
+            if self.any_leave and np.any(self.leave_table.take(idx)):
+                raise QhlInputError("a term connects different magnetisation sectors", key="hamiltonian")
+        kept = np.abs(vals) > self.tol
+        return vals, kept
+
+
 def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: float = 0.0,
                   bounds: bool = False, dtype=np.float64):
     """The block of the operator `groups` on sector k as a real CSR matrix (int32 indices).
@@ -141,55 +290,44 @@ def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: fl
     "Matrix Analysis", 2nd ed., 2013, thm. 6.1.1).
 
     Raises QhlInputError when the operator is complex or connects sector k to another sector.
-    Two passes over the groups (count, then fill) keep the peak memory at the CSR itself.
+    Two passes over blocks of rows (count the entries of every row, then fill the CSR block by
+    block, contiguously) keep the peak memory at the CSR itself plus one block; the values come
+    from _BuildPlan (lookup tables over the few bits a group depends on, the diagonal as a
+    quadratic form), checked against qiskit's dense matrices in the tests.
     dtype: of the stored entries (np.float32 halves the data; the bounds are computed in double).
     """
     st = space.states(k) if states is None else states
     d = st.size
     lut = space.rank_table()
     key = space.label_key(space.labels[k]) if space.masks else 0
+    plan = _BuildPlan(space, groups, tol)
+    step = plan.rows_per_block()
     counts = np.zeros(d, np.int64)
-    keep_of = {}
-    for xm, terms in groups.items():
-        cols, val = _group_values(st, xm, terms)
-        if np.iscomplexobj(val):
-            if np.any(np.abs(val.imag) > 1e-12 * max(1.0, float(np.max(np.abs(val))))):
-                raise QhlInputError("the typical engine needs a real Hamiltonian (no y-axis terms)",
-                                    key="hamiltonian")
-            val = val.real
-        keep = np.abs(val) > tol
-        if space.masks and xm:
-            inside = space.key_of(cols[keep]) == key
-            if not np.all(inside):
-                raise QhlInputError("a term connects different magnetisation sectors", key="hamiltonian")
-        counts += keep
-        keep_of[xm] = np.packbits(keep)
+    for a in range(0, d, step):
+        counts[a:a + step] = plan.evaluate(st[a:a + step], key)[1].sum(axis=1)
     indptr = np.zeros(d + 1, np.int64)
     np.cumsum(counts, out=indptr[1:])
     del counts
     nnz = int(indptr[-1])
     idx_dtype = np.int32 if nnz < 2**31 else np.int64
-    indptr = indptr.astype(idx_dtype)
     indices = np.empty(nnz, idx_dtype)
     data = np.empty(nnz, dtype)
-    fill = indptr[:-1].astype(np.int64)
     diag = np.zeros(d) if bounds else None
     offabs = np.zeros(d) if bounds else None
-    for xm in list(keep_of):
-        terms = groups[xm]
-        rows = np.flatnonzero(np.unpackbits(keep_of.pop(xm), count=d))
-        cols, val = _group_values(st[rows], xm, terms)
-        val = np.real(val)
-        pos = fill[rows]
-        indices[pos] = lut[cols]
-        data[pos] = val
-        fill[rows] += 1
+    for a in range(0, d, step):
+        y = st[a:a + step]
+        vals, kept = plan.evaluate(y, key)
+        flat = np.flatnonzero(kept)             # row-major: the block's entries in CSR order
+        r, g = np.divmod(flat, plan.xm.size)
+        lo, hi = int(indptr[a]), int(indptr[a + y.size])
+        indices[lo:hi] = lut.take(y.take(r) ^ plan.xm.take(g))
+        data[lo:hi] = vals.ravel().take(flat)
         if bounds:
-            if xm == 0:
-                diag[rows] = val
-            else:
-                offabs[rows] += np.abs(val)
-    mat = sps.csr_matrix((data, indices, indptr), shape=(d, d))
+            if plan.n_diag:
+                diag[a:a + y.size] = vals[:, 0]
+            offabs[a:a + y.size] = np.where(kept[:, plan.n_diag:], np.abs(vals[:, plan.n_diag:]), 0.0).sum(axis=1)
+        del vals, kept, flat, r, g
+    mat = sps.csr_matrix((data, indices, indptr.astype(idx_dtype)), shape=(d, d))
     mat.sort_indices()                      # in place; sorted columns make the products faster
     if not bounds:
         return mat
