@@ -226,10 +226,9 @@ class _BuildPlan:
         g = len(tabled)
         self.sel = np.full((max(self.width, 1), g), 62, np.int64)       # bit 62: always zero
         flat, leave = [], []
-        self.offset = np.zeros(g, np.int64)
+        self.offset = np.arange(g, dtype=np.int64) << self.width     # every table padded to 2^width
         for j, (xm, bits, table) in enumerate(tabled):
             self.sel[:len(bits), j] = bits
-            self.offset[j] = sum(t.size for t in flat)
             full = np.zeros(1 << self.width)
             full[:table.size] = table
             flat.append(full)

@@ -41,7 +41,8 @@ larger once the signal has decayed, i.e. at equal cost (the pair scheme propagat
 rows per replica) the same or smaller everywhere. psi is built in the full 2^n space (double,
 2^n x R) and cut into sectors; O = I+ then pairs sector s with p = s - 1 down, taken in chain
 order so that only two sectors' outputs are held at once. With several time windows every
-sector's restart state is kept (2^n x 2M); where that does not fit, "auto" takes "pairs".
+sector's restart state is kept (2^n x 2M) and its matrix is built again in each window (one matrix
+held at a time; its Lanczos bounds are kept); where the states do not fit, "auto" takes "pairs".
 
 Error. One *replica* is one random vector per sector pair; the engine draws R independent
 replicas (seeded), returns their mean and the standard error std_R / sqrt(R) of the real and
@@ -282,7 +283,6 @@ class TypicalEngine:
             raise QhlInputError("scheme 'positive' needs a Hamiltonian that conserves the observed isotope's "
                                 "magnetisation (this one mixes sectors); use 'pairs' or 'auto'", key="scheme")
         self.scheme = scheme
-        self.last_scheme = None
         self.start = start
         self.precision = precision
         self.threads = None if threads is None else max(1, int(threads))
@@ -317,8 +317,7 @@ class TypicalEngine:
         sp = self.space
         if not sp.masks:
             return [(0, 0)]
-        q = self.observed[0]
-        g = next(i for i, m in enumerate(sp.masks) if m >> q & 1)
+        g = self._observed_group()
         index = {lab: k for k, lab in enumerate(sp.labels)}
         pairs = []
         for k, lab in enumerate(sp.labels):
@@ -470,7 +469,6 @@ class TypicalEngine:
             self._positive_scheme(run, ts, order, rep_s, rep_g)
         else:
             self._pair_scheme(run, ts, order, rep_s, rep_g)
-        self.last_scheme = scheme
         rep_s /= self.norm
         rep_g /= self.norm
         sr, si = _stderr(rep_s)
@@ -496,7 +494,7 @@ class TypicalEngine:
 
     def _pair_scheme(self, run, ts, order, rep_s, rep_g):
         """Two propagations per sector pair: r in sector p and rho0_sp r in sector s."""
-        sp, R, P = self.space, run.R, run.P
+        sp, R = self.space, run.R
         T = ts.size
         total = float(sum(sp.dims[s] + sp.dims[p] for s, p in self.blocks))
         done = 0.0
@@ -510,7 +508,7 @@ class TypicalEngine:
                 lower = lower + ladder_block(sp, s, p, self.observed, raising=True, row_states=st_s,
                                              col_states=st_p)
             re, im = self._random_vectors(bi, dp)
-            m = R * (1 + P)
+            m = run.m
             real = im is None                      # real start: M columns until the first restart
             xa = run.start(dp, real)
             xb = run.start(ds, real)
@@ -542,9 +540,8 @@ class TypicalEngine:
 
     def _positive_scheme(self, run, ts, order, rep_s, rep_g):
         """One propagation per sector: psi = sqrt(rho0+) r (module docstring, 'One propagation')."""
-        sp, R, P = self.space, run.R, run.P
+        sp, R, m = self.space, run.R, run.m
         T = ts.size
-        m = R * (1 + P)
         w = self._window(max(sp.dims[s] + sp.dims[p] for s, p in self.blocks), m, T)
         psi0 = self._positive_start()
         seq = self._chain_order()
@@ -601,6 +598,7 @@ class TypicalEngine:
                       key=lambda k: (sp.labels[k][:g] + sp.labels[k][g + 1:], sp.labels[k][g]))
 
     def _observed_group(self):
+        """Index of the observed isotope's group in the sector labels."""
         q = self.observed[0]
         return next(i for i, mk in enumerate(self.space.masks) if mk >> q & 1)
 
