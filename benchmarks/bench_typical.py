@@ -9,9 +9,9 @@ fewest that give an error bar). Usage:
                                        [--start real|phase] [--variants threads=1 precision=single ...]
 
 Every case runs in a fresh process (peak RSS per case). --against DIR also times the qhl tree in
-DIR (for example `git archive <commit> qhl | tar -x -C DIR`) on the same case right after, so
-old and new are measured side by side under the same load; the ratio column is its CPU time
-over this tree's.
+DIR (for example `git archive <commit> qhl | tar -x -C DIR`) on the same case right after, with
+the same start vectors and engine options (the first variant), so old and new are measured side
+by side under the same load; the ratio column is its CPU time over this tree's.
 
 --variants runs each size once per engine option set (comma-separated key=value pairs for
 TypicalEngine, e.g. `threads=1`, `precision=single,threads=2`), right after each other; the
@@ -107,8 +107,8 @@ def main():
     cal = calibrate()
     print(f"calibration: c_term {cal.c_term:.3g} s/(nnz col), c_build {cal.c_build:.3g} s/nnz, "
           f"c_eigh {cal.c_eigh:.3g} s/d^3; load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
-    extra = (f" {'against CPU (s)':>16} {'against/this':>13} {'its stderr':>11} {'its RSS (GiB)':>14}"
-             if args.against else "")
+    extra = (f" {'against wall (s)':>17} {'against CPU (s)':>16} {'against/this':>13} {'its stderr':>11} "
+             f"{'its RSS (GiB)':>14}" if args.against else "")
     print(f"{'n':>3} {'predicted (s)':>14} {'wall (s)':>10} {'CPU (s)':>10} {'CPU/pred':>9} "
           f"{'peak RSS (GiB)':>15} {'max stderr':>11}{extra}")
     ratio = None
@@ -129,8 +129,10 @@ def main():
         line = (f"{n:>3} {pred['seconds']:>14.4g} {r['wall']:>10.4g} {r['cpu']:>10.4g} {ratio:>9.2f} "
                 f"{r['rss']:>15.3g} {r['stderr']:>11.2e}")
         if args.against:
-            o = case(args.against, n, args.replicas, None)
-            line += f" {o['cpu']:>16.4g} {o['cpu'] / r['cpu']:>13.2f} {o['stderr']:>11.2e} {o['rss']:>14.3g}"
+            # the other tree with the same start and engine options (first variant) as this one
+            o = case(args.against, n, args.replicas, args.start, args.variants[0])
+            line += (f" {o['wall']:>17.4g} {o['cpu']:>16.4g} {o['cpu'] / r['cpu']:>13.2f} {o['stderr']:>11.2e} "
+                     f"{o['rss']:>14.3g}")
         print(line + f"   [{args.variants[0] or 'defaults'}]", flush=True)
         ref = np.array(r["signal"])
         for v in args.variants[1:]:

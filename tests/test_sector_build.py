@@ -86,3 +86,44 @@ def test_terms_leaving_a_sector_and_complex_entries_are_refused():
     # without sectors (one space) the same XX term is fine and equals the dense matrix
     full = SectorSpace(("1H",) * n, conserving=False)
     np.testing.assert_allclose(sector_matrix(full, 0, pauli_groups(leave)).toarray(), leave.to_matrix().real)
+
+
+def test_blocks_bounds_and_sorting_on_threads_equal_the_serial_build(monkeypatch):
+    # the build's blocks (forced small here: many blocks) and the column sort by row parts run on
+    # a thread pool; every block writes its own rows, so the CSR arrays and the Gershgorin bounds
+    # must equal the serial build's exactly, and both qiskit's dense sector block
+    import qhl.exact.chebyshev as cheb
+    from concurrent.futures import ThreadPoolExecutor
+    from qhl.exact import sector_operators as so
+    monkeypatch.setattr(so._BuildPlan, "rows_per_block", lambda self: 7)
+    monkeypatch.setattr(cheb, "MIN_PART_ROWS", 5)
+    n = 8
+    op = _operator(n, np.random.default_rng(11))
+    space = SectorSpace(("1H",) * n)
+    groups = pauli_groups(op)
+    with ThreadPoolExecutor(3) as pool:
+        for k in (2, 4):
+            st = space.states(k)
+            ser, lo_s, hi_s = sector_matrix(space, k, groups, bounds=True, dtype=np.float32)
+            par, lo_p, hi_p = sector_matrix(space, k, groups, bounds=True, dtype=np.float32, pool=pool, threads=3)
+            assert len(cheb.row_parts(st.size, 3)) == 3
+            assert par.has_sorted_indices and np.all(np.diff(par.indices[par.indptr[0]:par.indptr[1]]) > 0)
+            for name in ("indptr", "indices", "data"):
+                np.testing.assert_array_equal(getattr(par, name), getattr(ser, name))
+            assert (lo_p, hi_p) == (lo_s, hi_s)
+            np.testing.assert_allclose(par.toarray(), _dense_sector(op, st).real, atol=1e-4 * np.abs(op.coeffs).max())
+
+
+def test_lanczos_products_on_threads_give_the_same_interval(monkeypatch):
+    # row-part products compute every row as the one product does: identical Ritz values
+    import qhl.exact.chebyshev as cheb
+    from concurrent.futures import ThreadPoolExecutor
+    monkeypatch.setattr(cheb, "MIN_PART_ROWS", 5)
+    n = 8
+    space = SectorSpace(("1H",) * n)
+    mat = sector_matrix(space, 4, pauli_groups(_operator(n, np.random.default_rng(5))), dtype=np.float32)
+    with ThreadPoolExecutor(2) as pool:
+        assert cheb.lanczos_bounds(mat, pool=pool, threads=2) == cheb.lanczos_bounds(mat)
+    e = np.linalg.eigvalsh(mat.toarray().astype(float))
+    lo, hi = cheb.lanczos_bounds(mat)
+    assert lo < e[0] + 0.05 * (e[-1] - e[0]) and hi > e[-1] - 0.05 * (e[-1] - e[0])   # near the true edges

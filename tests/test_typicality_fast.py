@@ -73,15 +73,18 @@ def test_single_precision_within_its_error_of_double():
     assert max(zr.max(), zi.max()) < 6.0
 
 
-@pytest.mark.parametrize("start", ["real", "phase"])
-def test_threads_give_the_same_estimate(monkeypatch, start):
-    # row-split products on 3 threads against one thread, same seeds: the same arithmetic on the
-    # same rows, so equal to 1e-12 (relative to S(0) = 1); a small window forces restarts
+@pytest.mark.parametrize("start,scheme", [("real", "auto"), ("phase", "auto"), ("real", "pairs")])
+def test_threads_give_the_same_estimate(monkeypatch, start, scheme):
+    # row-split products, the sector build's blocks, the Lanczos products and the per-time inner
+    # products on 3 threads against one thread, same seeds: the same arithmetic on the same rows
+    # and times, so equal to 1e-12 (relative to S(0) = 1); a small window forces restarts
+    from qhl.exact import sector_operators as so
     monkeypatch.setattr(cheb, "MIN_PART_ROWS", 20)
+    monkeypatch.setattr(so._BuildPlan, "rows_per_block", lambda self: 50)
     c = invented_cluster(10)
     m = build_model(c)
     names = [m.free[1], m.free[-2]]
-    kw = dict(replicas=3, seed=2, start=start, window_bytes=4e5)
+    kw = dict(replicas=3, seed=2, start=start, window_bytes=4e5, scheme=scheme)
     one = TypicalEngine(m, threads=1, **kw).estimate(EXP, gradient=True, parameters=names)
     three = TypicalEngine(m, threads=3, **kw).estimate(EXP, gradient=True, parameters=names)
     assert cheb.row_parts(252, 3) == [(0, 84), (84, 168), (168, 252)]

@@ -248,7 +248,7 @@ def chebyshev_window(apply, x0, taus, lo: float, hi: float, tol: float = 1e-10, 
     return out
 
 
-def lanczos_bounds(mat, steps: int = 30, seed: int = 0):
+def lanczos_bounds(mat, steps: int = 30, seed: int = 0, pool=None, threads: int = 1):
     """Estimated (lo, hi) of a real symmetric matrix: extreme Ritz values of a short Lanczos run
     (C. Lanczos, J. Res. Natl. Bur. Stand. 45, 255 (1950)) widened by their residuals plus 2 %
     of the width. An estimate, not a bound: callers check the norm after propagation and fall
@@ -256,6 +256,8 @@ def lanczos_bounds(mat, steps: int = 30, seed: int = 0):
     A float32 matrix is multiplied with float32 copies of the Lanczos vectors (scipy would
     otherwise convert the whole matrix to float64 at every product); the recursion stays in
     float64, and the product's rounding (~1e-7 of the norm) is far inside the 2 % margin.
+    pool, threads: optional executor: the products run by row parts (row_parts) on its threads;
+    every row is computed as in one product, so the result does not depend on the threads.
     """
     d = mat.shape[0]
     if d <= 2:
@@ -267,8 +269,20 @@ def lanczos_bounds(mat, steps: int = 30, seed: int = 0):
     v_prev = np.zeros(d)
     alpha, beta = [], []
     b = 0.0
+    parts = row_parts(d, threads if pool is not None else 1)
+    subs = [csr_rows(mat, r0, r1) for r0, r1 in parts]
+    prod = np.empty(d, mat.dtype)
+
+    def times(x):
+        if len(parts) == 1:
+            return mat @ x
+        xc = np.ascontiguousarray(x)
+        for _ in pool.map(lambda i: _matvec_into(subs[i], xc, prod[parts[i][0]:parts[i][1]]), range(len(parts))):
+            pass
+        return prod
+
     for _ in range(min(steps, d)):
-        wv = (mat @ v.astype(mat.dtype)).astype(float) - b * v_prev
+        wv = times(v.astype(mat.dtype)).astype(float) - b * v_prev
         a = float(v @ wv)
         wv -= a * v
         alpha.append(a)

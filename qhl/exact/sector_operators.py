@@ -24,6 +24,7 @@ import numpy as np
 import scipy.sparse as sps
 
 from ..base.errors import QhlInputError
+from .chebyshev import csr_rows, row_parts
 
 __all__ = ["SectorSpace", "pauli_groups", "sector_matrix", "ladder_block", "csr_bytes"]
 
@@ -280,8 +281,14 @@ class _BuildPlan:
         return vals, kept
 
 
+def _each(pool, fn, items):
+    """fn(item) for every item, on the pool's threads when one is given (results discarded)."""
+    for _ in (map(fn, items) if pool is None else pool.map(fn, items)):
+        pass
+
+
 def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: float = 0.0,
-                  bounds: bool = False, dtype=np.float64):
+                  bounds: bool = False, dtype=np.float64, pool=None, threads: int = 1):
     """The block of the operator `groups` on sector k as a real CSR matrix (int32 indices).
 
     With bounds=True also returns the Gershgorin bounds (lo, hi) of its spectrum:
@@ -294,6 +301,9 @@ def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: fl
     from _BuildPlan (lookup tables over the few bits a group depends on, the diagonal as a
     quadratic form), checked against qiskit's dense matrices in the tests.
     dtype: of the stored entries (np.float32 halves the data; the bounds are computed in double).
+    pool, threads: optional concurrent.futures executor and its thread count: the blocks of both
+    passes and the sorting of the column indices (by `threads` row parts) run on its threads (numpy's operations on the blocks and scipy's
+    sort release the GIL; every block writes its own rows, so the matrix is the same).
     """
     st = space.states(k) if states is None else states
     d = st.size
@@ -301,9 +311,12 @@ def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: fl
     key = space.label_key(space.labels[k]) if space.masks else 0
     plan = _BuildPlan(space, groups, tol)
     step = plan.rows_per_block()
+    starts = range(0, d, step)
     counts = np.zeros(d, np.int64)
-    for a in range(0, d, step):
+
+    def count(a):
         counts[a:a + step] = plan.evaluate(st[a:a + step], key)[1].sum(axis=1)
+    _each(pool, count, starts)
     indptr = np.zeros(d + 1, np.int64)
     np.cumsum(counts, out=indptr[1:])
     del counts
@@ -313,7 +326,8 @@ def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: fl
     data = np.empty(nnz, dtype)
     diag = np.zeros(d) if bounds else None
     offabs = np.zeros(d) if bounds else None
-    for a in range(0, d, step):
+
+    def fill(a):
         y = st[a:a + step]
         vals, kept = plan.evaluate(y, key)
         flat = np.flatnonzero(kept)             # row-major: the block's entries in CSR order
@@ -325,9 +339,15 @@ def sector_matrix(space: SectorSpace, k: int, groups: dict, states=None, tol: fl
             if plan.n_diag:
                 diag[a:a + y.size] = vals[:, 0]
             offabs[a:a + y.size] = np.where(kept[:, plan.n_diag:], np.abs(vals[:, plan.n_diag:]), 0.0).sum(axis=1)
-        del vals, kept, flat, r, g
+    _each(pool, fill, starts)
     mat = sps.csr_matrix((data, indices, indptr.astype(idx_dtype)), shape=(d, d))
-    mat.sort_indices()                      # in place; sorted columns make the products faster
+    # sorted columns make the products faster; in place, by row parts on the pool's threads
+    parts = row_parts(d, threads if pool is not None else 1)
+    if len(parts) > 1:
+        _each(pool, lambda p: csr_rows(mat, *p).sort_indices(), parts)
+        mat.has_sorted_indices = True
+    else:
+        mat.sort_indices()
     if not bounds:
         return mat
     lo = float(np.min(diag - offabs)) if d else 0.0

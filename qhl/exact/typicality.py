@@ -481,7 +481,8 @@ class TypicalEngine:
 
     @staticmethod
     def _accumulate(rep_s, rep_g, column, out_p, out_s, raise_op, j, weight=1.0):
-        """Add weight * <out_p[j]| O_ps |out_s[j]> (and its parameter derivatives) to time `column`."""
+        """Add weight * <out_p[j]| O_ps |out_s[j]> (and its parameter derivatives) to time `column`
+        (only that column is written: calls for different times may run on separate threads)."""
         dp = out_p.shape[1]
         ob = (raise_op @ np.asarray(out_s[j], complex).view(float)).view(complex)  # (dp, m)
         P = rep_g.shape[1]
@@ -529,8 +530,8 @@ class TypicalEngine:
                     run.drop(p)
                 out_b = run.propagate(s, xb, taus, real)
                 real = False                       # restarts carry complex states
-                for j, ti in enumerate(range(sl.start, sl.stop)):
-                    self._accumulate(rep_s, rep_g, order[ti], out_a, out_b, raise_op, j)
+                run.each(lambda j: self._accumulate(rep_s, rep_g, order[sl.start + j], out_a, out_b, raise_op, j),
+                         range(sl.stop - sl.start))
                 xa, xb = _restart(out_a), _restart(out_b)
                 tc = ts[sl.stop - 1]
                 del out_a, out_b
@@ -575,8 +576,8 @@ class TypicalEngine:
                 if p is not None and p == prev:
                     raise_op = ladder_block(sp, p, k, self.observed, raising=True, row_states=prev_states,
                                             col_states=st)
-                    for j, ti in enumerate(range(sl.start, sl.stop)):
-                        self._accumulate(rep_s, rep_g, order[ti], prev_out, out, raise_op, j, 2.0)
+                    run.each(lambda j: self._accumulate(rep_s, rep_g, order[sl.start + j], prev_out, out, raise_op,
+                                                        j, 2.0), range(sl.stop - sl.start))
                     del raise_op
                 prev, prev_out, prev_states = k, out, st
                 del out
@@ -696,6 +697,17 @@ class _SectorRun:
             self._states[k] = self.eng.space.states(k)
         return self._states[k]
 
+    @property
+    def parallel(self):
+        """The pool when there are threads to share work among, else None."""
+        return self.pool if self.threads > 1 else None
+
+    def each(self, fn, items):
+        """fn(item) for every item, on the pool's threads when there are several (results discarded;
+        every call must write its own output: _accumulate writes its own time column)."""
+        for _ in (map(fn, items) if self.parallel is None else self.pool.map(fn, items)):
+            pass
+
     def start(self, d, real):
         """Zeroed start array of a sector: (d, M) real, or (d, 2M) [Re | Im]."""
         return np.zeros((d, self.m if real else 2 * self.m), self.rdt, order="F")
@@ -709,11 +721,12 @@ class _SectorRun:
                 del self.cache[old]
             eng, sp = self.eng, self.eng.space
             st = self.states(k)
-            mat, glo, ghi = sector_matrix(sp, k, self.h_groups, states=st, bounds=True, dtype=self.rdt)
+            par = dict(pool=self.parallel, threads=self.threads)
+            mat, glo, ghi = sector_matrix(sp, k, self.h_groups, states=st, bounds=True, dtype=self.rdt, **par)
             if k not in self.bounds:
-                llo, lhi = lanczos_bounds(mat, seed=eng.seed)
+                llo, lhi = lanczos_bounds(mat, seed=eng.seed, **par)
                 self.bounds[k] = [max(glo, llo), min(ghi, lhi), (glo, ghi)]
-            gens = [sector_matrix(sp, k, g, states=st, dtype=self.rdt) for g in self.g_groups]
+            gens = [sector_matrix(sp, k, g, states=st, dtype=self.rdt, **par) for g in self.g_groups]
             parts = row_parts(st.size, self.threads)
             self.cache[k] = {flag: _Augmented(mat, gens, self.R, self.m, flag, parts) for flag in (True, False)}
         return self.cache[k]
