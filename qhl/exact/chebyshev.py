@@ -39,12 +39,54 @@ import numpy as np
 from scipy.special import jv
 
 __all__ = ["chebyshev_window", "chebyshev_terms", "lanczos_bounds", "sparse_times", "RowApply",
-           "row_parts", "csr_rows", "PRECISIONS"]
+           "row_parts", "csr_rows", "PRECISIONS", "Workspace"]
 
 MULTI_COLUMNS = 5
 MIN_PART_ROWS = 4000
 FLUSH_ROWS = 1 << 15        # rows per product when stored terms are added to the outputs
+# Lanczos steps of lanczos_bounds: measured at 18 spins (sectors of 816, 18,564 and 48,620 states,
+# the benchmark cluster) the Chebyshev term count at tol 1e-8 with 20 steps is that of 30 steps to
+# one term (89/89, 103/102, 102/102; 10 steps: 89, 103, 104), every interval containing scipy
+# eigsh's extreme eigenvalues; each step is one one-column product, a third saved.
+LANCZOS_STEPS = 20
 PRECISIONS = {"double": (np.float64, np.complex128), "single": (np.float32, np.complex64)}
+
+
+class Workspace:
+    """Named arrays kept from call to call and handed out as views (the engines' large buffers).
+
+    An array of more than 32 MiB gets its own fresh mapping from the C allocator (glibc's largest
+    mmap threshold), and every 4 KiB page of a fresh mapping is faulted in and zeroed by the kernel
+    when first written: about 5 us per page on this virtual machine, 1.4 s per GiB of system time.
+    The typical engine's outputs (64 time points of a sector) and the flush products are of that
+    size and were allocated once per sector or per flush; measured at 20 spins (2 replicas, single
+    precision, 2 threads) 5.0 GiB of page faults and 6.9 s of system time in a 27 s run. A
+    Workspace keeps one buffer per name, grown when a larger one is asked for, so each page is
+    faulted once per estimate instead of once per sector.
+    The caller owns the lifetime: a view is valid until the same name is taken again.
+    """
+
+    def __init__(self):
+        self._bufs = {}
+
+    def take(self, name, shape, dtype, zero: bool = False):
+        """A C-contiguous array of `shape` and `dtype` on the buffer `name` (zero-filled if asked)."""
+        dtype = np.dtype(dtype)
+        n = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+        buf = self._bufs.get(name)
+        if buf is None or buf.nbytes < n:
+            self._bufs.pop(name, None)
+            del buf
+            buf = self._bufs[name] = np.empty(max(n, 1), np.uint8)
+        arr = buf[:n].view(dtype).reshape(shape)
+        if zero:
+            arr.fill(0)
+        return arr
+
+    def reserve(self, name, shape, dtype):
+        """Grow buffer `name` to hold `shape` of `dtype` now (one allocation instead of one per
+        growth when the sizes asked for rise step by step)."""
+        self.take(name, shape, dtype)
 
 
 def _matvec_kernel():
@@ -146,7 +188,7 @@ def chebyshev_terms(w_tau_max: float, tol: float, derivative: bool = True) -> in
 
 def chebyshev_window(apply, x0, taus, lo: float, hi: float, tol: float = 1e-10, on_term=None,
                      block: int = 16, real: bool = False, derivative: bool = True,
-                     precision: str = "double", pool=None):
+                     precision: str = "double", pool=None, work=None, slot: str = "out"):
     """exp(-i A tau) x0 for each offset tau in `taus` (one shared series).
 
     Args:
@@ -163,6 +205,12 @@ def chebyshev_window(apply, x0, taus, lo: float, hi: float, tol: float = 1e-10, 
         precision: "double" or "single" (float32 vectors, terms and outputs; the caller's
             operator should then hold float32 data).
         pool: optional concurrent.futures executor that runs the row parts of `apply`.
+        work, slot: optional Workspace: the outputs are a view of its buffer `slot` (valid until
+            that slot is taken again), and the flush products use its buffers "flush<i>". The
+            buffer of waiting terms stays a fresh array per call: held between calls it stays
+            alive while the caller builds the next matrix and sums its inner products (a tried
+            version that also held it and the CSR arrays peaked at 3.28 GiB at 22 spins, against
+            2.61 GiB with this split).
 
     Returns:
         complex array (len(taus), d, M) (complex64 for precision="single").
@@ -185,35 +233,45 @@ def chebyshev_window(apply, x0, taus, lo: float, hi: float, tol: float = 1e-10, 
     else:
         parts, rows_of = [(0, d)], (lambda y, i: apply(y))
     nt = taus.size
-    out = np.zeros((nt, d, m), cdt)
+    if work is None:
+        work = Workspace()
+    out = work.take(slot, (nt, d, m), cdt, zero=True)
+    rows = min(FLUSH_ROWS, d)
     if real:
         # out = coef^T Y with Y real: one real product of [Re coef | Im coef] (2T rows)
         coef2 = np.ascontiguousarray(np.concatenate([coef.real, coef.imag], axis=1).T, rdt)   # (2T, K)
         buf = np.empty((block, d, m), rdt)
+        prods = [work.take(f"flush{i}", (2 * nt, rows * m), rdt) for i in range(len(parts))]
     else:
         coefc = np.ascontiguousarray(coef.T, cdt)                                             # (T, K)
         buf = np.empty((block, d, m), cdt)
+        prods = [work.take(f"flush{i}", (nt, rows * m), cdt) for i in range(len(parts))]
     prev = np.array(x0, rdt, order="F")
     cur = np.empty_like(prev)
     c_r, w_r = rdt(c), rdt(w)
 
-    def store(slot, y, r0, r1):
+    def store(pos, y, r0, r1):
         if real:
-            buf[slot, r0:r1] = y
+            buf[pos, r0:r1] = y
         else:
-            buf[slot, r0:r1].real = y[:, :m]
-            buf[slot, r0:r1].imag = y[:, m:]
+            buf[pos, r0:r1].real = y[:, :m]
+            buf[pos, r0:r1].imag = y[:, m:]
 
-    def flush(nb, k0, r0, r1):
+    def flush(nb, k0, r0, r1, i):
+        # products into the part's own buffer (a fresh 2T x FLUSH_ROWS x M result per call would be
+        # a fresh mapping each time: the Workspace docstring)
         for a in range(r0, r1, FLUSH_ROWS):
             b = min(a + FLUSH_ROWS, r1)
             terms = buf[:nb, a:b].reshape(nb, -1)
+            prod = prods[i][:, :(b - a) * m]
             if real:
-                prod = (coef2[:, k0:k0 + nb] @ terms).reshape(2 * nt, b - a, m)
+                np.matmul(coef2[:, k0:k0 + nb], terms, out=prod)
+                prod = prod.reshape(2 * nt, b - a, m)
                 out[:, a:b].real += prod[:nt]
                 out[:, a:b].imag += prod[nt:]
             else:
-                out[:, a:b] += (coefc[:, k0:k0 + nb] @ terms).reshape(nt, b - a, m)
+                np.matmul(coefc[:, k0:k0 + nb], terms, out=prod)
+                out[:, a:b] += prod.reshape(nt, b - a, m)
 
     def part(i, kk):
         r0, r1 = parts[i]
@@ -230,10 +288,10 @@ def chebyshev_window(apply, x0, taus, lo: float, hi: float, tol: float = 1e-10, 
             y *= 2 / w_r
             y -= prev[r0:r1]
             prev[r0:r1] = y
-        slot = kk % block
-        store(slot, y, r0, r1)
-        if slot == block - 1 or kk == K - 1:
-            flush(slot + 1, kk - slot, r0, r1)
+        pos = kk % block
+        store(pos, y, r0, r1)
+        if pos == block - 1 or kk == K - 1:
+            flush(pos + 1, kk - pos, r0, r1, i)
 
     for kk in range(K):
         if pool is not None and len(parts) > 1:
@@ -248,7 +306,7 @@ def chebyshev_window(apply, x0, taus, lo: float, hi: float, tol: float = 1e-10, 
     return out
 
 
-def lanczos_bounds(mat, steps: int = 30, seed: int = 0, pool=None, threads: int = 1):
+def lanczos_bounds(mat, steps: int = LANCZOS_STEPS, seed: int = 0, pool=None, threads: int = 1):
     """Estimated (lo, hi) of a real symmetric matrix: extreme Ritz values of a short Lanczos run
     (C. Lanczos, J. Res. Natl. Bur. Stand. 45, 255 (1950)) widened by their residuals plus 2 %
     of the width. An estimate, not a bound: callers check the norm after propagation and fall

@@ -49,7 +49,7 @@ replicas (seeded), returns their mean and the standard error std_R / sqrt(R) of 
 imaginary parts separately, and 95 % intervals with the Student t quantile at R - 1 degrees of
 freedom (the replica sum over many sector pairs is close to normal). The error of one replica
 falls as 2^(-n/2) (relative): averaging R replicas divides it by sqrt(R) more.
-The Chebyshev cut adds at most `tol` (default 1e-10) per point.
+The Chebyshev cut adds at most `tol` (default 1e-10; 1e-8 with precision="single") per point.
 
 Gradients dS/dh_n use the *same* random vectors (common random numbers) and are exact for them:
 each vector is propagated with the block-triangular operator [[H, 0], [2 pi s_n G_n, H]], whose
@@ -64,6 +64,18 @@ Chebyshev terms and outputs in float32 (inner products summed in double): roundi
 relative error of order K eps_32 ~ 1e-6 (measured |single - double| <= 7e-8 of S(0) at 10-18
 spins), far below the statistical error 2^(-n/2) / sqrt(R). threads split each sector's rows
 (qhl.exact.chebyshev.RowApply); they help on idle cores only.
+
+Buffers. Arrays above 32 MiB are fresh mappings whose pages the kernel faults in one by one
+(about 1.4 s of system time per GiB here; qhl.exact.chebyshev.Workspace). The outputs of this and
+the previous sector (the 64 time points) therefore live in two slots sized once for the largest
+sector, the Chebyshev flush products in per-thread buffers, and the inner products
+<out_p| O_ps |out_s> are summed in double by chunks of ACCUMULATE_ROWS rows (_Raise) instead of
+whole-sector double copies per time point. The sector matrices keep their rows unsorted (the
+products do not need sorted columns; sector_matrix's `sort`). Measured side by side
+(benchmarks/bench_typical.py, 2 replicas, single precision, two threads, fresh processes, the
+tree before against this one): 20 spins 28.8 s against 24.0 s (1.20x), 22 spins 136.8 s against
+104.7 s (1.31x); peak 2.70 against 2.61 GiB at 22 spins; at 22 spins the page faults fell from
+31 GiB to 10 GiB and the system time from 37 s to 18 s.
 """
 
 from concurrent.futures import ThreadPoolExecutor
@@ -78,7 +90,7 @@ from ..base.pages import small_pages
 from ..base.errors import QhlInputError
 from ..base.memory import available_memory_bytes, require_memory
 from ..spins.cluster import refuse_spinning, refuse_steps
-from .chebyshev import PRECISIONS, chebyshev_window, csr_rows, lanczos_bounds, row_parts, sparse_times
+from .chebyshev import PRECISIONS, Workspace, chebyshev_window, csr_rows, lanczos_bounds, row_parts, sparse_times
 from .sector_operators import SectorSpace, csr_bytes, ladder_block, pauli_groups, sector_matrix
 from .sectors import conserves_magnetisation
 
@@ -91,6 +103,8 @@ WINDOW_BYTES = 2.0**30      # stored time points of one Chebyshev window (comple
 MAX_WINDOW_BYTES = 2.0**33  # ... and at most, when window_bytes="auto" finds the memory free
 BLOCK_BYTES = 2.0**29       # the buffer of Chebyshev terms waiting to be added to the outputs
 MAX_WINDOW_POINTS = 64      # a 64-point signal in one window: real start vectors stay real
+DOUBLE_TOL, SINGLE_TOL = 1e-10, 1e-8   # default Chebyshev cut per point, by precision
+ACCUMULATE_ROWS = 1 << 14  # rows per chunk of the inner products <out_p| O_ps |out_s> (_Raise)
 TERM_BLOCK = 64             # Chebyshev terms added to the outputs per product (fewer passes over them)
 
 
@@ -237,7 +251,9 @@ class TypicalEngine:
         replicas: independent random vectors per sector pair (>= 2, for the error estimate).
         seed: seed of the random vectors (the same seed gives the same vectors for signal and
             gradient: common random numbers).
-        tol: Chebyshev cut per point.
+        tol: Chebyshev cut per point; default (None) 1e-10 in double precision and 1e-8 in single,
+            where the rounding of the float32 terms is already larger (measured up to 7e-8 of S(0)):
+            6 fewer terms out of 127 at w tau = 90 (qhl.exact.chebyshev.chebyshev_terms).
         progress: optional callback(fraction_done) called during long runs.
         window_bytes: memory allowed for the stored time points of one Chebyshev window, or
             "auto" (default): the first of window_candidates (all points in one window, else
@@ -266,7 +282,7 @@ class TypicalEngine:
         (192,)
     """
 
-    def __init__(self, model, replicas: int = 4, seed: int = 0, tol: float = 1e-10, progress=None,
+    def __init__(self, model, replicas: int = 4, seed: int = 0, tol: float | None = None, progress=None,
                  window_bytes: float | str = "auto", start: str = "real", precision: str = "double",
                  threads: int | None = None, scheme: str = "auto"):
         if int(replicas) < 2:
@@ -288,7 +304,7 @@ class TypicalEngine:
         self.threads = None if threads is None else max(1, int(threads))
         self.replicas = int(replicas)
         self.seed = int(seed)
-        self.tol = float(tol)
+        self.tol = float(tol) if tol is not None else (SINGLE_TOL if precision == "single" else DOUBLE_TOL)
         self.progress = progress
         self.auto_window = window_bytes == "auto"
         self.window_bytes = WINDOW_BYTES if self.auto_window else float(window_bytes)
@@ -482,16 +498,26 @@ class TypicalEngine:
     @staticmethod
     def _accumulate(rep_s, rep_g, column, out_p, out_s, raise_op, j, weight=1.0):
         """Add weight * <out_p[j]| O_ps |out_s[j]> (and its parameter derivatives) to time `column`
-        (only that column is written: calls for different times may run on separate threads)."""
-        dp = out_p.shape[1]
-        ob = (raise_op @ np.asarray(out_s[j], complex).view(float)).view(complex)  # (dp, m)
+        (only that column is written: calls for different times may run on separate threads).
+        raise_op: a _Raise (O_ps by row chunks) or a CSR matrix."""
+        if not isinstance(raise_op, _Raise):
+            raise_op = _Raise(raise_op, out_s.real.dtype)
         P = rep_g.shape[1]
-        a = np.asarray(out_p[j], complex).reshape(dp, 1 + P, -1)
-        b = ob.reshape(dp, 1 + P, -1)
-        rep_s[:, column] += weight * np.einsum("xr,xr->r", a[:, 0].conj(), b[:, 0])
+        src = out_s[j].view(out_s.real.dtype)                   # (ds, 2m) real: [Re, Im] per column
+        sig = 0.0
+        grd = 0.0
+        for r0, r1, sub in raise_op.chunks:
+            # one chunk of rows at a time, in double (small temporaries: no fresh pages, in cache)
+            ob = (sub @ src).view(out_s.dtype).astype(complex)   # (rows, m) = O_ps out_s[j]
+            a = np.asarray(out_p[j, r0:r1], complex).reshape(r1 - r0, 1 + P, -1)
+            b = ob.reshape(r1 - r0, 1 + P, -1)
+            sig = sig + np.einsum("xr,xr->r", a[:, 0].conj(), b[:, 0])
+            if P:
+                grd = grd + (np.einsum("xpr,xr->rp", a[:, 1:].conj(), b[:, 0])
+                             + np.einsum("xr,xpr->rp", a[:, 0].conj(), b[:, 1:]))
+        rep_s[:, column] += weight * sig
         if P:
-            rep_g[:, :, column] += weight * (np.einsum("xpr,xr->rp", a[:, 1:].conj(), b[:, 0])
-                                             + np.einsum("xr,xpr->rp", a[:, 0].conj(), b[:, 1:]))
+            rep_g[:, :, column] += weight * grd
 
     def _pair_scheme(self, run, ts, order, rep_s, rep_g):
         """Two propagations per sector pair: r in sector p and rho0_sp r in sector s."""
@@ -517,18 +543,19 @@ class TypicalEngine:
             if not real:
                 xa[:, m:m + R], xb[:, m:m + R] = im, 0.5 * (lower @ im)
             del re, im, lower
-            raise_op = ladder_block(sp, p, s, self.observed, raising=True, row_states=st_p, col_states=st_s)
+            raise_op = _Raise(ladder_block(sp, p, s, self.observed, raising=True, row_states=st_p, col_states=st_s),
+                              run.rdt)
             w = self._window(ds + dp, m, T)
             tc = 0.0
             for start in range(0, T, w):
                 sl = slice(start, min(start + w, T))
                 taus = ts[sl] - tc
-                out_a = run.propagate(p, xa, taus, real)
+                out_a = run.propagate(p, xa, taus, real, slot="out_p")
                 if w >= T and p != s:
                     # one window: sector p is done (the next pair starts from sector s), so its
                     # matrix goes before sector s's is built (one sector matrix held at a time)
                     run.drop(p)
-                out_b = run.propagate(s, xb, taus, real)
+                out_b = run.propagate(s, xb, taus, real, slot="out_s")
                 real = False                       # restarts carry complex states
                 run.each(lambda j: self._accumulate(rep_s, rep_g, order[sl.start + j], out_a, out_b, raise_op, j),
                          range(sl.stop - sl.start))
@@ -549,6 +576,10 @@ class TypicalEngine:
         pair_of = dict(self.blocks)
         n_windows = -(-T // w)
         total = float(sum(sp.dims)) * n_windows
+        # the two output slots sized once for the largest sector (sizes rise sector by sector in
+        # chain order: growing them step by step would fault in every intermediate size)
+        for slot in ("out0", "out1"):
+            run.work.reserve(slot, (min(w, T), max(sp.dims), m), PRECISIONS[self.precision][1])
         done = 0.0
         saved = {}
         tc = 0.0
@@ -556,7 +587,7 @@ class TypicalEngine:
             sl = slice(start, min(start + w, T))
             taus = ts[sl] - tc
             prev, prev_out, prev_states = None, None, None
-            for k in seq:
+            for ki, k in enumerate(seq):
                 run.keep = {k}
                 st = run.states(k)
                 if wi == 0:
@@ -567,15 +598,15 @@ class TypicalEngine:
                         x[:, m:m + R] = psi0[st].imag
                 else:
                     real, x = False, saved.pop(k)
-                out = run.propagate(k, x, taus, real)
+                out = run.propagate(k, x, taus, real, slot=f"out{ki % 2}")   # this and the previous sector's
                 del x
                 run.drop(k)
                 if n_windows > 1:
                     saved[k] = _restart(out)
                 p = pair_of.get(k)
                 if p is not None and p == prev:
-                    raise_op = ladder_block(sp, p, k, self.observed, raising=True, row_states=prev_states,
-                                            col_states=st)
+                    raise_op = _Raise(ladder_block(sp, p, k, self.observed, raising=True, row_states=prev_states,
+                                                   col_states=st), run.rdt)
                     run.each(lambda j: self._accumulate(rep_s, rep_g, order[sl.start + j], prev_out, out, raise_op,
                                                         j, 2.0), range(sl.stop - sl.start))
                     del raise_op
@@ -665,6 +696,20 @@ class _Augmented:
         return z
 
 
+class _Raise:
+    """O_ps (a CSR ladder block, 0/1 entries) cut into chunks of ACCUMULATE_ROWS rows, in the
+    outputs' real dtype (float32 with precision="single": each entry of O_ps x is a sum of at most
+    n_obs stored numbers, so this adds one rounding of the terms' own size). _accumulate multiplies
+    and sums chunk by chunk in double: at 24 spins one time point's whole-sector copies in double
+    were 86 MB each, a fresh mapping per time point (qhl.exact.chebyshev.Workspace)."""
+
+    def __init__(self, raise_op, dtype):
+        mat = raise_op.astype(dtype)
+        d = mat.shape[0]
+        self.chunks = [(a, min(a + ACCUMULATE_ROWS, d), csr_rows(mat, a, min(a + ACCUMULATE_ROWS, d)))
+                       for a in range(0, d, ACCUMULATE_ROWS)]
+
+
 def _restart(out):
     """The last time point of a window as the next window's real start array [Re | Im]."""
     return np.asfortranarray(np.concatenate([out[-1].real, out[-1].imag], axis=1))
@@ -685,6 +730,7 @@ class _SectorRun:
         self.cache = {}
         self.bounds = {}
         self._states = {}
+        self.work = Workspace()      # outputs reused from sector to sector (propagate's slots)
         # norm drift that flags a too-tight Lanczos interval: far above the rounding of the series
         # (double: ~1e-13; single: ~K eps_32 ~ 1e-5), far below the growth of a component outside
         self.drift = 1e-8 if eng.precision == "double" else 3e-4
@@ -722,7 +768,8 @@ class _SectorRun:
             eng, sp = self.eng, self.eng.space
             st = self.states(k)
             par = dict(pool=self.parallel, threads=self.threads)
-            mat, glo, ghi = sector_matrix(sp, k, self.h_groups, states=st, bounds=True, dtype=self.rdt, **par)
+            mat, glo, ghi = sector_matrix(sp, k, self.h_groups, states=st, bounds=True, dtype=self.rdt, sort=False,
+                                          **par)
             if k not in self.bounds:
                 llo, lhi = lanczos_bounds(mat, seed=eng.seed, **par)
                 self.bounds[k] = [max(glo, llo), min(ghi, lhi), (glo, ghi)]
@@ -731,14 +778,15 @@ class _SectorRun:
             self.cache[k] = {flag: _Augmented(mat, gens, self.R, self.m, flag, parts) for flag in (True, False)}
         return self.cache[k]
 
-    def propagate(self, k, x, taus, real):
+    def propagate(self, k, x, taus, real, slot="out"):
         """exp(-i A tau) x for the sector's augmented operator A (chebyshev_window), with the
-        Lanczos interval widened to Gershgorin's when the norm drifts."""
+        Lanczos interval widened to Gershgorin's when the norm drifts. The result is a view of the
+        run's Workspace buffer `slot`: valid until the next propagate with the same slot."""
         apply = self._entry(k)[real]
         eng, R, m = self.eng, self.R, self.m
         bnd = self.bounds[k]
         kw = dict(block=eng._block(x.shape[0], m), real=real, derivative=self.P > 0, precision=eng.precision,
-                  pool=self.pool)
+                  pool=self.pool, work=self.work, slot=slot)
         out = chebyshev_window(apply, x, taus, bnd[0], bnd[1], eng.tol, **kw)
         xd = np.asarray(x, float)
         n0 = np.linalg.norm(xd[:, :R], axis=0) ** 2
