@@ -30,7 +30,8 @@ def run(args):
     cluster = cluster_from_args(args)
     progress = FractionProgress("typical engine")
     engine, method, note = make_engine(build_model(cluster, free=args.free), args.method,
-                                       replicas=args.replicas, seed=args.seed, progress=progress)
+                                       replicas=args.replicas, seed=args.seed, progress=progress,
+                                       precision=args.engine_precision)
     if method == "typical":
         announce_typical(cluster, note, args.replicas, len(engine.model.free))
     try:

@@ -31,13 +31,16 @@ def exact_engine_fits(model, fraction: float = 0.8):
 
 
 def make_engine(model, method: str = "auto", replicas: int = 4, seed: int = 0, progress=None,
-                precision: str = "double"):
+                precision: str | None = None):
     """(engine, method used, note) for `method` in METHODS.
 
     The typical engine's answers carry standard errors (qhl.exact.typicality); `note` says why
     'auto' chose it (empty when it chose the exact engine). `precision`: the exact engine's
     ("double", "single" or "fast": qhl.exact.engine); the typical engine runs "single" for both
-    reduced precisions.
+    reduced precisions. None (default): "double" for the exact engine (the reference) and "single"
+    for the typical one, whose float32 rounding (at most 7e-8 of S(0), measured at 10-18 spins;
+    tests/test_typicality_fast.py) stays below 1e-4 of its own standard error while its sparse
+    products stream half the bytes; "double" asks for double precision in both.
     """
     if method not in METHODS:
         raise QhlInputError(f"expected one of {', '.join(METHODS)}, got {method!r}", key="method")
@@ -49,7 +52,7 @@ def make_engine(model, method: str = "auto", replicas: int = 4, seed: int = 0, p
             note = f"{reason}: using the typical (pure-state) engine, with error bars"
     if method == "exact":
         from .engine import ExactEngine
-        return ExactEngine(model, precision=precision), "exact", note
+        return ExactEngine(model, precision=precision or "double"), "exact", note
     from .typicality import TypicalEngine
     return TypicalEngine(model, replicas=replicas, seed=seed, progress=progress,
                          precision="double" if precision == "double" else "single"), "typical", note
