@@ -499,9 +499,7 @@ class TypicalEngine:
     def _accumulate(rep_s, rep_g, column, out_p, out_s, raise_op, j, weight=1.0):
         """Add weight * <out_p[j]| O_ps |out_s[j]> (and its parameter derivatives) to time `column`
         (only that column is written: calls for different times may run on separate threads).
-        raise_op: a _Raise (O_ps by row chunks) or a CSR matrix."""
-        if not isinstance(raise_op, _Raise):
-            raise_op = _Raise(raise_op, out_s.real.dtype)
+        raise_op: the _Raise of O_ps (its rows in chunks)."""
         P = rep_g.shape[1]
         src = out_s[j].view(out_s.real.dtype)                   # (ds, 2m) real: [Re, Im] per column
         sig = 0.0
