@@ -39,8 +39,9 @@ def make_engine(model, method: str = "auto", replicas: int = 4, seed: int = 0, p
     ("double", "single" or "fast": qhl.exact.engine); the typical engine runs "single" for both
     reduced precisions. None (default): "double" for the exact engine (the reference) and "single"
     for the typical one, whose float32 rounding (at most 7e-8 of S(0), measured at 10-18 spins;
-    tests/test_typicality_fast.py) stays below 1e-4 of its own standard error while its sparse
-    products stream half the bytes; "double" asks for double precision in both.
+    tests/test_typicality_fast.py) stays below 1e-4 of its own standard error, while it needs about
+    a third less memory (18 spins, 2 replicas, one core: 0.30 against 0.46 GiB peak, 1.13x less
+    CPU time, measured beside another job); "double" asks for double precision in both.
     """
     if method not in METHODS:
         raise QhlInputError(f"expected one of {', '.join(METHODS)}, got {method!r}", key="method")
