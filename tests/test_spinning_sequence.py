@@ -286,6 +286,15 @@ def test_unsynchronised_delay_is_refused_naming_step_delay_and_period():
         assert "step 3" in msg and "0.00012 s" in msg and "T_R = 8e-05 s" in msg and "experiment.step" in msg
 
 
+def test_delay_far_shorter_than_a_period_is_refused_not_dropped():
+    # common practice: a delay is a whole number of periods only when that number is at least 1;
+    # 1e-9 periods used to round to zero periods (within the 1e-9 tolerance) and vanish silently
+    c, m, eng, ex = _setup(THREE, (Delay(1e-9 * TR), Pulse(180.0), Delay(1e-9 * TR)))
+    with pytest.raises(QhlInputError) as err:
+        eng.signal(ex)
+    assert "step 1" in _one_line(err) and "whole number of rotor periods" in _one_line(err)
+
+
 def test_finite_pulse_is_refused():
     c, m, eng, ex = _setup(THREE, (Delay(TR), Pulse(90.0, duration_s=2e-6), Delay(TR)))
     with pytest.raises(QhlInputError) as err:

@@ -165,8 +165,12 @@ def _time_plan(t, period, k_slices):
                             "the acquisition, rotor phase 0)", key="times")
     tau = period / k_slices
     x = t / tau
-    n = np.floor(x + 1e-9).astype(np.int64)
-    delta = np.where(np.abs(x - np.round(x)) < 1e-9, 0.0, np.maximum(t - n * tau, 0.0))
+    near = np.round(x)
+    # on a slice boundary up to rounding: within 1e-9 of the slice AND of the time itself (a rotor so
+    # slow that every time lies in the first slice must not snap them all to t = 0)
+    on = np.abs(t - near * tau) <= 1e-9 * np.minimum(tau, t)
+    n = np.where(on, near, np.floor(x)).astype(np.int64)
+    delta = np.where(on, 0.0, np.maximum(t - n * tau, 0.0))
     return n // k_slices, n % k_slices, delta, tau
 
 

@@ -61,7 +61,7 @@ from .spinning_engine import _Spinning, _slices
 
 __all__ = ["spinning_sequence_signal", "spinning_sequence_gradient", "SYNC_RTOL"]
 
-SYNC_RTOL = 1e-9     # a delay is whole periods when |delay / T_R - round(delay / T_R)| <= SYNC_RTOL max(1, delay / T_R)
+SYNC_RTOL = 1e-9     # a delay is whole periods when |delay / T_R - m| <= SYNC_RTOL max(1, delay / T_R), m = round(delay / T_R) >= 1
 
 
 def _runs(model, experiment, period):
@@ -82,7 +82,7 @@ def _runs(model, experiment, period):
         elif isinstance(st, Delay):
             x = st.seconds / period
             m = int(round(x))
-            if abs(x - m) > SYNC_RTOL * max(1.0, abs(x)):
+            if m < 1 or abs(x - m) > SYNC_RTOL * max(1.0, abs(x)):     # a delay is at least one period
                 raise QhlInputError(f"experiment '{experiment.name}' has pulse-sequence steps: step {k} is a delay of "
                                     f"{st.seconds:g} s = "
                                     f"{x:.6g} rotor periods (T_R = {period:g} s at {hz:g} Hz); spinning experiments "

@@ -106,19 +106,19 @@ class SpinningFactors:
         return basis @ self.fourier.T
 
     def mean(self, t0, t1) -> np.ndarray:
-        """(K, P) averages of s_n over the intervals [t0_k, t1_k] (exact integrals); t1 = t0 gives s_n(t0)."""
+        """(K, P) averages of s_n over the intervals [t0_k, t1_k] (exact integrals); t1 = t0 gives s_n(t0).
+
+        The average of cos(k phi) over [p0, p1] is cos(k m) sinc(k (p1 - p0) / 2), of sin(k phi)
+        sin(k m) sinc(k (p1 - p0) / 2), m the midpoint (product-to-sum identities; no cancellation
+        for short intervals, where (sin(k p1) - sin(k p0)) / (k (p1 - p0)) loses digits)."""
         t0 = np.atleast_1d(np.asarray(t0, float))
         t1 = np.atleast_1d(np.asarray(t1, float))
         w = 2 * np.pi * self.spinning_hz
-        p0, p1 = w * t0, w * t1
-        dp = p1 - p0
-        small = np.abs(dp) < 1e-9
-        safe = np.where(small, 1.0, dp)
-        cols = [np.ones_like(p0)]
+        mid, half = 0.5 * w * (t0 + t1), 0.5 * w * (t1 - t0)
+        cols = [np.ones_like(mid)]
         for k in (1, 2):
-            cm = np.where(small, np.cos(k * p0), (np.sin(k * p1) - np.sin(k * p0)) / (k * safe))
-            sm = np.where(small, np.sin(k * p0), (np.cos(k * p0) - np.cos(k * p1)) / (k * safe))
-            cols += [cm, sm]
+            damp = np.sinc(k * half / np.pi)                 # numpy's sinc(x) = sin(pi x) / (pi x)
+            cols += [np.cos(k * mid) * damp, np.sin(k * mid) * damp]
         return np.stack(cols, axis=1) @ self.fourier.T
 
 
