@@ -106,3 +106,31 @@ def test_step_count_derived_from_eps_is_bounded(capsys):
     assert main(["circuits", "--time", "1e-3", "--eps", "1e-6"]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "--eps: needs" in err and "at most 5,000" in err
+
+
+FULL = "/dev/full"      # Linux: every write fails with ENOSPC (a full disk)
+
+
+@pytest.mark.skipif(not __import__("os").path.exists(FULL), reason="needs /dev/full (Linux)")
+@pytest.mark.parametrize("argv,option", [
+    (["learn", "--max-iter", "3", "--json", "--report", FULL], "--report"),
+    (["learn", "--max-iter", "3", "--plot", FULL], "--plot"),
+    (["signal", "--plot", FULL], "--plot"),
+    (["circuits", "--time", "1e-4", "--steps", "2", "--qasm", FULL], "--qasm"),
+    (["circuits", "--time", "1e-4", "--steps", "2", "--json", "--qasm", FULL], "--qasm"),
+])
+def test_a_failed_output_write_is_one_line_and_keeps_the_result(capsys, argv, option):
+    # common practice: a write error at the end (disk full) used to raise OSError with a traceback and
+    # lose the finished result; now one error line names the option and the file, the result is still
+    # printed, and the exit status is 2
+    rc = main(argv)
+    out, err = capsys.readouterr()
+    errors = [line for line in err.splitlines() if line.startswith("qhl: error: ")]
+    assert rc == 2 and errors == [f"qhl: error: {option}: could not write '{FULL}': No space left on device"]
+    assert "Traceback" not in err and "wrote" not in out
+    if "--json" in argv:
+        import json
+        data = json.loads(out)
+        assert data and data.get("qasm") is None and data.get("plot") is None
+    else:
+        assert out.count("\n") >= 3                      # the table is there

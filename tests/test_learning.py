@@ -174,6 +174,19 @@ def test_non_convergence_is_reported_and_best_point_kept(method):
     assert res.cost <= min(entry["cost"] for entry in res.history) + 1e-9
 
 
+def test_noise_far_below_the_signal_precision_stops_without_error():
+    # common practice (Madsen, Nielsen and Tingleff 2004, alg. 3.16: stop on a vanishing step): at
+    # sigma = 1e-15 rounding in the signals (~1e-15) makes every step fail; the damping then grew
+    # without bound until numpy's least squares raised LinAlgError
+    c = three_spin_cluster()
+    engine, prov, h = setup(c)
+    data = synthetic_dataset(engine, c.experiments, seed=3, sigma=1e-15)
+    res = fit(prov, data, perturbed_start(h, 1e-3, 3), method="gn", max_iter=200)
+    assert np.all(np.isfinite(res.values_hz))
+    assert relative_error(res.values_hz, h) < 1e-9          # the point reached is the true one to rounding
+    assert res.converged or "no step lowers the cost" in res.message
+
+
 def test_parameter_without_effect_gets_infinite_bound_and_fit_survives():
     """Only the fully decoupled experiment: dipolar couplings do not enter the signal."""
     c = demo_cluster()

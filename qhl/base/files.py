@@ -1,10 +1,12 @@
-"""Reading input files as text with one-line errors (every reader of qhl goes through here)."""
+"""Reading input files as text with one-line errors (every reader of qhl goes through here), and
+writing figures so that a failed write is an error (save_figure)."""
 
+import io
 from pathlib import Path
 
 from .errors import QhlInputError
 
-__all__ = ["read_text_file"]
+__all__ = ["read_text_file", "save_figure"]
 
 
 def read_text_file(path, max_bytes: int, source: str | None = None, encoding: str = "utf-8") -> str:
@@ -41,3 +43,18 @@ def read_text_file(path, max_bytes: int, source: str | None = None, encoding: st
     except UnicodeDecodeError as e:
         line = data[:e.start].count(b"\n") + 1
         raise QhlInputError(f"line {line}: byte {data[e.start]:#04x} is not UTF-8 text", source=src) from None
+
+
+def save_figure(fig, target, **kwargs):
+    """fig.savefig(target, **kwargs), where a path is written from the PNG rendered in memory in one
+    call: a failing write (a full disk, a device that refuses data) raises OSError, which writing
+    through matplotlib's own file handling did not always do (measured: /dev/full passed silently).
+    A file object (the HTML report's buffers) is written directly."""
+    if hasattr(target, "write"):
+        fig.savefig(target, **kwargs)
+        return target
+    buf = io.BytesIO()
+    kwargs.setdefault("format", Path(target).suffix.lstrip(".").lower() or "png")
+    fig.savefig(buf, **kwargs)
+    Path(target).write_bytes(buf.getvalue())
+    return target

@@ -54,6 +54,8 @@ def main(argv=None) -> int:
                 raise
         for w in held:
             warnings.showwarning(w.message, w.category, w.filename, w.lineno, w.file, w.line)
+        if getattr(args, "failed_writes", None) and not rc:
+            rc = 2                           # an output file could not be written (common.write_output)
     except QhlInputError as e:
         print(f"qhl: error: {' '.join(str(e).split())}", file=sys.stderr)
         return 2

@@ -13,7 +13,7 @@ from ..base.errors import QhlInputError
 from ..spins.parameter_names import DEFAULT_FREE
 from .common import (CYCLE_TIME, FAILURE, ITERATIONS, PRECISION, PROBABILITY, SWEEP, TIME_S, add_cluster_argument,
                      add_report_argument, check_output_path, cluster_from_args, number_in, print_json,
-                     report_if_asked)
+                     report_if_asked, write_output)
 
 # noise-aware near-term counts (qhl.costing.noisy_shots): depolarising parameters stay below 1
 GATE_ERROR = number_in(0, 0.75, high_open=True, name="gate error")
@@ -133,9 +133,11 @@ def run(args):
         from ..costing.synthesis import write_clifford_t_step
         ft = budget.fault_tolerant
         x = [e.name for e in bm.experiments].index(ft["worst_component"]["experiment"])
-        budget.fault_tolerant["clifford_t_step"] = write_clifford_t_step(
-            bm.trotter[x].terms, ft["trotter_order"], budget.time_s / ft["trotter_steps"], ft["rotation_error"],
-            args.clifford_t)
+        step = []
+        if write_output(args, "--clifford-t", args.clifford_t, lambda: step.append(write_clifford_t_step(
+                bm.trotter[x].terms, ft["trotter_order"], budget.time_s / ft["trotter_steps"], ft["rotation_error"],
+                args.clifford_t))):
+            budget.fault_tolerant["clifford_t_step"] = step[0]
     for note in bm.notes[known:]:
         _progress(f"note: {note}")
     sweep = None
@@ -149,12 +151,13 @@ def run(args):
         sweep = bm.sweep(times, precs)
         if args.plot:
             from ..costing.budget_plots import plot_budget_sweep
-            plot_budget_sweep(sweep, args.plot, int(np.argmin(abs(np.log(times / t)))),
-                              int(np.argmin(abs(np.log(precs / args.precision)))))
+            plotted = write_output(args, "--plot", args.plot, lambda: plot_budget_sweep(
+                sweep, args.plot, int(np.argmin(abs(np.log(times / t)))),
+                int(np.argmin(abs(np.log(precs / args.precision))))))
     out = budget.to_json()
     if sweep is not None:
         out["sweep"] = sweep.to_json()
-    if args.plot:
+    if args.plot and plotted:
         out["plot"] = args.plot
     report_if_asked(args, "budget", out, cluster.name, sweep=sweep)
     if args.json:
@@ -163,7 +166,7 @@ def run(args):
     _print_budget(budget, bm)
     if sweep is not None:
         _print_sweep(sweep, t, args.precision)
-    if args.plot:
+    if args.plot and plotted:
         print(f"wrote {args.plot}")
     return 0
 

@@ -3,10 +3,10 @@
 import sys
 
 from .common import add_cluster_argument, add_report_argument, check_output_path, cluster_from_args, print_json, \
-    report_if_asked
-
-
+    report_if_asked, write_output
 from .common import PROBABILITY, SEED, SHOTS, STEPS, TIME_S, number_in  # range-checked option types
+from ..base.files import save_figure
+
 CIRCUITS = number_in(1, 10**6, integer=True, name="circuits per job")
 PUB_SHOTS = number_in(1, 10**9, integer=True, name="shots per PUB")
 
@@ -82,7 +82,7 @@ def check_figure(report, title):
 def _plot(report, path, title):
     import matplotlib.pyplot as plt
     fig = check_figure(report, title)
-    fig.savefig(path, dpi=120, bbox_inches="tight")
+    save_figure(fig, path, dpi=120, bbox_inches="tight")
     plt.close(fig)
 
 
@@ -120,9 +120,9 @@ def run(args):
                                target=target)
     if report.interrupted:
         print(f"\nqhl check: interrupted; {len(report.rows)} of {report.planned} rows finished", file=sys.stderr)
-    if args.plot and report.rows:
-        _plot(report, args.plot, f"qhl check {cluster.name}: t = {report.time_s:g} s, r = {report.steps}, "
-                                 f"{args.shots} shots per part; {report.status.upper()}")
+    plotted = bool(args.plot and report.rows) and write_output(args, "--plot", args.plot, lambda: _plot(
+        report, args.plot, f"qhl check {cluster.name}: t = {report.time_s:g} s, r = {report.steps}, "
+                           f"{args.shots} shots per part; {report.status.upper()}"))
     report_if_asked(args, "check", report.to_json(), cluster.name, figures=[(
         "emulated derivatives (error bars: one standard error) against the exact and Trotterised values",
         lambda: check_figure(report, f"qhl check {cluster.name}: {report.status.upper()}"))] if report.rows else [])
@@ -162,6 +162,6 @@ def run(args):
     print(report.verdict())
     if report.biased or report.without_power:
         print(f"flags: no-power = a row without {POWER_RULE}; {BIAS_RULE}")
-    if args.plot and report.rows:
+    if plotted:
         print(f"wrote {args.plot}")
     return 130 if report.interrupted else 0

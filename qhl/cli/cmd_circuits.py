@@ -1,10 +1,11 @@
 """`qhl circuits`: compile the signal, gradient or Hessian circuit family and count its gates."""
 
 import sys
+from pathlib import Path
 
 from ..base.errors import QhlInputError
 from .common import (STEPS, TIME_S, TROTTER_EPS, add_cluster_argument, check_output_path, check_steps,
-                     cluster_from_args, print_json)
+                     cluster_from_args, print_json, write_output)
 
 KINDS = ("signal", "gradient", "hessian")
 _LARGE = 2000
@@ -162,9 +163,9 @@ def run(args):
                      "Magnus error of the time dependence (rotor rule: 8 steps per period)")
     for note in notes:
         print(f"qhl: note: {note}", file=sys.stderr)
-    if args.qasm:
-        with open(args.qasm, "w") as fh:
-            fh.write(qasm3.dumps(transpiled))
+    text = qasm3.dumps(transpiled) if args.qasm else None
+    wrote = bool(args.qasm) and write_output(args, "--qasm", args.qasm,
+                                             lambda: Path(args.qasm).write_text(text, encoding="utf-8"))
     drawing = None
     if args.draw:
         small = build_family(model, experiment, args.kind, params, args.time / steps, 1, args.order, args.method,
@@ -176,7 +177,7 @@ def run(args):
                        "experiment": None if experiment is None else experiment.name,
                        "insertion_settings": len(family.insertions), "trotter_error_bound": bound,
                        "notes": notes})
-        if args.qasm:
+        if wrote:
             report["qasm"] = args.qasm
         if drawing is not None:
             report["drawing"] = drawing
@@ -201,6 +202,6 @@ def run(args):
     if drawing is not None:
         print()
         print(drawing)
-    if args.qasm:
+    if wrote:
         print(f"wrote {args.qasm}")
     return 0

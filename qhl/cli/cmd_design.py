@@ -6,7 +6,7 @@ import sys
 from ..spins.sequences import NAMED_SEQUENCES
 from .common import (AXIS_VALUES, NOISE, POINTS, PRECISION, SCALES, TIME_S, TROTTER_EPS, add_cluster_argument,
                      add_report_argument, check_output_path, cluster_from_args, number_in, print_json,
-                     report_if_asked)
+                     report_if_asked, write_output)
 
 _CRITERIA = ("D", "A", "worst")
 _BUDGET = number_in(0, 1e30, low_open=True, name="budget")
@@ -115,13 +115,13 @@ def run(args):
                              time_points=args.time_points, include_file=not args.no_file,
                              trotter_eps=args.trotter_eps, synthesis_eps=args.synthesis_eps, progress=_say)
     from ..learning.design_plots import plot_design
-    if args.plot:
-        plot_design(rep, args.plot)
-    report_if_asked(args, "design", {**rep.to_json(), "plot": args.plot}, cluster.name, drawings=[(
+    plotted = bool(args.plot) and write_output(args, "--plot", args.plot, lambda: plot_design(rep, args.plot))
+    plot = args.plot = args.plot if plotted else None          # what was written (_print_design says so)
+    report_if_asked(args, "design", {**rep.to_json(), "plot": plot}, cluster.name, drawings=[(
         "shares of the budget per candidate and Cramer-Rao bounds against the current set",
         lambda f: plot_design(rep, f))])
     if args.json:
-        print_json({**rep.to_json(), "plot": args.plot})
+        print_json({**rep.to_json(), "plot": plot})
         return 0
     _print_design(rep, args)
     return 0
@@ -185,13 +185,14 @@ def _run_map(args, cluster):
                             progress=_say, sequence=args.sequence or "wahuha")
     cyc = lmap.axis == "cycle_time_s"
     rc = 130 if lmap.interrupted else 0
-    if args.plot:
-        plot_learnability_map(lmap, args.plot)
-    report_if_asked(args, "design", {**lmap.to_json(), "plot": args.plot}, cluster.name, drawings=[(
+    plotted = bool(args.plot) and write_output(args, "--plot", args.plot,
+                                               lambda: plot_learnability_map(lmap, args.plot))
+    plot = args.plot if plotted else None
+    report_if_asked(args, "design", {**lmap.to_json(), "plot": plot}, cluster.name, drawings=[(
         f"learnability, ergodicity, classical and quantum cost over {lmap.axis}",
         lambda f: plot_learnability_map(lmap, f))])
     if args.json:
-        print_json({**lmap.to_json(), "plot": args.plot})
+        print_json({**lmap.to_json(), "plot": plot})
         return rc
     print(f"cluster {lmap.cluster}: learnability map over {lmap.axis}"
           f"{' of ' + lmap.experiment['sequence'] if cyc else ''} ({len(lmap.points)} values, {lmap.seconds:.1f} s)")
@@ -217,6 +218,6 @@ def _run_map(args, cluster):
               "CUE, <r> = 0.600, D2rand = D2_CUE); classical s: the static FID's cost (a lower bound)")
     if lmap.interrupted:
         print(f"interrupted: {len(lmap.points)} values done")
-    if args.plot:
+    if plotted:
         print(f"wrote {args.plot}")
     return rc

@@ -6,7 +6,8 @@ import numpy as np
 
 from ..learning.methods import METHODS
 from .common import (ITERATIONS, NOISE, SEED, SHOTS, START_OFFSET, STEPS, add_cluster_argument, add_report_argument,
-                     check_output_path, cluster_from_args, number_in, print_json, report_if_asked)
+                     check_output_path, cluster_from_args, number_in, print_json, report_if_asked,
+                     write_output)
 
 MAX_MINUTES = number_in(0, 10**6, low_open=True, name="minutes")
 # A spectrometer field more than this fraction off the cluster file's gets a note (shifts in ppm
@@ -104,9 +105,10 @@ def run(args):
                    steps=args.steps, max_minutes=args.max_minutes,
                    planning_progress=None if args.json else bars.planning,
                    plan_ready=None if args.json else bars.planned)
+    plotted = False
     if args.plot and not report.fit.diverged:
         from ..learning.fit_plots import plot_fit
-        plot_fit(report, args.plot)
+        plotted = write_output(args, "--plot", args.plot, lambda: plot_fit(report, args.plot))
     fit = report.fit
     report_if_asked(args, "learn", report.to_json(), cluster.name, fit=report)
     for a in report.acquisitions:      # spectrometer files: the field they were taken at
@@ -159,7 +161,7 @@ def run(args):
               f"(Cramer-Rao-limited: {report.crb_relative_error:.3e})")
     else:
         print(f"Cramer-Rao-limited relative error: {report.crb_relative_error:.3e}")
-    if args.plot:
+    if plotted:
         print(f"wrote {args.plot}")
     return 0
 

@@ -2,7 +2,7 @@
 
 from ..survey.scan_settings import ScanSettings
 from .common import (NOISE, POINTS, SCALES, SPINNING, TIMEOUT, TIME_S, WORKERS, add_report_argument, print_json,
-                     report_if_asked)
+                     report_if_asked, write_output)
 
 
 def register(sub):
@@ -61,7 +61,8 @@ def run(args):
     plots = []
     if args.plot:
         from ..survey.scan_plots import plot_scan
-        plots = [str(p) for p in plot_scan(read_results(args.out)[1], args.plot, spinning_hz=args.spinning_hz)]
+        write_output(args, "--plot", args.plot, lambda: plots.extend(
+            str(p) for p in plot_scan(read_results(args.out)[1], args.plot, spinning_hz=args.spinning_hz)))
     report = {"results": summary.path, "scan_id": summary.scan_id, "tasks": summary.total,
               "skipped": summary.skipped, "computed": summary.computed, "seconds": summary.seconds,
               "workers": summary.workers, "plots": plots}

@@ -5,7 +5,8 @@ import sys
 import numpy as np
 
 from ..base.progress import FractionProgress
-from .common import add_cluster_argument, check_output_path, cluster_from_args, integer_at_least, print_json
+from .common import add_cluster_argument, check_output_path, cluster_from_args, integer_at_least, print_json, \
+    write_output
 
 
 def add_method_arguments(p):
@@ -66,9 +67,10 @@ def run(args):
         progress.close()
     if report.note:
         print(f"qhl: note: {report.note}", file=sys.stderr)
+    plotted = False
     if args.plot:
         from ..exact.signal_plots import plot_signals
-        plot_signals(report, args.plot)
+        plotted = write_output(args, "--plot", args.plot, lambda: plot_signals(report, args.plot))
     if args.json:
         print_json({**report.to_json(), "engine_precision": engine.precision})
         return 0
@@ -102,6 +104,6 @@ def run(args):
             g = np.abs(report.gradients[ex.name]).max(axis=1)
             k = int(np.argmax(g))
             print(f"  {ex.name:<12} {m.free[k]:<20} {g[k]:.3e}")
-    if args.plot:
+    if plotted:
         print(f"wrote {args.plot}")
     return 0

@@ -83,6 +83,21 @@ def add_report_argument(parser):
                              "sources, command line, versions and the --json data")
 
 
+def write_output(args, option, path, write) -> bool:
+    """Run `write()`, one file output of the command (a plot, a report, a QASM file).
+
+    A failing write (a full disk, a device that refuses data) is reported in one line naming the
+    option and the file, and makes the exit code 2 at the end of the run; the run goes on, so what
+    is already computed still reaches the screen or --json. Returns whether the file was written."""
+    try:
+        write()
+    except OSError as e:
+        print(f"qhl: error: {option}: could not write '{path}': {e.strerror or e}", file=sys.stderr)
+        args.failed_writes = [*getattr(args, "failed_writes", []), str(path)]
+        return False
+    return True
+
+
 def report_if_asked(args, command, data, subject=None, **plots):
     """With --report: write the report of `data` (the dictionary --json prints) and name the file on stderr.
 
@@ -92,10 +107,13 @@ def report_if_asked(args, command, data, subject=None, **plots):
         return None
     from ..report import write_report
     argv = getattr(args, "argv", None)
-    path = write_report(args.report, command, _plain(data), argv=sys.argv[1:] if argv is None else argv,
-                        subject=subject, **plots)
-    print(f"qhl: wrote the report {path}", file=sys.stderr)
-    return path
+    written = []
+    if not write_output(args, "--report", args.report, lambda: written.append(write_report(
+            args.report, command, _plain(data), argv=sys.argv[1:] if argv is None else argv, subject=subject,
+            **plots))):
+        return None
+    print(f"qhl: wrote the report {written[0]}", file=sys.stderr)
+    return written[0]
 
 
 def number_in(low=None, high=None, *, low_open=False, high_open=False, integer=False, name=None):

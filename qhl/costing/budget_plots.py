@@ -5,6 +5,7 @@ import matplotlib
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
+from ..base.files import save_figure
 
 __all__ = ["plot_budget_sweep", "PLOTTED"]
 
@@ -53,6 +54,6 @@ def plot_budget_sweep(sweep, path, time_index=None, precision_index=None):
     axes[0][0].legend(fontsize=7)
     fig.suptitle("model-based budgets (assumptions: qhl budget --json)")
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    save_figure(fig, path, dpi=110)
     plt.close(fig)
     return path

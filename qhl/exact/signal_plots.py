@@ -19,6 +19,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from .signals import spectrum_of  # noqa: E402
+from ..base.files import save_figure
 
 __all__ = ["plot_signals", "signal_figure", "apodisation_window", "spectral_band", "line_band", "WINDOWS"]
 
@@ -128,6 +129,6 @@ def signal_figure(report, window: str = "exponential", width_hz=None):
 def plot_signals(report, path, window: str = "exponential", width_hz=None):
     """FID and apodised, zoomed spectrum of each experiment into the PNG `path` (signal_figure)."""
     fig = signal_figure(report, window, width_hz)
-    fig.savefig(path, dpi=110)
+    save_figure(fig, path, dpi=110)
     plt.close(fig)
     return path

@@ -2,6 +2,7 @@
 optimum beside the current set's (equal shares over the file's experiments) at the same budget."""
 
 import numpy as np
+from ..base.files import save_figure
 
 __all__ = ["plot_design"]
 
@@ -35,6 +36,6 @@ def plot_design(report, path):
     a2.set_ylabel(f"Cramer-Rao bound (Hz) at budget {report.budget:.3g}")
     a2.legend(fontsize=7)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    save_figure(fig, path, dpi=110)
     plt.close(fig)
     return path

@@ -5,6 +5,7 @@ import matplotlib
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
+from ..base.files import save_figure
 
 __all__ = ["plot_fit"]
 
@@ -45,6 +46,6 @@ def plot_fit(report, path):
     axes[-1][1].set_xlabel("iteration")
     axes[-1][1].set_ylabel("scaled gradient norm")
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    save_figure(fig, path, dpi=110)
     plt.close(fig)
     return path

@@ -49,7 +49,7 @@ __all__ = ["GradientProvider", "ExactGradientProvider", "CostPoint", "FitResult"
            "evaluate_cost_gradient",
            "fit", "perturbed_start", "emulated_gradient_provider", "relative_error", "METHODS",
            "LearnReport", "learn",
-           "DECREMENT_TOL", "NOISY_STALL_TOL", "NOISY_PATIENCE", "DIVERGENCE_FACTOR", "DIVERGENCE_RISES"]
+           "DECREMENT_TOL", "STEP_RTOL", "NOISY_STALL_TOL", "NOISY_PATIENCE", "DIVERGENCE_FACTOR", "DIVERGENCE_RISES"]
 
 
 # Converged when the full Gauss-Newton step would lower the cost by less than this many nats:
@@ -59,6 +59,9 @@ DECREMENT_TOL = 1e-6
 # that many iterations (common practice).
 NOISY_STALL_TOL = 1e-2
 NOISY_PATIENCE = 3
+# Levenberg-Marquardt stops when its (scaled) step is below this fraction of the (scaled) point
+# (Madsen, Nielsen and Tingleff 2004, eq. 3.9b; common practice for the value).
+STEP_RTOL = 1e-12
 # Divergence: a parameter this many times the largest |starting value| away from its start
 # (no NMR parameter moves by 1e4 times the cluster's own scale in a fit; common practice), or
 # the recorded cost rising this many iterations in a row.
@@ -230,7 +233,15 @@ def _levenberg_marquardt(evaluate, start, max_iter, tol, record, noisy=False):
         decrement = -0.5 * float(gs @ newton)
         if decrement < tol:
             return point, k - 1, True, f"converged: predicted decrease {decrement:.2e} nats"
-        step = np.linalg.lstsq(fs + mu * np.eye(len(scale)), -gs, rcond=1e-12)[0] * scale
+        scaled = np.linalg.lstsq(fs + mu * np.eye(len(scale)), -gs, rcond=1e-12)[0]
+        # the step test of Madsen, Nielsen and Tingleff (alg. 3.16): stop when the step no longer changes
+        # the point (in scaled variables); after many rejected steps mu grows without bound
+        if np.linalg.norm(scaled) <= STEP_RTOL * (np.linalg.norm(point.values_hz / scale) + STEP_RTOL):
+            return point, k - 1, False, (f"stopped: no step lowers the cost any more (steps below {STEP_RTOL:g} of "
+                                         f"the parameters, predicted decrease {decrement:.2e} nats): the cost is at "
+                                         f"the rounding floor of the signals (is the noise far below their "
+                                         f"precision?) or the gradient does not match it; best point kept")
+        step = scaled * scale
         predicted = -float(g @ step) - 0.5 * float(step @ F @ step)
         trial = evaluate(point.values_hz + step)
         gain = (point.cost - trial.cost) / predicted if predicted > 0 else -1.0

@@ -63,6 +63,7 @@ from ..costing.classical_cost import classical_cost
 from ..spins.cluster import Block, Delay, Experiment, check_experiment
 from ..spins.sequences import CYCLE_TAUS, NAMED_SEQUENCES, named_block
 from .diagnostics import GOE_MEAN_R, GUE_MEAN_R, POISSON_MEAN_R, diagnose, diagnose_cycle
+from ..base.files import save_figure
 
 __all__ = ["AXES", "WINDOW_DEFAULTS", "DEFAULT_SEQUENCE", "MapPoint", "LearnabilityMap", "CycleTrain", "cycle_train",
            "experiment_at", "learnability_map", "plot_learnability_map"]
@@ -415,6 +416,6 @@ def plot_learnability_map(lmap: LearnabilityMap, path):
     fig.suptitle(f"{lmap.cluster}: learnable, classically hard and affordable window "
                  f"({'none' if not lmap.window else ', '.join(f'{v:g}' for v in lmap.window)})", fontsize=9)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    save_figure(fig, path, dpi=110)
     plt.close(fig)
     return path

@@ -16,6 +16,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 from .diagnostics import GOE_MEAN_R, GUE_MEAN_R, POISSON_MEAN_R  # noqa: E402
+from ..base.files import save_figure
 
 __all__ = ["aggregate", "plot_scan"]
 
@@ -29,7 +30,7 @@ def _save(fig, path, title, note):
     if note:
         fig.text(0.01, 0.01, _NOTE, fontsize=7)
     fig.tight_layout(rect=(0, 0.03, 1, 1))
-    fig.savefig(path, dpi=110)
+    save_figure(fig, path, dpi=110)
     plt.close(fig)
     return path
 
