@@ -81,3 +81,25 @@ def test_falls_back_to_aer_with_a_note_when_the_estimate_does_not_fit(monkeypatc
     assert err.count("\n") == 1 and "Aer's statevector" in err
     with pytest.raises(MemoryBudgetError):
         FamilyRunner(fam, method="fast")
+
+
+@pytest.mark.parametrize("n,steps", [(4, 40), (8, 3)])
+def test_settings_memory_model_within_1p5x_of_tracemalloc_and_refusal(n, steps):
+    # tracemalloc (as above): the per-shot settings of one run (sample, distinct settings, fast draws)
+    from qhl.emulation.runner import settings_bytes
+    fam = chain_family(n, steps=steps)
+    runner = FamilyRunner(fam)
+    runner.run(100, np.random.default_rng(0))                  # warm (reference tables, caches)
+    shots = 200_000
+    tracemalloc.start()
+    try:
+        runner.run(shots, np.random.default_rng(1))
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    est = settings_bytes(shots, fam.num_parameters, len(fam._index["prep"]))
+    assert 1 / 1.5 < est / peak < 1.5, (peak, est)
+    # 1e11 shots: refused up front, naming shots and what to change
+    with pytest.raises(MemoryBudgetError) as err:
+        runner.run(10**8 * 1000, np.random.default_rng(2))
+    assert "shots" in str(err.value) and "fewer --shots or --steps" in str(err.value)

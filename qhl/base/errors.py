@@ -29,10 +29,11 @@ class MemoryBudgetError(QhlInputError):
         available_bytes: what the machine offers.
     """
 
-    def __init__(self, what: str, needed_bytes: float, available_bytes: float):
+    def __init__(self, what: str, needed_bytes: float, available_bytes: float,
+                 hint: str = "use fewer spins or time points"):
         super().__init__(
             f"{what} needs about {needed_bytes / 2**30:.2f} GiB of memory, "
-            f"but only {available_bytes / 2**30:.2f} GiB is available; use fewer spins or time points"
+            f"but only {available_bytes / 2**30:.2f} GiB is available; {hint}"
         )
         self.needed_bytes = needed_bytes
         self.available_bytes = available_bytes

@@ -22,8 +22,11 @@ def available_memory_bytes() -> float:
         return float("inf")
 
 
-def require_memory(what: str, needed_bytes: float, fraction: float = 0.8) -> None:
-    """Raise MemoryBudgetError if `needed_bytes` exceeds `fraction` of available memory."""
+def require_memory(what: str, needed_bytes: float, fraction: float = 0.8, hint: str | None = None) -> None:
+    """Raise MemoryBudgetError if `needed_bytes` exceeds `fraction` of available memory (`hint`: what
+    to change, default fewer spins or time points)."""
     avail = available_memory_bytes()
     if needed_bytes > fraction * avail:
-        raise MemoryBudgetError(what, needed_bytes, fraction * avail)
+        if hint is None:
+            raise MemoryBudgetError(what, needed_bytes, fraction * avail)
+        raise MemoryBudgetError(what, needed_bytes, fraction * avail, hint)

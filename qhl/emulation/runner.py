@@ -96,6 +96,15 @@ def outcome_values(family) -> np.ndarray:
 _ANGLE_CODES = (0.0, np.pi, np.pi / 2, -np.pi / 2)   # |0>, |1>, |+>, |-> (qhl.circuits.state_prep)
 
 
+def settings_bytes(shots: int, parameters: int, inputs: int) -> float:
+    """Peak memory (bytes) of one run's per-shot settings: the (shots, parameters) float64 values and
+    the insertion angles gathered into them (a temporary of about the same size), the input angles
+    with their codes and masks (26 bytes per input qubit and shot) and about 100 bytes per shot of
+    rows, scales, keys, sort and outcome arrays (counted from _prepare and _draw_fast; checked against
+    tracemalloc in tests/test_fast_path_memory.py)."""
+    return float(shots) * (16.0 * parameters + 26.0 * inputs + 100.0)
+
+
 def _distinct_settings(settings, prep):
     """(index of the first shot of every distinct setting, shots per setting).
 
@@ -416,6 +425,9 @@ class FamilyRunner:
         if part not in PARTS:
             raise QhlInputError(f"unknown part '{part}': expected re or im", key="part")
         start = _time.perf_counter()
+        require_memory(f"{int(shots):,} shots of a circuit with {self.family.num_parameters:,} parameters",
+                       settings_bytes(int(shots), self.family.num_parameters, len(self.family._index["prep"])),
+                       hint="use fewer --shots or --steps")
         prep = self._prepare(int(shots), rng, part)
         if self.uses_fast_path:
             with single_thread_blas(2 ** self.fast.n):
