@@ -79,6 +79,12 @@ def check_figure(report, title):
     return fig
 
 
+def _number(value, width, spec):
+    """value formatted to `spec` in `width` columns, or 'n/a' where it is undefined (NaN, None)."""
+    ok = value is not None and value == value
+    return f"{value:>{width}{spec}}" if ok else f"{'n/a':>{width}}"
+
+
 def _plot(report, path, title):
     import matplotlib.pyplot as plt
     fig = check_figure(report, title)
@@ -141,7 +147,8 @@ def run(args):
         flags = ("" if r["power"] else " no-power") + (" BIAS>VALUE" if r["bias_exceeds_value"] else "") \
             + (" SIGN-FLIP" if r["sign_flip"] else "")
         print(f"{r['parameter']:<28}{r['part']:>5}{r['exact']:>13.4e}{r['trotter_exact']:>13.4e}"
-              f"{r['emulated']:>13.4e}{r['stderr']:>11.2e}{r['z']:>7.2f}{r['trotter_bias']:>11.2e} {flags}")
+              f"{r['emulated']:>13.4e}{_number(r['stderr'], 11, '.2e')}{_number(r['z'], 7, '.2f')}"
+              f"{r['trotter_bias']:>11.2e} {flags}")
     if device and report.rows:
         print(f"{'parameter':<28}{'part':>5}{'predicted':>13}{'attenuation':>13}{'measured att.':>15}{'2q gates':>10}")
         for r in report.rows:
@@ -161,7 +168,7 @@ def run(args):
     print(f"shots {report.shots}, circuits run {report.circuits_run}, {report.seconds:.1f} s")
     print(report.verdict())
     if report.biased or report.without_power:
-        print(f"flags: no-power = a row without {POWER_RULE}; {BIAS_RULE}")
+        print(f"flags: no-power = a row that fails the power test ({POWER_RULE}); {BIAS_RULE}")
     if plotted:
         print(f"wrote {args.plot}")
     return 130 if report.interrupted else 0

@@ -77,15 +77,25 @@ SPINNING_CHECK_MAX_SPINS = 8     # the dense (density-operator) exact mean of a 
 BATCH = 8            # families per Aer batch (benchmarks/bench_emulator.py part 7)
 POWER_RATIO = 3.0
 POWER_RULE = (f"power: stderr <= |value|/{POWER_RATIO:g} with |value| = max(|exact|, |trotter_exact|), so an "
-              f"error as large as the value gives |z| >= {POWER_RATIO:g}")
+              f"error as large as the value gives |z| >= {POWER_RATIO:g}; a standard error that is undefined or 0 "
+              f"(one shot, or a few shots that all agree) gives no power and no z")
 ATTENUATION_MODEL = MODEL + " (qhl.circuits.circuit_fidelity; rates: the device's calibration)"
 DEVICE_RULE = (f"device rows: the value must lie in [predicted, trotter_exact] (the attenuation F R is a "
                f"pessimistic bound, the true shrink lies between it and 1) within {Z_LIMIT:g} standard errors")
 BIAS_RULE = "BIAS>VALUE: |trotter_exact - exact| > |exact| (includes a sign flip)"
 
 
+def _testable(stderr) -> bool:
+    """A standard error that can carry a test: finite and above 0 (one shot gives none; a few shots that all
+    agree give 0, which says nothing about the spread)."""
+    return bool(stderr is not None and np.isfinite(stderr) and stderr > 0)
+
+
 def _passes(row: dict) -> bool:
-    """|z| < Z_LIMIT; device rows (with 'z_noiseless'): inside [predicted, trotter_exact] within Z_LIMIT sd."""
+    """|z| < Z_LIMIT; device rows (with 'z_noiseless'): inside [predicted, trotter_exact] within Z_LIMIT sd.
+    A row without a usable standard error (_testable) cannot fail: it has no power (POWER_RULE)."""
+    if not _testable(row["stderr"]):
+        return True
     if "z_noiseless" not in row:
         return bool(abs(row["z"]) < Z_LIMIT)
     sign = -1.0 if row["trotter_exact"] < 0 else 1.0
@@ -95,9 +105,10 @@ def _passes(row: dict) -> bool:
 def annotate_row(row: dict) -> dict:
     """Add 'power', 'bias_exceeds_value' and 'sign_flip' to a row (module docstring)."""
     size = max(abs(row["exact"]), abs(row["trotter_exact"]))
-    row["power"] = bool(size > 0 and row["stderr"] <= size / POWER_RATIO)
-    row["bias_exceeds_value"] = bool(abs(row["trotter_bias"]) > abs(row["exact"]))
+    row["power"] = bool(size > 0 and _testable(row["stderr"]) and row["stderr"] <= size / POWER_RATIO)
     row["sign_flip"] = bool(row["exact"] * row["trotter_exact"] < 0)
+    # a sign flip is a bias above the value even where rounding makes |trotter - exact| equal |exact|
+    row["bias_exceeds_value"] = bool(abs(row["trotter_bias"]) > abs(row["exact"]) or row["sign_flip"])
     return row
 
 
@@ -257,7 +268,7 @@ def _add_rows(report, label, kind, exact, trot, est, atten) -> None:
         e = est.part(part)
         pick = (lambda z: z.real) if part == "re" else (lambda z: z.imag)
         ref = pick(trot) * (1.0 if atten is None else atten.total)
-        z = (e.value - ref) / e.stderr if e.stderr > 0 else (0.0 if e.value == ref else np.inf)
+        z = (e.value - ref) / e.stderr if _testable(e.stderr) else float("nan")
         row = {"parameter": label, "part": part, "kind": kind, "exact": pick(exact),
                "trotter_exact": pick(trot), "emulated": e.value, "stderr": e.stderr,
                "z": float(z), "trotter_bias": pick(trot) - pick(exact),
@@ -266,8 +277,7 @@ def _add_rows(report, label, kind, exact, trot, est, atten) -> None:
             size = pick(trot)
             row.update(predicted=ref, attenuation=atten.total, attenuation_gates=atten.gates,
                        attenuation_readout=atten.readout, two_qubit_gates=atten.two_qubit_gates,
-                       z_noiseless=float((e.value - size) / e.stderr) if e.stderr > 0 else
-                       (0.0 if e.value == size else float(np.inf)),
+                       z_noiseless=float((e.value - size) / e.stderr) if _testable(e.stderr) else float("nan"),
                        measured_attenuation=e.value / size if size else float("nan"),
                        measured_attenuation_stderr=e.stderr / abs(size) if size else float("nan"))
         report.rows.append(annotate_row(row))
