@@ -98,3 +98,40 @@ def test_bound_above_one_gets_a_note(capsys):
     assert data["trotter_error_bound"] > 1 and "says nothing" in err and data["notes"]
     rc, out, err = _run(capsys, ["circuits", "--time", "1e-6", "--steps", "4", "--json"])
     assert json.loads(out)["trotter_error_bound"] < 1 and "says nothing" not in err
+
+
+SPINNING = """name = "rotor-trio"
+field_tesla = 9.4
+observe = "1H"
+[[spin]]
+label = "A"
+isotope = "1H"
+position_angstrom = [0.0, 0.0, 0.0]
+offset_hz = 100.0
+[[spin]]
+label = "B"
+isotope = "1H"
+position_angstrom = [1.8, 0.0, 0.0]
+offset_hz = -250.0
+[[experiment]]
+name = "mas"
+t_max_s = 2e-4
+points = 8
+spinning_hz = 1e5
+"""
+
+
+def test_spinning_steps_follow_the_rotor_rule_even_when_given(capsys, tmp_path):
+    # the README's rule r = max(requested, ceil(8 nu_r t)) (common practice: 8 steps per rotor period):
+    # 1e5 Hz over 1e-4 s is 10 periods, so --steps 2 becomes 80, with a note; --steps 100 stays 100
+    path = tmp_path / "rotor.toml"
+    path.write_text(SPINNING)
+    rc, out, err = _run(capsys, ["circuits", str(path), "--time", "1e-4", "--steps", "2", "--json"])
+    assert rc == 0 and json.loads(out)["per_step"] and "raised to 80 by the rotor rule" in err
+    rc, out, err = _run(capsys, ["circuits", str(path), "--time", "1e-4", "--steps", "2"])
+    assert "r = 80 steps" in out
+    rc, out, err = _run(capsys, ["circuits", str(path), "--time", "1e-4", "--steps", "100"])
+    assert "r = 100 steps" in out and "raised" not in err
+    assert main(["check", str(path), "--time", "1e-4", "--steps", "2", "--shots", "50", "--param", "offset:A"]) == 0
+    cap = capsys.readouterr()
+    assert "r = 80 steps" in cap.out and "raised to 80 by the rotor rule" in cap.err

@@ -124,6 +124,9 @@ def run(args):
                                args.param, args.experiment, args.order, progress=bars.rows,
                                reference_progress=bars.reference, device=device, sampler_options=sampler_options,
                                target=target)
+    if report.steps > args.steps:
+        print(f"qhl: note: --steps {args.steps} raised to {report.steps} by the rotor rule (8 steps per rotor "
+              f"period of the spinning experiment)", file=sys.stderr)
     if report.interrupted:
         print(f"\nqhl check: interrupted; {len(report.rows)} of {report.planned} rows finished", file=sys.stderr)
     plotted = bool(args.plot and report.rows) and write_output(args, "--plot", args.plot, lambda: _plot(

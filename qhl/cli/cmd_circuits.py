@@ -140,6 +140,12 @@ def run(args):
         check_steps(steps, "--eps")
     else:
         steps = args.steps
+        if spinning and steps_rule(experiment.spinning_hz, args.time, steps) > steps:
+            # the README's rule r = max(requested, ceil(8 nu_r t)) holds for a requested r too
+            raised = check_steps(steps_rule(experiment.spinning_hz, args.time, steps), "--steps")
+            print(f"qhl: note: --steps {steps} raised to {raised} by the rotor rule (8 steps per rotor period at "
+                  f"{experiment.spinning_hz:g} Hz over {args.time:g} s)", file=sys.stderr)
+            steps = raised
     family = build_family(model, experiment, args.kind, params, args.time, steps, args.order, args.method,
                           args.grouping, args.ordering)
     if family.circuit.size() > _LARGE:
