@@ -43,3 +43,29 @@ def test_steps_meet_the_target_and_one_fewer_does_not(hetero, order):
 def test_large_clusters_and_order_4_are_declined():
     model, ex = small_model(False, n=3)
     assert signal_trotter_steps(model, ex, ExactEngine(model), T, 4, 1e-3, unit_hz=1.0) == (None, None)
+
+
+def test_the_search_limit_is_a_cost_model_not_a_clock(monkeypatch):
+    # common practice (reproducibility): the same input gives the same r whatever the machine's load;
+    # the limit used to be a wall clock, so a loaded machine gave up (then the bound's r and another
+    # Trotter order) where an idle one found r
+    import time
+
+    import qhl.circuits.signal_trotter as st
+    model, ex = small_model(False, n=3)
+    engine = ExactEngine(model)
+    quick = signal_trotter_steps(model, ex, engine, T, 1, 2e-3, unit_hz=1.0)
+    real = st.trotter_gradient_exact
+
+    def slow(*args, **kwargs):                    # a machine 50 times busier (the clock gave up at r = 32)
+        t0 = time.perf_counter()
+        out = real(*args, **kwargs)
+        time.sleep(49 * (time.perf_counter() - t0))
+        return out
+    monkeypatch.setattr(st, "trotter_gradient_exact", slow)
+    assert signal_trotter_steps(model, ex, engine, T, 1, 2e-3, unit_hz=1.0, cost_limit_s=5.0) == quick
+    monkeypatch.setattr(st, "trotter_gradient_exact", real)
+    r = quick[0]
+    # the model's limit: a search whose next doubling is predicted above the limit gives up
+    tight = 2.5 * r * st.step_seconds(model.n_spins, len(model.free)) / 4
+    assert signal_trotter_steps(model, ex, engine, T, 1, 2e-3, unit_hz=1.0, cost_limit_s=tight) == (None, None)

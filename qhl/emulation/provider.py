@@ -66,7 +66,8 @@ class EmulatedGradientProvider(GradientProvider):
             signal-based r(t), or None for the bound; needs `engine`.
         engine: qhl.exact.engine.ExactEngine of `model` (signal-based r(t)).
         unit_hz: frequency unit of the derivative error in the signal-based r(t).
-        step_time_limit_s: time limit of one signal-based search (then the bound is used).
+        step_time_limit_s: limit of one signal-based search in seconds of its cost model
+            (qhl.circuits.signal_trotter.step_seconds; then the bound is used).
 
     Attributes:
         shots_used, circuits_run, seconds: totals over all calls.
@@ -115,7 +116,7 @@ class EmulatedGradientProvider(GradientProvider):
                                                  time, self.eps, self.order))
                 r, _ = signal_trotter_steps(self.model, experiment, self.engine, float(time), self.order,
                                             self.signal_target, self.unit_hz, r_max=bound,
-                                            time_limit_s=self.step_time_limit_s)
+                                            cost_limit_s=self.step_time_limit_s)
                 self._steps_cache[key] = (int(r), "signal") if r else (bound, "bound")
                 self.step_search_seconds[key] = _time.perf_counter() - t0
             r, source = self._steps_cache[key]
