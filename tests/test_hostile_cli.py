@@ -134,3 +134,35 @@ def test_a_failed_output_write_is_one_line_and_keeps_the_result(capsys, argv, op
         assert data and data.get("qasm") is None and data.get("plot") is None
     else:
         assert out.count("\n") >= 3                      # the table is there
+
+
+@pytest.mark.parametrize("t", ["1e-40", "1e-300"])
+def test_budget_at_a_vanishing_time_gives_a_budget_not_a_traceback(capsys, t):
+    # common practice: t -> 0 makes every derivative ~t, so the error allowed on the amplitude grows
+    # without bound (one query) and the rounded amplitude may step outside [0, 1]; both used to end
+    # in "cannot convert float NaN to integer"
+    import json
+    assert main(["budget", "--time", t, "--no-classical", "--json"]) == 0
+    ft = json.loads(capsys.readouterr().out)["fault_tolerant"]
+    assert ft["t_count"] > 0 and ft["logical_qubits"] > 0
+
+
+def test_amplitude_queries_are_stable_for_small_and_large_errors():
+    # Brassard, Hoyer, Mosca, Tapp, Contemp. Math. 305, 53 (2002), thm. 12: the bound
+    # 2 pi sqrt(a(1-a))/M + pi^2/M^2, solved here by bisection on M (independent of the closed form)
+    from qhl.costing.amplitude_estimation import queries_for_amplitude_error
+
+    def smallest(e, a):
+        bound = lambda m: 2 * np.pi * np.sqrt(a * (1 - a)) / m + np.pi ** 2 / m ** 2
+        lo, hi = 1, 1
+        while bound(hi) > e:
+            hi *= 2
+        while lo < hi:
+            mid = (lo + hi) // 2
+            lo, hi = (mid + 1, hi) if bound(mid) > e else (lo, mid)
+        return lo
+    for e, a in [(1e-3, 0.5), (1e-9, 0.5), (1e-12, 0.3), (1e-14, 0.0), (1e3, 0.5)]:
+        assert queries_for_amplitude_error(e, a) == smallest(e, a)
+    assert queries_for_amplitude_error(np.inf) == 1 and queries_for_amplitude_error(1e-3, 1 + 1e-15) >= 1
+    with pytest.raises(QhlInputError):
+        queries_for_amplitude_error(1e-320)

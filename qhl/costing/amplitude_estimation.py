@@ -23,6 +23,8 @@ import math
 
 import numpy as np
 
+from ..base.errors import QhlInputError
+
 __all__ = ["SUCCESS_PROBABILITY", "amplitude_error_bound", "queries_for_amplitude_error",
            "phase_register_queries", "median_repetitions", "ASSUMPTIONS"]
 
@@ -51,16 +53,26 @@ def amplitude_error_bound(a, queries):
 def queries_for_amplitude_error(amplitude_error, a=0.5):
     """Smallest integer M with amplitude_error_bound(a, M) <= amplitude_error (vectorised).
 
-    Solves pi^2 x^2 + 2 pi s x - e = 0 for x = 1/M with s = sqrt(a(1-a)).
+    Solves pi^2 x^2 + 2 pi s x - e = 0 for x = 1/M with s = sqrt(a(1-a)), in the form
+    x = e / (pi (s + sqrt(s^2 + e))) (no cancellation for small e; the textbook root
+    (-s + sqrt(s^2 + e)) / pi gives 0 below e ~ 1e-16 s^2). An error so small that M would pass
+    1e300 raises QhlInputError (no finite budget); an error allowed above any bound needs one query.
 
     Example:
         >>> m = queries_for_amplitude_error(1e-3); bool(amplitude_error_bound(0.5, m) <= 1e-3)
         True
     """
     e = np.asarray(amplitude_error, float)
-    s = np.sqrt(np.asarray(a, float) * (1 - np.asarray(a, float)))
-    x = (-s + np.sqrt(s**2 + e)) / np.pi
-    m = np.ceil(1.0 / x)
+    a = np.clip(np.asarray(a, float), 0.0, 1.0)           # a probability (rounding may step outside)
+    s = np.sqrt(a * (1 - a))
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+        x = np.where(np.isposinf(e), np.inf, e / (np.pi * (s + np.sqrt(s**2 + e))))
+        m = np.maximum(1.0, np.ceil(1.0 / x))       # at least one query (an error allowed above 1 needs no more)
+    if np.any(~(m < 1e300)):
+        worst = float(np.min(e))
+        raise QhlInputError(f"an amplitude error of {worst:.3g} would need more than 1e300 amplitude-estimation "
+                            f"queries: the target is below what a finite budget reaches (a much shorter time t "
+                            f"makes every derivative, and so the error allowed on it, tiny)", key="--time")
     # guard against rounding just below the target
     m = np.where(amplitude_error_bound(a, m) > e, m + 1, m)
     return int(m) if np.ndim(m) == 0 else m

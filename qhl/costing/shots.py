@@ -96,7 +96,9 @@ def hoeffding_shots(value_range, eps, delta):
     """
     if not 0 < delta < 1:
         raise QhlInputError(f"expected a failure probability in (0, 1), got {delta!r}", key="delta")
-    n = np.ceil(2.0 * np.asarray(value_range, float) ** 2 * math.log(2.0 / delta) / np.asarray(eps, float) ** 2)
+    r = np.asarray(value_range, float)
+    n = np.ceil(2.0 * r ** 2 * math.log(2.0 / delta) / np.asarray(eps, float) ** 2)
+    n = np.where(r > 0, np.maximum(n, 1.0), n)       # an estimate needs a shot even where R^2 underflows
     return int(n) if np.ndim(n) == 0 else n.astype(np.int64)
 
 
