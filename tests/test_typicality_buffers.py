@@ -7,6 +7,7 @@ against dense expm in test_engine_dense.py) for the estimates. Deterministic (fi
 """
 
 import numpy as np
+import pytest
 from qiskit.quantum_info import SparsePauliOp
 
 from qhl import ExactEngine, Experiment, build_model
@@ -131,3 +132,20 @@ def test_chebyshev_cut_by_precision():
     # the looser cut keeps fewer terms: sum_{k > K} |a_k| < tol with a_k = 2 J_k(z); for
     # z = 90, 1e-8 needs fewer terms than 1e-10 (Bessel tails fall faster than geometrically)
     assert chebyshev_terms(90.0, 1e-8, False) < chebyshev_terms(90.0, 1e-10, False)
+
+
+@pytest.mark.parametrize("derivative,tol", [(True, 1e-10), (False, 1e-8)])
+def test_term_count_from_the_transition_window_equals_the_full_sum(derivative, tol):
+    # the cut rule's tails summed over every term k = 0..K with scipy's Bessel functions (written out
+    # here, independently of the windowed count) give the same K; and w tau ~ 1e9 to 1e13, where the
+    # full sum held 1e9+ terms (a classical-cost estimate hung), is answered just above w tau
+    from scipy.special import jv
+
+    from qhl.exact.chebyshev import chebyshev_terms
+    for z in (0.3, 7.0, 90.0, 1234.5, 20000.0):
+        k = np.arange(int(z + 12 * max(z, 1) ** (1 / 3) + 60) + 1)
+        a = np.abs(jv(k, z)) * np.where(k == 0, 1.0, 2.0) * ((1 + k ** 2 / z) if derivative else 1.0)
+        tail = np.cumsum(a[::-1])[::-1]
+        assert chebyshev_terms(z, tol, derivative) == int(np.flatnonzero(tail >= tol)[-1] + 1)
+    for z in (1e9, 3e10, 6e12):
+        assert z < chebyshev_terms(z, tol, derivative) < z + 60 * z ** (1 / 3)
