@@ -41,6 +41,8 @@ def _error_line(capsys, argv):
     (["cut", "x.pdb", "--size", "2", "--centres", "1", "--out", "o", "--field", "1e9"], r"--field: .*\(0, 100\]"),
     (["cut", "x.pdb", "--size", "100000", "--centres", "1", "--out", "o"], r"--size: .*\[2, 1,000\]"),
     (["scan", "x.toml", "--out", "r.csv", "--dipolar-scale", "1", "--points", "1e9"], r"--points: .*1,048,576"),
+    (["signal", "--method", "typical", "--seed", "-1"], r"--seed: expected an integer in \[0, "),
+    (["fisher", "--seed", "-1"], r"--seed: expected an integer in \[0, "),
 ])
 def test_option_out_of_range_is_one_line(capsys, argv, pattern):
     import re
@@ -166,3 +168,30 @@ def test_amplitude_queries_are_stable_for_small_and_large_errors():
     assert queries_for_amplitude_error(np.inf) == 1 and queries_for_amplitude_error(1e-3, 1 + 1e-15) >= 1
     with pytest.raises(QhlInputError):
         queries_for_amplitude_error(1e-320)
+
+
+def _returned_error(capsys, argv):
+    rc = main(argv)
+    err = capsys.readouterr().err
+    assert rc == 2 and err.count("\n") == 1 and err.startswith("qhl: error: ")
+    return err
+
+
+@pytest.mark.parametrize("argv", [["signal", "--plot", "fid.txt"], ["budget", "--no-classical", "--plot", "sweep.dat"]])
+def test_plot_format_is_checked_before_any_work(capsys, tmp_path, monkeypatch, argv):
+    # common practice: matplotlib refuses 'txt' only when saving, after the work (and left an empty file)
+    monkeypatch.chdir(tmp_path)
+    err = _returned_error(capsys, argv)
+    assert f"--plot: cannot write a figure to '{argv[-1]}': expected a file ending in .png, .pdf, .svg" in err
+    assert not (tmp_path / argv[-1]).exists()
+
+
+def test_gradient_without_a_free_parameter_is_one_line(capsys, tmp_path):
+    # common practice: --free 'dipolar:*' on a one-spin cluster leaves nothing to differentiate (it was
+    # an argmax-of-empty traceback, and an empty gradient with exit 0 under --json)
+    path = tmp_path / "lone.toml"
+    path.write_text('field_tesla = 9.4\nobserve = "1H"\n[[spin]]\nlabel = "H1"\nisotope = "1H"\n'
+                    'offset_hz = 10.0\n[[experiment]]\nname = "fid"\nt_max_s = 1e-3\npoints = 8\n')
+    for extra in ([], ["--json"]):
+        err = _returned_error(capsys, ["signal", str(path), "--gradient", "--free", "dipolar:*", *extra])
+        assert "--free: no parameter of" in err and "nothing to differentiate" in err and "offset:H1" in err

@@ -143,6 +143,20 @@ def test_bad_input():
         nuclei_from_atoms(["H"], [[0, 0, 0]], "2H")
 
 
+@pytest.mark.parametrize("field,axis", [("     abc", "x"), ("     nan", "x"), ("        ", "x")])
+def test_pdb_coordinate_that_is_not_a_number_is_refused(tmp_path, field, axis):
+    # wwPDB format description v3.3 (2012): x, y, z in columns 31-38, 39-46, 47-54 (8.3f); gemmi
+    # read a non-number there as 0.0, which put a nucleus at the origin without a word
+    good = "HETATM    2  H2  QXA A   1       1.800   0.000   0.000  1.00 20.00           H  \n"
+    bad = "HETATM    1  H1  QXA A   1    " + field + "   0.000   0.000  1.00 20.00           H  \n"
+    path = tmp_path / "made_up.pdb"
+    path.write_text(good + bad + "END\n")
+    with pytest.raises(QhlInputError, match=f"made_up.pdb: line 2: {axis} coordinate \\(columns 31-38\\)"):
+        read_structure(path)
+    path.write_text(good + good.replace("H2 ", "H3 ").replace("1.800", "3.600") + "END\n")
+    assert len(read_structure(path)) == 2
+
+
 def test_cli_cut(tmp_path, capsys):
     out = tmp_path / "clusters"
     assert main(["cut", str(demo_structure_path()), "--isotope", "1H", "--size", "6", "--centres", "4",

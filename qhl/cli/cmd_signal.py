@@ -4,9 +4,10 @@ import sys
 
 import numpy as np
 
+from ..base.errors import QhlInputError
 from ..base.progress import FractionProgress
-from .common import add_cluster_argument, check_output_path, cluster_from_args, integer_at_least, print_json, \
-    write_output
+from .common import SEED, add_cluster_argument, check_output_path, cluster_from_args, integer_at_least, \
+    print_json, write_output
 
 
 def add_method_arguments(p):
@@ -16,7 +17,7 @@ def add_method_arguments(p):
                         "(exact when it fits in memory; default)")
     p.add_argument("--replicas", type=integer_at_least(2), default=4, metavar="R",
                    help="random states per sector pair for --method typical (default 4)")
-    p.add_argument("--seed", type=int, default=0, help="seed of the random states (default 0)")
+    p.add_argument("--seed", type=SEED, default=0, help="seed of the random states (default 0)")
     p.add_argument("--engine-precision", choices=("double", "single", "fast"), default=None,
                    help="double (the exact engine's default, the reference); single: gradient products in float32; "
                         "fast: also float32 eigendecompositions (stated tolerance 1e-3 of the largest entry); the "
@@ -56,7 +57,11 @@ def run(args):
     if args.plot:
         check_output_path(args.plot, "--plot")
     progress = FractionProgress("typical engine")
-    engine, method, note = make_engine(build_model(cluster, free=args.free), args.method,
+    model = build_model(cluster, free=args.free)
+    if args.gradient and not model.free:
+        raise QhlInputError(f"no parameter of {cluster.name} matches {' '.join(args.free)}: nothing to "
+                            f"differentiate (parameters: {', '.join(model.names)})", key="--free")
+    engine, method, note = make_engine(model, args.method,
                                        replicas=args.replicas, seed=args.seed, progress=progress,
                                        precision=args.engine_precision)
     if method == "typical":

@@ -58,12 +58,25 @@ def check_output_path(path, option):
     parent = p.parent if str(p.parent) else Path(".")
     if not parent.is_dir():
         raise QhlInputError(f"cannot write '{path}': folder '{parent}' does not exist", key=option)
+    if option == "--plot":
+        _check_figure_format(p)
     try:
         with open(p, "ab"):
             pass
     except OSError as e:
         raise QhlInputError(f"cannot write '{path}': {e.strerror}", key=option) from None
     return p
+
+
+def _check_figure_format(p: Path) -> None:
+    """A --plot file must end in a format matplotlib writes (.png, .pdf, .svg, ...), checked before any work."""
+    from matplotlib.backend_bases import FigureCanvasBase
+    formats = FigureCanvasBase.get_supported_filetypes()
+    suffix = p.suffix.lower().lstrip(".")
+    if suffix and suffix not in formats:                  # no suffix: PNG (qhl.base.files.save_figure)
+        raise QhlInputError(f"cannot write a figure to '{p}': expected a file ending in "
+                            f"{', '.join('.' + f for f in ('png', 'pdf', 'svg') if f in formats)} (or another "
+                            f"format matplotlib writes: {', '.join(sorted(formats))})", key="--plot")
 
 
 def _report_path(text):

@@ -123,9 +123,30 @@ MAX_STRUCTURE_BYTES = 256 * 2**20   # PDB/mmCIF files above 256 MiB are refused 
 
 
 def _check_text_file(path: Path) -> None:
-    """Refuse an empty, oversized or non-UTF-8 file before the structure library sees it."""
-    if not read_text_file(path, MAX_STRUCTURE_BYTES).strip():
+    """Refuse an empty, oversized or non-UTF-8 file before the structure library sees it, and a PDB
+    coordinate that is not a number (gemmi reads one as 0.0)."""
+    text = read_text_file(path, MAX_STRUCTURE_BYTES)
+    if not text.strip():
         raise QhlInputError("empty file: expected PDB or mmCIF records", source=str(path))
+    if path.suffix.lower() in (".pdb", ".ent"):
+        _check_pdb_coordinates(text, str(path))
+
+
+def _check_pdb_coordinates(text: str, src: str) -> None:
+    """Every ATOM/HETATM record's x, y, z (columns 31-38, 39-46, 47-54 of the wwPDB format description,
+    version 3.3, 2012) must be a finite number."""
+    for number, line in enumerate(text.splitlines(), 1):
+        if not line.startswith(("ATOM  ", "HETATM")):
+            continue
+        for axis, (a, b) in zip("xyz", ((30, 38), (38, 46), (46, 54))):
+            field = line[a:b]
+            try:
+                ok = math.isfinite(float(field))
+            except ValueError:
+                ok = False
+            if not ok:
+                raise QhlInputError(f"line {number}: {axis} coordinate (columns {a + 1}-{b}) is "
+                                    f"{field.strip()!r}: expected a number in angstrom", source=src)
 
 
 def _read_gemmi_atoms(path: Path):
