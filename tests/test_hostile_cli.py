@@ -195,3 +195,50 @@ def test_gradient_without_a_free_parameter_is_one_line(capsys, tmp_path):
     for extra in ([], ["--json"]):
         err = _returned_error(capsys, ["signal", str(path), "--gradient", "--free", "dipolar:*", *extra])
         assert "--free: no parameter of" in err and "nothing to differentiate" in err and "offset:H1" in err
+
+
+SPIN_STEPS = """field_tesla = 9.4
+observe = "1H"
+[[spin]]
+label = "A"
+isotope = "1H"
+position_angstrom = [0.0, 0.0, 0.0]
+offset_hz = 100.0
+[[spin]]
+label = "B"
+isotope = "1H"
+position_angstrom = [1.7, 0.4, 0.9]
+offset_hz = -250.0
+[[experiment]]
+name = "e"
+t_max_s = 2e-4
+points = 8
+noise = 1e-3
+spinning_hz = 12500.0
+[[experiment.step]]
+delay_s = 1e-5
+[[experiment.step]]
+pulse_deg = 180
+"""
+
+
+def test_engine_refusals_of_a_file_entry_name_the_file(capsys, tmp_path):
+    # common practice (this project's convention): FILE: KEY: message. The off-rotor delay is found by
+    # the spinning engine after the file was read, and its message used to lack the file
+    path = tmp_path / "offrotor.toml"
+    path.write_text(SPIN_STEPS)
+    err = _returned_error(capsys, ["fisher", str(path)])
+    assert err.startswith(f"qhl: error: {path}: experiment.step.delay_s: ") and "0.125 rotor periods" in err
+    # an option's error names no file
+    err = _returned_error(capsys, ["fisher", str(path), "--free", "nope:*"])
+    assert str(path) not in err and "no parameter matches 'nope:*'" in err
+
+
+def test_byte_order_mark_and_no_experiments(capsys, tmp_path):
+    # a UTF-8 byte-order mark before a cluster file is dropped (common practice for text files written on
+    # Windows); a cluster without experiments gives qhl signal nothing to compute (one line, as qhl fisher)
+    path = tmp_path / "bom.toml"
+    text = SPIN_STEPS.split("[[experiment]]")[0]
+    path.write_bytes(b"\xef\xbb\xbf" + text.encode())
+    err = _returned_error(capsys, ["signal", str(path)])
+    assert err == f"qhl: error: {path}: experiment: the cluster defines no experiments: add an [[experiment]]\n"

@@ -34,6 +34,20 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+# keys of a cluster file's own entries: an error about one of them names the file (qhl.spins.cluster_file)
+_FILE_KEYS = ("experiment", "spin", "pair", "observe", "field", "reference_ppm", "cluster", "hamiltonian")
+
+
+def _with_file(error, args) -> str:
+    """'FILE: ' when an error found after loading (an engine's refusal of an experiment, ...) concerns the
+    cluster file's entries but does not name the file itself; else ''."""
+    path = getattr(args, "cluster", None)
+    key = getattr(error, "key", None) or ""
+    if not isinstance(path, str) or getattr(error, "source", None) or str(error).startswith(path):
+        return ""
+    return f"{path}: " if key.split(".")[0].split("[")[0] in _FILE_KEYS else ""
+
+
 def main(argv=None) -> int:
     """Run one command; bad input -> one line on stderr and status 2, Ctrl-C -> status 130.
 
@@ -42,6 +56,7 @@ def main(argv=None) -> int:
     """
     import warnings
 
+    args = None
     try:
         parser = build_parser()          # imports every command module (numpy, ...): Ctrl-C may land here
         args = parser.parse_args(argv)
@@ -57,7 +72,7 @@ def main(argv=None) -> int:
         if getattr(args, "failed_writes", None) and not rc:
             rc = 2                           # an output file could not be written (common.write_output)
     except QhlInputError as e:
-        print(f"qhl: error: {' '.join(str(e).split())}", file=sys.stderr)
+        print(f"qhl: error: {_with_file(e, args)}{' '.join(str(e).split())}", file=sys.stderr)
         return 2
     except BrokenPipeError:  # output piped into `head` and the like
         sys.stderr.close()

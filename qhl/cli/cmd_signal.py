@@ -56,6 +56,9 @@ def run(args):
     cluster = cluster_from_args(args)
     if args.plot:
         check_output_path(args.plot, "--plot")
+    if not cluster.experiments:
+        raise QhlInputError("the cluster defines no experiments: add an [[experiment]]", source=cluster.source,
+                            key="experiment")
     progress = FractionProgress("typical engine")
     model = build_model(cluster, free=args.free)
     if args.gradient and not model.free:

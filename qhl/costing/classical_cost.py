@@ -312,8 +312,9 @@ def classical_cost(cluster, replicas: int = 4, n_times: int | None = None, cal=N
         "sector Hamiltonian built and propagated); one node as fast as this machine",
         "the calibration sector fits in cache: larger sectors run slower (measured 3.0x at 18 spins, "
         "benchmarks/bench_typical.py), so pure-state times above 16 spins are optimistic",
-        f"one signal of the costliest experiment{(' (' + ex.name + ')') if ex else ''} "
-        f"({t_max:g} s, {points} points); a gradient multiplies the pure-state time by about 1 + P",
+        (f"one signal of the costliest experiment ({ex.name}, {t_max:g} s, {points} points)" if ex else
+         f"one signal of a default acquisition ({t_max:g} s, {points} points: the cluster defines no experiments)")
+        + "; a gradient multiplies the pure-state time by about 1 + P",
         "sectors of one isotope (an upper bound for heteronuclear clusters)",
         f"spectral half-width = {rho:.3f} x sum |Pauli coefficients| (Lanczos on <= 12 spins of this cluster)",
         f"pure-state route: {replicas} random states per sector pair; estimates with a statistical error",

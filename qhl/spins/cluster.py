@@ -405,8 +405,9 @@ class Cluster:
             present = {nucleus(sp.isotope).symbol for sp in self.spins}
             for j, st in enumerate(flat_steps(ex.steps) if ex.steps else ()):
                 if isinstance(st, Pulse) and st.isotope is not None and nucleus(st.isotope).symbol not in present:
-                    raise QhlInputError(f"a pulse on {st.isotope}, but no spin has that isotope (spins: "
-                                        f"{', '.join(sorted(present))})", source=src, key=key + ".step.isotope")
+                    raise QhlInputError(f"step {j + 1} (counted with repeats unrolled) is a pulse on {st.isotope}, but "
+                                        f"no spin has that isotope (spins: {', '.join(sorted(present))})",
+                                        source=src, key=key + ".step.isotope")
 
     @property
     def labels(self) -> list:

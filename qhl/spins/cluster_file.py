@@ -350,7 +350,7 @@ def step_tables(steps) -> list:
 
 def _read_text(path: Path) -> str:
     """The file as UTF-8 text; missing, unreadable, too large or undecodable -> one-line QhlInputError."""
-    return read_text_file(path, MAX_FILE_BYTES)
+    return read_text_file(path, MAX_FILE_BYTES, encoding="utf-8-sig")     # a leading byte-order mark is dropped
 
 
 _ELEMENT_ISOTOPE = {"H": "1H", "C": "13C", "N": "15N", "F": "19F", "P": "31P", "Si": "29Si"}
