@@ -45,3 +45,21 @@ def test_bad_rotor_rates_are_refused(tmp_path):
     with pytest.raises(SystemExit) as e:
         main(["scan", "x.toml", "--dipolar-scale", "1", "--out", str(tmp_path / "o.csv"), "--spinning-hz", "2e6"])
     assert e.value.code == 2
+
+
+def test_a_pair_at_the_magic_angle_is_refused_before_any_task(tmp_path, capsys):
+    # Maricq and Waugh 1979 (P2(cos theta) = 0 at the magic angle, qhl.spins.spinning): such a pair's static
+    # coupling cannot carry the rotor modulation; the refusal used to come from a worker after other tasks
+    # ran, without the file's name
+    good = tmp_path / "good.toml"
+    bad = tmp_path / "magic.toml"
+    text = ('field_tesla = 9.4\nobserve = "1H"\n[[spin]]\nlabel = "A"\nisotope = "1H"\nposition_angstrom = [0, 0, 0]\n'
+            'offset_hz = 10.0\n[[spin]]\nlabel = "B"\nisotope = "1H"\nposition_angstrom = {pos}\noffset_hz = -40.0\n')
+    good.write_text(text.format(pos="[1.0, 0.3, 1.2]"))
+    bad.write_text(text.format(pos="[1.0, 1.0, 1.0]"))        # along (1, 1, 1): at the magic angle to z
+    out = tmp_path / "rows.csv"
+    rc = main(["scan", str(good), str(bad), "--dipolar-scale", "0:1:2", "--spinning-hz", "10000",
+               "--out", str(out), "--workers", "0"])
+    err = capsys.readouterr().err
+    assert rc == 2 and err.startswith(f"qhl: error: {bad}: experiment.spinning_hz: ") and "magic angle" in err
+    assert not out.exists() and "Traceback" not in err

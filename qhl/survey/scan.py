@@ -34,7 +34,7 @@ import time
 
 import numpy as np
 
-from ..spins.cluster import MAX_DIPOLAR_SCALE, Cluster
+from ..spins.cluster import MAX_DIPOLAR_SCALE, Cluster, Experiment
 from ..spins.cluster_file import load_cluster, parse_cluster_toml
 from .diagnostics import diagnose
 from ..exact.engine import estimate_memory_bytes
@@ -165,9 +165,19 @@ def define_scan(clusters, dipolar_scales, settings: ScanSettings = ScanSettings(
         require_memory(f"a scan task on {c.source} ({c.n_spins} spins)",      # before building anything
                        estimate_memory_bytes(c.n_spins, _sector_dimensions(c), settings.points))
         try:
-            build_model(c).with_free(settings.free)
+            model = build_model(c).with_free(settings.free)
         except QhlInputError as e:
             raise QhlInputError(str(e), source=c.source, key="free") from None
+        if settings.spinning_hz:
+            # what every task of this cluster will ask of the rotor (a pair at the magic angle, a pair without a
+            # direction), checked before any task runs instead of on a worker mid-scan
+            from ..spins.spinning import spinning_factors
+            probe = Experiment(name="scan", t_max_s=settings.t_max_s, points=settings.points, dipolar_scale=1.0,
+                               noise=settings.noise, spinning_hz=float(settings.spinning_hz))
+            try:
+                spinning_factors(model, probe)
+            except QhlInputError as e:
+                raise QhlInputError(f"{e} (--spinning-hz {settings.spinning_hz:g})", source=c.source) from None
         loaded.append(c)
     tasks, seen, names = [], set(), []
     for c in loaded:
