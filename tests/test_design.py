@@ -196,3 +196,18 @@ def test_spinning_candidate_costs_at_least_the_static_one_and_follows_the_rotor_
     short = np.array([1e-6, 2e-6])                  # 8 and 16 rotor-rule steps at 1 MHz
     fast = tc.per_time(dataclasses.replace(fid, name="mas", spinning_hz=1e6), short)
     assert 2.0 <= fast[1] / fast[0] <= 2.2
+
+
+def test_per_t_gate_leaves_out_an_experiment_the_circuits_cannot_compile(engine):
+    # common practice (as qhl budget): a finite-pulse experiment has no T-count, so it cannot share a T
+    # budget; it is left out with its reason instead of failing the whole design after the Fisher work
+    from qhl.spins.cluster import Delay, Pulse
+    c = demo_cluster()
+    echo = Experiment("finite-echo", 1e-3, 16, 1.0, 1e-3,
+                      steps=(Delay(2e-4), Pulse(180.0, 0.0, duration_s=5e-6), Delay(2e-4)))
+    c = dataclasses.replace(c, experiments=c.experiments + (echo,))
+    rep = design_experiments(c, per="t_count", engine=engine, dipolar_scales=(1.0,), windows_s=())
+    left = rep.assumptions["left_out"]
+    assert list(left) == ["finite-echo"] and "finite pulses" in left["finite-echo"]
+    assert "finite-echo" not in [x.name for x in rep.candidates] and len(rep.candidates) == len(rep.cost_per_shot)
+    assert np.all(np.isfinite(rep.crb_hz)) and rep.value <= rep.baseline_value + 1e-9

@@ -114,6 +114,19 @@ class DesignReport:
         }
 
 
+def _priced(tc, cands, left: dict):
+    """(the candidates whose shot tc prices in T gates, their costs); the others go into `left` as
+    {name: why} (an experiment the circuits cannot compile, e.g. finite pulses)."""
+    kept, costs = [], []
+    for c in cands:
+        try:
+            costs.append(tc.shot(c))
+            kept.append(c)
+        except QhlInputError as e:
+            left[c.name] = " ".join(str(e).split())
+    return kept, np.array(costs, float)
+
+
 def design_experiments(cluster, criterion: str = "D", per: str = "shot", budget=None, free=DEFAULT_FREE,
                        parameters=None, dipolar_scales=(), windows_s=(), points=None, noise=None,
                        time_points=None, include_file: bool = True, trotter_eps: float = 1e-3,
@@ -165,25 +178,36 @@ def design_experiments(cluster, criterion: str = "D", per: str = "shot", budget=
         raise QhlInputError("no free parameters", key="free")
     sel = select_parameters(model.free, parameters)
     cands = build_candidates(cluster, dipolar_scales, windows_s, points, noise, time_points, include_file)
-    say(f"Fisher information of {len(cands)} candidates ({len(model.free)} free parameters)")
-    fishers = candidate_fishers(engine, cands)
     base_cands = build_candidates(cluster, noise=noise)           # the file's experiments: the current set
-    base_f = candidate_fishers(engine, base_cands)
     costs, base_costs, assumptions = None, None, {}
     if per == "point":
         costs = np.array([float(c.times.size) for c in cands])
         base_costs = np.array([float(c.times.size) for c in base_cands])
         assumptions = {"point": "one shot of a candidate costs its number of sampled times"}
     elif per == "t_count":
+        # priced before the Fisher information: a candidate the circuits cannot compile (finite pulses) is
+        # left out with a note, as qhl budget does, instead of failing after the Fisher work
         say(f"T gates per shot of {len(cands)} candidates (Trotter models per dipolar scale)")
         tc = TCostModel(model, trotter_eps, synthesis_eps)
-        costs = np.array([tc.shot(c) for c in cands])
-        base_costs = np.array([tc.shot(c) for c in base_cands])
+        left = {}
+        cands, costs = _priced(tc, cands, left)
+        base_cands, base_costs = _priced(tc, base_cands, left)
+        for name, why in left.items():
+            say(f"note: candidate '{name}' left out (no T-count): {why}")
+        if not cands or not base_cands:
+            raise QhlInputError(f"no experiment of the {'current set' if cands else 'candidates'} can be priced in "
+                                f"T gates: {'; '.join(sorted(set(left.values())))}", source=cluster.source,
+                                key="experiment")
         if np.any(costs <= 0):
             bad = [c.name for c, x in zip(cands, costs) if x <= 0]
             raise QhlInputError(f"candidates {', '.join(bad[:3])} cost no T gates (only t = 0): nothing to "
                                 f"share a T budget over", key="candidates")
         assumptions = tc.assumptions()
+        if left:
+            assumptions["left_out"] = left
+    say(f"Fisher information of {len(cands)} candidates ({len(model.free)} free parameters)")
+    fishers = candidate_fishers(engine, cands)
+    base_f = candidate_fishers(engine, base_cands)
     say(f"optimal shares ({criterion}-criterion, per {per})")
     unit_f = fishers if costs is None else fishers / costs[:, None, None]
     sol = optimal_shares(unit_f, criterion, sel, method=method, tol=tol)
