@@ -211,3 +211,12 @@ def test_per_t_gate_leaves_out_an_experiment_the_circuits_cannot_compile(engine)
     assert list(left) == ["finite-echo"] and "finite pulses" in left["finite-echo"]
     assert "finite-echo" not in [x.name for x in rep.candidates] and len(rep.candidates) == len(rep.cost_per_shot)
     assert np.all(np.isfinite(rep.crb_hz)) and rep.value <= rep.baseline_value + 1e-9
+
+
+@pytest.mark.parametrize("per,budget", [("shot", 0.5), ("t_count", 10.0)])
+def test_a_budget_below_one_shot_is_refused_before_the_fisher_work(engine, per, budget):
+    # common practice: with no whole shot the integer allocation is empty and no bound exists (the
+    # design printed finite Cramer-Rao bounds for 0 shots)
+    with pytest.raises(QhlInputError, match="buys no whole shot of any candidate"):
+        design_experiments(demo_cluster(), per=per, budget=budget, engine=engine, dipolar_scales=(1.0,),
+                           windows_s=())

@@ -35,7 +35,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 # keys of a cluster file's own entries: an error about one of them names the file (qhl.spins.cluster_file)
-_FILE_KEYS = ("experiment", "spin", "pair", "observe", "field", "reference_ppm", "cluster", "hamiltonian")
+_FILE_KEYS = ("experiment", "spin", "spins", "pair", "observe", "field", "reference_ppm", "cluster", "hamiltonian")
 
 
 def _with_file(error, args) -> str:

@@ -122,8 +122,9 @@ def run(args):
         print(f"qhl: note: kept fixed at the cluster's values (the signal cannot see them): "
               f"{', '.join(report.fixed_unlearnable)}", file=sys.stderr)
     if fit.diverged:
+        hint = "" if args.method == "gn" else " or --method gn"
         print(f"qhl: error: {fit.message}; no result (try a closer --start-offset, fewer --free "
-              f"parameters or --method gn)", file=sys.stderr)
+              f"parameters{hint})", file=sys.stderr)
         if args.json:
             print_json(report.to_json())
         return 1

@@ -241,7 +241,7 @@ CLUSTER_SIZE = number_in(2, MAX_SPINS, integer=True, name="size")      # as the 
 CENTRES = number_in(1, 10**6, integer=True, name="centres")
 RADIUS = number_in(0, 1e3, low_open=True, name="radius")               # angstrom
 SHIFT_SPREAD = number_in(0, 1e3, name="shift spread")                  # ppm (chemical shifts span < 1000 ppm)
-START_OFFSET = number_in(-10, 10, name="relative start offset")
+START_OFFSET = number_in(0, 10, name="relative start offset")
 SCALES = range_text(10_000, -MAX_DIPOLAR_SCALE, MAX_DIPOLAR_SCALE)    # dipolar scales as in a cluster file
 SPINNING = number_in(0, MAX_SPINNING_HZ, name="spinning_hz")          # rotor rate in Hz, as in a cluster file
 AXIS_VALUES = range_text(10_000, -MAX_SPINNING_HZ, MAX_SPINNING_HZ)  # any control axis; checked per axis later

@@ -512,8 +512,14 @@ class BudgetModel:
         self.estimator = estimator if self.engine is None else None
         means, method = (self.engine, "exact") if self.engine is not None else (self.estimator, "estimated")
         if means is None:
-            self.notes.append("estimated tier not used (the pure-state engine, up to about 24 spins, is opt-in: "
-                              "--typical, estimator=): bounds are used")
+            from ..exact.typicality import MAX_TYPICAL_SPINS
+            if self.model.n_spins > MAX_TYPICAL_SPINS:
+                self.notes.append(f"estimated tier not available: the pure-state engine handles at most "
+                                  f"{MAX_TYPICAL_SPINS} spins ({self.model.n_spins} here): bounds are used")
+            else:
+                self.notes.append("estimated tier not used: the pure-state engine (up to about 24 spins in reasonable "
+                                  "time) is opt-in, `qhl budget --typical` or estimator='typical' in Python: "
+                                  "bounds are used")
         self.tiers = {"exact": "used" if self.engine is not None else "skipped",
                       "estimated": "used" if self.estimator is not None else "not available",
                       "bound": "used"}

@@ -314,8 +314,9 @@ class TypicalEngine:
     def _setup(self, model):
         n = model.n_spins
         if n > MAX_TYPICAL_SPINS:
-            raise QhlInputError(f"{n} spins: the typical engine handles at most {MAX_TYPICAL_SPINS}",
-                                key="spins")
+            raise QhlInputError(f"{n} spins: the typical engine handles at most {MAX_TYPICAL_SPINS} (one pure state "
+                                f"of {n} spins alone is 2^{n} x 8 bytes = {2.0**n * 8 / 2**30:,.0f} GiB); "
+                                f"`qhl budget` and `qhl classical` cost clusters of any size", key="spins")
         self.model = model
         gens = [p.generator for p in model.parameters]
         self.symmetric = conserves_magnetisation(gens, model.isotopes)

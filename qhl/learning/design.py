@@ -205,6 +205,11 @@ def design_experiments(cluster, criterion: str = "D", per: str = "shot", budget=
         assumptions = tc.assumptions()
         if left:
             assumptions["left_out"] = left
+    cheapest = 1.0 if costs is None else float(np.min(costs))
+    if budget is not None and budget < cheapest:
+        unit = {"shot": "shots", "point": "sampled points", "t_count": "T gates"}[per]
+        raise QhlInputError(f"a budget of {budget:g} {unit} buys no whole shot of any candidate (the cheapest shot "
+                            f"costs {cheapest:.4g}): the bounds of a design need at least one", key="budget")
     say(f"Fisher information of {len(cands)} candidates ({len(model.free)} free parameters)")
     fishers = candidate_fishers(engine, cands)
     base_f = candidate_fishers(engine, base_cands)
