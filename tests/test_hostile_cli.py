@@ -242,3 +242,17 @@ def test_byte_order_mark_and_no_experiments(capsys, tmp_path):
     path.write_bytes(b"\xef\xbb\xbf" + text.encode())
     err = _returned_error(capsys, ["signal", str(path)])
     assert err == f"qhl: error: {path}: experiment: the cluster defines no experiments: add an [[experiment]]\n"
+
+
+def test_structure_files_folders_and_a_stray_param_are_one_line(capsys, tmp_path):
+    # common practice: say what the input is and what to do instead (a TOML syntax error for a PDB file,
+    # "no such file" for a folder and a silently ignored --param were the old answers)
+    pdb = tmp_path / "made_up.pdb"
+    pdb.write_text("HETATM    1  H1  QXA A   1       0.000   0.000   0.000  1.00 20.00           H  \nEND\n")
+    assert "a structure file, not a cluster file: cut clusters from it with `qhl cut made_up.pdb" in \
+        _returned_error(capsys, ["signal", str(pdb)])
+    assert _returned_error(capsys, ["signal", str(tmp_path)]).endswith(f"{tmp_path}: a folder, not a file\n")
+    assert "a folder, not a structure file" in _returned_error(
+        capsys, ["cut", str(tmp_path), "--size", "2", "--centres", "1", "--out", str(tmp_path / "o")])
+    assert "--param: --kind signal differentiates nothing" in _returned_error(
+        capsys, ["circuits", "--time", "1e-4", "--steps", "1", "--param", "offset:H1"])

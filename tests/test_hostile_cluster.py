@@ -94,7 +94,7 @@ def test_non_utf8_and_oversized_files(tmp_path):
         load_cluster(xyz)
     with pytest.raises(QhlInputError, match="no such file"):
         load_cluster(tmp_path / "missing.toml")
-    with pytest.raises(QhlInputError, match="cannot read file"):
+    with pytest.raises(QhlInputError, match="a folder, not a file"):
         load_cluster(tmp_path)                       # a folder
 
 

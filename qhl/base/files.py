@@ -36,6 +36,8 @@ def read_text_file(path, max_bytes: int, source: str | None = None, encoding: st
         data = path.read_bytes()
     except FileNotFoundError:
         raise QhlInputError("no such file", source=src) from None
+    except IsADirectoryError:
+        raise QhlInputError("a folder, not a file", source=src) from None
     except OSError as e:
         raise QhlInputError(f"cannot read file: {e.strerror or type(e).__name__}", source=src) from None
     try:

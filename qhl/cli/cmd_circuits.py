@@ -47,6 +47,9 @@ def _experiment(cluster, name):
 
 def _parameters(kind, names):
     if kind == "signal":
+        if names:
+            raise QhlInputError("--kind signal differentiates nothing: --param is for --kind gradient or hessian",
+                                key="--param")
         return ()
     if not names:
         raise QhlInputError(f"--kind {kind} needs --param NAME", key="--param")

@@ -430,6 +430,9 @@ def load_cluster(path) -> Cluster:
     path = Path(path)
     if path.suffix.lower() == ".xyz":
         return load_xyz(path)
+    if path.suffix.lower() in (".pdb", ".ent", ".cif", ".mmcif"):
+        raise QhlInputError("a structure file, not a cluster file: cut clusters from it with `qhl cut "
+                            f"{path.name} --size K --centres N --out FOLDER`", source=str(path))
     return parse_cluster_toml(_read_text(path), source=str(path))
 
 

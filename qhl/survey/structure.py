@@ -197,6 +197,8 @@ def read_structure(path, isotopes=("1H",)) -> Nuclei:
     """
     path = Path(str(path))
     src = str(path)
+    if path.is_dir():
+        raise QhlInputError("a folder, not a structure file", source=src)
     if not path.is_file():
         raise QhlInputError("no such file", source=src)
     suffix = path.suffix.lower()
