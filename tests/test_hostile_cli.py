@@ -197,26 +197,10 @@ def test_gradient_without_a_free_parameter_is_one_line(capsys, tmp_path):
         assert "--free: no parameter of" in err and "nothing to differentiate" in err and "offset:H1" in err
 
 
-SPIN_STEPS = """field_tesla = 9.4
-observe = "1H"
-[[spin]]
-label = "A"
-isotope = "1H"
-position_angstrom = [0.0, 0.0, 0.0]
-offset_hz = 100.0
-[[spin]]
-label = "B"
-isotope = "1H"
-position_angstrom = [1.7, 0.4, 0.9]
-offset_hz = -250.0
-[[experiment]]
-name = "e"
-t_max_s = 2e-4
-points = 8
-noise = 1e-3
-spinning_hz = 12500.0
-[[experiment.step]]
-delay_s = 1e-5
+from test_cli_circuits import SPINNING      # an invented two-proton cluster spinning at 100 kHz
+
+SPIN_STEPS = SPINNING.replace("points = 8\n", "points = 8\nnoise = 1e-3\n") + """[[experiment.step]]
+delay_s = 1.25e-6
 [[experiment.step]]
 pulse_deg = 180
 """
