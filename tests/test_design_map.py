@@ -97,3 +97,13 @@ def test_ctrl_c_keeps_the_values_done(cluster, monkeypatch):
     monkeypatch.setattr(lm, "classical_cost", lambda c: (_ for _ in ()).throw(KeyboardInterrupt))
     with pytest.raises(KeyboardInterrupt):
         lm.learnability_map(cluster, values=(0.5,), points=16)
+
+
+def test_a_cycle_time_too_short_for_the_window_names_the_axis():
+    # common practice: the map's own key and the limit in its units, not the internal step key
+    # (map.step[0].repeat) the unrolled train used to report
+    from qhl.spins.cluster import MAX_REPEAT
+    from qhl.survey.learnability_map import cycle_train
+    with pytest.raises(QhlInputError, match=r"map.cycle_time_s: a cycle time of 1e-09 s repeats 500,000 times"):
+        cycle_train(1e-9, 5e-4)
+    assert cycle_train(5e-4 / (MAX_REPEAT + 1), 5e-4).cycles == MAX_REPEAT + 1

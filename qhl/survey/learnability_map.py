@@ -123,6 +123,11 @@ def cycle_train(cycle_s: float, t_max_s: float, sequence: str = DEFAULT_SEQUENCE
     if cycles < 1:
         raise QhlInputError(f"the window t_max_s = {t_max_s:g} s is shorter than one cycle of {sequence} "
                             f"({tc:g} s): expected a cycle time <= the window", key="map.cycle_time_s")
+    from ..spins.cluster import MAX_REPEAT
+    if cycles - 1 > MAX_REPEAT:              # the train repeats the cycle cycles - 1 times (experiment_at)
+        raise QhlInputError(f"a cycle time of {tc:g} s repeats {cycles:,} times in the window t_max_s = "
+                            f"{t_max_s:g} s; at most {MAX_REPEAT + 1:,} cycles are built: expected a cycle time "
+                            f">= {t_max_s / (MAX_REPEAT + 1):.3g} s (or a shorter --t-max)", key="map.cycle_time_s")
     tau = tc / CYCLE_TAUS[sequence]
     return CycleTrain(sequence, tc, tau, cycles, named_block(sequence, tau))
 
