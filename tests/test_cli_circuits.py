@@ -135,3 +135,6 @@ def test_spinning_steps_follow_the_rotor_rule_even_when_given(capsys, tmp_path):
     assert main(["check", str(path), "--time", "1e-4", "--steps", "2", "--shots", "50", "--param", "offset:A"]) == 0
     cap = capsys.readouterr()
     assert "r = 80 steps" in cap.out and "raised to 80 by the rotor rule" in cap.err
+    # 0.1 s at 100 kHz needs 80,000 steps: refused before any circuit is built
+    assert main(["check", str(path), "--time", "0.1", "--steps", "2", "--shots", "50", "--param", "offset:A"]) == 2
+    assert "needs 80,000 Trotter steps over 0.1 s; at most 5,000 are built" in capsys.readouterr().err

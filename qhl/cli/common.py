@@ -9,6 +9,7 @@ import numpy as np
 
 from ..spins.cluster import (MAX_DIPOLAR_SCALE, MAX_FIELD_TESLA, MAX_POINTS, MAX_SPINNING_HZ, MAX_SPINS,
                              MAX_T_MAX_S, NOISE_RANGE)
+from ..circuits import MAX_BUILT_STEPS
 from ..spins.cluster_file import demo_cluster, load_cluster
 from ..base.errors import QhlInputError
 
@@ -214,9 +215,7 @@ def range_text(max_count: int, low=None, high=None):
 # Ranges of the command-line numbers (the reasons are stated once, here).
 SEED = number_in(0, 2**63 - 1, integer=True, name="seed")              # numpy seeds are non-negative
 SHOTS = number_in(1, 10**8, integer=True, name="shots")                # 1e8 shots: minutes of emulation
-# Trotter steps of one built circuit: 10,000 steps on the 6-spin demo took 167 s and 1.5 GiB to
-# build and transpile (measured once); gate counts grow linearly, so larger r is costed by formula.
-MAX_STEPS = 5000
+MAX_STEPS = MAX_BUILT_STEPS           # Trotter steps of one built circuit (the reason: qhl.circuits)
 STEPS = number_in(1, MAX_STEPS, integer=True, name="steps")
 
 

@@ -66,6 +66,7 @@ from ..spins.model import build_model
 from ..spins.spinning import is_spinning
 from .derivatives import as_generator, check_shots, emulate_gradient, emulate_hessian
 from .noise import NoiseSpec
+from ..circuits import MAX_BUILT_STEPS
 from ..circuits.circuit_fidelity import MODEL
 from ..circuits.trotter_reference import trotter_gradient_exact, trotter_hessian_exact
 
@@ -74,7 +75,6 @@ __all__ = ["CheckReport", "check_derivatives", "ATTENUATION_MODEL", "DEVICE_RULE
 
 Z_LIMIT = 4.0
 SPINNING_CHECK_MAX_SPINS = 8     # the dense (density-operator) exact mean of a spinning family
-MAX_CHECK_STEPS = 5000           # Trotter steps built into one checked circuit (as the CLI's --steps range)
 BATCH = 8            # families per Aer batch (benchmarks/bench_emulator.py part 7)
 POWER_RATIO = 3.0
 POWER_RULE = (f"power: stderr <= |value|/{POWER_RATIO:g} with |value| = max(|exact|, |trotter_exact|), so an "
@@ -375,10 +375,10 @@ def check_derivatives(cluster, time, steps, shots, seed=0, noise: NoiseSpec | No
                                 key="experiment.spinning_hz")
         from ..circuits.spinning_circuits import steps_rule
         steps = steps_rule(ex.spinning_hz, t, steps)        # r = max(requested, ceil(8 nu_r t)) (README)
-        if steps > MAX_CHECK_STEPS:
+        if steps > MAX_BUILT_STEPS:
             raise QhlInputError(f"experiment '{ex.name}' spins at {ex.spinning_hz:g} Hz: the rotor rule (8 steps "
                                 f"per period) needs {steps:,} Trotter steps over {t:g} s; at most "
-                                f"{MAX_CHECK_STEPS:,} are built: choose a shorter --time", key="--time")
+                                f"{MAX_BUILT_STEPS:,} are built: choose a shorter --time", key="--time")
     base = build_model(cluster)
     names = list(base.free) if not parameters else list(dict.fromkeys(parameters))
     for nm in names:
