@@ -121,13 +121,13 @@ def report_if_asked(args, command, data, subject=None, **plots):
         return None
     from ..report import write_report
     argv = getattr(args, "argv", None)
-    written = []
-    if not write_output(args, "--report", args.report, lambda: written.append(write_report(
+    if not write_output(args, "--report", args.report, lambda: write_report(
             args.report, command, _plain(data), argv=sys.argv[1:] if argv is None else argv, subject=subject,
-            **plots))):
+            **plots)):
         return None
-    print(f"qhl: wrote the report {written[0]}", file=sys.stderr)
-    return written[0]
+    path = Path(args.report)                 # what write_report wrote to
+    print(f"qhl: wrote the report {path}", file=sys.stderr)
+    return path
 
 
 def number_in(low=None, high=None, *, low_open=False, high_open=False, integer=False, name=None):
