@@ -315,18 +315,80 @@ def test_complex_hamiltonian_with_an_rf_term():
 
 
 def test_rotor_synchronised_sampling_needs_no_partial_slices():
-    # Rotor-synchronised sampling (common practice): 8 points per period. The default K becomes a
-    # multiple of 8, every time falls on a slice boundary, and the result still equals a run with
-    # unsynchronised slices (K = 61, fourth order) and central differences of its own signal.
+    # Rotor-synchronised sampling (common practice): 8 points per period, at a rate where the angle
+    # rule asks for 32 slices. The plan puts a boundary on every sampling phase (4 equal slices between
+    # neighbours), no time needs a partial slice, and the result still equals a run with unsynchronised
+    # slices (K = 61, fourth order) and central differences of its own signal.
     from qhl.exact.spinning_engine import _Spinning
 
-    rate = 12500.0
+    rate = 13000.0
     c, m, eng, ex = _setup(FOUR, rate=rate, t_max=15 / (8 * rate), points=16)
     k = default_slices_per_period(eng, ex)
-    assert k % 8 == 0
+    assert k == 32
     assert _Spinning(eng, ex, ex.times_s, None, None, 0).inside.size == 0
     t = ex.times_s
     assert np.abs(eng.signal(ex) - spinning_signal(eng, ex, t, slices_per_period=61)).max() < 1e-4
+    _, g = eng.gradient(ex)
+    base = m.all_values_hz()[m.free_indices]
+    for j in (0, len(base) - 1):
+        up, dn = base.copy(), base.copy()
+        up[j] += 1e-3
+        dn[j] -= 1e-3
+        fd = (eng.signal(ex, free_values_hz=up) - eng.signal(ex, free_values_hz=dn)) / 2e-3
+        assert np.abs(g[j] - fd).max() < 1e-6 * np.abs(g).max()
+
+
+def _brute_force_plan_cost(k_rule, phases, partial_cost):
+    # every subset of the phases as boundaries (independent of the dynamic programme): each gap cut into
+    # ceil(gap k_rule) equal slices, 2 stages a slice, partial_cost for each phase left off
+    import itertools
+
+    best = np.inf
+    for r in range(len(phases) + 1):
+        for chosen in itertools.combinations(phases, r):
+            cuts = [0.0, *chosen, 1.0]
+            slices = sum(max(1, int(np.ceil((b - a) * k_rule - 1e-9))) for a, b in zip(cuts, cuts[1:]))
+            best = min(best, 2 * slices + partial_cost * (len(phases) - r))
+    return best
+
+
+@pytest.mark.parametrize("k_rule,phases", [(31, np.arange(1, 63) / 63), (8, [0.05, 0.1, 0.33, 0.34, 0.9]),
+                                           (13, np.sort(np.random.default_rng(3).random(9))), (5, [0.5])])
+def test_slice_plan_is_the_cheapest_and_obeys_the_angle_rule(k_rule, phases):
+    # The slice plan (dynamic programme over the sampling phases) against an exhaustive search over all
+    # subsets of the phases (common practice: a brute-force check of an optimiser); no slice is longer
+    # than 1 / k_rule of the period. The 62-phase case (64 points over exactly 10 periods) is too large
+    # to enumerate: there the plan is 32 slices, every other phase a boundary (31 left inside), cheaper
+    # than 31 equal slices (62 left inside) or 63 slices (none).
+    from qhl.exact.spinning_engine import PARTIAL_COST, _slice_fractions
+
+    phases = np.asarray(phases, float)
+    f = _slice_fractions(k_rule, phases)
+    assert f[0] == 0 and f[-1] == 1 and np.all(np.diff(f) > 0)
+    assert np.diff(f).max() <= 1 / k_rule + 1e-12
+    on = np.isclose(phases[:, None], f[None, :], rtol=0, atol=1e-12).any(axis=1)
+    cost = 2 * (f.size - 1) + PARTIAL_COST * np.count_nonzero(~on)
+    if phases.size > 12:
+        assert f.size - 1 == 32 and np.count_nonzero(on) == 31
+        assert cost < min(2 * 31 + PARTIAL_COST * 62, 2 * 63)
+    else:
+        assert cost <= _brute_force_plan_cost(k_rule, list(phases), PARTIAL_COST) + 1e-9
+
+
+def test_planned_slices_match_equal_slices_and_differences():
+    # Dense, unsynchronised sampling (68 points over exactly 10 periods, phases k/67, the angle rule
+    # asking for 33 slices): the planned unequal slices (34: 2/67 and one 1/67 of the period) give the signal of a fine equal-slice run (K = 256; fourth order, so within the
+    # default's error) and a gradient equal to central differences of their own signal (common practice).
+    from qhl.exact.spinning_engine import _Spinning
+
+    rate = 12500.0
+    c, m, eng, ex = _setup(FOUR, rate=rate, t_max=10 / rate, points=68)
+    run = _Spinning(eng, ex, ex.times_s, None, None, 0)
+    assert run.k == 34 and np.ptp(np.diff(run.fractions)) > 0.01      # unequal slices
+    assert run.inside.size == 33                                      # every other phase on a boundary
+    t = ex.times_s
+    best = spinning_signal(eng, ex, t, slices_per_period=256)
+    assert np.abs(eng.signal(ex) - best).max() < 1e-3
     _, g = eng.gradient(ex)
     base = m.all_values_hz()[m.free_indices]
     for j in (0, len(base) - 1):

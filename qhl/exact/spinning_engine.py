@@ -5,8 +5,8 @@ time-ordered propagator of H(t) = 2 pi sum_n s_n(t) h_n G_n (s_n from qhl.spins.
 H(t) keeps each isotope's total Iz, so everything is done per magnetisation sector, from the
 engine's sector blocks (ExactEngine._h_parts, _gen_blocks, _blocks).
 
-Method. Each rotor period T_R is cut into K equal slices, tau = T_R / K. On a slice [a, a + tau]
-the propagator is the fourth-order commutator-free exponential built on EXACT moments of s_n
+Method. Each rotor period T_R is cut into K slices (equal, or planned: below), the same in every
+period. On a slice [a, a + tau] the propagator is the fourth-order commutator-free exponential built on EXACT moments of s_n
 (S. Blanes and P. C. Moan, Appl. Numer. Math. 56, 1519 (2006); A. Alvermann and H. Fehske,
 J. Comput. Phys. 230, 5930 (2011)):
     U_slice = exp(-i tau (Hbar/2 + 2 M)) exp(-i tau (Hbar/2 - 2 M)),
@@ -17,8 +17,9 @@ offsets) the two exponentials commute and multiply to exp(-i tau Hbar): exact to
 Each exponential is a "stage" exp(-i tau 2 pi sum_n e_n h_n G_n) with e = sbar/2 -+ 2 mu.
   * The 2K stages are the same in every period: stage propagators from one batched eigh per
     sector, prefix products P_i, the period propagator U_R = P_2K and its powers U_R^q.
-  * A sampling time t = q T_R + j tau + delta gets U(t) = W P_2j U_R^q, with W the same two-stage
-    exponential on the part [j tau, j tau + delta] of slice j (exact moments over that part).
+  * A sampling time t = q T_R + a_j + delta (a_j the start of slice j) gets U(t) = W P_2j U_R^q,
+    with W the same two-stage exponential on the part [a_j, a_j + delta] of slice j (exact moments
+    over that part); a time on a slice boundary (delta = 0) needs no W.
   * Gradient, the exact derivative of this propagator (Daleckii-Krein for each exponential,
     U^dag dU = V ((V^dag dH V) o F') V^dag, F'_ab = exp(i E_a tau) f[E_a, E_b] with f the first
     divided difference of exp(-i E tau); R. Bhatia, "Matrix Analysis", 1997, ch. V), in the
@@ -44,15 +45,24 @@ Error. Fourth order in the slice: the local error of the scheme is O(tau^5) per 
 commutators of H and its derivatives), so O(K^-4) per rotor period. Measured on the built-in
 six-proton demo at 20 kHz (couplings up to 10.6 kHz; 10 periods, 64 points) against K = 2048: largest
 |S| error 1.6e-3, 1.1e-4, 6.9e-6, 4.3e-7 at K = 8, 16, 32, 64 (a factor ~16 per doubling;
-tests/test_spinning_engine.py checks the order); the default K there is 31.
-Default K (slices per rotor period): K = max(MIN_SLICES, ceil(T_R ||H||_b / MAX_SLICE_ANGLE)), at
-most MAX_SLICES, with ||H||_b = sum_n 2 pi |h_n| |s_n|_b ||G_n||_inf (a bound on |H(t)|; ||G||_inf the
+tests/test_spinning_engine.py checks the order); the angle rule gives K_a = 31 there.
+Default slices. The angle rule: K_a = max(MIN_SLICES, ceil(T_R ||H||_b / MAX_SLICE_ANGLE)), at most
+MAX_SLICES, with ||H||_b = sum_n 2 pi |h_n| |s_n|_b ||G_n||_inf (a bound on |H(t)|; ||G||_inf the
 largest absolute row sum of the generator, |s_n|_b the sum of the absolute Fourier coefficients),
-so the largest slice rotation stays below MAX_SLICE_ANGLE radians. When every sampling time is a
-multiple of T_R / n (rotor-synchronised sampling) and the next multiple of n above K is at most
-SYNC_GROWTH K, K becomes that multiple: every sampling time then falls on a slice boundary and
-needs no partial slice (no eigendecomposition per time). Override with `slices_per_period` (or
-ExactEngine.spinning_slices_per_period).
+so no slice longer than T_R / K_a rotates by more than MAX_SLICE_ANGLE radians. The slice plan then
+puts boundaries on the sampling phases (t mod T_R) where that saves work: a time on a boundary needs
+no partial slice (two eigendecompositions and an adjoint contraction of its own, about PARTIAL_COST
+of one stage's cost: 0.55 ms against 0.85 ms for a stage on the demo gradient below). Among all
+choices of phases as boundaries, each gap between chosen boundaries cut into ceil(gap K_a) equal
+slices, the plan takes the one of least 2 K + PARTIAL_COST (phases left inside a slice), by dynamic
+programming over the sorted phases (m phases: an m x m table, at most MAX_PLANNED_PHASES phases, else
+K_a equal slices). Every slice stays at most T_R / K_a long, so the error stays at or below that of K_a
+equal slices. Examples: rotor-synchronised sampling (every time a multiple of T_R / n) gets n equal
+gaps of ceil(K_a / n) slices and no partial slice; 64 points over exactly 10 periods (phases k / 63,
+K_a = 31) get 32 slices, 31 of 2/63 and one of 1/63 of the period, with every other phase on a boundary
+(31 partial slices instead of 62 with 31 equal slices: gradient 0.84x the time). Override with
+`slices_per_period` (K equal slices, or boundaries as fractions of the period from 0 to 1) or
+ExactEngine.spinning_slices_per_period.
 
 Memory (spinning_memory_bytes, checked with qhl.base.memory.require_memory before any work): per
 sector the stage eigendecompositions and the sampling-time propagators; in the gradient, where the
@@ -61,8 +71,6 @@ G d^2), 16 G d^2 R (3 Kc + 4) bytes (R parameters, Kc stages per chunk of CHUNK_
 generator products and the recursion's matrices) plus 16 max(d_max^2, G d^2) T 12 for the time tables
 (the group's) and the partial slices' F' (their other work runs in chunks of times, PART_BYTES each).
 """
-
-from fractions import Fraction
 
 import numpy as np
 import scipy.linalg as sla
@@ -76,12 +84,14 @@ from ..spins.cluster import refuse_steps
 from ..spins.spinning import spinning_factors
 from .divided_differences import phase_sinc_tables
 
-__all__ = ["spinning_signal", "period_propagators", "spinning_gradient", "default_slices_per_period", "spinning_memory_bytes",
+__all__ = ["spinning_signal", "period_propagators", "spinning_gradient", "default_slices_per_period",
+           "default_slice_fractions", "spinning_memory_bytes",
            "first_moments", "MAX_SLICE_ANGLE", "MIN_SLICES", "MAX_SLICES"]
 
 MAX_SLICE_ANGLE = 1.0        # radians: bound on the largest slice rotation tau ||H||_b (default K)
 MIN_SLICES = 8
-SYNC_GROWTH = 1.5            # rotor-synchronised sampling: K raised to a multiple of the grid up to this factor
+PARTIAL_COST = 0.65          # a sampling time inside a slice, in units of one stage's cost (slice plan)
+MAX_PLANNED_PHASES = 1024    # more distinct sampling phases than this: K equal slices (the plan's table is m^2)
 MAX_SLICES = 4096
 PART_BYTES = 1 << 17         # partial-slice stages per time chunk: 2 complex d x d matrices per time
 CHUNK_BYTES = 2 << 20        # stage derivatives of one chunk (3 complex arrays of Kc R G d^2; small: cache-resident)
@@ -130,48 +140,101 @@ def _norm_bound(engine, values, fourier):
     return float((2 * np.pi * np.abs(values) * gnorm) @ np.abs(fourier).sum(axis=1))
 
 
-def _rotor_grid(t, period):
-    """The smallest n such that every sampling time is a multiple of T_R / n (rotor-synchronised
-    sampling), or None."""
-    u = np.unique(np.asarray(t, float)) / period
-    steps = np.diff(u)
-    if steps.size == 0 or steps.min() <= 0:
-        return None
-    n = Fraction(float(steps.min())).limit_denominator(MAX_SLICES).denominator
-    return n if np.all(np.abs(u * n - np.round(u * n)) < 1e-9 * max(1.0, float(u.max()) * n)) else None
+def _phases(t, period):
+    """Distinct sampling phases (t mod T_R) / T_R strictly inside (0, 1), sorted (a phase within 1e-9 of a
+    period's start, relative to the time's period count, counts as 0)."""
+    u = np.asarray(t, float) / period
+    frac = u - np.floor(u)
+    tol = 1e-9 * np.maximum(1.0, u)
+    frac = frac[(frac > tol) & (frac < 1 - tol)]
+    if frac.size == 0:
+        return frac
+    frac = np.sort(frac)
+    return frac[np.concatenate([[True], np.diff(frac) > 1e-12])]
 
 
-def _rule(engine, values, sf, t=None):
+def _slice_fractions(k_rule, phases):
+    """Slice boundaries of one rotor period as fractions (K + 1,), 0 first and 1 last (module docstring):
+    every slice at most 1 / k_rule long, boundaries on the sampling phases where that lowers the cost
+    2 (slices) + PARTIAL_COST (phases left inside a slice), by dynamic programming over the phases."""
+    m = phases.size
+    if m == 0 or m > MAX_PLANNED_PHASES:
+        return np.linspace(0.0, 1.0, k_rule + 1)
+    p = np.concatenate([[0.0], phases, [1.0]])
+    idx = np.arange(m + 2)
+    # cost[b, a] of the segment between points a < b: 2 stages a slice, PARTIAL_COST a phase inside
+    n_sl = np.maximum(1, np.ceil((p[:, None] - p[None, :]) * k_rule - 1e-9))
+    cost = 2 * n_sl + PARTIAL_COST * (idx[:, None] - idx[None, :] - 1)
+    best = np.zeros(m + 2)
+    back = np.zeros(m + 2, np.int64)
+    for b in range(1, m + 2):
+        c = best[:b] + cost[b, :b]
+        back[b] = c.argmin()
+        best[b] = c[back[b]]
+    cuts, b = [m + 1], m + 1
+    while b > 0:
+        b = back[b]
+        cuts.append(b)
+    cuts = np.array(cuts[::-1])
+    counts = n_sl[cuts[1:], cuts[:-1]].astype(np.int64)                     # equal slices per segment
+    lo = np.repeat(p[cuts[:-1]], counts)
+    width = np.repeat((p[cuts[1:]] - p[cuts[:-1]]) / counts, counts)
+    step = np.arange(counts.sum()) - np.repeat(np.cumsum(counts) - counts, counts)
+    out = np.concatenate([lo + step * width, [1.0]])
+    return out if out.size - 1 <= MAX_SLICES else np.linspace(0.0, 1.0, k_rule + 1)
+
+
+def _rule(engine, values, sf):
+    """The smallest K that keeps every slice rotation below MAX_SLICE_ANGLE (within MIN_SLICES..MAX_SLICES)."""
     k = int(np.ceil(sf.period_s * _norm_bound(engine, values, sf.fourier) / MAX_SLICE_ANGLE))
-    k = int(min(max(MIN_SLICES, k), MAX_SLICES))
-    n = None if t is None else _rotor_grid(t, sf.period_s)
-    if n is not None:
-        synced = n * -(-k // n)
-        if synced <= min(SYNC_GROWTH * k, MAX_SLICES):
-            return int(synced)
-    return k
+    return int(min(max(MIN_SLICES, k), MAX_SLICES))
+
+
+def _fractions(engine, values, sf, t, slices):
+    """Slice boundaries (fractions of the period): `slices` None (the default plan for times t), a positive
+    integer K (K equal slices) or boundaries already planned (an increasing 1-D array from 0 to 1)."""
+    if slices is None:
+        return _slice_fractions(_rule(engine, values, sf), _phases(t, sf.period_s))
+    arr = np.asarray(slices, float)
+    if arr.ndim == 1 and arr.size >= 2 and arr[0] == 0 and arr[-1] == 1 and np.all(np.diff(arr) > 0):
+        return arr
+    if arr.ndim != 0 or int(slices) != slices or slices < 1:
+        raise QhlInputError(f"slices_per_period = {slices}: expected a positive integer", key="slices_per_period")
+    return np.linspace(0.0, 1.0, int(slices) + 1)
 
 
 def default_slices_per_period(engine, experiment, free_values_hz=None, times=None) -> int:
-    """The default K of the module docstring for `experiment` (its own times unless `times` is given)."""
+    """The number of slices per rotor period of the default plan (module docstring) for `experiment`
+    (its own times unless `times` is given)."""
+    return default_slice_fractions(engine, experiment, free_values_hz, times).size - 1
+
+
+def default_slice_fractions(engine, experiment, free_values_hz=None, times=None) -> np.ndarray:
+    """The default slice boundaries of one rotor period as fractions of it (K + 1,), from 0 to 1."""
     t = experiment.times_s if times is None else np.asarray(times, float)
-    return _rule(engine, engine.model.all_values_hz(free_values_hz), spinning_factors(engine.model, experiment), t)
+    sf = spinning_factors(engine.model, experiment)
+    return _fractions(engine, engine.model.all_values_hz(free_values_hz), sf, t, None)
 
 
-def _time_plan(t, period, k_slices):
-    """Per sampling time: (q periods, j whole slices, delta seconds into slice j), and tau."""
+def _time_plan(t, period, edges):
+    """Per sampling time: (q periods, j whole slices, delta seconds into slice j); edges (K + 1,) seconds."""
     if np.any(t < 0):
         raise QhlInputError("spinning experiments: sampling times must be >= 0 (they count from the start of "
                             "the acquisition, rotor phase 0)", key="times")
-    tau = period / k_slices
-    x = t / tau
-    near = np.round(x)
+    k = edges.size - 1
+    q = np.floor(t / period)
+    phase = t - q * period
+    j = np.clip(np.searchsorted(edges, phase, side="right") - 1, 0, k - 1)
+    lo, hi = q * period + edges[j], q * period + edges[j + 1]
     # on a slice boundary up to rounding: within 1e-9 of the slice AND of the time itself (a rotor so
     # slow that every time lies in the first slice must not snap them all to t = 0)
-    on = np.abs(t - near * tau) <= 1e-9 * np.minimum(tau, t)
-    n = np.where(on, near, np.floor(x)).astype(np.int64)
-    delta = np.where(on, 0.0, np.maximum(t - n * tau, 0.0))
-    return n // k_slices, n % k_slices, delta, tau
+    tol = 1e-9 * np.minimum(edges[j + 1] - edges[j], t)
+    up = np.abs(t - hi) <= tol
+    on = up | (np.abs(t - lo) <= tol)
+    delta = np.where(on, 0.0, np.maximum(t - lo, 0.0))
+    j = np.where(up, j + 1, j)
+    q = q.astype(np.int64) + (j == k)
+    return q, np.where(j == k, 0, j), delta
 
 
 def _stage_chunk(n_stages, n_rows, d):
@@ -216,6 +279,21 @@ def _expm(e, v, dt):
     return out
 
 
+def _factors(engine, experiment):
+    """spinning_factors of the engine's model in `experiment`, kept on the engine per rotor setting and pose
+    (posed crystallite engines of qhl.exact.powder share the template's dictionary)."""
+    model = engine.model
+    key = (id(model.parameters), experiment.spinning_hz, experiment.spinning_angle_deg, experiment.dipolar_scale,
+           tuple(np.asarray(model.field_direction, float)), getattr(model, "rotor_azimuth_deg", 0.0),
+           bool(getattr(model, "dipolar_constants", False)))
+    cache = engine.__dict__.setdefault("_spinning_factors", {})
+    if key not in cache:
+        if len(cache) > 64:
+            cache.clear()
+        cache[key] = spinning_factors(model, experiment)
+    return cache[key]
+
+
 def _linear_map(engine, s):
     """Sparse (d^2, P_all) map from coefficients to the flattened sector-s block of H (kept on the engine)."""
     cache = engine.__dict__.setdefault("_spinning_maps", {})
@@ -239,15 +317,13 @@ class _Spinning:
             refuse_steps(experiment, "spinning experiments (the spinning engine covers free evolution only)")
         self.engine = engine
         model = engine.model
-        self.sf = spinning_factors(model, experiment)
+        self.sf = _factors(engine, experiment)
         self.values = model.all_values_hz(free_values_hz)
-        k_slices = _rule(engine, self.values, self.sf, t) if k_slices is None else k_slices
-        if int(k_slices) != k_slices or k_slices < 1:
-            raise QhlInputError(f"slices_per_period = {k_slices}: expected a positive integer",
-                                key="slices_per_period")
-        self.k = int(k_slices)
+        self.fractions = _fractions(engine, self.values, self.sf, t, k_slices)      # slice boundaries / T_R
+        self.k = self.fractions.size - 1
         self.t = t
-        self.q, self.j, self.delta, self.tau = _time_plan(t, self.sf.period_s, self.k)
+        self.edges = self.fractions * self.sf.period_s                             # seconds, (K + 1,)
+        self.q, self.j, self.delta = _time_plan(t, self.sf.period_s, self.edges)
         self.sectors = (list(range(len(engine.sectors))) if all_sectors else
                         sorted({b.s for b in engine._blocks} | {b.p for b in engine._blocks}))
         self.need_j = sorted(set(self.j.tolist()))
@@ -256,17 +332,25 @@ class _Spinning:
         need = spinning_memory_bytes(dims, self.k, n_rows, t.size, len(self.need_j), len(self.need_q))
         require_memory(f"the spinning engine ({model.n_spins} spins, {self.k} slices per period, "
                        f"{t.size} times, {n_rows} gradient rows)", need)
-        edges = np.arange(self.k + 1) * self.tau
+        edges = self.edges
         st = _two_stage(self.sf, edges[:-1], edges[1:])                             # (2, K, P)
         # stages in time order; only those before the last sampling time when it lies in the first period
         self.n_st = 2 * self.k if self.need_q[-1] >= 1 else 2 * self.need_j[-1]
         self.stage_factors = st.transpose(1, 0, 2).reshape(2 * self.k, -1)[:self.n_st]
-        start = self.j * self.tau
+        self.stage_tau = np.repeat(np.diff(edges), 2)[:self.n_st]                  # each stage's length
+        start = edges[self.j]
         self.inside = np.nonzero(self.delta > 0)[0]          # times inside a slice (the others need no W)
         self.part_factors = _two_stage(self.sf, start[self.inside], (start + self.delta)[self.inside])
         self.spec, self.prop = {}, {}
-        for s in self.sectors:
-            self._sector(s)
+        for s, eig in zip(self.sectors, self._eigensystems()):
+            self._sector(s, eig)
+
+    def _eigensystems(self):
+        """Per sector in use: (E, V) of its 2K stages followed by its partial-slice stages (one stacked eigh;
+        two threads over the sectors gained nothing steady here, measured on two shared cores)."""
+        parts = self.part_factors.reshape(-1, self.values.size)
+        factors = np.concatenate([self.stage_factors, parts])
+        return [np.linalg.eigh(self._hamiltonians(s, factors)) for s in self.sectors]
 
     def _hamiltonians(self, s, factors):
         """(M, d, d) sector matrices 2 pi sum_n e_mn h_n G_n from the stored generator entries."""
@@ -274,12 +358,11 @@ class _Spinning:
         coeffs = 2 * np.pi * factors * self.values[None, :]
         return np.asarray((_linear_map(self.engine, s) @ coeffs.T).T).reshape(len(factors), d, d)
 
-    def _sector(self, s):
-        e, v = np.linalg.eigh(self._hamiltonians(s, self.stage_factors))                  # 2K stages
-        n_in = self.inside.size
-        ep, vp = np.linalg.eigh(self._hamiltonians(s, self.part_factors.reshape(-1, self.values.size)))
+    def _sector(self, s, eig):
+        n_in, n_st = self.inside.size, self.n_st
+        e, v, ep, vp = eig[0][:n_st], eig[1][:n_st], eig[0][n_st:], eig[1][n_st:]     # 2K stages, the parts
         parts = [(ep[:n_in], vp[:n_in]), (ep[n_in:], vp[n_in:])]                        # 2 x (inside times)
-        u = _expm(e, v, self.tau)
+        u = _expm(e, v, self.stage_tau)
         d = e.shape[-1]
         pref = np.empty((self.n_st + 1, d, d), complex)                                  # P_i, i = 0..n_st
         pref[0] = np.eye(d)
@@ -488,14 +571,20 @@ class _Spinning:
             at_mark[mk] = (at[ks], col, col + 2 * len(ks))
             col += 2 * len(ks)
         tab = full.reshape(2 * n_at, n_g * d * d)[perm].T                                 # (G d^2, 2 n_at)
-        ph = np.exp(-1j * e * self.tau)
+        tau = self.stage_tau
+        ph = np.exp(-1j * e * tau[None, :, None])
         # Phi o F' = exp(i E_b tau) f[E_a, E_b] = -i tau P S for all stages
-        pf, stab = phase_sinc_tables(e.reshape(-1, d), self.tau)
+        pf, stab = phase_sinc_tables(e.reshape(-1, d), np.tile(tau, n_g))
         pf *= stab
-        pf *= -1j * self.tau
+        pf *= -1j * np.tile(tau, n_g)[:, None, None]
         pf = pf.reshape(n_g, n_st, d, d)
         del stab
         scale = 2 * np.pi * self.stage_factors[:, idx]                                     # (n_st, R)
+        if n_st and np.all(np.abs(scale - scale[:1]) <= 1e-14 * np.abs(scale[:1])):
+            # every parameter's factor the same in all stages (no spinning modulation on the free
+            # parameters, e.g. shifts and J couplings): scale the generators once, not each stage
+            gsts = [sp.diags(np.repeat(scale[0], d)) @ g for g in gsts]
+            scale = None
         m = None
         deltas = [None] * n_g
         chunk = _stage_chunk(n_st, n_r * n_g, d)
@@ -509,7 +598,8 @@ class _Spinning:
                 gv = gsts[g] @ vs[g].transpose(1, 0, 2).reshape(d, c * d)                  # (R d, c d)
                 gv = np.ascontiguousarray(gv.reshape(n_r, d, c, d).transpose(2, 1, 0, 3)).reshape(c, d, n_r * d)
                 bt[:, g] = (_h(vs[g]) @ gv).reshape(c, d, n_r, d)
-            bt *= scale[c0:c1, None, None, :, None]
+            if scale is not None:
+                bt *= scale[c0:c1, None, None, :, None]
             # the source term Phi o F' o B_i of each stage
             bt = bt * pf[:, c0:c1].transpose(1, 0, 2, 3)[:, :, :, None, :]
             if d == 1:

@@ -192,9 +192,9 @@ def _setup(engine, experiment, t, free_values_hz, n_rows):
     _runs(engine.model, experiment, spinning_factors(engine.model, experiment).period_s)
     probe = sorted({b.s for b in engine._blocks} | {b.p for b in engine._blocks})
     acq = _Spinning(engine, experiment, t, free_values_hz, k, n_rows, steps_ok=True)
-    prep = _Preparation(engine, experiment, free_values_hz, acq.k, n_rows)
+    prep = _Preparation(engine, experiment, free_values_hz, acq.fractions, n_rows)
     if not set(prep.sectors_read()) <= set(probe):
-        acq = _Spinning(engine, experiment, t, free_values_hz, acq.k, n_rows, steps_ok=True, all_sectors=True)
+        acq = _Spinning(engine, experiment, t, free_values_hz, acq.fractions, n_rows, steps_ok=True, all_sectors=True)
     return acq, prep
 
 
