@@ -441,6 +441,8 @@ class _Spinning:
         """(R, T) contribution of the sectors `group` (all of one dimension; abs_ their contraction
         matrices) to the unnormalised gradient: one stage recursion for the group, the rest per sector."""
         idx = [n for n, _ in rows]
+        if self.engine._dims[group[0]] == 1:
+            return self._scalar_gradient(group, idx, abs_)
         gens, real = self._group_generators(group, idx)
         grad = np.zeros((len(rows), self.t.size), complex)
         # per sampling time: X = P_2j U_R^q and the contraction matrices conj(X) A X^T, X B X^dag
@@ -453,6 +455,21 @@ class _Spinning:
         deltas = self._stage_recursion(group, idx, [g[0] for g in gens], real, a3s, b3s, grad)
         for s, (a, b), (gst, gens_s), a3, b3, delta_r in zip(group, abs_, gens, a3s, b3s, deltas):
             self._sector_rest(s, idx, gens_s, real, a, b, a3, b3, delta_r, grad)
+        return grad
+
+    def _scalar_gradient(self, group, idx, abs_):
+        """(R, T) of sectors of dimension one, in closed form: there every stage is a phase, so
+        U(t) = exp(-i 2 pi sum_n h_n g_n sum_i tau_i e_in), and the two stages of a slice (or of a partial
+        slice) carry tau (sbar/2 - 2 mu) + tau (sbar/2 + 2 mu) = the exact integral of s_n over it; hence
+        U^dag dU/dh_n = -i 2 pi g_n I_n(t), I_n(t) = int_0^t s_n (SpinningFactors.mean over [0, t] times t),
+        and dS = A Xi + B conj(Xi) per time (the stage recursion gives the same to rounding)."""
+        t = self.t
+        integral = (t[:, None] * self.sf.mean(np.zeros_like(t), t))[:, idx]             # (T, R)
+        grad = np.zeros((len(idx), t.size), complex)
+        for s, (a, b) in zip(group, abs_):
+            g = np.array([self.engine._gen_blocks[n][s].toarray()[0, 0] for n in idx])
+            xi = -2j * np.pi * g[:, None] * integral.T
+            grad += a[:, 0, 0][None, :] * xi + b[:, 0, 0][None, :] * xi.conj()
         return grad
 
     def _sector_rest(self, s, idx, gens, real, a, b, a3, b3, delta_r, grad):
