@@ -314,6 +314,19 @@ def test_complex_hamiltonian_with_an_rf_term():
         assert np.abs(g[k] - fd).max() < 1e-6 * np.abs(g).max(), name
 
 
+def _assert_first_and_last_match_differences(m, eng, ex):
+    # common practice: the first and last parameters' gradient rows against central differences
+    # (step 1e-3 Hz) of the engine's own signal, to 1e-6 of the largest entry
+    _, g = eng.gradient(ex)
+    base = m.all_values_hz()[m.free_indices]
+    for j in (0, len(base) - 1):
+        up, dn = base.copy(), base.copy()
+        up[j] += 1e-3
+        dn[j] -= 1e-3
+        fd = (eng.signal(ex, free_values_hz=up) - eng.signal(ex, free_values_hz=dn)) / 2e-3
+        assert np.abs(g[j] - fd).max() < 1e-6 * np.abs(g).max()
+
+
 def test_rotor_synchronised_sampling_needs_no_partial_slices():
     # Rotor-synchronised sampling (common practice): 8 points per period, at a rate where the angle
     # rule asks for 32 slices. The plan puts a boundary on every sampling phase (4 equal slices between
@@ -328,14 +341,7 @@ def test_rotor_synchronised_sampling_needs_no_partial_slices():
     assert _Spinning(eng, ex, ex.times_s, None, None, 0).inside.size == 0
     t = ex.times_s
     assert np.abs(eng.signal(ex) - spinning_signal(eng, ex, t, slices_per_period=61)).max() < 1e-4
-    _, g = eng.gradient(ex)
-    base = m.all_values_hz()[m.free_indices]
-    for j in (0, len(base) - 1):
-        up, dn = base.copy(), base.copy()
-        up[j] += 1e-3
-        dn[j] -= 1e-3
-        fd = (eng.signal(ex, free_values_hz=up) - eng.signal(ex, free_values_hz=dn)) / 2e-3
-        assert np.abs(g[j] - fd).max() < 1e-6 * np.abs(g).max()
+    _assert_first_and_last_match_differences(m, eng, ex)
 
 
 def _brute_force_plan_cost(k_rule, phases, partial_cost):
@@ -389,14 +395,7 @@ def test_planned_slices_match_equal_slices_and_differences():
     t = ex.times_s
     best = spinning_signal(eng, ex, t, slices_per_period=256)
     assert np.abs(eng.signal(ex) - best).max() < 1e-3
-    _, g = eng.gradient(ex)
-    base = m.all_values_hz()[m.free_indices]
-    for j in (0, len(base) - 1):
-        up, dn = base.copy(), base.copy()
-        up[j] += 1e-3
-        dn[j] -= 1e-3
-        fd = (eng.signal(ex, free_values_hz=up) - eng.signal(ex, free_values_hz=dn)) / 2e-3
-        assert np.abs(g[j] - fd).max() < 1e-6 * np.abs(g).max()
+    _assert_first_and_last_match_differences(m, eng, ex)
 
 
 def test_spinning_hessian_equals_dense_second_differences():
