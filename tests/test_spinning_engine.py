@@ -344,41 +344,60 @@ def test_rotor_synchronised_sampling_needs_no_partial_slices():
     _assert_first_and_last_match_differences(m, eng, ex)
 
 
-def _brute_force_plan_cost(k_rule, phases, partial_cost):
+def _brute_force_plan_cost(k_rule, phases, counts, partial_cost):
     # every subset of the phases as boundaries (independent of the dynamic programme): each gap cut into
-    # ceil(gap k_rule) equal slices, 2 stages a slice, partial_cost for each phase left off
+    # ceil(gap k_rule) equal slices, 2 stages a slice, partial_cost for each sampling time left inside
     import itertools
 
     best = np.inf
     for r in range(len(phases) + 1):
-        for chosen in itertools.combinations(phases, r):
-            cuts = [0.0, *chosen, 1.0]
+        for chosen in itertools.combinations(range(len(phases)), r):
+            cuts = [0.0, *(phases[i] for i in chosen), 1.0]
             slices = sum(max(1, int(np.ceil((b - a) * k_rule - 1e-9))) for a, b in zip(cuts, cuts[1:]))
-            best = min(best, 2 * slices + partial_cost * (len(phases) - r))
+            left = sum(counts[i] for i in range(len(phases)) if i not in chosen)
+            best = min(best, 2 * slices + partial_cost * left)
     return best
 
 
-@pytest.mark.parametrize("k_rule,phases", [(31, np.arange(1, 63) / 63), (8, [0.05, 0.1, 0.33, 0.34, 0.9]),
-                                           (13, np.sort(np.random.default_rng(3).random(9))), (5, [0.5])])
-def test_slice_plan_is_the_cheapest_and_obeys_the_angle_rule(k_rule, phases):
-    # The slice plan (dynamic programme over the sampling phases) against an exhaustive search over all
-    # subsets of the phases (common practice: a brute-force check of an optimiser); no slice is longer
-    # than 1 / k_rule of the period. The 62-phase case (64 points over exactly 10 periods) is too large
-    # to enumerate: there the plan is 32 slices, every other phase a boundary (31 left inside), cheaper
-    # than 31 equal slices (62 left inside) or 63 slices (none).
+@pytest.mark.parametrize("k_rule,phases,counts", [
+    (31, np.arange(1, 63) / 63, None), (8, [0.05, 0.1, 0.33, 0.34, 0.9], None),
+    (13, np.sort(np.random.default_rng(3).random(9)), None), (5, [0.5], None),
+    (7, [0.5], [40]), (9, [0.2, 0.25, 0.6, 0.61], [1, 12, 3, 1])])
+def test_slice_plan_is_the_cheapest_and_obeys_the_angle_rule(k_rule, phases, counts):
+    # The slice plan (dynamic programme over the sampling phases, weighted by the times at each) against
+    # an exhaustive search over all subsets of the phases (common practice: a brute-force check of an
+    # optimiser); no slice is longer than 1 / k_rule of the period. The 62-phase case (64 points over
+    # exactly 10 periods) is too large to enumerate: there the plan is 32 slices, every other phase a
+    # boundary (31 left inside), cheaper than 31 equal slices (62 left inside) or 63 slices (none).
+    # (7, [0.5], [40]): forty times at half a period put a boundary there (8 slices, none inside),
+    # where one time would not (7 slices and one inside).
     from qhl.exact.spinning_engine import PARTIAL_COST, _slice_fractions
 
     phases = np.asarray(phases, float)
-    f = _slice_fractions(k_rule, phases)
+    weights = np.ones(phases.size) if counts is None else np.asarray(counts, float)
+    f = _slice_fractions(k_rule, phases, counts)
     assert f[0] == 0 and f[-1] == 1 and np.all(np.diff(f) > 0)
     assert np.diff(f).max() <= 1 / k_rule + 1e-12
     on = np.isclose(phases[:, None], f[None, :], rtol=0, atol=1e-12).any(axis=1)
-    cost = 2 * (f.size - 1) + PARTIAL_COST * np.count_nonzero(~on)
+    cost = 2 * (f.size - 1) + PARTIAL_COST * weights[~on].sum()
     if phases.size > 12:
         assert f.size - 1 == 32 and np.count_nonzero(on) == 31
         assert cost < min(2 * 31 + PARTIAL_COST * 62, 2 * 63)
     else:
-        assert cost <= _brute_force_plan_cost(k_rule, list(phases), PARTIAL_COST) + 1e-9
+        assert cost <= _brute_force_plan_cost(k_rule, list(phases), list(weights), PARTIAL_COST) + 1e-9
+    if counts == [40]:
+        assert f.size - 1 == 8 and on.all()
+
+
+def test_sampling_phases_and_their_counts():
+    # common practice: phases are t mod T_R over T_R; times on a period boundary (here t = 0 and
+    # t = T_R, the latter up to rounding) have no phase of their own
+    from qhl.exact.spinning_engine import _phases
+
+    period = 1 / 12500.0
+    t = np.array([0.0, 0.25, 1.25, 2.25, 0.5, 1.0 + 1e-13]) * period
+    phases, counts = _phases(t, period)
+    assert np.allclose(phases, [0.25, 0.5]) and counts.tolist() == [3, 1]
 
 
 def test_planned_slices_match_equal_slices_and_differences():

@@ -54,7 +54,7 @@ puts boundaries on the sampling phases (t mod T_R) where that saves work: a time
 no partial slice (two eigendecompositions and an adjoint contraction of its own, about PARTIAL_COST
 of one stage's cost: 0.55 ms against 0.85 ms for a stage on the demo gradient below). Among all
 choices of phases as boundaries, each gap between chosen boundaries cut into ceil(gap K_a) equal
-slices, the plan takes the one of least 2 K + PARTIAL_COST (phases left inside a slice), by dynamic
+slices, the plan takes the one of least 2 K + PARTIAL_COST (sampling times left inside a slice), by dynamic
 programming over the sorted phases (m phases: an m x m table, at most MAX_PLANNED_PHASES phases, else
 K_a equal slices). Every slice stays at most T_R / K_a long, so the error stays at or below that of K_a
 equal slices. Examples: rotor-synchronised sampling (every time a multiple of T_R / n) gets n equal
@@ -141,30 +141,33 @@ def _norm_bound(engine, values, fourier):
 
 
 def _phases(t, period):
-    """Distinct sampling phases (t mod T_R) / T_R strictly inside (0, 1), sorted (a phase within 1e-9 of a
-    period's start, relative to the time's period count, counts as 0)."""
+    """(distinct sampling phases (t mod T_R) / T_R strictly inside (0, 1), sorted; how many times lie at
+    each). A phase within 1e-9 of a period's start, relative to the time's period count, counts as 0."""
     u = np.asarray(t, float) / period
     frac = u - np.floor(u)
     tol = 1e-9 * np.maximum(1.0, u)
-    frac = frac[(frac > tol) & (frac < 1 - tol)]
+    frac = np.sort(frac[(frac > tol) & (frac < 1 - tol)])
     if frac.size == 0:
-        return frac
-    frac = np.sort(frac)
-    return frac[np.concatenate([[True], np.diff(frac) > 1e-12])]
+        return frac, np.zeros(0, np.int64)
+    first = np.concatenate([[True], np.diff(frac) > 1e-12])
+    return frac[first], np.diff(np.append(np.nonzero(first)[0], frac.size))
 
 
-def _slice_fractions(k_rule, phases):
+def _slice_fractions(k_rule, phases, counts=None):
     """Slice boundaries of one rotor period as fractions (K + 1,), 0 first and 1 last (module docstring):
     every slice at most 1 / k_rule long, boundaries on the sampling phases where that lowers the cost
-    2 (slices) + PARTIAL_COST (phases left inside a slice), by dynamic programming over the phases."""
+    2 (slices) + PARTIAL_COST (sampling times left inside a slice; counts: the times at each phase,
+    default one), by dynamic programming over the phases."""
     m = phases.size
     if m == 0 or m > MAX_PLANNED_PHASES:
         return np.linspace(0.0, 1.0, k_rule + 1)
     p = np.concatenate([[0.0], phases, [1.0]])
-    idx = np.arange(m + 2)
-    # cost[b, a] of the segment between points a < b: 2 stages a slice, PARTIAL_COST a phase inside
+    counts = np.ones(m) if counts is None else np.asarray(counts, float)
+    inside = np.concatenate([[0.0], np.cumsum(counts), [counts.sum()]])     # times at phases 1..b
+    # cost[b, a] of the segment between points a < b: 2 stages a slice, PARTIAL_COST a time inside
     n_sl = np.maximum(1, np.ceil((p[:, None] - p[None, :]) * k_rule - 1e-9))
-    cost = 2 * n_sl + PARTIAL_COST * (idx[:, None] - idx[None, :] - 1)
+    cost = 2 * n_sl + PARTIAL_COST * np.maximum(0.0, inside[np.maximum(np.arange(m + 2) - 1, 0)][:, None]
+                                                    - inside[None, :])
     best = np.zeros(m + 2)
     back = np.zeros(m + 2, np.int64)
     for b in range(1, m + 2):
@@ -194,7 +197,7 @@ def _fractions(engine, values, sf, t, slices):
     """Slice boundaries (fractions of the period): `slices` None (the default plan for times t), a positive
     integer K (K equal slices) or boundaries already planned (an increasing 1-D array from 0 to 1)."""
     if slices is None:
-        return _slice_fractions(_rule(engine, values, sf), _phases(t, sf.period_s))
+        return _slice_fractions(_rule(engine, values, sf), *_phases(t, sf.period_s))
     arr = np.asarray(slices, float)
     if arr.ndim == 1 and arr.size >= 2 and arr[0] == 0 and arr[-1] == 1 and np.all(np.diff(arr) > 0):
         return arr
@@ -613,10 +616,11 @@ class _Spinning:
             bt = np.empty((c, n_g, d, n_r, d), complex if not real else float)
             for g in range(n_g):
                 gv = gsts[g] @ vs[g].transpose(1, 0, 2).reshape(d, c * d)                  # (R d, c d)
-                gv = np.ascontiguousarray(gv.reshape(n_r, d, c, d).transpose(2, 1, 0, 3)).reshape(c, d, n_r * d)
+                gv = gv.reshape(n_r, d, c, d).transpose(2, 1, 0, 3)                          # (c, d, R, d) view
+                if scale is not None:                     # scaled while made contiguous: one pass
+                    gv = np.multiply(gv, scale[c0:c1, None, :, None], out=np.empty((c, d, n_r, d), gv.dtype))
+                gv = np.ascontiguousarray(gv).reshape(c, d, n_r * d)
                 bt[:, g] = (_h(vs[g]) @ gv).reshape(c, d, n_r, d)
-            if scale is not None:
-                bt *= scale[c0:c1, None, None, :, None]
             # the source term Phi o F' o B_i of each stage
             bt = bt * pf[:, c0:c1].transpose(1, 0, 2, 3)[:, :, :, None, :]
             if d == 1:
