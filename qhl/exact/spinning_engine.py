@@ -448,14 +448,22 @@ class _Spinning:
             return self._scalar_gradient(group, idx, abs_)
         gens, real = self._group_generators(group, idx)
         grad = np.zeros((len(rows), self.t.size), complex)
-        # per sampling time: X = P_2j U_R^q and the contraction matrices conj(X) A X^T, X B X^dag
-        a3s, b3s = [], []
+        # per sampling time X = P_2j U_R^q; for the times inside a slice also conj(X) A X^T and X B X^dag
+        # (their partial slice's contraction matrices; the marks read A, B and X themselves)
+        marks, a3s, b3s = [], [], []
+        ins = self.inside
         for s, (a, b) in zip(group, abs_):
             pj, pq, _ = self.prop[s]
             x = pj @ pq
-            a3s.append(x.conj() @ a @ x.swapaxes(1, 2))
-            b3s.append(x @ b @ _h(x))
-        deltas = self._stage_recursion(group, idx, [g[0] for g in gens], real, a3s, b3s, grad)
+            marks.append((x, a, b))
+            a3, b3 = np.zeros_like(a), np.zeros_like(b)
+            if ins.size:
+                xi = x[ins]
+                a3[ins] = xi.conj() @ a[ins] @ xi.swapaxes(1, 2)
+                b3[ins] = xi @ b[ins] @ _h(xi)
+            a3s.append(a3)
+            b3s.append(b3)
+        deltas = self._stage_recursion(group, idx, [g[0] for g in gens], real, marks, grad)
         for s, (a, b), (gst, gens_s), a3, b3, delta_r in zip(group, abs_, gens, a3s, b3s, deltas):
             self._sector_rest(s, idx, gens_s, real, a, b, a3, b3, delta_r, grad)
         return grad
@@ -525,8 +533,7 @@ class _Spinning:
         for group in self._groups():
             gens, real = self._group_generators(group, idx)
             d = self.spec[group[0]][0].shape[-1]
-            zero = [np.zeros((self.t.size, d, d), complex)] * len(group)
-            deltas = self._stage_recursion(group, idx, [g[0] for g in gens], real, zero, zero,
+            deltas = self._stage_recursion(group, idx, [g[0] for g in gens], real, [None] * len(group),
                                            np.zeros((len(idx), self.t.size), complex), marks_ok=False)
             out.update(zip(group, deltas))
         return out
@@ -544,7 +551,7 @@ class _Spinning:
             groups.setdefault(self.engine._dims[s], []).append(s)
         return list(groups.values())
 
-    def _stage_recursion(self, group, idx, gsts, real, a3s, b3s, grad, marks_ok=True):
+    def _stage_recursion(self, group, idx, gsts, real, marks, grad, marks_ok=True):
         """The Lambda recursion over the stages (module docstring), all parameters and the sectors of
         `group` (one dimension d) at once.
 
@@ -555,7 +562,8 @@ class _Spinning:
         anti-Hermitian in (a, b), so M O^dag = -conj(transpose(O M)) and O M O^dag = -conj(O^* transpose(O M)):
         two left products. At a mark 2j the contraction sum_ab Delta o A + conj(Delta) o B equals
         sum_ab M o (V^T A3 V^*) + conj(M) o (V^dag B3 V), A3 = conj(X) A X^T, B3 = X B X^dag,
-        X = P_2j U_R^q, V = V_(2j-1), summed over the group's sectors. Adds the marks' terms to grad;
+        X = P_2j U_R^q, V = V_(2j-1), summed over the group's sectors; with Y = X^dag V these are
+        Y^T A Y^* and Y^dag B Y (marks: per sector (X, A, B), each (T, d, d)). Adds the marks' terms to grad;
         returns per sector Delta_R (R, d, d), or None when no sampling time lies beyond the first period."""
         n_g = len(group)
         e = np.stack([self.spec[s][0] for s in group])                                      # (G, n_st, d)
@@ -575,16 +583,11 @@ class _Spinning:
             by_mark.setdefault(mk, []).append(k)
         n_at = at.size
         full = np.empty((2 * n_at, n_g, d, d), complex)
-        for g in range(n_g):
-            vm = v[g, 2 * self.j[at] - 1]
-            if real:
-                x = np.stack([a3s[g][at].real, a3s[g][at].imag, b3s[g][at].real, b3s[g][at].imag])
-                x = np.matmul(np.matmul(vm.swapaxes(1, 2), x), vm)
-                full[:n_at, g].real, full[:n_at, g].imag = x[0], x[1]
-                full[n_at:, g].real, full[n_at:, g].imag = x[2], -x[3]
-            else:
-                full[:n_at, g] = vm.swapaxes(1, 2) @ a3s[g][at] @ vm.conj()
-                full[n_at:, g] = (_h(vm) @ b3s[g][at] @ vm).conj()
+        for g in range(n_g if n_at else 0):
+            xs, a_, b_ = marks[g]
+            y = _h(xs[at]) @ v[g, 2 * self.j[at] - 1]                                   # Y = X^dag V
+            full[:n_at, g] = y.swapaxes(1, 2) @ a_[at] @ y.conj()
+            full[n_at:, g] = (_h(y) @ b_[at] @ y).conj()
         perm, at_mark, col = [], {}, 0
         for mk, ks in by_mark.items():
             perm += ks + [n_at + k for k in ks]
