@@ -573,27 +573,23 @@ class _Spinning:
         need_r = self.need_q[-1] >= 1
         # the marks' contraction matrices in the eigenbasis of the stage ending there, all at once
         at = np.nonzero(self.j > 0)[0] if marks_ok else np.zeros(0, np.int64)
-        mark_of = np.full(self.t.size, -1)
-        mark_of[at] = 2 * self.j[at]
+        at = at[np.argsort(self.j[at], kind="stable")]                                   # by mark
         # sum_ab M o A + conj(M) o B = (M A^T)_t + conj(M conj(B)^T)_t, summed over the sectors: one
-        # product of M (R, G d^2) with the columns [A | conj(B)]^T (G d^2, 2 n) of the times marked there
-        # (columns ordered mark by mark: a slice per mark)
-        by_mark = {}
-        for k, mk in enumerate(mark_of[at].tolist()):
-            by_mark.setdefault(mk, []).append(k)
+        # product of M (R, G d^2) with the columns [A_t, conj(B_t)] (G d^2, 2 per time) of the times
+        # marked there (times sorted by mark, so a mark's columns are one slice), into res; grad takes
+        # res after the last stage
         n_at = at.size
-        full = np.empty((2 * n_at, n_g, d, d), complex)
+        marks_at = 2 * self.j[at]
+        starts = np.flatnonzero(np.diff(marks_at, prepend=-1))
+        at_mark = {int(marks_at[lo]): (2 * lo, 2 * hi) for lo, hi in zip(starts, np.append(starts[1:], n_at))}
+        full = np.empty((n_at, 2, n_g, d, d), complex)
         for g in range(n_g if n_at else 0):
             xs, a_, b_ = marks[g]
-            y = _h(xs[at]) @ v[g, 2 * self.j[at] - 1]                                   # Y = X^dag V
-            full[:n_at, g] = y.swapaxes(1, 2) @ a_[at] @ y.conj()
-            full[n_at:, g] = (_h(y) @ b_[at] @ y).conj()
-        perm, at_mark, col = [], {}, 0
-        for mk, ks in by_mark.items():
-            perm += ks + [n_at + k for k in ks]
-            at_mark[mk] = (at[ks], col, col + 2 * len(ks))
-            col += 2 * len(ks)
-        tab = full.reshape(2 * n_at, n_g * d * d)[perm].T                                 # (G d^2, 2 n_at)
+            y = _h(xs[at]) @ v[g, marks_at - 1]                                          # Y = X^dag V
+            full[:, 0, g] = y.swapaxes(1, 2) @ a_[at] @ y.conj()
+            full[:, 1, g] = (_h(y) @ b_[at] @ y).conj()
+        tab = full.reshape(2 * n_at, n_g * d * d).T                                       # (G d^2, 2 n_at)
+        res = np.empty((n_r, 2 * n_at), complex)
         tau = self.stage_tau
         ph = np.exp(-1j * e * tau[None, :, None])
         # Phi o F' = exp(i E_b tau) f[E_a, E_b] = -i tau P S for all stages
@@ -634,7 +630,7 @@ class _Spinning:
                 m = ms[-1].copy()
                 for i in range(c0, c1):
                     if i + 1 in at_mark or (need_r and i + 1 == n_st):
-                        self._at_mark(i, ms[i - c0], at_mark, tab, grad, need_r, deltas, v, prefs)
+                        self._at_mark(i, ms[i - c0], at_mark, tab, res, need_r, deltas, v, prefs)
                 continue
             negphase = -(ph[:, c0:c1, :, None] * ph[:, c0:c1, None, :].conj()).transpose(1, 0, 2, 3)[:, :, :, None, :]
             prev = v[:, c0 - 1:c1 - 1] if c0 > 0 else np.concatenate([vs[:, :1], vs[:, :-1]], axis=1)
@@ -650,20 +646,20 @@ class _Spinning:
                     m *= negphase[ii]
                     m += bt[ii]
                 if i + 1 in at_mark or (need_r and i + 1 == n_st):
-                    self._at_mark(i, m, at_mark, tab, grad, need_r, deltas, v, prefs)
+                    self._at_mark(i, m, at_mark, tab, res, need_r, deltas, v, prefs)
+        if n_at:
+            grad[:, at] += res[:, 0::2] + res[:, 1::2].conj()
         return deltas
 
-    def _at_mark(self, i, m, at_mark, tab, grad, need_r, deltas, v, prefs):
-        """At the end of stage i: the sampling times marked there (sum_ab M o A_t + conj(M) o B_t over the
-        group, with M (G, d, R, d) flattened to (R, G d^2)) and, after the last stage of a period,
+    def _at_mark(self, i, m, at_mark, tab, res, need_r, deltas, v, prefs):
+        """At the end of stage i: the products of M (G, d, R, d), flattened to (R, G d^2), with the columns of
+        the sampling times marked there (into their columns of res) and, after the last stage of a period,
         Delta_R = Z^dag M Z per sector (into deltas)."""
         n_g, d, n_r = m.shape[0], m.shape[1], m.shape[2]
         mc = m.transpose(2, 0, 1, 3).reshape(n_r, n_g * d * d)                         # (R, G d^2), a copy
         hit = at_mark.get(i + 1)
         if hit is not None:
-            sel, lo, hi = hit
-            both = mc @ tab[:, lo:hi]
-            grad[:, sel] += both[:, :sel.size] + both[:, sel.size:].conj()
+            res[:, hit[0]:hit[1]] = mc @ tab[:, hit[0]:hit[1]]
         if need_r and i + 1 == self.n_st:
             mc = mc.reshape(n_r, n_g, d, d)
             for g in range(n_g):
