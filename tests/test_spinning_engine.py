@@ -400,6 +400,28 @@ def test_sampling_phases_and_their_counts():
     assert np.allclose(phases, [0.25, 0.5]) and counts.tolist() == [3, 1]
 
 
+def test_bad_slice_boundaries_are_refused():
+    # common practice: boundaries that do not run from 0 to 1 or do not increase get a one-line error
+    c, m, eng, ex = _setup(THREE)
+    for bad in ([0.0, 0.5, 0.4, 1.0], [0.1, 1.0], [0.0, 0.5]):
+        with pytest.raises(QhlInputError, match="increasing from 0 to 1"):
+            spinning_signal(eng, ex, ex.times_s, slices_per_period=np.array(bad))
+    with pytest.raises(QhlInputError, match="positive integer"):
+        spinning_signal(eng, ex, ex.times_s, slices_per_period=2.5)
+
+
+def test_slice_plan_falls_back_to_equal_slices_for_many_phases():
+    # common practice: beyond MAX_PLANNED_PHASES distinct phases the m x m tables of the plan are not
+    # built; the period gets the angle rule's equal slices (every time then has its own partial slice)
+    from qhl.exact.spinning_engine import MAX_PLANNED_PHASES, _slice_fractions
+
+    phases = (np.arange(MAX_PLANNED_PHASES + 1) + 0.5) / (MAX_PLANNED_PHASES + 1)
+    assert np.allclose(_slice_fractions(31, phases), np.linspace(0, 1, 32))
+    planned = _slice_fractions(31, phases[:MAX_PLANNED_PHASES])              # at the limit: planned
+    on = np.isclose(phases[:MAX_PLANNED_PHASES, None], planned[None, :], rtol=0, atol=1e-12).any(axis=1)
+    assert np.count_nonzero(on) >= 31 and np.diff(planned).max() <= 1 / 31 + 1e-12
+
+
 def test_planned_slices_match_equal_slices_and_differences():
     # Dense, unsynchronised sampling (68 points over exactly 10 periods, phases k/67, the angle rule
     # asking for 33 slices): the planned unequal slices (34: 2/67 and one 1/67 of the period) give the signal of a fine equal-slice run (K = 256; fourth order, so within the

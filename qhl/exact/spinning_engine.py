@@ -91,7 +91,7 @@ __all__ = ["spinning_signal", "period_propagators", "spinning_gradient", "defaul
 MAX_SLICE_ANGLE = 1.0        # radians: bound on the largest slice rotation tau ||H||_b (default K)
 MIN_SLICES = 8
 PARTIAL_COST = 0.65          # a sampling time inside a slice, in units of one stage's cost (slice plan)
-MAX_PLANNED_PHASES = 1024    # more distinct sampling phases than this: K equal slices (the plan's table is m^2)
+MAX_PLANNED_PHASES = 512     # more distinct sampling phases than this: K equal slices (the plan's tables are m^2)
 MAX_SLICES = 4096
 PART_BYTES = 1 << 17         # partial-slice stages per time chunk: 2 complex d x d matrices per time
 CHUNK_BYTES = 2 << 20        # stage derivatives of one chunk (3 complex arrays of Kc R G d^2; small: cache-resident)
@@ -201,6 +201,9 @@ def _fractions(engine, values, sf, t, slices):
     arr = np.asarray(slices, float)
     if arr.ndim == 1 and arr.size >= 2 and arr[0] == 0 and arr[-1] == 1 and np.all(np.diff(arr) > 0):
         return arr
+    if arr.ndim == 1:
+        raise QhlInputError(f"slices_per_period = {np.array2string(arr, threshold=8)}: expected slice boundaries "
+                            f"as fractions of the period, increasing from 0 to 1", key="slices_per_period")
     if arr.ndim != 0 or int(slices) != slices or slices < 1:
         raise QhlInputError(f"slices_per_period = {slices}: expected a positive integer", key="slices_per_period")
     return np.linspace(0.0, 1.0, int(slices) + 1)
@@ -376,16 +379,17 @@ class _Spinning:
         pw[0] = np.eye(d)
         for q in range(1, len(pw)):
             pw[q] = ur @ pw[q - 1]
-        w1 = np.broadcast_to(np.eye(d, dtype=complex), (self.t.size, d, d)).copy()
-        w2 = w1.copy()
+        # X = P_2j U_R^q per time; U = W X, W = W2 W1 only for the times inside a slice (else W = 1);
+        # w1 holds W1 in the rows of those times (the others are not read)
+        x = pref[2 * self.j] @ pw[self.q]
+        full = x.copy()
+        w1 = np.empty((self.t.size, d, d), complex)
         if n_in:
-            w1[self.inside] = _expm(parts[0][0], parts[0][1], self.delta[self.inside])
-            w2[self.inside] = _expm(parts[1][0], parts[1][1], self.delta[self.inside])
-        pj = pref[2 * self.j]
-        pq = pw[self.q]
-        w = w2 @ w1
+            ins = self.inside
+            w1[ins] = _expm(parts[0][0], parts[0][1], self.delta[ins])
+            full[ins] = _expm(parts[1][0], parts[1][1], self.delta[ins]) @ w1[ins] @ x[ins]
         self.spec[s] = (e, v, parts, w1, pref, pw)
-        self.prop[s] = (pj, pq, w @ pj @ pq)                                           # U(t) = W P_2j U_R^q
+        self.prop[s] = (x, full)                                                       # X, U(t) = W X
 
     def _block_list(self, blocks):
         """(s, p, rho_sp, O_ps) dense, by default rho0's and O's blocks (the engine's _Block list)."""
@@ -397,7 +401,7 @@ class _Spinning:
         """S(t) = Tr[O U(t) rho U(t)^dag] / N; blocks: (s, p, rho_sp, O_ps) of another rho (default rho0)."""
         out = np.zeros(self.t.size, complex)
         for s, p, rho, obs in self._block_list(blocks):
-            us, up = self.prop[s][2], self.prop[p][2]
+            us, up = self.prop[s][1], self.prop[p][1]
             y = us @ rho @ _h(up)
             out += np.einsum("mab,ba->m", y, obs)
         return out / self.engine.norm
@@ -408,7 +412,7 @@ class _Spinning:
         signal sum over blocks Tr[O U_s rho U_p^dag] = sum_ab U_s o C (the product C is at hand)."""
         cm = {s: [None, None] for s in self.sectors}
         for s_, p_, rho, obs in self._block_list(blocks):
-            us, up = self.prop[s_][2], self.prop[p_][2]
+            us, up = self.prop[s_][1], self.prop[p_][1]
             ca = (rho @ _h(up) @ obs).swapaxes(1, 2)
             if trace_out is not None:
                 trace_out += np.einsum("mab,mab->m", us, ca)
@@ -417,7 +421,7 @@ class _Spinning:
             cm[p_][1] = cb if cm[p_][1] is None else cm[p_][1] + cb
         out = {}
         for s, (ca, cb) in cm.items():
-            u = self.prop[s][2]
+            u = self.prop[s][1]
             d = u.shape[-1]
             ca = np.zeros((self.t.size, d, d), complex) if ca is None else ca
             cb = np.zeros((self.t.size, d, d), complex) if cb is None else cb
@@ -453,8 +457,7 @@ class _Spinning:
         marks, a3s, b3s = [], [], []
         ins = self.inside
         for s, (a, b) in zip(group, abs_):
-            pj, pq, _ = self.prop[s]
-            x = pj @ pq
+            x = self.prop[s][0]
             marks.append((x, a, b))
             a3, b3 = np.zeros_like(a), np.zeros_like(b)
             if ins.size:
@@ -735,7 +738,7 @@ def period_propagators(engine, experiment, free_values_hz=None, slices_per_perio
     sf = spinning_factors(engine.model, experiment)
     run = _Spinning(engine, experiment, np.array([sf.period_s]), free_values_hz,
                     _slices(engine, slices_per_period), 0)
-    return [(engine.sectors[s], run.prop[s][2][0]) for s in run.sectors]
+    return [(engine.sectors[s], run.prop[s][1][0]) for s in run.sectors]
 
 
 @blas_limited

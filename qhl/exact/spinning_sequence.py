@@ -133,7 +133,7 @@ class _Preparation:
             self.period = _Spinning(engine, experiment, np.array([sf.period_s]), free_values_hz, k_slices, n_rows,
                                     steps_ok=True, all_sectors=True)
             for s in range(len(dims)):
-                tri, w = sla.schur(self.period.prop[s][2][0], output="complex")
+                tri, w = sla.schur(self.period.prop[s][1][0], output="complex")
                 vectors[s], self.lam[s] = w, np.diag(tri).copy()
         self.basis = _Basis(engine, types.SimpleNamespace(vectors=vectors, energies=[np.zeros(d) for d in dims]))
         self.slices = self.basis.slices
@@ -226,7 +226,7 @@ def spinning_sequence_gradient(engine, experiment, t, free_values_hz, rows):
         bar(0.5 * (i + 1) / len(acq.sectors))
     if prep.period is not None:
         # Tr[O U(t) dX U(t)^dag] = sum_ab dX_sp[a, b] Q_sp(t)[b, a], Q_sp = U_p^dag O_ps U_s
-        tables = [(_h(acq.prop[p][2]) @ o @ acq.prop[s][2]).swapaxes(1, 2).reshape(t.size, -1)
+        tables = [(_h(acq.prop[p][1]) @ o @ acq.prop[s][1]).swapaxes(1, 2).reshape(t.size, -1)
                   for s, p, o in prep.pairs]
         vec = prep.basis.vectors
         chunk = _chunk(prep.n, len(rows))
