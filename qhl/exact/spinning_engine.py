@@ -163,11 +163,12 @@ def _slice_fractions(k_rule, phases, counts=None):
         return np.linspace(0.0, 1.0, k_rule + 1)
     p = np.concatenate([[0.0], phases, [1.0]])
     counts = np.ones(m) if counts is None else np.asarray(counts, float)
-    inside = np.concatenate([[0.0], np.cumsum(counts), [counts.sum()]])     # times at phases 1..b
-    # cost[b, a] of the segment between points a < b: 2 stages a slice, PARTIAL_COST a time inside
+    upto = np.concatenate([[0.0], np.cumsum(counts), [counts.sum()]])       # times at phases 1..k, k = 0..m+1
+    # cost[b, a] of the segment between points a < b: 2 stages a slice, PARTIAL_COST a time strictly
+    # inside (the times at phases a+1..b-1)
     n_sl = np.maximum(1, np.ceil((p[:, None] - p[None, :]) * k_rule - 1e-9))
-    cost = 2 * n_sl + PARTIAL_COST * np.maximum(0.0, inside[np.maximum(np.arange(m + 2) - 1, 0)][:, None]
-                                                    - inside[None, :])
+    between = upto[np.maximum(np.arange(m + 2) - 1, 0)][:, None] - upto[None, :]
+    cost = 2 * n_sl + PARTIAL_COST * np.maximum(0.0, between)
     best = np.zeros(m + 2)
     back = np.zeros(m + 2, np.int64)
     for b in range(1, m + 2):
@@ -179,10 +180,10 @@ def _slice_fractions(k_rule, phases, counts=None):
         b = back[b]
         cuts.append(b)
     cuts = np.array(cuts[::-1])
-    counts = n_sl[cuts[1:], cuts[:-1]].astype(np.int64)                     # equal slices per segment
-    lo = np.repeat(p[cuts[:-1]], counts)
-    width = np.repeat((p[cuts[1:]] - p[cuts[:-1]]) / counts, counts)
-    step = np.arange(counts.sum()) - np.repeat(np.cumsum(counts) - counts, counts)
+    per_gap = n_sl[cuts[1:], cuts[:-1]].astype(np.int64)                    # equal slices per segment
+    lo = np.repeat(p[cuts[:-1]], per_gap)
+    width = np.repeat((p[cuts[1:]] - p[cuts[:-1]]) / per_gap, per_gap)
+    step = np.arange(per_gap.sum()) - np.repeat(np.cumsum(per_gap) - per_gap, per_gap)
     out = np.concatenate([lo + step * width, [1.0]])
     return out if out.size - 1 <= MAX_SLICES else np.linspace(0.0, 1.0, k_rule + 1)
 
@@ -218,8 +219,7 @@ def default_slices_per_period(engine, experiment, free_values_hz=None, times=Non
 def default_slice_fractions(engine, experiment, free_values_hz=None, times=None) -> np.ndarray:
     """The default slice boundaries of one rotor period as fractions of it (K + 1,), from 0 to 1."""
     t = experiment.times_s if times is None else np.asarray(times, float)
-    sf = spinning_factors(engine.model, experiment)
-    return _fractions(engine, engine.model.all_values_hz(free_values_hz), sf, t, None)
+    return _fractions(engine, engine.model.all_values_hz(free_values_hz), _factors(engine, experiment), t, None)
 
 
 def _time_plan(t, period, edges):
